@@ -1,0 +1,125 @@
+"""Respondent-level building blocks: metric values, bases and subgroup membership.
+
+This is the only place (with the estimates step) that reads respondent rows. It turns a
+harmonized wave into matrices: ``Y`` (respondents x metrics, the value each respondent
+contributes), ``E`` (respondents x metrics, who is in the metric's base) and ``D``
+(respondents x subgroup levels).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .codebook import Codebook, Metric
+
+TOTAL = "Total"
+
+
+@dataclass(frozen=True)
+class Levels:
+    """The subgroup levels of a call, in order: (group, level) pairs; ('total', 'Total') first."""
+
+    group: tuple[str, ...]
+    level: tuple[str, ...]
+
+
+def _codes_mask(codebook: Codebook, table: pd.DataFrame, variable: str, codes: tuple) -> tuple[np.ndarray, np.ndarray]:
+    """(holds one of codes, has an answer) for a coded or multi variable."""
+    var = codebook.variables[variable]
+    n = len(table)
+    if var.type == "multi":
+        if not all(o in table.columns for o in var.options):
+            return np.zeros(n, bool), np.zeros(n, bool)
+        opts = table[list(var.options)].to_numpy(dtype=float)
+        answered = ~np.isnan(opts).all(axis=1)
+        chosen = table[list(codes)].to_numpy(dtype=float)
+        return np.nan_to_num(chosen, nan=0.0).max(axis=1) == 1, answered
+    if variable not in table.columns:
+        return np.zeros(n, bool), np.zeros(n, bool)
+    x = table[variable].to_numpy(dtype=float)
+    answered = ~np.isnan(x) & ~np.isin(x, list(var.missing))
+    return np.isin(x, list(codes)) & answered, answered
+
+
+def metric_matrix(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric]) -> tuple[np.ndarray, np.ndarray]:
+    """Return (Y, E): each respondent's value for each metric, and who is in each base.
+
+    share: 1 if the answer is one of the codes, else 0; mean: the answer; balance: +1 for a
+    plus code, -1 for a minus code, 0 otherwise (so the weighted mean of Y is the balance).
+    The base holds respondents with a valid answer (blank and missing codes leave it) who
+    also pass the metric's ``base`` filter.
+    """
+    n = len(table)
+    Y = np.zeros((n, len(metrics)))
+    E = np.zeros((n, len(metrics)), dtype=bool)
+    for j, m in enumerate(metrics):
+        var = codebook.variables[m.variable]
+        if m.kind == "share":
+            y, answered = _codes_mask(codebook, table, m.variable, m.codes)
+            Y[:, j] = y
+        elif m.kind == "balance":
+            plus, answered = _codes_mask(codebook, table, m.variable, m.plus)
+            minus, _ = _codes_mask(codebook, table, m.variable, m.minus)
+            Y[:, j] = plus.astype(float) - minus
+        else:
+            if m.variable in table.columns:
+                x = table[m.variable].to_numpy(dtype=float)
+                answered = ~np.isnan(x) & ~np.isin(x, list(var.missing))
+                Y[:, j] = np.where(answered, x, 0.0)
+            else:
+                answered = np.zeros(n, bool)
+        if m.base_variable:
+            inbase, _ = _codes_mask(codebook, table, m.base_variable, m.base_codes)
+            answered = answered & inbase
+        E[:, j] = answered
+    return Y, E
+
+
+def exclusions(codebook: Codebook, table: pd.DataFrame, metric: Metric) -> dict[str, int]:
+    """How many respondents left the metric's base, by reason."""
+    var = codebook.variables[metric.variable]
+    n = len(table)
+    cols = list(var.options) if var.type == "multi" else [var.name]
+    if not all(c in table.columns for c in cols):
+        return {"not asked in this wave": n}
+    x = table[cols].to_numpy(dtype=float)
+    blank = np.isnan(x).all(axis=1)
+    out = {"blank": int(blank.sum())}
+    if var.missing:
+        out["missing code (" + ", ".join(var.missing.values()) + ")"] = int(np.isin(x[:, 0], list(var.missing)).sum())
+    if metric.base_variable:
+        inbase, _ = _codes_mask(codebook, table, metric.base_variable, metric.base_codes)
+        answered = ~blank & ~np.isin(x[:, 0], list(var.missing))
+        out[f"outside the base ({metric.base_variable})"] = int((answered & ~inbase).sum())
+    return {k: v for k, v in out.items() if v}
+
+
+def group_matrix(codebook: Codebook, table: pd.DataFrame, groups: list[str]) -> tuple[np.ndarray, Levels]:
+    """Return (D, levels): subgroup membership, with the whole sample as the first column."""
+    n = len(table)
+    cols = [np.ones(n, bool)]
+    gnames, lnames = ["total"], [TOTAL]
+    for gname in groups:
+        g = codebook.groups[gname]
+        x = table[g.variable].to_numpy(dtype=float) if g.variable in table.columns else np.full(n, np.nan)
+        for label, codes in g.levels.items():
+            if g.bands is not None:
+                lo, hi = g.bands[label]
+                cols.append((x >= lo) & (x <= hi))
+            else:
+                cols.append(np.isin(x, codes))
+            gnames.append(gname)
+            lnames.append(label)
+    return np.column_stack(cols), Levels(tuple(gnames), tuple(lnames))
+
+
+def group_labels(codebook: Codebook, table: pd.DataFrame, group: str) -> np.ndarray:
+    """Each respondent's label in one group (None outside every level)."""
+    D, levels = group_matrix(codebook, table, [group])
+    labels = np.array([None, *levels.level[1:]], dtype=object)
+    inside = D[:, 1:]
+    idx = np.where(inside.any(axis=1), inside.argmax(axis=1) + 1, 0)
+    return labels[idx]

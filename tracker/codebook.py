@@ -1,0 +1,436 @@
+"""Read and validate a study codebook (the YAML contract described in docs/codebook.md).
+
+Every error names the key path and what is wrong, e.g.
+``metrics.satisfied.share: code 7 is not a code of satisfaction``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from .errors import TrackerError
+
+TYPES = ("category", "scale", "number", "multi", "text")
+LABEL_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,39}$")
+
+
+class _Loader(yaml.SafeLoader):
+    """SafeLoader that keeps dates as text and only true/false as booleans.
+
+    Wave labels such as ``2025-09-30`` must stay the text written, and a code label such
+    as ``No`` or ``On`` must not turn into a boolean (YAML 1.1 would do both).
+    """
+
+
+_Loader.yaml_implicit_resolvers = {
+    key: [(tag, rx) for tag, rx in resolvers if tag not in ("tag:yaml.org,2002:timestamp", "tag:yaml.org,2002:bool")]
+    for key, resolvers in yaml.SafeLoader.yaml_implicit_resolvers.items()
+}
+_Loader.add_implicit_resolver(
+    "tag:yaml.org,2002:bool", re.compile(r"^(?:true|True|TRUE|false|False|FALSE)$"), list("tTfF")
+)
+
+
+@dataclass(frozen=True)
+class Recode:
+    waves: tuple[str, ...]
+    map: dict[float, float]
+
+
+@dataclass(frozen=True)
+class Variable:
+    name: str
+    label: str
+    type: str
+    codes: dict[float, str] = field(default_factory=dict)
+    missing: dict[float, str] = field(default_factory=dict)
+    options: dict[str, str] = field(default_factory=dict)
+    range: tuple[float, float] | None = None
+    aliases: tuple[str, ...] = ()
+    recode: tuple[Recode, ...] = ()
+    break_before: str | None = None
+    first_wave: str | None = None
+    last_wave: str | None = None
+
+    def code_label(self, code: float) -> str:
+        return self.codes.get(code, self.missing.get(code, _fmt_code(code)))
+
+
+@dataclass(frozen=True)
+class Group:
+    """A subgroup split: ``levels`` maps each label to the codes (or closed band) it holds."""
+
+    name: str
+    variable: str
+    levels: dict[str, tuple[float, ...]] = field(default_factory=dict)
+    bands: dict[str, tuple[float, float]] | None = None
+
+
+@dataclass(frozen=True)
+class Metric:
+    name: str
+    label: str
+    variable: str
+    kind: str  # share | mean | balance
+    codes: tuple = ()  # share codes (or option columns for multi)
+    plus: tuple = ()
+    minus: tuple = ()
+    base_variable: str | None = None
+    base_codes: tuple = ()
+
+
+@dataclass(frozen=True)
+class Codebook:
+    title: str
+    id: str
+    weight: str | None
+    strata: str | None
+    clusters: str | None
+    variables: dict[str, Variable]
+    groups: dict[str, Group]
+    metrics: dict[str, Metric]
+    profile: tuple[str, ...]
+    targets: dict[str, dict[str, float]]
+    rake: dict[str, Any]
+    source: str  # the YAML text as given
+    sha256: str
+
+    def design_columns(self) -> list[str]:
+        return [c for c in (self.id, self.weight, self.strata, self.clusters) if c]
+
+    def column_for(self, variable: str) -> list[str]:
+        """The stored column(s) of a variable (one per option for multi)."""
+        v = self.variables[variable]
+        return list(v.options) if v.type == "multi" else [v.name]
+
+
+def _fmt_code(code: float) -> str:
+    return str(int(code)) if float(code).is_integer() else str(code)
+
+
+def _err(path: str, msg: str) -> TrackerError:
+    return TrackerError(f"codebook: {path}: {msg}")
+
+
+def _as_code(value: Any, path: str) -> float:
+    if isinstance(value, bool):
+        raise _err(path, f"code {value!r} is not a number")
+    try:
+        code = float(value)
+    except (TypeError, ValueError):
+        raise _err(path, f"code {value!r} is not a number") from None
+    if not math.isfinite(code) or not code.is_integer():
+        raise _err(path, f"code {value!r} is not a whole number")
+    return code
+
+
+def _mapping(node: Any, path: str, required: bool = True) -> dict:
+    if node is None and not required:
+        return {}
+    if not isinstance(node, dict):
+        raise _err(path, f"expected a mapping (key: value), got {type(node).__name__}")
+    return node
+
+
+def _text(node: Any, path: str) -> str:
+    if node is None or isinstance(node, (dict, list)):
+        raise _err(path, "expected a text value")
+    return str(node)
+
+
+def _code_map(node: Any, path: str) -> dict[float, str]:
+    out: dict[float, str] = {}
+    for key, label in _mapping(node, path).items():
+        code = _as_code(key, f"{path}.{key}")
+        if code in out:
+            raise _err(path, f"code {_fmt_code(code)} is given twice")
+        out[code] = str(label)
+    return out
+
+
+def _wave_label(node: Any, path: str) -> str:
+    label = _text(node, path)
+    if not LABEL_RE.match(label):
+        raise _err(path, f"{label!r} is not a valid wave label (letters, digits, '.', '_', '-'; at most 40)")
+    return label
+
+
+def load_codebook(path: str | Path) -> Codebook:
+    """Read ``path`` and return a validated :class:`Codebook`, or raise TrackerError."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except FileNotFoundError:
+        raise TrackerError(f"codebook: {path}: file not found") from None
+    except UnicodeDecodeError as exc:
+        raise TrackerError(f"codebook: {path}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
+    return parse_codebook(text, str(path))
+
+
+def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
+    try:
+        doc = yaml.load(text, Loader=_Loader)  # noqa: S506 - a SafeLoader subclass
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        where = f"line {mark.line + 1}, column {mark.column + 1}" if mark else "unknown place"
+        raise TrackerError(f"codebook: {name}: broken YAML at {where}: {exc.problem or exc}") from None
+    except yaml.YAMLError as exc:
+        raise TrackerError(f"codebook: {name}: broken YAML: {exc}") from None
+    if not isinstance(doc, dict):
+        raise TrackerError(f"codebook: {name}: expected a mapping at the top level")
+
+    for key in ("title", "id", "variables", "metrics"):
+        if key not in doc:
+            raise _err(key, "is required")
+    title = _text(doc["title"], "title")
+    id_col = _text(doc["id"], "id")
+    weight = _text(doc["weight"], "weight") if doc.get("weight") is not None else None
+    strata = _text(doc["strata"], "strata") if doc.get("strata") is not None else None
+    clusters = _text(doc["clusters"], "clusters") if doc.get("clusters") is not None else None
+
+    variables = {}
+    for vname, node in _mapping(doc["variables"], "variables").items():
+        variables[str(vname)] = _parse_variable(str(vname), node)
+    if not variables:
+        raise _err("variables", "no variables are declared")
+
+    design = [c for c in (id_col, weight, strata, clusters) if c]
+    if len(set(design)) != len(design):
+        raise _err("id", "id, weight, strata and clusters must be different columns")
+    columns: dict[str, str] = {}
+    for v in variables.values():
+        owned = list(v.options) if v.type == "multi" else [v.name, *v.aliases]
+        for col in owned:
+            if col in design:
+                raise _err(f"variables.{v.name}", f"column {col!r} is also a design column (id/weight/strata/clusters)")
+            if col in columns:
+                raise _err(f"variables.{v.name}", f"column {col!r} is also used by variable {columns[col]}")
+            columns[col] = v.name
+
+    groups = {}
+    for gname, node in _mapping(doc.get("groups"), "groups", required=False).items():
+        groups[str(gname)] = _parse_group(str(gname), node, variables)
+
+    metrics = {}
+    for mname, node in _mapping(doc["metrics"], "metrics").items():
+        metrics[str(mname)] = _parse_metric(str(mname), node, variables)
+    if not metrics:
+        raise _err("metrics", "no metrics are declared")
+
+    profile_node = doc.get("profile") or []
+    if not isinstance(profile_node, list):
+        raise _err("profile", "expected a list of group names")
+    profile = tuple(str(p) for p in profile_node)
+    for i, p in enumerate(profile):
+        if p not in groups:
+            raise _err(f"profile[{i}]", f"{p!r} is not a group in groups")
+
+    targets = {}
+    for gname, node in _mapping(doc.get("targets"), "targets", required=False).items():
+        gname = str(gname)
+        path = f"targets.{gname}"
+        if gname not in groups:
+            raise _err(path, f"{gname!r} is not a group in groups")
+        shares = {}
+        for label, share in _mapping(node, path).items():
+            label = str(label)
+            if label not in groups[gname].levels:
+                raise _err(f"{path}.{label}", f"{label!r} is not a label of group {gname}")
+            if isinstance(share, bool) or not isinstance(share, (int, float)) or not 0 < share <= 1:
+                raise _err(f"{path}.{label}", f"share {share!r} must be a number above 0 and at most 1")
+            shares[label] = float(share)
+        missing = [lab for lab in groups[gname].levels if lab not in shares]
+        if missing:
+            raise _err(path, f"no target for {', '.join(missing)}")
+        total = sum(shares.values())
+        if abs(total - 1) > 1e-6:
+            raise _err(path, f"shares sum to {total:.4g}, not 1")
+        targets[gname] = shares
+
+    rake = _mapping(doc.get("rake"), "rake", required=False)
+    return Codebook(
+        title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
+        variables=variables, groups=groups, metrics=metrics, profile=profile,
+        targets=targets, rake=dict(rake), source=text,
+        sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
+    )
+
+
+def _parse_variable(name: str, node: Any) -> Variable:
+    path = f"variables.{name}"
+    node = _mapping(node, path)
+    vtype = node.get("type")
+    if vtype not in TYPES:
+        raise _err(f"{path}.type", f"{vtype!r} is not one of {', '.join(TYPES)}")
+    label = str(node.get("label", name))
+    codes = _code_map(node["codes"], f"{path}.codes") if "codes" in node else {}
+    missing = _code_map(node["missing"], f"{path}.missing") if "missing" in node else {}
+    if vtype in ("category", "scale") and not codes:
+        raise _err(f"{path}.codes", f"a {vtype} variable needs its codes")
+    if vtype not in ("category", "scale") and codes:
+        raise _err(f"{path}.codes", f"a {vtype} variable has no codes")
+    both = set(codes) & set(missing)
+    if both:
+        raise _err(f"{path}.missing", f"code {_fmt_code(min(both))} is also in codes")
+    options = {}
+    if vtype == "multi":
+        options = {str(k): str(v) for k, v in _mapping(node.get("options"), f"{path}.options").items()}
+        if not options:
+            raise _err(f"{path}.options", "a multi variable needs at least one option column")
+    elif "options" in node:
+        raise _err(f"{path}.options", "only a multi variable has options")
+    rng = None
+    if "range" in node:
+        r = node["range"]
+        if vtype != "number":
+            raise _err(f"{path}.range", "only a number variable has a range")
+        if (not isinstance(r, list) or len(r) != 2 or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in r)):
+            raise _err(f"{path}.range", "expected [low, high]")
+        if r[0] > r[1]:
+            raise _err(f"{path}.range", f"low {r[0]} is above high {r[1]}")
+        rng = (float(r[0]), float(r[1]))
+    aliases = node.get("aliases") or []
+    if not isinstance(aliases, list):
+        raise _err(f"{path}.aliases", "expected a list of column names")
+    recodes = []
+    for i, rc in enumerate(node.get("recode") or []):
+        rpath = f"{path}.recode[{i}]"
+        rc = _mapping(rc, rpath)
+        if vtype not in ("category", "scale"):
+            raise _err(rpath, "only category and scale variables can be recoded")
+        waves = rc.get("waves")
+        if not isinstance(waves, list) or not waves:
+            raise _err(f"{rpath}.waves", "expected a list of wave labels")
+        mapping = {}
+        for old, new in _mapping(rc.get("map"), f"{rpath}.map").items():
+            new_code = _as_code(new, f"{rpath}.map.{old}")
+            if new_code not in codes and new_code not in missing:
+                raise _err(f"{rpath}.map.{old}", f"code {_fmt_code(new_code)} is not a code of {name}")
+            mapping[_as_code(old, f"{rpath}.map.{old}")] = new_code
+        recodes.append(Recode(tuple(_wave_label(w, f"{rpath}.waves") for w in waves), mapping))
+    waves = {k: _wave_label(node[k], f"{path}.{k}") if node.get(k) is not None else None
+             for k in ("break_before", "first_wave", "last_wave")}
+    return Variable(
+        name=name, label=label, type=vtype, codes=codes, missing=missing, options=options,
+        range=rng, aliases=tuple(str(a) for a in aliases), recode=tuple(recodes), **waves,
+    )
+
+
+def _parse_group(name: str, node: Any, variables: dict[str, Variable]) -> Group:
+    path = f"groups.{name}"
+    node = _mapping(node, path)
+    vname = node.get("variable")
+    if vname not in variables:
+        raise _err(f"{path}.variable", f"{vname!r} is not a variable")
+    var = variables[vname]
+    if "bands" in node and "merge" in node:
+        raise _err(path, "give bands or merge, not both")
+    if "bands" in node:
+        if var.type != "number":
+            raise _err(f"{path}.bands", f"{vname} is not a number variable")
+        bands: dict[str, tuple[float, float]] = {}
+        for label, rng in _mapping(node["bands"], f"{path}.bands").items():
+            bpath = f"{path}.bands.{label}"
+            if (not isinstance(rng, list) or len(rng) != 2
+                    or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in rng)):
+                raise _err(bpath, "expected [low, high]")
+            if rng[0] > rng[1]:
+                raise _err(bpath, f"low {rng[0]} is above high {rng[1]}")
+            for other, (lo, hi) in bands.items():
+                if rng[0] <= hi and lo <= rng[1]:
+                    raise _err(bpath, f"band [{rng[0]}, {rng[1]}] overlaps band {other} [{lo:g}, {hi:g}]")
+            bands[str(label)] = (float(rng[0]), float(rng[1]))
+        return Group(name, vname, {k: () for k in bands}, bands)
+    if var.type not in ("category", "scale"):
+        raise _err(path, f"{vname} is a {var.type} variable: give bands (number) or use a coded variable")
+    if "merge" in node:
+        levels: dict[str, tuple[float, ...]] = {}
+        seen: dict[float, str] = {}
+        for label, codes in _mapping(node["merge"], f"{path}.merge").items():
+            mpath = f"{path}.merge.{label}"
+            if not isinstance(codes, list) or not codes:
+                raise _err(mpath, "expected a list of codes")
+            cl = tuple(_as_code(c, mpath) for c in codes)
+            for c in cl:
+                if c not in var.codes:
+                    raise _err(mpath, f"code {_fmt_code(c)} is not a code of {vname}")
+                if c in seen:
+                    raise _err(mpath, f"code {_fmt_code(c)} is already in {seen[c]}")
+                seen[c] = str(label)
+            levels[str(label)] = cl
+        return Group(name, vname, levels)
+    return Group(name, vname, {label: (code,) for code, label in var.codes.items()})
+
+
+def _codes_of(var: Variable, node: Any, path: str) -> tuple:
+    if not isinstance(node, list) or not node:
+        raise _err(path, "expected a list of codes")
+    if var.type == "multi":
+        out = []
+        for c in node:
+            if str(c) not in var.options:
+                raise _err(path, f"{c!r} is not an option column of {var.name}")
+            out.append(str(c))
+        return tuple(out)
+    out = []
+    for c in node:
+        code = _as_code(c, path)
+        if code not in var.codes:
+            raise _err(path, f"code {_fmt_code(code)} is not a code of {var.name}")
+        out.append(code)
+    return tuple(out)
+
+
+def _parse_metric(name: str, node: Any, variables: dict[str, Variable]) -> Metric:
+    path = f"metrics.{name}"
+    node = _mapping(node, path)
+    vname = node.get("variable")
+    if vname not in variables:
+        raise _err(f"{path}.variable", f"{vname!r} is not a variable")
+    var = variables[vname]
+    kinds = [k for k in ("share", "mean", "balance") if k in node]
+    if len(kinds) != 1:
+        raise _err(path, "give exactly one of share, mean, balance")
+    kind = kinds[0]
+    label = str(node.get("label", name))
+    codes: tuple = ()
+    plus: tuple = ()
+    minus: tuple = ()
+    if kind == "share":
+        if var.type not in ("category", "scale", "multi"):
+            raise _err(f"{path}.share", f"{vname} is a {var.type} variable; a share needs codes or options")
+        codes = _codes_of(var, node["share"], f"{path}.share")
+    elif kind == "mean":
+        if node["mean"] is not True:
+            raise _err(f"{path}.mean", "write mean: true")
+        if var.type not in ("scale", "number"):
+            raise _err(f"{path}.mean", f"{vname} is a {var.type} variable; a mean needs a scale or number")
+    else:
+        if var.type not in ("category", "scale"):
+            raise _err(f"{path}.balance", f"{vname} is a {var.type} variable; a balance needs codes")
+        bal = _mapping(node["balance"], f"{path}.balance")
+        if "plus" not in bal or "minus" not in bal:
+            raise _err(f"{path}.balance", "needs plus and minus")
+        plus = _codes_of(var, bal["plus"], f"{path}.balance.plus")
+        minus = _codes_of(var, bal["minus"], f"{path}.balance.minus")
+        if set(plus) & set(minus):
+            raise _err(f"{path}.balance", "a code is in both plus and minus")
+    base_var = None
+    base_codes: tuple = ()
+    if "base" in node:
+        base = _mapping(node["base"], f"{path}.base")
+        bv = base.get("variable")
+        if bv not in variables:
+            raise _err(f"{path}.base.variable", f"{bv!r} is not a variable")
+        if variables[bv].type not in ("category", "scale", "multi"):
+            raise _err(f"{path}.base.variable", f"{bv} is a {variables[bv].type} variable; a base needs codes")
+        base_var = bv
+        base_codes = _codes_of(variables[bv], base.get("codes"), f"{path}.base.codes")
+    return Metric(name, label, vname, kind, codes, plus, minus, base_var, base_codes)

@@ -1,0 +1,248 @@
+"""The study: a folder holding a codebook, stored waves and a ledger (the Python API)."""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from . import store
+from .cells import exclusions, metric_matrix
+from .codebook import LABEL_RE, Codebook, load_codebook
+from .errors import TrackerError
+from .intake import Problem, check_wave, read_wave_file
+
+
+@dataclass(frozen=True)
+class CheckReport:
+    """What ``check`` found: the problems, and whether the wave can be added."""
+
+    file: str
+    rows: int
+    problems: tuple[Problem, ...]
+
+    @property
+    def errors(self) -> list[Problem]:
+        return [p for p in self.problems if p.severity == "error"]
+
+    @property
+    def ok(self) -> bool:
+        return not self.errors
+
+    def lines(self) -> list[str]:
+        return [p.describe(self.file) for p in self.problems]
+
+
+@dataclass(frozen=True)
+class AddReport:
+    """Summary of a stored wave."""
+
+    label: str
+    date: str
+    rows: int
+    weighted_base: float
+    effective_base: float
+    efficiency: float
+    metrics_present: tuple[str, ...]
+    metrics_absent: tuple[str, ...]
+    variables_missing: tuple[str, ...]
+    warnings: tuple[str, ...]
+    exclusions: dict[str, dict[str, int]] = field(default_factory=dict)
+    replaced: bool = False
+    weighting: dict = field(default_factory=dict)
+
+    def lines(self) -> list[str]:
+        out = [
+            f"stored wave {self.label} (fieldwork {self.date}){' replacing the earlier version' if self.replaced else ''}",
+            f"  respondents (base): {self.rows:,}",
+            f"  weighted base: {self.weighted_base:,.1f}",
+            f"  effective base: {self.effective_base:,.1f}  (weighting efficiency {self.efficiency:.1%})",
+            f"  metrics present: {', '.join(self.metrics_present) or 'none'}",
+        ]
+        if self.metrics_absent:
+            out.append(f"  metrics not in this wave: {', '.join(self.metrics_absent)}")
+        if self.variables_missing:
+            out.append(f"  variables not in this wave: {', '.join(self.variables_missing)}")
+        for metric, reasons in self.exclusions.items():
+            if reasons:
+                parts = ", ".join(f"{v:,} {k}" for k, v in reasons.items())
+                out.append(f"  left out of {metric}: {parts}")
+        out.extend(f"  {w}" for w in self.warnings)
+        return out
+
+
+def parse_date(text: str) -> str:
+    try:
+        return dt.date.fromisoformat(str(text).strip()).isoformat()
+    except ValueError:
+        raise TrackerError(f"fieldwork date {text!r} is not an ISO date (YYYY-MM-DD)") from None
+
+
+class Study:
+    """A tracking study on disk. ``Study.create`` makes one; ``Study(path)`` opens one."""
+
+    def __init__(self, path: str | Path):
+        self.root = Path(path)
+        if not (self.root / store.LEDGER).is_file():
+            raise TrackerError(f"{self.root}: not a study folder (no {store.LEDGER}); make one with 'tracker new'")
+        self.codebook: Codebook = load_codebook(self.root / store.CODEBOOK)
+        self._ledger = store.read_ledger(self.root)
+        self._cache: dict[str, pd.DataFrame] = {}
+
+    # -- making and reading ------------------------------------------------------------
+    @classmethod
+    def create(cls, path: str | Path, codebook: str | Path) -> "Study":
+        root = Path(path)
+        book = load_codebook(codebook)  # validate before touching the disk
+        if (root / store.LEDGER).exists():
+            raise TrackerError(f"{root}: a study already exists here")
+        if root.exists() and any(root.iterdir()):
+            raise TrackerError(f"{root}: the folder exists and is not empty")
+        root.mkdir(parents=True, exist_ok=True)
+        (root / store.WAVES).mkdir(exist_ok=True)
+        store.write_atomic(root / store.CODEBOOK, book.source.encode("utf-8"))
+        store.write_ledger(root, {"format": 1, "title": book.title, "waves": []})
+        return cls(root)
+
+    @property
+    def wave_entries(self) -> list[dict]:
+        return sorted(self._ledger["waves"], key=lambda w: w["date"])
+
+    @property
+    def labels(self) -> list[str]:
+        return [w["label"] for w in self.wave_entries]
+
+    def dates(self) -> dict[str, str]:
+        return {w["label"]: w["date"] for w in self.wave_entries}
+
+    def waves(self) -> pd.DataFrame:
+        """The stored waves in fieldwork order."""
+        cols = ["wave", "fieldwork_date", "respondents", "source_file", "added_at", "weighting"]
+        rows = [
+            {"wave": w["label"], "fieldwork_date": w["date"], "respondents": w["rows"],
+             "source_file": w["source"], "added_at": w["added"],
+             "weighting": w.get("weighting", {}).get("kind", "")}
+            for w in self.wave_entries
+        ]
+        return pd.DataFrame(rows, columns=cols)
+
+    def load(self, label: str) -> pd.DataFrame:
+        """The harmonized respondent table of one stored wave."""
+        if label not in self._cache:
+            entry = self._entry(label)
+            self._cache[label] = pd.read_parquet(self.root / entry["file"])
+        return self._cache[label]
+
+    def _entry(self, label: str) -> dict:
+        for w in self._ledger["waves"]:
+            if w["label"] == label:
+                return w
+        raise TrackerError(f"{self.root}: no wave labelled {label!r} (stored: {', '.join(self.labels) or 'none'})")
+
+    # -- intake -----------------------------------------------------------------------
+    def check(self, file: str | Path, wave: str | None = None, date: str | None = None,
+              encoding: str | None = None, replace: bool = False) -> CheckReport:
+        """Check a wave file against the codebook without changing anything."""
+        report, _, _ = self._check(file, wave, date, encoding, replace)
+        return report
+
+    def _check(self, file, wave, date, encoding, replace, rake=False):
+        wf = read_wave_file(file, encoding)
+        problems: list[Problem] = []
+        label = wave
+        if label is not None:
+            if not LABEL_RE.match(label):
+                problems.append(Problem("error", "", f"wave label {label!r} is not valid (letters, digits, '.', '_', '-'; at most 40)"))
+            elif label in self.labels and not replace:
+                problems.append(Problem("error", "", f"a wave labelled {label} is already stored; use --replace to replace it"))
+        if date is not None:
+            try:
+                iso = parse_date(date)
+            except TrackerError as exc:
+                problems.append(Problem("error", "", str(exc)))
+            else:
+                clash = [w["label"] for w in self.wave_entries if w["date"] == iso and w["label"] != label]
+                if clash:
+                    problems.append(Problem("error", "", f"wave {clash[0]} already has fieldwork date {iso}"))
+        for w in self.wave_entries:
+            if w["source_sha256"] == wf.sha256 and not (replace and w["label"] == label):
+                problems.append(Problem("error", "", f"this file is already stored as wave {w['label']}"
+                                        + ("" if replace else "; use --replace with that label to store it again")))
+        order = self.dates()
+        if label and date:
+            try:
+                order[label] = parse_date(date)
+            except TrackerError:
+                pass
+        table, found = check_wave(self.codebook, wf, label or "", order, rake=rake)
+        problems.extend(found)
+        report = CheckReport(str(file), len(wf.table), tuple(problems))
+        return report, table, wf
+
+    def add(self, file: str | Path, wave: str, date: str, encoding: str | None = None,
+            replace: bool = False, rake: bool = False, cap: tuple[float, float] | None = None) -> AddReport:
+        """Validate, harmonize and store a wave; raise TrackerError (study unchanged) if it cannot be."""
+        if not wave:
+            raise TrackerError("a wave label is required (--wave)")
+        iso = parse_date(date)
+        rake = rake or bool(self.codebook.rake.get("always"))
+        report, table, wf = self._check(file, wave, iso, encoding, replace, rake)
+        if not report.ok:
+            raise TrackerError("\n".join(["cannot add " + str(file) + ":"] + report.lines()))
+        book = self.codebook
+        weighting: dict = {"kind": "file", "column": book.weight} if book.weight else {"kind": "none"}
+        extra_lines: list[str] = []
+        if rake:
+            from .weighting import rake_table
+
+            table, result = rake_table(book, table, cap=cap)
+            weighting = result.ledger_entry()
+            extra_lines = result.lines()
+        weights = _weights(book, table)
+        sw, sw2 = float(weights.sum()), float((weights**2).sum())
+        neff = sw * sw / sw2
+        metrics = list(book.metrics.values())
+        _, E = metric_matrix(book, table, metrics)
+        present = tuple(m.name for j, m in enumerate(metrics) if E[:, j].any())
+        absent = tuple(m.name for j, m in enumerate(metrics) if not E[:, j].any())
+        missing_vars = tuple(v for v in book.variables if not set(book.column_for(v)) <= set(table.columns))
+        excl = {m.name: exclusions(book, table, m) for m in metrics if m.name in present}
+
+        # Store: new Parquet under a fresh name, then the ledger rename commits it.
+        store.sweep_incoming(self.root)
+        fname = store.free_wave_file(self.root, wave)
+        store.write_parquet_atomic(self.root / fname, table)
+        entry = {
+            "label": wave, "date": iso, "file": fname, "source": Path(file).name,
+            "source_sha256": wf.sha256, "rows": int(len(table)), "codebook_sha256": book.sha256,
+            "added": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+            "weighting": weighting,
+        }
+        ledger = {**self._ledger, "waves": [dict(w) for w in self._ledger["waves"]]}
+        old = [w for w in ledger["waves"] if w["label"] == wave]
+        if old:
+            prev = old[0]
+            history = prev.pop("history", [])
+            entry["history"] = history + [prev]  # the old file stays on disk, named here
+            ledger["waves"] = [w for w in ledger["waves"] if w["label"] != wave]
+        ledger["waves"].append(entry)
+        store.write_ledger(self.root, ledger)
+        self._ledger = ledger
+        self._cache.pop(wave, None)
+        warnings = tuple(p.describe(Path(file).name) for p in report.problems) + tuple(extra_lines)
+        return AddReport(
+            label=wave, date=iso, rows=len(table), weighted_base=sw, effective_base=neff,
+            efficiency=neff / len(table), metrics_present=present, metrics_absent=absent,
+            variables_missing=missing_vars, warnings=warnings, exclusions=excl,
+            replaced=bool(old), weighting=weighting,
+        )
+
+
+def _weights(book: Codebook, table: pd.DataFrame) -> np.ndarray:
+    if book.weight and book.weight in table.columns:
+        return table[book.weight].to_numpy(dtype=float)
+    return np.ones(len(table))
+
