@@ -128,6 +128,10 @@ def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
         delimiter = csv.Sniffer().sniff(sample, delimiters=",;\t|").delimiter
     except csv.Error:
         delimiter = ","
+    header = next(csv.reader(io.StringIO(sample), delimiter=delimiter), [])
+    dupes = sorted({c.strip() for c in header if [h.strip() for h in header].count(c.strip()) > 1})
+    if dupes:
+        raise TrackerError(f"{path}, column {dupes[0]}: the column name appears more than once in the header")
     try:
         table = pd.read_csv(io.StringIO(text), sep=delimiter, dtype=str, keep_default_na=False,
                             skip_blank_lines=True)
@@ -202,7 +206,7 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
     out: dict[str, pd.Series] = {}
     n = len(table)
 
-    if len(cols) == 1 and any(d in cols[0] for d in ",;\t|"):
+    if len(cols) == 1:
         add("error", cols[0], "the header was read as a single column; is the delimiter right?")
 
     # Design columns.
