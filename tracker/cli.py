@@ -108,3 +108,57 @@ def demo_cmd(folder):
     for r in reports:
         click.echo(f"added {r.label}: {r.rows:,} respondents, effective base {r.effective_base:,.0f}")
     click.echo(f"demo study ready at {study.root}")
+
+
+def _fmt_option(fn):
+    from .formatting import FORMATS
+
+    return click.option("--format", "fmt", type=click.Choice(FORMATS), default="table", show_default=True,
+                        help="Output form.")(fn)
+
+
+@main.command("estimates")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--metric", "metrics", multiple=True, help="Metric to show (repeatable; default all).")
+@click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
+@click.option("--wave", "waves", multiple=True, help="Wave to show (repeatable; default all).")
+@click.option("--level", default=0.95, show_default=True, help="Confidence level of the intervals.")
+@_fmt_option
+@user_errors
+def estimates_cmd(study, metrics, by, waves, level, fmt):
+    """Every metric by wave and subgroup: value, bases, standard error, interval, flags."""
+    from .formatting import render
+
+    table = Study(study).estimates(metrics=list(metrics) or None, by=list(by) if by else None,
+                                   waves=list(waves) or None, level=level)
+    click.echo(render(table, fmt), nl=False)
+
+
+@main.command("changes")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--wave", help="The wave to test (default: the latest).")
+@click.option("--against", default="previous", show_default=True,
+              help="previous, year-ago, a wave label, or pooled:K (the K waves before, pooled).")
+@click.option("--metric", "metrics", multiple=True, help="Metric to test (repeatable; default all).")
+@click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
+@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True,
+              help="Multiple-comparison control across every test of the call.")
+@click.option("--level", default=0.95, show_default=True, help="Confidence level (significance at 1 - level).")
+@click.option("--all", "show_all", is_flag=True, help="List every comparison, not only significant changes.")
+@_fmt_option
+@user_errors
+def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fmt):
+    """What changed in a wave, tested with control of the many comparisons."""
+    from .changes import COLUMNS
+    from .formatting import render
+
+    result = Study(study).changes(wave=wave, against=against, by=list(by) if by else None,
+                                  metrics=list(metrics) or None, adjust=adjust, level=level)
+    shown = result.shown(show_all)[COLUMNS]
+    click.echo(render(shown, fmt), nl=False)
+    if fmt in ("table", "md"):
+        rest = len(result.table) - len(shown)
+        if rest:
+            click.echo(f"({rest} other comparisons without a significant change; --all lists them)")
+        for line in result.footer():
+            click.echo(line)

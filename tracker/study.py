@@ -13,7 +13,7 @@ from . import store
 from .cells import exclusions, metric_matrix
 from .codebook import LABEL_RE, Codebook, load_codebook
 from .errors import TrackerError
-from .intake import Problem, check_wave, read_wave_file
+from .intake import Problem, check_wave, read_wave_file, wave_in_span
 
 
 @dataclass(frozen=True)
@@ -239,6 +239,107 @@ class Study:
             variables_missing=missing_vars, warnings=warnings, exclusions=excl,
             replaced=bool(old), weighting=weighting,
         )
+
+
+    # -- estimates and changes ----------------------------------------------------------
+    def _pick_metrics(self, names=None) -> list:
+        book = self.codebook
+        if not names:
+            return list(book.metrics.values())
+        unknown = [n for n in names if n not in book.metrics]
+        if unknown:
+            raise TrackerError(f"--metric {unknown[0]}: not a metric of this study ({', '.join(book.metrics)})")
+        return [book.metrics[n] for n in names]
+
+    def _pick_groups(self, names=None) -> list[str]:
+        book = self.codebook
+        if names is None:
+            return list(book.groups)
+        names = [n for n in names if n not in ("total", "none")]
+        unknown = [n for n in names if n not in book.groups]
+        if unknown:
+            raise TrackerError(f"--by {unknown[0]}: not a group of this study ({', '.join(book.groups) or 'none declared'})")
+        return list(dict.fromkeys(names))
+
+    def _pick_waves(self, labels=None) -> list[str]:
+        if not self.labels:
+            raise TrackerError(f"{self.root}: no waves stored yet; add one with 'tracker add'")
+        if not labels:
+            return self.labels
+        for lab in labels:
+            self._entry(lab)
+        return [lab for lab in self.labels if lab in labels]
+
+    def _wave_rows(self, label: str, metrics: list, groups: list[str], level: float) -> pd.DataFrame:
+        from .estimates import wave_estimates
+
+        key = ("est", label, tuple(m.name for m in metrics), tuple(groups), level)
+        if key not in self._cache:
+            self._cache[key] = wave_estimates(self.codebook, self.load(label), metrics, groups, label,
+                                              self.dates()[label], level)
+        return self._cache[key]
+
+    def _pooled_rows(self, labels: list[str], metrics: list, groups: list[str], level: float) -> pd.DataFrame:
+        from .estimates import wave_estimates
+
+        tables = [self.load(lab) for lab in labels]
+        table = pd.concat(tables, ignore_index=True)
+        sample = np.repeat(labels, [len(t) for t in tables])
+        name = f"{labels[0]}..{labels[-1]}" if len(labels) > 1 else labels[0]
+        return wave_estimates(self.codebook, table, metrics, groups, name, self.dates()[labels[-1]], level, sample)
+
+    def estimates(self, metrics=None, by=None, waves=None, level: float = 0.95, detail: bool = False) -> pd.DataFrame:
+        """One row per wave x subgroup x metric: value, bases, SE, interval, reliability.
+
+        ``by`` lists subgroup splits (default: every group in the codebook; [] for totals
+        only). Metrics not asked in a wave are left out of that wave. ``detail`` keeps the
+        sufficient statistics (variance, sum of squared weights, design df).
+        """
+        from .estimates import COLUMNS
+
+        ms, gs, ws = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
+        out = pd.concat([self._wave_rows(w, ms, gs, level) for w in ws], ignore_index=True)
+        out = out[out["base"] > 0].reset_index(drop=True)
+        return out if detail else out[COLUMNS]
+
+    def break_reasons(self, metrics: list, wave_from: list[str], wave_to: str) -> dict[str, str]:
+        """Metrics whose series is split by a wording break between the waves compared."""
+        order = self.dates()
+        out = {}
+        for m in metrics:
+            for vname in filter(None, (m.variable, m.base_variable)):
+                b = self.codebook.variables[vname].break_before
+                if b is None:
+                    continue
+                after = [wave_in_span(w, b, None, order) for w in [*wave_from, wave_to]]
+                if len(set(after)) > 1:
+                    out[m.name] = f"not compared: {vname} changed at {b} (wording break)"
+        return out
+
+    def changes(self, wave: str | None = None, against: str = "previous", by=None, metrics=None,
+                adjust: str = "bh", level: float = 0.95):
+        """Test what changed in ``wave`` (default: the latest) against another wave or pooled waves."""
+        from .changes import ChangeResult, compare, resolve_against
+        from .estimates import overlap_covariance
+
+        labels = self._pick_waves()
+        wave = wave or labels[-1]
+        if not 0.5 < level < 1:
+            raise TrackerError(f"--level {level}: give a confidence level between 0.5 and 1, e.g. 0.95")
+        ms, gs = self._pick_metrics(metrics), self._pick_groups(by)
+        others, note = resolve_against(labels, self.dates(), wave, against)
+        now = self._wave_rows(wave, ms, gs, level)
+        then = (self._wave_rows(others[0], ms, gs, level) if len(others) == 1
+                else self._pooled_rows(others, ms, gs, level))
+        notes = [note]
+        cov = None
+        if len(others) == 1 and self.codebook.id:
+            c, matched = overlap_covariance(self.codebook, self.load(wave), self.load(others[0]), ms, gs, now, then)
+            if matched:
+                cov = c
+                notes.append(f"{matched:,} respondents answered both waves: their covariance is taken into account")
+        table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level)
+        return ChangeResult(table, wave, note.split(": ", 1)[-1], adjust, level, tuple(notes))
 
 
 def _weights(book: Codebook, table: pd.DataFrame) -> np.ndarray:

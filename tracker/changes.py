@@ -1,0 +1,191 @@
+"""Changes between two waves (or a wave and pooled earlier waves), from their estimates.
+
+Independent samples are assumed unless the study says the waves share respondents, in
+which case the covariance from the matched respondents is subtracted.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from .errors import TrackerError
+from .significance import ADJUST_METHODS, adjust_pvalues, min_detectable_change, newcombe_interval, welch_df
+
+KEYS = ["metric", "group", "subgroup"]
+
+COLUMNS = [
+    "metric", "metric_label", "kind", "group", "subgroup", "wave_from", "wave_to",
+    "value_from", "value_to", "change", "change_low", "change_high",
+    "base_from", "base_to", "effective_base_from", "effective_base_to",
+    "test", "statistic", "p_raw", "p_adjusted", "min_detectable_change",
+    "significant", "direction", "flags",
+]
+
+
+@dataclass(frozen=True)
+class ChangeResult:
+    """Every comparison of one call, and what the family of tests was."""
+
+    table: pd.DataFrame
+    wave: str
+    against: str
+    adjust: str
+    level: float
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+    @property
+    def n_tests(self) -> int:
+        return int(self.table["p_adjusted"].notna().sum())
+
+    @property
+    def n_significant(self) -> int:
+        return int(self.table["significant"].sum())
+
+    def shown(self, show_all: bool = False) -> pd.DataFrame:
+        """Significant changes, largest first (or everything with ``show_all``)."""
+        t = self.table
+        if not show_all:
+            t = t[t["significant"]]
+        return t.reindex(t["change"].abs().sort_values(ascending=False, kind="mergesort").index)
+
+    def footer(self) -> list[str]:
+        alpha = 1 - self.level
+        lines = [
+            f"{self.wave} against {self.against}: {self.n_tests} tests, {self.n_significant} significant "
+            f"after {ADJUST_METHODS[self.adjust]} adjustment at the {alpha:g} level "
+            f"({len(self.table) - self.n_tests} comparisons not tested).",
+        ]
+        lines.extend(self.notes)
+        lines.append("Significance is not importance; intervals cover sampling error only; a change in the "
+                     "sample's make-up can move a measure; small bases are flagged and never called significant.")
+        return lines
+
+
+def year_ago(labels: list[str], dates: dict[str, str], wave: str, tolerance_days: int = 42) -> tuple[str | None, str]:
+    """The stored wave nearest to 12 months before ``wave`` by fieldwork date, within tolerance."""
+    target = dt.date.fromisoformat(dates[wave]) - dt.timedelta(days=365)
+    best, gap = None, None
+    for lab in labels:
+        if lab == wave:
+            continue
+        g = abs((dt.date.fromisoformat(dates[lab]) - target).days)
+        if gap is None or g < gap:
+            best, gap = lab, g
+    if best is None or gap > tolerance_days:
+        return None, (f"no stored wave lies within {tolerance_days // 7} weeks of {target.isoformat()} "
+                      f"(12 months before {wave})")
+    return best, f"year-ago wave: {best} (fieldwork {dates[best]}, {gap} days from 12 months before {wave})"
+
+
+def resolve_against(labels: list[str], dates: dict[str, str], wave: str, against: str) -> tuple[list[str], str]:
+    """The wave(s) to compare with, and a note saying which."""
+    if wave not in labels:
+        raise TrackerError(f"no wave labelled {wave!r} (stored: {', '.join(labels) or 'none'})")
+    i = labels.index(wave)
+    if against == "previous":
+        if i == 0:
+            raise TrackerError(f"{wave} is the first stored wave; there is no previous wave to compare with")
+        return [labels[i - 1]], f"previous wave: {labels[i - 1]}"
+    if against == "year-ago":
+        found, note = year_ago(labels[:i], dates, wave)
+        if found is None:
+            raise TrackerError(note)
+        return [found], note
+    if against.startswith("pooled:"):
+        try:
+            k = int(against.split(":", 1)[1])
+        except ValueError:
+            raise TrackerError(f"--against {against}: write pooled:K with K a whole number, e.g. pooled:4") from None
+        if k < 1 or i < k:
+            raise TrackerError(f"--against {against}: {wave} has {i} earlier wave(s); cannot pool {k}")
+        chosen = labels[i - k:i]
+        return chosen, f"pooled earlier waves: {', '.join(chosen)}"
+    if against not in labels:
+        raise TrackerError(f"--against {against}: not 'previous', 'year-ago', 'pooled:K' or a stored wave label")
+    if against == wave:
+        raise TrackerError(f"--against {against}: a wave cannot be compared with itself")
+    return [against], f"wave {against}"
+
+
+def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | None = None,
+            covariance: np.ndarray | None = None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+    """Test every cell of ``now`` against the same cell of ``then`` (rows from the estimates step).
+
+    Shares: z test on design-based standard errors, var = p(1-p)/n* per wave with n* the
+    design base, and the Newcombe (1998) hybrid score interval on the design bases.
+    Means: Welch t on the Taylor variances with Welch-Satterthwaite degrees of freedom on
+    the Kish effective bases (Welch 1947). Balances: z on the multinomial variance
+    (p+ + p- - (p+ - p-)^2)/n* per wave. ``blocked`` maps metric to the reason no test is
+    made (a wording break). All tested rows form one family, adjusted by ``adjust``.
+    """
+    if adjust not in ADJUST_METHODS:
+        raise TrackerError(f"--adjust {adjust}: use one of {', '.join(ADJUST_METHODS)}")
+    m = now.merge(then, on=KEYS, suffixes=("_to", "_from"))
+    kind = m["kind_to"].to_numpy()
+    p1, p0 = m["value_to"].to_numpy(float), m["value_from"].to_numpy(float)
+    nd1, nd0 = m["design_base_to"].to_numpy(float), m["design_base_from"].to_numpy(float)
+    u1, u0 = m["unit_variance_to"].to_numpy(float), m["unit_variance_from"].to_numpy(float)
+    v1, v0 = m["variance_to"].to_numpy(float), m["variance_from"].to_numpy(float)
+    k1, k0 = m["effective_base_to"].to_numpy(float), m["effective_base_from"].to_numpy(float)
+    cov = np.zeros(len(m)) if covariance is None else covariance
+    is_mean = kind == "mean"
+    with np.errstate(divide="ignore", invalid="ignore"):
+        var = np.where(is_mean, v1 + v0, u1 / nd1 + u0 / nd0) - 2 * cov
+        se = np.sqrt(np.maximum(var, 0.0))
+        d = p1 - p0
+        stat = d / se
+        df = welch_df(v1, v0, k1, k0)
+        p_mean = 2 * stats.t.sf(np.abs(stat), df)
+        p_norm = 2 * stats.norm.sf(np.abs(stat))
+    p_raw = np.where(is_mean, p_mean, p_norm)
+    zc = stats.norm.ppf(0.5 + level / 2)
+    with np.errstate(invalid="ignore"):
+        tc = stats.t.ppf(0.5 + level / 2, df)
+    nl, nu = newcombe_interval(p1, nd1, p0, nd0, level)
+    if covariance is not None and np.any(cov != 0):
+        # with overlap, the score interval's independence does not hold: use the Wald form
+        nl, nu = d - zc * se, d + zc * se
+    lo = np.select([kind == "share", is_mean], [nl, d - tc * se], d - zc * se)
+    hi = np.select([kind == "share", is_mean], [nu, d + tc * se], d + zc * se)
+
+    flags = []
+    testable = np.ones(len(m), bool)
+    blocked = blocked or {}
+    for i, row in enumerate(m.itertuples(index=False)):  # text only; the numbers above are vectorised
+        f = []
+        if row.metric in blocked:
+            f.append(blocked[row.metric])
+            testable[i] = False
+        if row.base_to == 0 or row.base_from == 0:
+            f.append(f"no respondents in {row.wave_to if row.base_to == 0 else row.wave_from}")
+            testable[i] = False
+        elif not (row.reliable_to and row.reliable_from):
+            f.append("unreliable cell: " + "; ".join(x for x in (row.flags_from, row.flags_to) if x))
+            testable[i] = False
+        elif row.flags_to or row.flags_from:
+            f.append("; ".join(x for x in (row.flags_from, row.flags_to) if x))
+        flags.append(" | ".join(f))
+    testable &= np.isfinite(p_raw)
+    p_adj = adjust_pvalues(np.where(testable, p_raw, np.nan), adjust)
+    sig = testable & (p_adj <= 1 - level)
+    direction = np.where(~testable, "not tested",
+                         np.where(sig & (d > 0), "rise", np.where(sig & (d < 0), "fall", "no clear change")))
+    out = pd.DataFrame({
+        "metric": m["metric"], "metric_label": m["metric_label_to"], "kind": kind,
+        "group": m["group"], "subgroup": m["subgroup"],
+        "wave_from": m["wave_from"], "wave_to": m["wave_to"],
+        "value_from": p0, "value_to": p1, "change": d, "change_low": lo, "change_high": hi,
+        "base_from": m["base_from"], "base_to": m["base_to"],
+        "effective_base_from": k0, "effective_base_to": k1,
+        "test": np.select([kind == "share", is_mean], ["z (shares)", "Welch t"], "z (balance)"),
+        "statistic": stat, "p_raw": np.where(testable, p_raw, np.nan), "p_adjusted": p_adj,
+        "min_detectable_change": min_detectable_change(se, level),
+        "significant": sig, "direction": direction, "flags": flags,
+        "se": se, "df": np.where(is_mean, df, np.inf),
+    })
+    return out
