@@ -65,3 +65,12 @@ def wave_csv(tmp_path):
         frame.to_csv(path, index=False)
         return path
     return write
+
+
+@pytest.fixture(scope="session")
+def demo_study(tmp_path_factory):
+    """The bundled demo study, built once per test session."""
+    from tracker.demo import build_demo
+
+    study, _ = build_demo(tmp_path_factory.mktemp("demo") / "study")
+    return study

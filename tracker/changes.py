@@ -116,11 +116,12 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
             covariance: np.ndarray | None = None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
     """Test every cell of ``now`` against the same cell of ``then`` (rows from the estimates step).
 
-    Shares: z test on design-based standard errors, var = p(1-p)/n* per wave with n* the
-    design base, and the Newcombe (1998) hybrid score interval on the design bases.
-    Means: Welch t on the Taylor variances with Welch-Satterthwaite degrees of freedom on
-    the Kish effective bases (Welch 1947). Balances: z on the multinomial variance
-    (p+ + p- - (p+ - p-)^2)/n* per wave. ``blocked`` maps metric to the reason no test is
+    Each wave's variance is its design effect times the textbook variance (Kish 1965):
+    shares: z test with var = p(1-p)/n* per wave, n* = n / design effect (the design base),
+    and the Newcombe (1998) hybrid score interval on the design bases. Means: Welch t with
+    var = deff x s^2/n and Welch-Satterthwaite degrees of freedom on the Kish effective
+    bases (Welch 1947). Balances: z on the multinomial variance (p+ + p- - (p+ - p-)^2)/n*.
+    With no weights and no design every deff is 1 and these are the textbook tests. ``blocked`` maps metric to the reason no test is
     made (a wording break). All tested rows form one family, adjusted by ``adjust``.
     """
     if adjust not in ADJUST_METHODS:
@@ -130,12 +131,15 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     p1, p0 = m["value_to"].to_numpy(float), m["value_from"].to_numpy(float)
     nd1, nd0 = m["design_base_to"].to_numpy(float), m["design_base_from"].to_numpy(float)
     u1, u0 = m["unit_variance_to"].to_numpy(float), m["unit_variance_from"].to_numpy(float)
-    v1, v0 = m["variance_to"].to_numpy(float), m["variance_from"].to_numpy(float)
     k1, k0 = m["effective_base_to"].to_numpy(float), m["effective_base_from"].to_numpy(float)
+    b1, b0 = m["base_to"].to_numpy(float), m["base_from"].to_numpy(float)
     cov = np.zeros(len(m)) if covariance is None else covariance
     is_mean = kind == "mean"
     with np.errstate(divide="ignore", invalid="ignore"):
-        var = np.where(is_mean, v1 + v0, u1 / nd1 + u0 / nd0) - 2 * cov
+        # per-wave test variances: deff x textbook variance (s^2 = unit variance x n/(n-1))
+        v1 = np.where(is_mean, u1 * b1 / (b1 - 1), u1) / nd1
+        v0 = np.where(is_mean, u0 * b0 / (b0 - 1), u0) / nd0
+        var = v1 + v0 - 2 * cov
         se = np.sqrt(np.maximum(var, 0.0))
         d = p1 - p0
         stat = d / se

@@ -12,7 +12,7 @@ Planted truths (what the later steps must find, and must not find):
    year across the whole series; ``satisfaction_mean`` moves with it.
 3. **One-wave blip** - ``clean_good`` (cleanliness good) is 11 points lower in 2024-Q3
    only, back to normal the next wave.
-4. **Subgroup-only change** - ``staff_good`` falls by 14 points in Southbank from 2025-Q3
+4. **Subgroup-only change** - ``staff_good`` falls by 20 points in Southbank from 2025-Q3
    on; the other districts do not move.
 5. **Pure noise** - ``info_good`` (travel information good) has the same true value in
    every wave and every subgroup.
@@ -225,7 +225,7 @@ def make_wave(label: str, rng: np.random.Generator) -> pd.DataFrame:
     on_time = np.full(n, 0.70 - (0.10 if k >= WAVES.index("2025-Q2") else 0.0))
     clean = np.full(n, 0.64 - (0.11 if label == "2024-Q3" else 0.0))
     info = np.full(n, 0.55)
-    staff = np.where((area == 3) & (k >= WAVES.index("2025-Q3")), 0.72 - 0.14, 0.72)
+    staff = np.where((area == 3) & (k >= WAVES.index("2025-Q3")), 0.72 - 0.20, 0.72)
     safe = np.full(n, 0.66 + (0.08 if k >= WAVES.index("2024-Q1") else 0.0))
     fares = np.select([frequency == 1, frequency == 2], [0.66, 0.44], 0.30)
     rec_plus = 0.34

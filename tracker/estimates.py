@@ -34,8 +34,7 @@ def taylor_variance(z: np.ndarray, strata: np.ndarray | None, psu: np.ndarray | 
     (Wolter 2007, *Introduction to Variance Estimation*, 2nd ed., ch. 6; the estimator that
     samplics ``TaylorEstimator`` implements). With no clusters each respondent is a PSU;
     with no strata there is one stratum. A stratum holding a single PSU adds nothing (its
-    variance cannot be estimated); the design degrees of freedom (PSUs minus strata) are
-    returned with the variances.
+    variance cannot be estimated). Returns (variances, number of PSUs, number of strata).
     """
     n = z.shape[0]
     strata = np.zeros(n, dtype=np.int64) if strata is None else strata
@@ -63,7 +62,7 @@ def taylor_variance(z: np.ndarray, strata: np.ndarray | None, psu: np.ndarray | 
         f = np.where(n_h > 1, n_h / (n_h - 1), 0.0)
         within = s2 - s1**2 / n_h[:, None]
     var = (f[:, None] * np.maximum(within, 0.0)).sum(axis=0)
-    return var, int(n_psu - n_h.size)
+    return var, int(n_psu), int(n_h.size)
 
 
 def _codes(values: pd.Series) -> np.ndarray:
@@ -97,14 +96,10 @@ def cell_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], g
     with np.errstate(divide="ignore", invalid="ignore"):
         value = swy / sw
         unit_var = np.maximum(swy2 / sw - value**2, 0.0)
-    var = np.empty_like(value)
-    df = 0
-    for l in range(D.shape[1]):
-        d = Df[:, l][:, None]
-        # linearized values of a ratio mean: w d e (y - value) / sum(w d e)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            z = np.nan_to_num(d * (wey - we * value[l]) / sw[l], nan=0.0, posinf=0.0, neginf=0.0)
-        var[l], df = taylor_variance(z, strata, psu)
+    if psu is None:
+        var, n_psu, n_strata = _unclustered_variance(Df, we, wey, value, sw, strata)
+    else:
+        var, n_psu, n_strata = _clustered_variance(Df, we, wey, value, sw, strata, psu)
     L, M = value.shape
     out = pd.DataFrame({
         "metric": np.tile([m.name for m in metrics], L),
@@ -116,9 +111,48 @@ def cell_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], g
         "value": value.ravel(),
         "variance": var.ravel(),
         "unit_variance": unit_var.ravel(),
-        "design_df": df,
+        "n_psu": n_psu,
+        "design_df": n_psu - n_strata,
     })
     return out
+
+
+def _unclustered_variance(Df, we, wey, value, sw, strata):
+    """Taylor variance when each respondent is a PSU, by matrix products per stratum.
+
+    Within stratum h, with z_i = d_i (wey_i - value * we_i) / sw: sum z and sum z^2 expand
+    into sums of wey, we and their products, so no respondent x cell array is built.
+    Same estimator as :func:`taylor_variance`.
+    """
+    n = Df.shape[0]
+    h = np.zeros(n, dtype=np.int64) if strata is None else np.unique(strata, return_inverse=True)[1].ravel()
+    var = np.zeros_like(value)
+    n_strata = int(h.max()) + 1
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for k in range(n_strata):  # a loop over strata, not cells
+            rows = h == k
+            n_h = rows.sum()
+            if n_h < 2:
+                continue
+            Dh = Df[rows].T
+            a, b = Dh @ wey[rows], Dh @ we[rows]
+            a2, ab, b2 = Dh @ wey[rows] ** 2, Dh @ (wey[rows] * we[rows]), Dh @ we[rows] ** 2
+            s1 = (a - value * b) / sw
+            s2 = (a2 - 2 * value * ab + value**2 * b2) / sw**2
+            var += n_h / (n_h - 1) * np.maximum(np.nan_to_num(s2 - s1**2 / n_h), 0.0)
+    return var, n, n_strata
+
+
+def _clustered_variance(Df, we, wey, value, sw, strata, psu):
+    var = np.empty_like(value)
+    n_psu = n_strata = 0
+    for l in range(Df.shape[1]):
+        d = Df[:, l][:, None]  # one subgroup level at a time: PSU totals need the level's rows
+        # linearized values of a ratio mean: w d e (y - value) / sum(w d e)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z = np.nan_to_num(d * (wey - we * value[l]) / sw[l], nan=0.0, posinf=0.0, neginf=0.0)
+        var[l], n_psu, n_strata = taylor_variance(z, strata, psu)
+    return var, n_psu, n_strata
 
 
 def wilson_interval(p, n, level: float = 0.95):
@@ -173,10 +207,11 @@ def _join_flags(pairs) -> list[str]:
 def finish(cells: pd.DataFrame, kinds: dict[str, str], level: float = 0.95) -> pd.DataFrame:
     """Derived columns from sufficient statistics: bases, design effect, SE, interval, flags.
 
-    Kish (1965) effective base (sum w)^2 / sum w^2. Design effect: the Taylor variance over
-    the variance the same data would have as a simple random sample, unit_variance *
-    n/(n-1) / n. Design base: n / design effect (the effective base that also carries
-    clustering). Shares: Wilson interval on the design base; means and balances: t interval
+    Kish (1965) effective base (sum w)^2 / sum w^2. Design effect (Kish 1965): the Taylor
+    variance over the variance the same estimator gives for an unweighted simple random
+    sample of the same respondents, unit_variance / n x P / (P - H) with P PSUs and H strata
+    (so it is exactly 1 for unweighted data with no design). Design base: n / design effect
+    (the effective base that also carries clustering). Shares: Wilson interval on the design base; means and balances: t interval
     with min(design df, n - 1) degrees of freedom.
     """
     c = cells.copy()
@@ -184,7 +219,8 @@ def finish(cells: pd.DataFrame, kinds: dict[str, str], level: float = 0.95) -> p
     sw = c["weighted_base"].to_numpy(float)
     with np.errstate(divide="ignore", invalid="ignore"):
         kish = sw**2 / c["sum_w2"].to_numpy(float)
-        srs_var = c["unit_variance"].to_numpy(float) / np.maximum(n - 1, 1)
+        p_psu = c["n_psu"].to_numpy(float)
+        srs_var = c["unit_variance"].to_numpy(float) / n * p_psu / c["design_df"].to_numpy(float)
         deff = np.where(srs_var > 0, c["variance"].to_numpy(float) / srs_var, np.nan)
         design_base = np.where(deff > 0, n / deff, kish)
     se = np.sqrt(c["variance"].to_numpy(float))
