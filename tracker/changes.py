@@ -157,23 +157,18 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     lo = np.select([kind == "share", is_mean], [nl, d - tc * se], d - zc * se)
     hi = np.select([kind == "share", is_mean], [nu, d + tc * se], d + zc * se)
 
-    flags = []
-    testable = np.ones(len(m), bool)
     blocked = blocked or {}
-    for i, row in enumerate(m.itertuples(index=False)):  # text only; the numbers above are vectorised
-        f = []
-        if row.metric in blocked:
-            f.append(blocked[row.metric])
-            testable[i] = False
-        if row.base_to == 0 or row.base_from == 0:
-            f.append(f"no respondents in {row.wave_to if row.base_to == 0 else row.wave_from}")
-            testable[i] = False
-        elif not (row.reliable_to and row.reliable_from):
-            f.append("unreliable cell: " + "; ".join(x for x in (row.flags_from, row.flags_to) if x))
-            testable[i] = False
-        elif row.flags_to or row.flags_from:
-            f.append("; ".join(x for x in (row.flags_from, row.flags_to) if x))
-        flags.append(" | ".join(f))
+    why_blocked = np.array([blocked.get(x, "") for x in m["metric"].unique()], dtype=object)[
+        pd.factorize(m["metric"])[0]] if len(m) else np.array([], dtype=object)
+    empty_to, empty_from = m["base_to"].to_numpy() == 0, m["base_from"].to_numpy() == 0
+    unreliable = ~(m["reliable_to"].to_numpy(bool) & m["reliable_from"].to_numpy(bool))
+    cell_flags = _join(m["flags_from"].to_numpy(object), m["flags_to"].to_numpy(object), "; ")
+    empty_text = np.where(empty_to, "no respondents in " + m["wave_to"].astype(str),
+                          "no respondents in " + m["wave_from"].astype(str))
+    detail = np.where(empty_to | empty_from, empty_text,
+                      np.where(unreliable, "unreliable cell: " + cell_flags.astype(str), cell_flags))
+    flags = _join(why_blocked, detail, " | ")
+    testable = (why_blocked == "") & ~empty_to & ~empty_from & ~unreliable
     testable &= np.isfinite(p_raw)
     p_adj = adjust_pvalues(np.where(testable, p_raw, np.nan), adjust)
     sig = testable & (p_adj <= 1 - level)
@@ -193,3 +188,11 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
         "se": se, "df": np.where(is_mean, df, np.inf),
     })
     return out
+
+
+def _join(a: np.ndarray, b: np.ndarray, sep: str) -> np.ndarray:
+    """Element-wise join of two text arrays, skipping empty parts."""
+    a = pd.Series(a, dtype=object).fillna("").astype(str)
+    b = pd.Series(b, dtype=object).fillna("").astype(str)
+    both = (a != "") & (b != "")
+    return np.where(both, a + sep + b, a + b).astype(object)
