@@ -367,3 +367,19 @@ def test_nchs_rules_from_memory():
     assert flags[1] == "interval 30 points wide or more"
     assert flags[4] == "interval too wide for the value"
     assert flags[5] == "under 8 degrees of freedom"
+
+
+def test_estimates_command_json_agrees_with_the_api(tmp_path):
+    rng = np.random.default_rng(21)
+    make_study(tmp_path, [random_wave(rng, 300, prefix="a"), random_wave(rng, 300, prefix="b")], weight=True)
+    result = CliRunner().invoke(main, ["estimates", str(tmp_path / "s"), "--metric", "top2", "--by", "g",
+                                       "--wave", "W2", "--format", "json"])
+    assert result.exit_code == 0, result.output
+    shown = pd.read_json(__import__("io").StringIO(result.output))
+    api = Study(tmp_path / "s").estimates(metrics=["top2"], by=["g"], waves=["W2"])
+    assert list(shown["subgroup"]) == ["Total", "one", "two", "three"]
+    assert np.allclose(shown["value"], api["value"], atol=1e-10)
+    assert np.allclose(shown["se"], api["se"], atol=1e-10)
+    assert list(shown["base"]) == list(api["base"])
+    result = CliRunner().invoke(main, ["estimates", str(tmp_path / "s"), "--metric", "nope"])
+    assert result.exit_code == 1 and "--metric nope: not a metric of this study" in result.output

@@ -162,3 +162,39 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fmt)
             click.echo(f"({rest} other comparisons without a significant change; --all lists them)")
         for line in result.footer():
             click.echo(line)
+
+
+@main.command("trends")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--metric", "metrics", multiple=True, help="Metric (repeatable; default all).")
+@click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
+@click.option("--last", type=int, help="Use only the last N waves.")
+@click.option("--since", help="Use the waves from this one on.")
+@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True,
+              help="Multiple-comparison control across every series of the call.")
+@click.option("--level", default=0.95, show_default=True, help="Confidence level.")
+@click.option("--pool", type=int, help="Instead: rolling estimates pooling each wave with the POOL-1 before it.")
+@click.option("--moving-only", is_flag=True, help="List only series whose pattern is not steady.")
+@_fmt_option
+@user_errors
+def trends_cmd(study, metrics, by, last, since, adjust, level, pool, moving_only, fmt):
+    """Slope per year, extra variation and the pattern of every series (steady, rising, falling, shifted, blip)."""
+    from .formatting import render
+    from .trends import COLUMNS
+
+    s = Study(study)
+    if pool:
+        click.echo(render(s.pooled(pool, metrics=list(metrics) or None, by=list(by) if by else None, level=level), fmt),
+                   nl=False)
+        return
+    table = s.trends(metrics=list(metrics) or None, by=list(by) if by else None, last=last, since=since,
+                     adjust=adjust, level=level)
+    shown = table[table["pattern"] != "steady"] if moving_only else table
+    click.echo(render(shown[COLUMNS], fmt), nl=False)
+    if fmt in ("table", "md"):
+        counts = table["pattern"].value_counts()
+        click.echo(f"{len(table)} series: " + ", ".join(f"{v} {k}" for k, v in counts.items()))
+        click.echo(f"Patterns decided after {table.attrs['adjust']} adjustment across the slope, shift and blip "
+                   f"tests of all series, at the {1 - level:g} level. Slopes are per year of fieldwork time.")
+        click.echo("Sampling error and the between-wave variation are both in the intervals; "
+                   "significance is not importance.")

@@ -16,7 +16,9 @@ def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
         return frame.to_json(orient="records", indent=1, double_precision=10)
     shown = frame.copy()
     for col in shown.columns:
-        if pd.api.types.is_float_dtype(shown[col]):
+        if not pd.api.types.is_numeric_dtype(shown[col]) and not pd.api.types.is_bool_dtype(shown[col]):
+            shown[col] = shown[col].astype(object).where(shown[col].notna(), "")
+        elif pd.api.types.is_float_dtype(shown[col]):
             shown[col] = shown[col].map(lambda v: "" if pd.isna(v) else (f"{v:.{digits}f}" if np.isfinite(v) else str(v)))
     if fmt == "md":
         head = "| " + " | ".join(shown.columns) + " |"

@@ -341,6 +341,67 @@ class Study:
         table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level)
         return ChangeResult(table, wave, note.split(": ", 1)[-1], adjust, level, tuple(notes))
 
+    # -- trends ---------------------------------------------------------------------------
+    def _window(self, last: int | None, since: str | None) -> list[str]:
+        labels = self._pick_waves()
+        if since is not None:
+            if since not in labels:
+                raise TrackerError(f"--since {since}: no stored wave has that label")
+            labels = labels[labels.index(since):]
+        if last is not None:
+            if last < 1:
+                raise TrackerError(f"--last {last}: give a number of waves of 1 or more")
+            labels = labels[-last:]
+        return labels
+
+    def segment_starts(self, metrics: list, labels: list[str]) -> dict[str, str]:
+        """For metrics with a wording break inside ``labels``: the wave their current series starts at."""
+        order = self.dates()
+        out = {}
+        for m in metrics:
+            for vname in filter(None, (m.variable, m.base_variable)):
+                b = self.codebook.variables[vname].break_before
+                if b is None:
+                    continue
+                after = [w for w in labels if wave_in_span(w, b, None, order)]
+                if after and after[0] != labels[0]:
+                    if m.name not in out or labels.index(after[0]) > labels.index(out[m.name]):
+                        out[m.name] = after[0]
+        return out
+
+    def trends(self, metrics=None, by=None, last: int | None = None, since: str | None = None,
+               adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+        """Slope per year, extra variation, and the pattern (steady, rising, falling, shifted, blip)
+        of every metric x subgroup series; see docs/methods.md."""
+        from .trends import fit_trends
+
+        if adjust not in ("bh", "holm", "by", "none"):
+            raise TrackerError(f"--adjust {adjust}: use one of bh, holm, by, none")
+        ms = self._pick_metrics(metrics)
+        labels = self._window(last, since)
+        est = self.estimates(metrics=[m.name for m in ms], by=by, waves=labels, level=level)
+        return fit_trends(est, self.segment_starts(ms, labels), adjust, level)
+
+    def pooled(self, k: int, metrics=None, by=None, level: float = 0.95) -> pd.DataFrame:
+        """Rolling estimates pooling each wave with the k - 1 waves before it (for thin subgroups)."""
+        from .estimates import COLUMNS
+
+        if k < 2:
+            raise TrackerError(f"--pool {k}: pool at least 2 waves")
+        ms, gs, labels = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves()
+        if len(labels) < k:
+            raise TrackerError(f"--pool {k}: only {len(labels)} waves are stored")
+        rows = []
+        for i in range(k - 1, len(labels)):
+            window = labels[i - k + 1:i + 1]
+            part = self._pooled_rows(window, ms, gs, level)
+            part["wave"] = labels[i]
+            part.insert(1, "pooled_waves", f"{window[0]}..{window[-1]}")
+            rows.append(part)
+        out = pd.concat(rows, ignore_index=True)
+        out = out[out["base"] > 0].reset_index(drop=True)
+        return out[["wave", "pooled_waves", *COLUMNS[1:]]]
+
 
 def _weights(book: Codebook, table: pd.DataFrame) -> np.ndarray:
     if book.weight and book.weight in table.columns:
