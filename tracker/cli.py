@@ -198,3 +198,30 @@ def trends_cmd(study, metrics, by, last, since, adjust, level, pool, moving_only
                    f"tests of all series, at the {1 - level:g} level. Slopes are per year of fieldwork time.")
         click.echo("Sampling error and the between-wave variation are both in the intervals; "
                    "significance is not importance.")
+
+
+@main.command("chart")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--metric", help="Draw this metric's trend chart.")
+@click.option("--by", help="Subgroup split drawn as small multiples.")
+@click.option("--overview", is_flag=True, help="Instead: every tested change of a comparison (see --wave, --against).")
+@click.option("--wave", help="With --overview: the wave tested (default: the latest).")
+@click.option("--against", default="previous", show_default=True, help="With --overview: what it is tested against.")
+@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True)
+@click.option("--level", default=0.95, show_default=True)
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False), help="FILE.html, .png, .svg or .json")
+@user_errors
+def chart_cmd(study, metric, by, overview, wave, against, adjust, level, output):
+    """Draw a metric's trend chart, or the overview of every tested change."""
+    from .charts import change_overview, save_chart, trend_chart
+
+    s = Study(study)
+    if overview:
+        chart = change_overview(s.changes(wave=wave, against=against, adjust=adjust, level=level))
+    else:
+        if not metric:
+            raise TrackerError("give --metric for a trend chart, or --overview")
+        if by and by not in s.codebook.groups:
+            raise TrackerError(f"--by {by}: not a group of this study ({', '.join(s.codebook.groups)})")
+        chart = trend_chart(s, metric, by=by, adjust=adjust, level=level)
+    click.echo(f"wrote {save_chart(chart, output)}")

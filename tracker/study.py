@@ -402,6 +402,29 @@ class Study:
         out = out[out["base"] > 0].reset_index(drop=True)
         return out[["wave", "pooled_waves", *COLUMNS[1:]]]
 
+    def wave_steps(self, metrics=None, by=None, waves=None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+        """Every wave against the one before it, for the given metrics and subgroups, adjusted
+        as one family across all the steps (what a trend chart marks)."""
+        from .changes import compare
+        from .significance import adjust_pvalues
+
+        ms, gs, labels = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
+        parts = []
+        for before, after in zip(labels, labels[1:]):
+            now = self._wave_rows(after, ms, gs, level)
+            then = self._wave_rows(before, ms, gs, level)
+            parts.append(compare(now, then, self.break_reasons(ms, [before], after), None, "none", level))
+        if not parts:
+            return pd.DataFrame()
+        out = pd.concat(parts, ignore_index=True)
+        out["p_adjusted"] = adjust_pvalues(out["p_raw"].to_numpy(), adjust)
+        tested = out["p_adjusted"].notna()
+        out["significant"] = tested & (out["p_adjusted"] <= 1 - level)
+        d = out["change"].to_numpy()
+        out["direction"] = np.where(~tested, "not tested", np.where(
+            out["significant"] & (d > 0), "rise", np.where(out["significant"] & (d < 0), "fall", "no clear change")))
+        return out
+
 
 def _weights(book: Codebook, table: pd.DataFrame) -> np.ndarray:
     if book.weight and book.weight in table.columns:

@@ -263,3 +263,30 @@ def _blip_search(y, v, ok, X_trend):
         size = np.where(better, c, size)
     p_series = np.where(n_cand > 0, np.minimum(1.0, best_p * np.maximum(n_cand, 1)), np.nan)
     return {"p": p_series, "index": best_j, "size": size}
+
+
+def fitted_values(trend_rows: pd.DataFrame, est: pd.DataFrame) -> pd.Series:
+    """The fitted line or shift levels at each estimate row (NaN where the pattern is
+    steady, a blip, or the wave lies outside the fitted series).
+
+    ``est`` must be the estimates table the trends were fitted on (its first wave fixes
+    time zero)."""
+    keys = ["metric", "group", "subgroup"]
+    t0 = dt.date.fromisoformat(est["fieldwork_date"].min())
+    years = est["fieldwork_date"].map(lambda d: (dt.date.fromisoformat(d) - t0).days / 365.25)
+    m = est[keys].join(years.rename("years")).merge(trend_rows, on=keys, how="left")
+    m.index = est.index
+    rank = _rank(est)
+    at = est["wave"].map(rank)
+    inside = (at >= m["first_wave"].map(rank)) & (at <= m["last_wave"].map(rank))
+    line = m["intercept"] + m["slope_per_year"] * (m["years"] - m["time_centre"])
+    after = at >= m["shift_wave"].map(rank)
+    levels = np.where(after, m["level_after"], m["level_before"])
+    value = np.select([m["pattern"].isin(["rising", "falling"]), m["pattern"].str.startswith("shifted")],
+                      [line, levels], np.nan)
+    return pd.Series(np.where(inside, value, np.nan), index=est.index, name="fitted")
+
+
+def _rank(est: pd.DataFrame) -> dict:
+    order = est.drop_duplicates("wave").sort_values("fieldwork_date")["wave"]
+    return {w: i for i, w in enumerate(order)}

@@ -1,0 +1,234 @@
+"""Charts (Altair): the trend chart and the change overview, in our own visual language.
+
+Colours are the Okabe-Ito palette (Okabe & Ito 2008, *Color Universal Design*), safe for
+the common colour-vision deficiencies. A significant rise and a significant fall differ by
+shape (triangle up, triangle down) and by word, as well as by colour (blue, vermillion:
+never a red/green pair). A change that is not significant is drawn muted grey, never hidden.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import altair as alt
+import numpy as np
+import pandas as pd
+
+from .errors import TrackerError
+
+OKABE_ITO = {
+    "black": "#000000", "orange": "#E69F00", "sky blue": "#56B4E9", "bluish green": "#009E73",
+    "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "reddish purple": "#CC79A7",
+}
+MUTED = "#999999"
+STATUS_ORDER = ["rise", "fall", "no clear change", "not tested", "first wave"]
+STATUS_COLOUR = [OKABE_ITO["blue"], OKABE_ITO["vermillion"], MUTED, "#cccccc", MUTED]
+STATUS_SHAPE = ["triangle-up", "triangle-down", "circle", "circle", "circle"]
+FONT = "Helvetica, Arial, sans-serif"
+
+
+def _config(chart: alt.TopLevelMixin) -> alt.TopLevelMixin:
+    return chart.configure(font=FONT).configure_axis(labelFontSize=11, titleFontSize=12, grid=True,
+                                                      gridColor="#eeeeee").configure_view(stroke=None)
+
+
+def _scale_factor(kind: str) -> float:
+    return 100.0 if kind in ("share", "balance") else 1.0
+
+
+def _unit(kind: str) -> str:
+    return {"share": "%", "balance": "points", "mean": "mean"}.get(kind, "")
+
+
+def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+    """Everything the trend chart draws, one row per wave x subgroup (a plain DataFrame)."""
+    from .trends import fit_trends, fitted_values
+
+    groups = [by] if by else []
+    est = study.estimates(metrics=[metric], by=groups, level=level)
+    if by:
+        est = est[est["group"] == by].reset_index(drop=True)
+    labels = study.labels
+    steps = study.wave_steps(metrics=[metric], by=groups, adjust=adjust, level=level)
+    m = study.codebook.metrics[metric]
+    starts = study.segment_starts([m], labels)
+    trends = fit_trends(study.estimates(metrics=[metric], by=groups, level=level), starts, adjust, level)
+    out = est.copy()
+    out["fitted"] = fitted_values(trends, est).to_numpy() if len(est) else np.nan
+    if len(steps):
+        steps = steps.rename(columns={"wave_to": "wave"})[
+            ["metric", "group", "subgroup", "wave", "direction", "change", "p_adjusted", "flags"]]
+        out = out.merge(steps.rename(columns={"flags": "change_flags"}), on=["metric", "group", "subgroup", "wave"],
+                        how="left")
+    else:
+        out["direction"], out["change"], out["p_adjusted"], out["change_flags"] = np.nan, np.nan, np.nan, ""
+    out["direction"] = out["direction"].fillna("first wave")
+    out["segment"] = "series"
+    if metric in starts:
+        start_rank = labels.index(starts[metric])
+        out["segment"] = np.where(out["wave"].map(labels.index) >= start_rank, "after wording change",
+                                  "before wording change")
+    f = _scale_factor(m.kind)
+    for col in ("value", "ci_low", "ci_high", "fitted"):
+        out[col + "_shown"] = out[col] * f
+    out["change_shown"] = out["change"] * f
+    out["panel"] = np.where(out["group"] == "total", "Total", out["subgroup"])
+    out["date"] = pd.to_datetime(out["fieldwork_date"])
+    trend_by = trends.set_index("subgroup")["pattern"].to_dict()
+    out["pattern"] = out["subgroup"].map(trend_by)
+    out.attrs.update(metric=metric, label=m.label, kind=m.kind, break_wave=starts.get(metric),
+                     n_steps=int(steps["p_adjusted"].notna().sum()) if len(steps) else 0, adjust=adjust, level=level)
+    return out
+
+
+def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95,
+                width: int | None = None, height: int = 200) -> alt.FacetChart | alt.LayerChart:
+    """The metric wave by wave: interval band, line, marked significant steps, fitted trend
+    or shift levels, a wording break as a gap with a note, bases under the axis."""
+    from .significance import ADJUST_METHODS
+
+    if metric not in study.codebook.metrics:
+        raise TrackerError(f"--metric {metric}: not a metric of this study ({', '.join(study.codebook.metrics)})")
+    data = trend_frame(study, metric, by, adjust, level)
+    a = data.attrs
+    width = width or (260 if by else 460)
+    unit = _unit(a["kind"])
+    y_title = f"{a['label']} ({unit})" if unit else a["label"]
+    x = alt.X("date:T", title=None, axis=alt.Axis(format="%Y-%m", labelAngle=0, tickCount=6))
+    tooltip = [
+        alt.Tooltip("wave:N", title="wave"), alt.Tooltip("panel:N", title="who"),
+        alt.Tooltip("value_shown:Q", title="value", format=".1f" if unit != "mean" else ".2f"),
+        alt.Tooltip("ci_low_shown:Q", title="interval from", format=".1f" if unit != "mean" else ".2f"),
+        alt.Tooltip("ci_high_shown:Q", title="interval to", format=".1f" if unit != "mean" else ".2f"),
+        alt.Tooltip("direction:N", title="change from wave before"),
+        alt.Tooltip("change_shown:Q", title="change", format="+.1f" if unit != "mean" else "+.2f"),
+        alt.Tooltip("base:Q", title="base", format=","),
+        alt.Tooltip("effective_base:Q", title="effective base", format=",.0f"),
+        alt.Tooltip("flags:N", title="flags"),
+    ]
+    y = alt.Y("value_shown:Q", title=y_title, scale=alt.Scale(zero=False))
+    band = alt.Chart().mark_area(opacity=0.18, color=OKABE_ITO["sky blue"]).encode(
+        x=x, y=alt.Y("ci_low_shown:Q", title=y_title), y2="ci_high_shown:Q", detail="segment:N")
+    line = alt.Chart().mark_line(color=OKABE_ITO["black"], strokeWidth=1.5).encode(x=x, y=y, detail="segment:N")
+    fitted = alt.Chart().mark_line(color=OKABE_ITO["orange"], strokeDash=[6, 3], strokeWidth=2).encode(
+        x=x, y="fitted_shown:Q", detail="segment:N").transform_filter(
+        "isValid(datum.fitted_shown) && (datum.pattern == 'rising' || datum.pattern == 'falling')")
+    levels = alt.Chart().mark_line(color=OKABE_ITO["orange"], strokeDash=[6, 3], strokeWidth=2,
+                                   interpolate="step-after").encode(
+        x=x, y="fitted_shown:Q", detail="segment:N").transform_filter(
+        "isValid(datum.fitted_shown) && indexof(datum.pattern, 'shifted') == 0")
+    points = alt.Chart().mark_point(filled=True, size=70).encode(
+        x=x, y=y,
+        color=alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR),
+                        legend=alt.Legend(title="change from the wave before", orient="bottom")),
+        shape=alt.Shape("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=None),
+        opacity=alt.condition("datum.direction == 'rise' || datum.direction == 'fall'", alt.value(1.0),
+                              alt.value(0.55)),
+        tooltip=tooltip)
+    bases = alt.Chart().mark_text(fontSize=8, color="#555555", angle=0, baseline="bottom").encode(
+        x=x, y=alt.value(height - 2), text=alt.Text("base:Q", format=","))
+    layers = [band, line, fitted, levels, points, bases]
+    if a["break_wave"]:
+        rule = alt.Chart().mark_rule(color=OKABE_ITO["reddish purple"], strokeDash=[2, 2]).encode(x=x).transform_filter(
+            alt.datum.wave == a["break_wave"])
+        note = alt.Chart().mark_text(align="left", dx=3, dy=-4, fontSize=9, color=OKABE_ITO["reddish purple"]).encode(
+            x=x, y=alt.value(10), text=alt.value("wording changed")).transform_filter(
+            alt.datum.wave == a["break_wave"]).transform_aggregate(date="min(date)")
+        layers += [rule, note]
+    chart = alt.layer(*layers, data=data).properties(width=width, height=height)
+    subtitle = [
+        f"Band: {level:.0%} interval (sampling error only). Numbers along the foot: base.",
+        f"Triangles: change from the wave before significant at {1 - level:g}, after {ADJUST_METHODS[adjust]}",
+        f"adjustment across the {a['n_steps']} changes drawn. Dashed: fitted trend or shift levels.",
+    ]
+    title = alt.TitleParams(a["label"], subtitle=subtitle, anchor="start", fontSize=14, subtitleFontSize=10)
+    if by:
+        chart = chart.facet(facet=alt.Facet("panel:N", title=None, sort=list(dict.fromkeys(data["panel"]))),
+                            columns=3, title=title)
+    else:
+        chart = chart.properties(title=title)
+    return chart
+
+
+def change_overview(result, totals_only: bool = False, width: int = 380) -> alt.VConcatChart | alt.Chart:
+    """Every tested change of one comparison as a dot with its interval, sorted by size;
+    significant ones emphasised; a zero line; the minimum detectable change as a shaded band."""
+    from .significance import ADJUST_METHODS
+
+    t = result.table[result.table["p_adjusted"].notna()].copy()
+    if totals_only:
+        t = t[t["group"] == "total"]
+    if t.empty:
+        raise TrackerError("no tested changes to draw")
+    f = t["kind"].map(_scale_factor)
+    t["row"] = np.where(t["group"] == "total", t["metric_label"], t["metric_label"] + " | " + t["subgroup"])
+    for col in ("change", "change_low", "change_high", "min_detectable_change"):
+        t[col + "_shown"] = t[col] * f
+    t["mde_low"] = -t["min_detectable_change_shown"]
+    t["unit"] = np.where(t["kind"] == "mean", "means (scale points)", "shares and balances (percentage points)")
+    charts = []
+    for unit, part in t.groupby("unit", sort=False):
+        part = part.sort_values("change_shown")
+        order = list(part["row"])
+        y = alt.Y("row:N", sort=order, title=None, axis=alt.Axis(labelLimit=260))
+        base = alt.Chart(part)
+        mde = base.mark_bar(color="#e8e8e8", height=10).encode(
+            x=alt.X("mde_low:Q", title=f"change, {unit}"), x2="min_detectable_change_shown:Q", y=y)
+        zero = alt.Chart(pd.DataFrame({"zero": [0]})).mark_rule(color=OKABE_ITO["black"]).encode(x="zero:Q")
+        bars = base.mark_rule(strokeWidth=1.5).encode(
+            x="change_low_shown:Q", x2="change_high_shown:Q", y=y,
+            color=alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=None))
+        dots = base.mark_point(filled=True, size=70).encode(
+            x="change_shown:Q", y=y,
+            color=alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR),
+                            legend=alt.Legend(title="change", orient="bottom")),
+            shape=alt.Shape("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=None),
+            opacity=alt.condition("datum.significant", alt.value(1.0), alt.value(0.5)),
+            tooltip=[alt.Tooltip("row:N", title="measure"), alt.Tooltip("direction:N", title="verdict"),
+                     alt.Tooltip("change_shown:Q", title="change", format="+.1f"),
+                     alt.Tooltip("change_low_shown:Q", title="interval from", format="+.1f"),
+                     alt.Tooltip("change_high_shown:Q", title="interval to", format="+.1f"),
+                     alt.Tooltip("min_detectable_change_shown:Q", title="min detectable change", format=".1f"),
+                     alt.Tooltip("p_adjusted:Q", title="adjusted p", format=".4f"),
+                     alt.Tooltip("base_from:Q", title="base before", format=","),
+                     alt.Tooltip("base_to:Q", title="base now", format=",")])
+        charts.append(alt.layer(mde, zero, bars, dots).properties(width=width, height=max(60, 16 * len(part))))
+    chart = alt.vconcat(*charts).resolve_scale(x="independent", y="independent")
+    return chart.properties(title=alt.TitleParams(
+        f"{result.wave} against {result.against}: every tested change", anchor="start", fontSize=14,
+        subtitle=[f"Line: {result.level:.0%} interval. Grey band: the minimum detectable change (80 % power).",
+                  f"Emphasised: significant at {1 - result.level:g} after {ADJUST_METHODS[result.adjust]} "
+                  f"adjustment ({result.n_significant} of {result.n_tests} tests)."], subtitleFontSize=10))
+
+
+def chart_spec(chart) -> dict:
+    return _config(chart).to_dict()
+
+
+def save_chart(chart, path: str | Path) -> Path:
+    """Write a chart as .html (offline: libraries inlined), .png, .svg or .json."""
+    import vl_convert as vlc
+
+    path = Path(path)
+    if not path.parent.is_dir():
+        raise TrackerError(f"{path}: the folder {path.parent} does not exist")
+    spec = chart_spec(chart)
+    suffix = path.suffix.lower()
+    if suffix == ".json":
+        data = json.dumps(spec, indent=1).encode()
+    elif suffix == ".svg":
+        data = vlc.vegalite_to_svg(spec).encode()
+    elif suffix == ".png":
+        data = vlc.vegalite_to_png(spec, scale=2)
+    elif suffix in (".html", ".htm"):
+        from .page import chart_page
+
+        data = chart_page([spec], title=spec.get("title", {}).get("text", "chart") if isinstance(
+            spec.get("title"), dict) else "chart").encode()
+    else:
+        raise TrackerError(f"{path}: give a file ending in .html, .png, .svg or .json")
+    from .store import write_atomic
+
+    write_atomic(path, data)
+    return path
