@@ -37,6 +37,7 @@ class ChangeResult:
     adjust: str
     level: float
     notes: tuple[str, ...] = field(default_factory=tuple)
+    compared_with: tuple[str, ...] = ()
 
     @property
     def n_tests(self) -> int:

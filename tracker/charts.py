@@ -41,19 +41,22 @@ def _unit(kind: str) -> str:
     return {"share": "%", "balance": "points", "mean": "mean"}.get(kind, "")
 
 
-def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
-    """Everything the trend chart draws, one row per wave x subgroup (a plain DataFrame)."""
+def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95,
+                until: str | None = None) -> pd.DataFrame:
+    """Everything the trend chart draws, one row per wave x subgroup (a plain DataFrame).
+    ``until`` ends the series at that wave (a brief of an earlier wave sees no later one)."""
     from .trends import fit_trends, fitted_values
 
     groups = [by] if by else []
-    est = study.estimates(metrics=[metric], by=groups, level=level)
-    if by:
-        est = est[est["group"] == by].reset_index(drop=True)
     labels = study.labels
-    steps = study.wave_steps(metrics=[metric], by=groups, adjust=adjust, level=level)
+    if until is not None:
+        labels = labels[:labels.index(until) + 1]
+    full = study.estimates(metrics=[metric], by=groups, waves=labels, level=level)
+    est = full[full["group"] == by].reset_index(drop=True) if by else full
+    steps = study.wave_steps(metrics=[metric], by=groups, waves=labels, adjust=adjust, level=level)
     m = study.codebook.metrics[metric]
     starts = study.segment_starts([m], labels)
-    trends = fit_trends(study.estimates(metrics=[metric], by=groups, level=level), starts, adjust, level)
+    trends = fit_trends(full, starts, adjust, level)
     out = est.copy()
     out["fitted"] = fitted_values(trends, est).to_numpy() if len(est) else np.nan
     if len(steps):
@@ -83,14 +86,14 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
 
 
 def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95,
-                width: int | None = None, height: int = 200) -> alt.FacetChart | alt.LayerChart:
+                width: int | None = None, height: int = 200, until: str | None = None) -> alt.FacetChart | alt.LayerChart:
     """The metric wave by wave: interval band, line, marked significant steps, fitted trend
     or shift levels, a wording break as a gap with a note, bases under the axis."""
     from .significance import ADJUST_METHODS
 
     if metric not in study.codebook.metrics:
         raise TrackerError(f"--metric {metric}: not a metric of this study ({', '.join(study.codebook.metrics)})")
-    data = trend_frame(study, metric, by, adjust, level)
+    data = trend_frame(study, metric, by, adjust, level, until)
     a = data.attrs
     width = width or (260 if by else 460)
     unit = _unit(a["kind"])

@@ -99,15 +99,19 @@ def waves_cmd(study):
 @click.argument("folder", default="demo-study", type=click.Path(file_okay=False))
 @user_errors
 def demo_cmd(folder):
-    """Build the bundled demo study in FOLDER (default ./demo-study)."""
+    """Build the bundled demo study in FOLDER (default ./demo-study) and write its briefing."""
     from .demo import build_demo
 
     if Path(folder).exists() and any(Path(folder).iterdir()):
         raise TrackerError(f"{folder}: the folder exists and is not empty; give another folder")
+    from .brief import build_brief, write_brief
+
     study, reports = build_demo(folder)
     for r in reports:
         click.echo(f"added {r.label}: {r.rows:,} respondents, effective base {r.effective_base:,.0f}")
     click.echo(f"demo study ready at {study.root}")
+    path = write_brief(build_brief(study), study.root / "brief.html")
+    click.echo(f"briefing for {study.labels[-1]} written to {path}")
 
 
 def _fmt_option(fn):
@@ -225,3 +229,23 @@ def chart_cmd(study, metric, by, overview, wave, against, adjust, level, output)
             raise TrackerError(f"--by {by}: not a group of this study ({', '.join(s.codebook.groups)})")
         chart = trend_chart(s, metric, by=by, adjust=adjust, level=level)
     click.echo(f"wrote {save_chart(chart, output)}")
+
+
+@main.command("brief")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--wave", help="The wave to brief (default: the latest).")
+@click.option("--against", default="previous", show_default=True,
+              help="previous, year-ago, a wave label, or pooled:K.")
+@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True)
+@click.option("--level", default=0.95, show_default=True)
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False), help="brief.html, brief.md or brief.xlsx")
+@user_errors
+def brief_cmd(study, wave, against, adjust, level, output):
+    """Write the briefing: what moved, what held steady, trends, sample notes, method and cautions."""
+    from .brief import build_brief, write_brief
+
+    if Path(output).suffix.lower() not in (".html", ".htm", ".md", ".xlsx"):
+        raise TrackerError(f"{output}: give a file ending in .html, .md or .xlsx")
+    brief = build_brief(Study(study), wave=wave, against=against, adjust=adjust, level=level,
+                        charts=Path(output).suffix.lower() in (".html", ".htm"))
+    click.echo(f"wrote {write_brief(brief, output)}")

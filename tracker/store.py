@@ -22,9 +22,16 @@ CODEBOOK = "codebook.yaml"
 WAVES = "waves"
 
 
+def _umask_mode() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
 def write_atomic(path: Path, data: bytes) -> None:
     """Write bytes to ``path`` via a temporary file in the same folder, fsync, then rename."""
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".incoming-", suffix=".tmp")
+    os.chmod(tmp, _umask_mode())  # mkstemp makes 0600; a finished file gets the usual mode
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
@@ -40,6 +47,7 @@ def write_atomic(path: Path, data: bytes) -> None:
 def write_parquet_atomic(path: Path, table: pd.DataFrame) -> None:
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".incoming-", suffix=".tmp")
     os.close(fd)
+    os.chmod(tmp, _umask_mode())
     try:
         table.to_parquet(tmp, index=False)
         with open(tmp, "rb+") as fh:

@@ -339,11 +339,14 @@ class Study:
                 cov = c
                 notes.append(f"{matched:,} respondents answered both waves: their covariance is taken into account")
         table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level)
-        return ChangeResult(table, wave, note.split(": ", 1)[-1], adjust, level, tuple(notes))
+        return ChangeResult(table, wave, note.split(": ", 1)[-1], adjust, level, tuple(notes), tuple(others))
 
     # -- trends ---------------------------------------------------------------------------
-    def _window(self, last: int | None, since: str | None) -> list[str]:
+    def _window(self, last: int | None, since: str | None, until: str | None = None) -> list[str]:
         labels = self._pick_waves()
+        if until is not None:
+            self._entry(until)
+            labels = labels[:labels.index(until) + 1]
         if since is not None:
             if since not in labels:
                 raise TrackerError(f"--since {since}: no stored wave has that label")
@@ -370,7 +373,7 @@ class Study:
         return out
 
     def trends(self, metrics=None, by=None, last: int | None = None, since: str | None = None,
-               adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+               adjust: str = "bh", level: float = 0.95, until: str | None = None) -> pd.DataFrame:
         """Slope per year, extra variation, and the pattern (steady, rising, falling, shifted, blip)
         of every metric x subgroup series; see docs/methods.md."""
         from .trends import fit_trends
@@ -378,7 +381,7 @@ class Study:
         if adjust not in ("bh", "holm", "by", "none"):
             raise TrackerError(f"--adjust {adjust}: use one of bh, holm, by, none")
         ms = self._pick_metrics(metrics)
-        labels = self._window(last, since)
+        labels = self._window(last, since, until)
         est = self.estimates(metrics=[m.name for m in ms], by=by, waves=labels, level=level)
         return fit_trends(est, self.segment_starts(ms, labels), adjust, level)
 

@@ -1,0 +1,175 @@
+"""The briefing and charts: content, escaping, spreadsheet safety, and a real browser.
+
+The browser test opens the demo brief in Debian's headless Chromium (installed by .ci/run).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import subprocess
+
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+from openpyxl import load_workbook
+
+from tracker import Study
+from tracker.brief import build_brief, render_markdown, write_brief
+from tracker.charts import OKABE_ITO, change_overview, save_chart, trend_chart
+from tracker.cli import main
+
+CHROME_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                "--virtual-time-budget=30000"]
+
+
+@pytest.fixture(scope="module")
+def q2_brief(demo_study):
+    return build_brief(demo_study, wave="2025-Q2")
+
+
+def test_headline_lists_the_planted_drop_with_its_numbers(q2_brief, demo_study):
+    text = q2_brief.headline[0].text
+    row = demo_study.changes(wave="2025-Q2").table.set_index(["metric", "subgroup"])
+    big = row.loc[("tram_on_time", "Total")] if abs(row.loc[("tram_on_time", "Total"), "change"]) > abs(
+        row.loc[("on_time_good", "Total"), "change"]) else row.loc[("on_time_good", "Total")]
+    assert text.startswith(f"{big['metric_label']} fell from {big['value_from'] * 100:.0f}% to {big['value_to'] * 100:.0f}%")
+    assert f"down {abs(big['change']) * 100:.1f} points" in text
+    assert f"(95% interval {-big['change_high'] * 100:.1f} to {-big['change_low'] * 100:.1f})" in text
+    assert f"base {int(big['base_from']):,} and {int(big['base_to']):,}" in text
+    assert any(i.metric == "on_time_good" and i.mark == "fall" for i in q2_brief.headline)
+    assert not any(i.metric == "info_good" for i in q2_brief.headline)
+    steady = {i.metric for i in q2_brief.steady}
+    assert "info_good" in steady
+    assert any("could detect a change of about" in i.text for i in q2_brief.steady)
+
+
+def test_latest_brief_trends_and_cautions(demo_study):
+    brief = build_brief(demo_study, charts=False)
+    trends = " ".join(i.text for i in brief.trends)
+    assert "Punctuality good or very good shifted down at 2025-Q2" in trends
+    assert "2024-Q3 was a one-wave blip" in trends and "do not brief it as a change of direction" in trends
+    assert "Satisfied overall (top-2 box) is rising" in trends
+    md = render_markdown(brief)
+    for heading in ("## What moved", "## Held steady", "## Trends", "## Sample notes", "## Method", "## Cautions"):
+        assert heading in md
+    assert "Significance is not importance" in md and "sampling error only" in md
+    assert "series starts at 2024-Q1 (wording break)" in md
+
+
+def test_brief_html_in_headless_chromium(q2_brief, tmp_path):
+    chromium = shutil.which("chromium") or shutil.which("chromium-browser")
+    if chromium is None:
+        if os.environ.get("CI"):
+            pytest.fail("chromium is not installed; .ci/run should have installed it")
+        pytest.skip("chromium not installed on this machine")
+    page = write_brief(q2_brief, tmp_path / "brief.html")
+    url = page.resolve().as_uri()
+    dom = subprocess.run([chromium, *CHROME_FLAGS, f"--user-data-dir={tmp_path / 'p1'}", "--enable-logging=stderr",
+                          "--v=0", "--dump-dom", url], capture_output=True, text=True, timeout=180)
+    expected = int(re.search(r'data-charts-expected="(\d+)"', dom.stdout).group(1))
+    drawn = int(re.search(r'data-charts-drawn="(\d+)"', dom.stdout).group(1))
+    assert expected == len(q2_brief.charts) >= 10
+    assert drawn == expected
+    assert re.search(r"<body[^>]*data-chart-errors", dom.stdout) is None
+    console = [line for line in dom.stderr.splitlines() if "CONSOLE" in line]
+    assert console == []  # the page logs nothing: any console message is a fault
+    assert dom.stdout.count("<svg") >= expected
+    assert "Punctuality good or very good fell from" in dom.stdout
+    shot = tmp_path / "brief.png"
+    subprocess.run([chromium, *CHROME_FLAGS, f"--user-data-dir={tmp_path / 'p2'}", "--window-size=1000,3000",
+                    "--hide-scrollbars", f"--screenshot={shot}", url], capture_output=True, timeout=180)
+    assert shot.is_file() and shot.stat().st_size > 50_000
+
+
+def test_html_is_self_contained(q2_brief, tmp_path):
+    text = write_brief(q2_brief, tmp_path / "b.html").read_text()
+    assert "http://" not in re.sub(r'"(\$schema|xmlns[^"]*)":\s*"[^"]*"', "", text).split("<script>")[0]
+    assert re.search(r"<script[^>]+src=", text) is None and "<link" not in text
+    assert "vegaEmbed" in text and 'name="viewport"' in text and "@media print" in text
+
+
+def test_xlsx_reopens_with_sheets_and_values(q2_brief, tmp_path, demo_study):
+    path = write_brief(q2_brief, tmp_path / "b.xlsx")
+    wb = load_workbook(path)
+    assert wb.sheetnames == ["Brief", "Headline", "Subgroup moves", "All changes", "Trends", "Estimates"]
+    head = wb["Headline"]
+    cols = [c.value for c in head[1]]
+    first = {c: head.cell(2, j + 1) for j, c in enumerate(cols)}
+    expected = q2_brief.tables["Headline"].iloc[0]
+    assert first["metric_label"].value == expected["metric_label"]
+    assert first["change"].value == pytest.approx(expected["change"], abs=1e-12)
+    assert first["change"].number_format == "0.000"
+    assert first["base_to"].value == expected["base_to"] and first["base_to"].number_format == "#,##0"
+    assert first["p_adjusted"].number_format == "0.0000"
+    assert wb["Brief"]["A1"].value == demo_study.codebook.title
+
+
+def test_labels_are_escaped_and_cells_cannot_run_as_formulas(tmp_path):
+    from .test_estimates_changes import BOOK, random_wave
+
+    text = BOOK.format(weight="", strata="", clusters="").replace("label: Top two", "label: <script>alert(1)</script>")
+    text = text.replace("codes: {1: one, 2: two, 3: three}", "codes: {1: '=HYPERLINK(\"x\")', 2: '@two', 3: '+three'}")
+    (tmp_path / "book.yaml").write_text(text)
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    rng = np.random.default_rng(0)
+    for i in range(2):
+        frame = random_wave(rng, 200, weighted=False, design=False, prefix=f"{i}-")
+        if i:
+            frame.loc[:120, "q"] = 5
+        frame.to_csv(tmp_path / f"w{i}.csv", index=False)
+        study.add(tmp_path / f"w{i}.csv", f"W{i + 1}", f"2025-0{i + 1}-01")
+    brief = build_brief(study)
+    page = write_brief(brief, tmp_path / "b.html").read_text()
+    assert "<script>alert(1)</script>" not in page
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in page
+    specs = page.split('id="chart-specs">')[1].split("</script>")[0]
+    assert "</" not in specs and "<script" not in specs
+    assert json.loads(specs)  # still valid JSON
+    wb = load_workbook(write_brief(brief, tmp_path / "b.xlsx"))
+    texts = [c for ws in wb.worksheets for row in ws.iter_rows() for c in row if isinstance(c.value, str)]
+    risky = [c for c in texts if c.value.lstrip("'")[:1] in ("=", "+", "@")]
+    assert risky and all(c.value.startswith("'") and c.data_type == "s" for c in risky)
+
+
+def test_charts_use_the_palette_and_tell_rise_from_fall_by_shape(demo_study, tmp_path):
+    spec = json.dumps(trend_chart(demo_study, "on_time_good").to_dict())
+    assert OKABE_ITO["blue"] in spec and OKABE_ITO["vermillion"] in spec
+    assert "triangle-up" in spec and "triangle-down" in spec
+    for red_green in ("#ff0000", "#00ff00", "red", "green"):
+        assert f'"{red_green}"' not in spec.lower()
+    frame = __import__("tracker.charts", fromlist=["trend_frame"]).trend_frame(demo_study, "on_time_good")
+    row = frame.set_index("wave").loc["2025-Q2"]
+    assert row["direction"] == "fall" and row["base"] > 0
+    assert frame.set_index("wave").loc["2023-Q1", "direction"] == "first wave"
+    assert not np.isnan(row["fitted"])  # the shift levels are drawn
+    safe = __import__("tracker.charts", fromlist=["trend_frame"]).trend_frame(demo_study, "safe")
+    assert set(safe["segment"]) == {"before wording change", "after wording change"}
+    for suffix in ("svg", "png", "json", "html"):
+        out = save_chart(change_overview(demo_study.changes(wave="2025-Q2")), tmp_path / f"o.{suffix}")
+        assert out.stat().st_size > 1000
+
+
+def test_chart_and_brief_commands(demo_study, tmp_path):
+    root = str(demo_study.root)
+    result = CliRunner().invoke(main, ["chart", root, "--metric", "staff_good", "--by", "area",
+                                       "-o", str(tmp_path / "c.svg")])
+    assert result.exit_code == 0, result.output
+    svg = (tmp_path / "c.svg").read_text()
+    assert "Southbank" in svg and "Northfield" in svg
+    result = CliRunner().invoke(main, ["brief", root, "--wave", "2025-Q2", "-o", str(tmp_path / "b.md")])
+    assert result.exit_code == 0, result.output
+    assert "Punctuality good or very good fell from" in (tmp_path / "b.md").read_text()
+    result = CliRunner().invoke(main, ["brief", root, "-o", str(tmp_path / "b.pdf")])
+    assert result.exit_code == 1 and "give a file ending in .html, .md or .xlsx" in result.output
+
+
+def test_demo_command_ends_with_the_brief(tmp_path):
+    result = CliRunner().invoke(main, ["demo", str(tmp_path / "d")])
+    assert result.exit_code == 0, result.output
+    assert f"briefing for 2026-Q1 written to {tmp_path / 'd' / 'brief.html'}" in result.output
+    assert (tmp_path / "d" / "brief.html").stat().st_size > 500_000

@@ -1,0 +1,402 @@
+"""The briefing: what moved, what did not, and what the trends say, for non-statisticians.
+
+:func:`build_brief` assembles a :class:`Brief` from the changes, trends and estimates;
+:func:`write_brief` renders it as one self-contained HTML page, Markdown or XLSX.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import html
+import io
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import TrackerError
+from .significance import ADJUST_METHODS
+
+CAUTIONS = (
+    "Significance is not importance: a significant change can be too small to matter, and a change "
+    "that matters can miss significance on a small base. Read the size and its interval.",
+    "The intervals cover sampling error only, not coverage gaps, non-response, or changes in how "
+    "questions were asked or answered.",
+    "A change in the sample's make-up can move a measure even when nothing changed within any group.",
+    "Small bases are flagged and never reported as significant; pooled or longer-run figures are "
+    "safer for thin subgroups.",
+)
+
+
+@dataclass(frozen=True)
+class Item:
+    """One line of the brief, with the mark it carries (rise, fall, flat or note)."""
+
+    text: str
+    mark: str = "note"
+    metric: str = ""
+    subgroup: str = ""
+
+
+@dataclass(frozen=True)
+class Brief:
+    title: str
+    wave: str
+    against: str
+    headline: tuple[Item, ...]
+    subgroup_moves: tuple[Item, ...]
+    steady: tuple[Item, ...]
+    trends: tuple[Item, ...]
+    sample_notes: tuple[Item, ...]
+    method: tuple[str, ...]
+    cautions: tuple[str, ...] = CAUTIONS
+    tables: dict[str, pd.DataFrame] = field(default_factory=dict)
+    charts: tuple[tuple[str, dict], ...] = ()
+
+
+# -- wording --------------------------------------------------------------------------------
+
+def fmt_value(kind: str, v: float) -> str:
+    if kind == "share":
+        return f"{v * 100:.0f}%"
+    if kind == "balance":
+        return f"{v * 100:+.0f}"
+    return f"{v:.2f}"
+
+
+def fmt_size(kind: str, d: float) -> str:
+    return f"{abs(d):.2f}" if kind == "mean" else f"{abs(d) * 100:.1f} points"
+
+
+def _num(kind: str, d: float) -> str:
+    return f"{abs(d):.2f}" if kind == "mean" else f"{abs(d) * 100:.1f}"
+
+
+def change_sentence(row, level: float) -> str:
+    """'Punctuality good or very good fell from 75% to 62%, down 13.2 points (95% interval 9.2 to 17.1); ...'"""
+    kind = row.kind
+    down = row.change < 0
+    lo, hi = (-row.change_high, -row.change_low) if down else (row.change_low, row.change_high)
+    who = row.metric_label if row.group == "total" else f"{row.metric_label}, {row.subgroup}"
+    verb, word = ("fell", "down") if down else ("rose", "up")
+    return (f"{who} {verb} from {fmt_value(kind, row.value_from)} to {fmt_value(kind, row.value_to)}, "
+            f"{word} {fmt_size(kind, row.change)} ({level:.0%} interval {_num(kind, lo)} to {_num(kind, hi)}); "
+            f"base {int(row.base_from):,} and {int(row.base_to):,}.")
+
+
+def steady_sentence(row) -> str:
+    kind = row.kind
+    if row.direction == "not tested":
+        return (f"{row.metric_label}: {fmt_value(kind, row.value_to)} (was {fmt_value(kind, row.value_from)}); "
+                f"not tested: {row.flags}.")
+    return (f"{row.metric_label}: {fmt_value(kind, row.value_to)} (was {fmt_value(kind, row.value_from)}); "
+            f"no clear change. This comparison could detect a change of about "
+            f"{fmt_size(kind, row.min_detectable_change)} (80% power), so a smaller move may have gone unseen.")
+
+
+def trend_sentence(row, level: float) -> str:
+    kind = row.kind
+    who = row.metric_label if row.group == "total" else f"{row.metric_label}, {row.subgroup}"
+    if str(row.pattern).startswith("shifted"):
+        return (f"{who} {row.pattern} at {row.shift_wave}: {fmt_value(kind, row.level_before)} "
+                f"({fmt_value(kind, row.level_before_low)} to {fmt_value(kind, row.level_before_high)}) before, "
+                f"{fmt_value(kind, row.level_after)} ({fmt_value(kind, row.level_after_low)} to "
+                f"{fmt_value(kind, row.level_after_high)}) since; the new level has held.")
+    if row.pattern in ("rising", "falling"):
+        unit = "" if kind == "mean" else " points"
+        f = 1 if kind == "mean" else 100
+        return (f"{who} is {row.pattern}: {row.slope_per_year * f:+.{2 if kind == 'mean' else 1}f}{unit} a year "
+                f"({level:.0%} interval {row.slope_low * f:+.{2 if kind == 'mean' else 1}f} to "
+                f"{row.slope_high * f:+.{2 if kind == 'mean' else 1}f}) over {row.waves} waves "
+                f"({row.first_wave} to {row.last_wave}).")
+    if row.pattern == "one-wave blip":
+        side = "below" if row.blip_size < 0 else "above"
+        return (f"{who}: {row.blip_wave} was a one-wave blip ({fmt_size(kind, row.blip_size)} {side} the waves "
+                f"either side, which agree with each other). The series did not turn; do not brief it as a change "
+                f"of direction.")
+    return f"{who}: {row.pattern}."
+
+
+# -- assembling -----------------------------------------------------------------------------
+
+def build_brief(study, wave: str | None = None, against: str = "previous", adjust: str = "bh",
+                level: float = 0.95, charts: bool = True) -> Brief:
+    """Everything the brief says, from the study's changes, trends and estimates."""
+    result = study.changes(wave=wave, against=against, adjust=adjust, level=level)
+    wave = result.wave
+    t = result.table
+    tested_sig = t[t["significant"]]
+    total_sig = tested_sig[tested_sig["group"] == "total"]
+    head = total_sig.reindex(total_sig["change"].abs().sort_values(ascending=False).index)
+    headline = tuple(Item(change_sentence(r, level), "fall" if r.change < 0 else "rise", r.metric, r.subgroup)
+                     for r in head.itertuples())
+    moved_totals = set(total_sig["metric"])
+    sub = tested_sig[(tested_sig["group"] != "total") & ~tested_sig["metric"].isin(moved_totals)]
+    sub = sub.reindex(sub["change"].abs().sort_values(ascending=False).index)
+    subgroup_moves = tuple(Item(change_sentence(r, level) + " The total did not move significantly.",
+                                "fall" if r.change < 0 else "rise", r.metric, r.subgroup) for r in sub.itertuples())
+    totals = t[(t["group"] == "total") & ~t["significant"]]
+    steady = tuple(Item(steady_sentence(r), "flat" if r.direction != "not tested" else "note", r.metric)
+                   for r in totals.itertuples())
+
+    trends = study.trends(adjust=adjust, level=level, until=wave)
+    moving = trends[~trends["pattern"].isin(["steady", "too few waves"])]
+    total_moving = moving[moving["group"] == "total"]
+    sub_moving = moving[(moving["group"] != "total") & ~moving["metric"].isin(set(total_moving["metric"]))]
+    trend_items = [Item(trend_sentence(r, level), _trend_mark(r), r.metric, r.subgroup)
+                   for r in pd.concat([total_moving, sub_moving]).itertuples()]
+    still = trends[(trends["group"] == "total") & (trends["pattern"] == "steady")]
+    if len(still):
+        trend_items.append(Item("Steady over the series: " + "; ".join(still["metric_label"]) + ".", "flat"))
+    short = trends[(trends["group"] == "total") & (trends["pattern"] == "too few waves")]
+    for r in short.itertuples():
+        trend_items.append(Item(f"{r.metric_label}: {r.note}.", "note", r.metric))
+
+    sample = _sample_notes(study, result, trends)
+    n_tests, n_sig = result.n_tests, result.n_significant
+    method = (
+        f"Compared: {wave} with {result.against}. {n_tests} tests (every metric in total and in every subgroup), "
+        f"{n_sig} significant at the {1 - level:g} level after {ADJUST_METHODS[adjust]} adjustment; only "
+        f"adjusted results are called significant.",
+        "Shares: z test on design-based standard errors (Taylor linearization, with the study's weights, strata "
+        "and clusters), with Newcombe's hybrid score interval for the difference. Means: Welch's t. Balances: "
+        "z on the multinomial variance. Intervals are " + f"{level:.0%}.",
+        "Minimum detectable change: the change each comparison would find with 80% power at the unadjusted level.",
+        "Trends: a random-effects line per series through the wave estimates (sampling error plus the "
+        "between-wave variation), per year of fieldwork time; shifts and one-wave blips are searched for with the "
+        "search accounted for, and every series' tests are adjusted together.",
+        "Reliability: cells below an effective base of 30 or with too wide an interval (NCHS presentation "
+        "standard for proportions, 2017) are flagged and not tested.",
+    ) + tuple(result.notes[1:])
+
+    tables = {
+        "Headline": head[_TABLE_COLS].reset_index(drop=True),
+        "Subgroup moves": sub[_TABLE_COLS].reset_index(drop=True),
+        "All changes": result.shown(True)[_TABLE_COLS].reset_index(drop=True),
+        "Trends": trends[[c for c in _TREND_COLS]].reset_index(drop=True),
+        "Estimates": study.estimates(waves=[wave, *result.compared_with], level=level),
+    }
+    chart_list: list[tuple[str, dict]] = []
+    if charts:
+        from .charts import change_overview, chart_spec, trend_chart
+
+        chart_list.append(("Every tested change in total", chart_spec(change_overview(result, totals_only=True))))
+        shown_sub = {(r.metric, g) for r, g in zip(sub.itertuples(), sub["group"])}
+        for metric in study.codebook.metrics:
+            if metric not in set(t["metric"]):
+                continue
+            label = study.codebook.metrics[metric].label
+            chart_list.append((f"{label}: wave by wave", chart_spec(trend_chart(study, metric, adjust=adjust,
+                                                                                level=level, until=wave))))
+            for m, g in sorted(shown_sub):
+                if m == metric:
+                    chart_list.append((f"{label} by {g}", chart_spec(trend_chart(
+                        study, metric, by=g, adjust=adjust, level=level, until=wave))))
+    return Brief(
+        title=study.codebook.title, wave=wave, against=result.against, headline=headline,
+        subgroup_moves=subgroup_moves, steady=steady, trends=tuple(trend_items), sample_notes=tuple(sample),
+        method=method, tables=tables, charts=tuple(chart_list),
+    )
+
+
+_TABLE_COLS = ["metric_label", "group", "subgroup", "wave_from", "wave_to", "value_from", "value_to", "change",
+               "change_low", "change_high", "base_from", "base_to", "effective_base_from", "effective_base_to",
+               "p_raw", "p_adjusted", "min_detectable_change", "direction", "flags"]
+_TREND_COLS = ["metric_label", "group", "subgroup", "first_wave", "last_wave", "waves", "latest_value",
+               "slope_per_year", "slope_low", "slope_high", "between_wave_sd", "q_p", "pattern",
+               "pattern_p_adjusted", "shift_wave", "level_before", "level_after", "blip_wave", "note"]
+
+
+def _trend_mark(row) -> str:
+    if row.pattern in ("rising", "shifted up"):
+        return "rise"
+    if row.pattern in ("falling", "shifted down"):
+        return "fall"
+    return "note"
+
+
+def _sample_notes(study, result, trends) -> list[Item]:
+    notes = []
+    waves = [result.wave, *result.compared_with]
+    book = study.codebook
+    for w in waves:
+        table = study.load(w)
+        weights = table[book.weight].to_numpy(float) if book.weight and book.weight in table.columns else np.ones(len(table))
+        eff = weights.sum() ** 2 / (weights**2).sum()
+        notes.append(Item(f"{w}: {len(table):,} respondents; effective base {eff:,.0f} "
+                          f"(weighting efficiency {eff / len(table):.0%}).", "note"))
+    t = result.table
+    flagged = t[t["flags"].str.contains("unreliable|no respondents", regex=True)]
+    if len(flagged):
+        ex = "; ".join(f"{r.metric_label}, {r.subgroup}" for r in flagged.head(5).itertuples())
+        notes.append(Item(f"{len(flagged)} comparisons were not tested because a base was too small or an interval "
+                          f"too wide (for example {ex}).", "note"))
+    for metric, rows in t[t["flags"].str.contains("wording break")].groupby("metric"):
+        notes.append(Item(f"{rows['metric_label'].iloc[0]}: {rows['flags'].iloc[0].split(' | ')[0]}.", "note", metric))
+    for r in trends[(trends["group"] == "total") & trends["note"].str.contains("wording break")].itertuples():
+        notes.append(Item(f"{r.metric_label}: {r.note}; its trend uses only the waves since.", "note", r.metric))
+    overlap = [n for n in result.notes if "answered both waves" in n]
+    notes.extend(Item(n + ".", "note") for n in overlap)
+    return notes
+
+
+# -- rendering ------------------------------------------------------------------------------
+
+def write_brief(brief: Brief, path: str | Path) -> Path:
+    """Write the brief as .html (one self-contained page), .md or .xlsx, atomically."""
+    from .store import write_atomic
+
+    path = Path(path)
+    if not path.parent.is_dir():
+        raise TrackerError(f"{path}: the folder {path.parent} does not exist")
+    suffix = path.suffix.lower()
+    if suffix in (".html", ".htm"):
+        data = render_html(brief).encode("utf-8")
+    elif suffix == ".md":
+        data = render_markdown(brief).encode("utf-8")
+    elif suffix == ".xlsx":
+        data = render_xlsx(brief)
+    else:
+        raise TrackerError(f"{path}: give a file ending in .html, .md or .xlsx")
+    write_atomic(path, data)
+    return path
+
+
+SECTIONS = [
+    ("headline", "What moved", "No measure moved significantly in total."),
+    ("subgroup_moves", "Moves in one subgroup only", "No subgroup moved on its own."),
+    ("steady", "Held steady", "Every measure moved."),
+    ("trends", "Trends", "No series has enough waves for a trend."),
+    ("sample_notes", "Sample notes", ""),
+]
+WORD = {"rise": "Up: ", "fall": "Down: ", "flat": "", "note": ""}
+
+
+def render_markdown(brief: Brief) -> str:
+    out = [f"# {brief.title}", "", f"Briefing for wave {brief.wave}, compared with {brief.against}.", ""]
+    for attr, heading, empty in SECTIONS:
+        items = getattr(brief, attr)
+        out += [f"## {heading}", ""]
+        out += [f"- {WORD[i.mark]}{i.text}" for i in items] or ([f"- {empty}"] if empty else [])
+        out.append("")
+    out += ["## Method", ""] + [f"- {m}" for m in brief.method] + [""]
+    out += ["## Cautions", ""] + [f"- {c}" for c in brief.cautions] + [""]
+    out.append(f"Made by tracker on {dt.date.today().isoformat()}. Charts are in the HTML version of this brief.")
+    return "\n".join(out) + "\n"
+
+
+def render_html(brief: Brief) -> str:
+    from .page import chart_div, page
+
+    e = html.escape
+    parts = [f"<h1>{e(brief.title)}</h1>",
+             f'<p class="sub">Briefing for wave <b>{e(brief.wave)}</b>, compared with {e(brief.against)}.</p>']
+    charts = list(brief.charts)
+    chart_at = {"headline": [0]} if charts else {}
+    for attr, heading, empty in SECTIONS:
+        items = getattr(brief, attr)
+        parts.append(f"<h2>{e(heading)}</h2>")
+        if items:
+            parts.append("<ul>" + "".join(
+                f'<li class="{i.mark}"><span class="muted">{e(WORD[i.mark])}</span>{e(i.text)}</li>' for i in items)
+                + "</ul>")
+        elif empty:
+            parts.append(f'<p class="muted">{e(empty)}</p>')
+        for k in chart_at.get(attr, []):
+            parts.append(f"<figure>{chart_div(k)}<figcaption class=\"muted\">{e(charts[k][0])}</figcaption></figure>")
+    if len(charts) > 1:
+        parts.append("<h2>Every measure, wave by wave</h2>")
+        for k in range(1, len(charts)):
+            parts.append(f"<figure>{chart_div(k)}<figcaption class=\"muted\">{e(charts[k][0])}</figcaption></figure>")
+    parts.append("<h2>Method</h2><ul>" + "".join(f"<li>{e(m)}</li>" for m in brief.method) + "</ul>")
+    parts.append('<h2>Cautions</h2><div class="caution"><ul>' + "".join(f"<li>{e(c)}</li>" for c in brief.cautions)
+                 + "</ul></div>")
+    parts.append(f'<p class="muted">Made by tracker on {dt.date.today().isoformat()}.</p>')
+    return page(f"{brief.title}: {brief.wave}", "\n".join(parts), [spec for _, spec in charts])
+
+
+def _safe_cell(value):
+    """Text that a spreadsheet could run as a formula is stored as plain text with a leading quote."""
+    if isinstance(value, str) and value[:1] in ("=", "+", "-", "@", "\t", "\r"):
+        return "'" + value
+    return value
+
+
+def render_xlsx(brief: Brief) -> bytes:
+    """One sheet per table, plus the brief's text; numbers keep proper formats."""
+    from openpyxl import Workbook
+    from openpyxl.styles import Font
+    from openpyxl.utils import get_column_letter
+
+    wb = Workbook()
+    ws = wb.active
+    ws.title = "Brief"
+    ws.append([_safe_cell(brief.title)])
+    ws["A1"].font = Font(bold=True, size=14)
+    ws.append([_safe_cell(f"Wave {brief.wave}, compared with {brief.against}")])
+    for attr, heading, empty in SECTIONS:
+        ws.append([])
+        ws.append([heading])
+        ws.cell(ws.max_row, 1).font = Font(bold=True)
+        for i in getattr(brief, attr) or [Item(empty)]:
+            ws.append([_safe_cell(WORD[i.mark] + i.text)])
+    for heading, lines in (("Method", brief.method), ("Cautions", brief.cautions)):
+        ws.append([])
+        ws.append([heading])
+        ws.cell(ws.max_row, 1).font = Font(bold=True)
+        for line in lines:
+            ws.append([_safe_cell(line)])
+    ws.column_dimensions["A"].width = 140
+    for name, table in brief.tables.items():
+        sheet = wb.create_sheet(name[:31])
+        sheet.append([str(c) for c in table.columns])
+        for cell in sheet[1]:
+            cell.font = Font(bold=True)
+        for row in table.itertuples(index=False):
+            sheet.append([_xlsx_value(v) for v in row])
+        for j, col in enumerate(table.columns, start=1):
+            fmt = _number_format(col)
+            letter = get_column_letter(j)
+            sheet.column_dimensions[letter].width = max(10, min(40, len(str(col)) + 2))
+            if fmt:
+                for cell in sheet[letter][1:]:
+                    if isinstance(cell.value, (int, float)):
+                        cell.number_format = fmt
+        sheet.freeze_panes = "A2"
+    for sheet in wb.worksheets:
+        for row in sheet.iter_rows():
+            for cell in row:
+                if isinstance(cell.value, str):
+                    cell.data_type = "s"  # never a formula, whatever the text
+    buf = io.BytesIO()
+    wb.save(buf)
+    return buf.getvalue()
+
+
+def _xlsx_value(v):
+    if v is None or (isinstance(v, float) and not np.isfinite(v)):
+        return None
+    if isinstance(v, (np.bool_, bool)):
+        return bool(v)
+    if isinstance(v, np.integer):
+        return int(v)
+    if isinstance(v, np.floating):
+        return float(v) if np.isfinite(v) else None
+    if isinstance(v, str):
+        return _safe_cell(v)
+    if pd.isna(v):
+        return None
+    return v
+
+
+def _number_format(col: str) -> str | None:
+    if col.startswith(("p_", "pattern_p", "q_p", "slope_p")):
+        return "0.0000"
+    if "base" in col or col in ("waves", "df"):
+        return "#,##0"
+    if col in ("value", "value_from", "value_to", "change", "change_low", "change_high", "ci_low", "ci_high",
+               "min_detectable_change", "latest_value", "slope_per_year", "slope_low", "slope_high",
+               "between_wave_sd", "level_before", "level_after", "se"):
+        return "0.000"
+    return None
