@@ -121,23 +121,29 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
                                    interpolate="step-after").encode(
         x=x, y="fitted_shown:Q", detail="segment:N").transform_filter(
         "isValid(datum.fitted_shown) && indexof(datum.pattern, 'shifted') == 0")
+    legend = alt.Legend(title="change from the wave before", orient="bottom")
     points = alt.Chart().mark_point(filled=True, size=70).encode(
         x=x, y=y,
-        color=alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR),
-                        legend=alt.Legend(title="change from the wave before", orient="bottom")),
-        shape=alt.Shape("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=None),
+        color=alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=legend),
+        shape=alt.Shape("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=legend),
         opacity=alt.condition("datum.direction == 'rise' || datum.direction == 'fall'", alt.value(1.0),
                               alt.value(0.55)),
         tooltip=tooltip)
     bases = alt.Chart().mark_text(fontSize=8, color="#555555", angle=0, baseline="bottom").encode(
         x=x, y=alt.value(height - 2), text=alt.Text("base:Q", format=","))
-    layers = [band, line, fitted, levels, points, bases]
+    layers = [band, line]
+    has_fit = data["fitted"].notna()
+    if (has_fit & data["pattern"].isin(["rising", "falling"])).any():
+        layers.append(fitted)
+    if (has_fit & data["pattern"].astype(str).str.startswith("shifted")).any():
+        layers.append(levels)  # only layers with data: an empty layer makes the renderer warn
+    layers += [points, bases]
     if a["break_wave"]:
         rule = alt.Chart().mark_rule(color=OKABE_ITO["reddish purple"], strokeDash=[2, 2]).encode(x=x).transform_filter(
             alt.datum.wave == a["break_wave"])
         note = alt.Chart().mark_text(align="left", dx=3, dy=-4, fontSize=9, color=OKABE_ITO["reddish purple"]).encode(
             x=x, y=alt.value(10), text=alt.value("wording changed")).transform_filter(
-            alt.datum.wave == a["break_wave"]).transform_aggregate(date="min(date)")
+            alt.datum.wave == a["break_wave"])
         layers += [rule, note]
     chart = alt.layer(*layers, data=data).properties(width=width, height=height)
     subtitle = [
@@ -179,14 +185,13 @@ def change_overview(result, totals_only: bool = False, width: int = 380) -> alt.
         mde = base.mark_bar(color="#e8e8e8", height=10).encode(
             x=alt.X("mde_low:Q", title=f"change, {unit}"), x2="min_detectable_change_shown:Q", y=y)
         zero = alt.Chart(pd.DataFrame({"zero": [0]})).mark_rule(color=OKABE_ITO["black"]).encode(x="zero:Q")
+        legend = alt.Legend(title="change", orient="bottom")
+        colour = alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=legend)
         bars = base.mark_rule(strokeWidth=1.5).encode(
-            x="change_low_shown:Q", x2="change_high_shown:Q", y=y,
-            color=alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=None))
+            x="change_low_shown:Q", x2="change_high_shown:Q", y=y, color=colour)
         dots = base.mark_point(filled=True, size=70).encode(
-            x="change_shown:Q", y=y,
-            color=alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR),
-                            legend=alt.Legend(title="change", orient="bottom")),
-            shape=alt.Shape("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=None),
+            x="change_shown:Q", y=y, color=colour,
+            shape=alt.Shape("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=legend),
             opacity=alt.condition("datum.significant", alt.value(1.0), alt.value(0.5)),
             tooltip=[alt.Tooltip("row:N", title="measure"), alt.Tooltip("direction:N", title="verdict"),
                      alt.Tooltip("change_shown:Q", title="change", format="+.1f"),

@@ -17,6 +17,7 @@ h1 { font-size: 1.5rem; margin-bottom: .2rem; } h2 { font-size: 1.2rem; margin-t
      border-bottom: 2px solid #0072B2; padding-bottom: .2rem; }
 .sub { color: #555; margin-top: 0; } .muted { color: #666; }
 ul { padding-left: 1.2rem; } li { margin: .35rem 0; }
+li.rise, li.fall, li.flat, li.note { list-style: none; margin-left: -1rem; }
 .rise::before { content: "\\25B2  "; color: #0072B2; } .fall::before { content: "\\25BC  "; color: #D55E00; }
 .flat::before { content: "\\25CF  "; color: #999; } .note::before { content: "\\2139  "; color: #CC79A7; }
 table { border-collapse: collapse; font-size: .85rem; margin: .5rem 0; }
