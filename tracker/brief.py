@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import TrackerError
+from .estimates import weights_of
 from .significance import ADJUST_METHODS
 
 CAUTIONS = (
@@ -129,7 +130,9 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     tested_sig = t[t["significant"]]
     total_sig = tested_sig[tested_sig["group"] == "total"]
     head = total_sig.reindex(total_sig["change"].abs().sort_values(ascending=False).index)
-    headline = tuple(Item(change_sentence(r, level), "fall" if r.change < 0 else "rise", r.metric, r.subgroup)
+    mixes = mix_notes(study, result, list(head["metric"]))
+    headline = tuple(Item(change_sentence(r, level) + (" " + mixes[r.metric] if r.metric in mixes else ""),
+                          "fall" if r.change < 0 else "rise", r.metric, r.subgroup)
                      for r in head.itertuples())
     moved_totals = set(total_sig["metric"])
     sub = tested_sig[(tested_sig["group"] != "total") & ~tested_sig["metric"].isin(moved_totals)]
@@ -222,7 +225,7 @@ def _sample_notes(study, result, trends) -> list[Item]:
     book = study.codebook
     for w in waves:
         table = study.load(w)
-        weights = table[book.weight].to_numpy(float) if book.weight and book.weight in table.columns else np.ones(len(table))
+        weights = weights_of(book, table)
         eff = weights.sum() ** 2 / (weights**2).sum()
         notes.append(Item(f"{w}: {len(table):,} respondents; effective base {eff:,.0f} "
                           f"(weighting efficiency {eff / len(table):.0%}).", "note"))
@@ -238,7 +241,44 @@ def _sample_notes(study, result, trends) -> list[Item]:
         notes.append(Item(f"{r.metric_label}: {r.note}; its trend uses only the waves since.", "note", r.metric))
     overlap = [n for n in result.notes if "answered both waves" in n]
     notes.extend(Item(n + ".", "note") for n in overlap)
+    if book.profile and len(result.compared_with) == 1:
+        comp = study.composition(wave=result.wave, against=result.compared_with[0], adjust=result.adjust,
+                                 level=result.level)
+        for r in comp.tests.itertuples():
+            if r.shifted:
+                notes.append(Item(f"The sample's make-up shifted on {r.group}: {r.largest_move} of the weighted sample "
+                                  f"(Rao-Scott test, adjusted p {r.p_adjusted:.4f}). Measures that differ between "
+                                  f"these groups can move for that reason alone.", "note"))
+        if not comp.tests["shifted"].any():
+            notes.append(Item(f"No shift in the weighted make-up on {', '.join(comp.tests['group'])}.", "flat"))
     return notes
+
+
+def mix_notes(study, result, headline_metrics: list[str]) -> dict[str, str]:
+    """For headline metrics: a note when most of the change is due to the mix on a shifted profile group."""
+    book = study.codebook
+    if not book.profile or len(result.compared_with) != 1 or not headline_metrics:
+        return {}
+    comp = study.composition(wave=result.wave, against=result.compared_with[0], adjust=result.adjust,
+                             level=result.level)
+    out: dict[str, str] = {}
+    for group in comp.tests.loc[comp.tests["shifted"], "group"]:
+        mixed = study.changes(wave=result.wave, against=result.compared_with[0], by=[], metrics=headline_metrics,
+                              adjust=result.adjust, level=result.level, mix=group).mix
+        for r in mixed.itertuples():
+            if r.metric in out or not np.isfinite(r.mix_share_of_change) or r.mix_share_of_change <= 0.5:
+                continue
+            kind = r.kind
+            verdict = ("still significant" if r.standardised_significant else "not significant")
+            out[r.metric] = (f"Most of this change ({r.mix_share_of_change:.0%}) comes from the shift in the sample's "
+                             f"mix on {group}; within its groups the change is {fmt_size(kind, r.within_part)}, and "
+                             f"at the earlier wave's mix the change is {_signed(kind, r.standardised_change)} "
+                             f"({verdict}).")
+    return out
+
+
+def _signed(kind: str, d: float) -> str:
+    return f"{d:+.2f}" if kind == "mean" else f"{d * 100:+.1f} points"
 
 
 # -- rendering ------------------------------------------------------------------------------

@@ -97,8 +97,16 @@ def exclusions(codebook: Codebook, table: pd.DataFrame, metric: Metric) -> dict[
     return {k: v for k, v in out.items() if v}
 
 
-def group_matrix(codebook: Codebook, table: pd.DataFrame, groups: list[str]) -> tuple[np.ndarray, Levels]:
-    """Return (D, levels): subgroup membership, with the whole sample as the first column."""
+NO_LABEL = "(no label)"
+
+
+def group_matrix(codebook: Codebook, table: pd.DataFrame, groups: list[str],
+                 residual: bool = False) -> tuple[np.ndarray, Levels]:
+    """Return (D, levels): subgroup membership, with the whole sample as the first column.
+
+    With ``residual`` each split also gets a level "(no label)" for respondents in none of
+    its levels, so that the levels of a split add up to the whole sample.
+    """
     n = len(table)
     cols = [np.ones(n, bool)]
     gnames, lnames = ["total"], [TOTAL]
@@ -113,6 +121,10 @@ def group_matrix(codebook: Codebook, table: pd.DataFrame, groups: list[str]) -> 
                 cols.append(np.isin(x, codes))
             gnames.append(gname)
             lnames.append(label)
+        if residual:
+            cols.append(~np.column_stack(cols[-len(g.levels):]).any(axis=1))
+            gnames.append(gname)
+            lnames.append(NO_LABEL)
     return np.column_stack(cols), Levels(tuple(gnames), tuple(lnames))
 
 

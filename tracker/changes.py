@@ -38,6 +38,7 @@ class ChangeResult:
     level: float
     notes: tuple[str, ...] = field(default_factory=tuple)
     compared_with: tuple[str, ...] = ()
+    mix: pd.DataFrame | None = None
 
     @property
     def n_tests(self) -> int:

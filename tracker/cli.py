@@ -9,6 +9,7 @@ from pathlib import Path
 import click
 
 from .errors import TrackerError
+from .significance import ADJUST_METHODS as ADJUST_NAMES
 from .study import Study
 
 
@@ -149,15 +150,23 @@ def estimates_cmd(study, metrics, by, waves, level, fmt):
               help="Multiple-comparison control across every test of the call.")
 @click.option("--level", default=0.95, show_default=True, help="Confidence level (significance at 1 - level).")
 @click.option("--all", "show_all", is_flag=True, help="List every comparison, not only significant changes.")
+@click.option("--mix", help="Split each total change into the part due to the sample's mix on this group and the "
+                            "part within its levels, with the change standardised to the earlier mix.")
 @_fmt_option
 @user_errors
-def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fmt):
+def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, mix, fmt):
     """What changed in a wave, tested with control of the many comparisons."""
     from .changes import COLUMNS
     from .formatting import render
 
     result = Study(study).changes(wave=wave, against=against, by=list(by) if by else None,
-                                  metrics=list(metrics) or None, adjust=adjust, level=level)
+                                  metrics=list(metrics) or None, adjust=adjust, level=level, mix=mix)
+    if mix:
+        click.echo(render(result.mix, fmt), nl=False)
+        if fmt in ("table", "md"):
+            click.echo(f"Kitagawa split of each total change by the mix on {mix}; the standardised change re-weights "
+                       f"{result.wave} to the mix of {result.against}, tested with {ADJUST_NAMES[adjust]} adjustment.")
+        return
     shown = result.shown(show_all)[COLUMNS]
     click.echo(render(shown, fmt), nl=False)
     if fmt in ("table", "md"):
@@ -249,3 +258,24 @@ def brief_cmd(study, wave, against, adjust, level, output):
     brief = build_brief(Study(study), wave=wave, against=against, adjust=adjust, level=level,
                         charts=Path(output).suffix.lower() in (".html", ".htm"))
     click.echo(f"wrote {write_brief(brief, output)}")
+
+
+@main.command("composition")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--wave", help="The wave whose make-up is checked (default: the latest).")
+@click.option("--against", default="previous", show_default=True, help="previous, year-ago or a wave label.")
+@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True)
+@click.option("--level", default=0.95, show_default=True)
+@_fmt_option
+@user_errors
+def composition_cmd(study, wave, against, adjust, level, fmt):
+    """Compare the sample's make-up on the profile groups with another wave."""
+    from .formatting import render
+
+    result = Study(study).composition(wave=wave, against=against, adjust=adjust, level=level)
+    click.echo(render(result.shares, fmt), nl=False)
+    if fmt in ("table", "md"):
+        for line in result.lines():
+            click.echo(line)
+    else:
+        click.echo(render(result.tests, fmt), nl=False)

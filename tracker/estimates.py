@@ -69,8 +69,22 @@ def _codes(values: pd.Series) -> np.ndarray:
     return pd.factorize(values.astype(str))[0]
 
 
+def weights_of(codebook: Codebook, table: pd.DataFrame) -> np.ndarray:
+    """The respondents' weights (1 each when the study has none)."""
+    if codebook.weight and codebook.weight in table.columns:
+        return table[codebook.weight].to_numpy(float)
+    return np.ones(len(table))
+
+
+def design_of(codebook: Codebook, table: pd.DataFrame) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """(stratum codes, PSU codes) of the respondents, None where the study declares none."""
+    strata = _codes(table[codebook.strata]) if codebook.strata and codebook.strata in table.columns else None
+    psu = _codes(table[codebook.clusters]) if codebook.clusters and codebook.clusters in table.columns else None
+    return strata, psu
+
+
 def cell_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], groups: list[str],
-               sample: np.ndarray | None = None) -> pd.DataFrame:
+               sample: np.ndarray | None = None, residual: bool = False) -> pd.DataFrame:
     """Sufficient statistics of every cell of one wave (or of pooled waves).
 
     Returns one row per subgroup level x metric with: base n, sum of weights, sum of
@@ -79,12 +93,11 @@ def cell_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], g
     independent samples pooled in one table (one per wave): they act as extra strata.
     """
     Y, E = metric_matrix(codebook, table, metrics)
-    D, levels = group_matrix(codebook, table, groups)
-    w = table[codebook.weight].to_numpy(float) if codebook.weight and codebook.weight in table.columns else np.ones(len(table))
-    strata = _codes(table[codebook.strata]) if codebook.strata and codebook.strata in table.columns else None
+    D, levels = group_matrix(codebook, table, groups, residual)
+    w = weights_of(codebook, table)
+    strata, psu = design_of(codebook, table)
     if sample is not None:
         strata = _codes(pd.Series(sample).astype(str) + "|" + ("" if strata is None else pd.Series(strata).astype(str)))
-    psu = _codes(table[codebook.clusters]) if codebook.clusters and codebook.clusters in table.columns else None
     Df = D.astype(float)
     we = E * w[:, None]
     wey = we * Y
@@ -281,7 +294,7 @@ def overlap_covariance(codebook: Codebook, a: pd.DataFrame, b: pd.DataFrame, met
     def lin(table, idx, est):
         Y, E = metric_matrix(codebook, table, metrics)
         D, _ = group_matrix(codebook, table, groups)
-        w = table[codebook.weight].to_numpy(float) if codebook.weight and codebook.weight in table.columns else np.ones(len(table))
+        w = weights_of(codebook, table)
         value = est["value"].to_numpy().reshape(L, -1)
         sw = est["weighted_base"].to_numpy().reshape(L, -1)
         we = (E * w[:, None])[idx]

@@ -12,6 +12,7 @@ import pandas as pd
 from . import store
 from .cells import exclusions, metric_matrix
 from .codebook import LABEL_RE, Codebook, load_codebook
+from .estimates import weights_of
 from .errors import TrackerError
 from .intake import Problem, check_wave, read_wave_file, wave_in_span
 
@@ -53,6 +54,7 @@ class AddReport:
     exclusions: dict[str, dict[str, int]] = field(default_factory=dict)
     replaced: bool = False
     weighting: dict = field(default_factory=dict)
+    make_up: tuple[str, ...] = ()
 
     def lines(self) -> list[str]:
         out = [
@@ -71,6 +73,7 @@ class AddReport:
                 parts = ", ".join(f"{v:,} {k}" for k, v in reasons.items())
                 out.append(f"  left out of {metric}: {parts}")
         out.extend(f"  {w}" for w in self.warnings)
+        out.extend(f"  {line}" for line in self.make_up)
         return out
 
 
@@ -201,7 +204,7 @@ class Study:
             table, result = rake_table(book, table, cap=cap)
             weighting = result.ledger_entry()
             extra_lines = result.lines()
-        weights = _weights(book, table)
+        weights = weights_of(book, table)
         sw, sw2 = float(weights.sum()), float((weights**2).sum())
         neff = sw * sw / sw2
         metrics = list(book.metrics.values())
@@ -210,6 +213,14 @@ class Study:
         absent = tuple(m.name for j, m in enumerate(metrics) if not E[:, j].any())
         missing_vars = tuple(v for v in book.variables if not set(book.column_for(v)) <= set(table.columns))
         excl = {m.name: exclusions(book, table, m) for m in metrics if m.name in present}
+        earlier = [w for w in self.wave_entries if w["date"] < iso and w["label"] != wave]
+        make_up: tuple[str, ...] = ()
+        if earlier and book.profile:
+            from .composition import compare_composition
+
+            prev = earlier[-1]["label"]
+            comp = compare_composition(book, self.load(prev), table, prev, wave)
+            make_up = (f"sample make-up against {prev}:", *(f"  {line}" for line in comp.lines()))
 
         # Store: new Parquet under a fresh name, then the ledger rename commits it.
         store.sweep_incoming(self.root)
@@ -237,7 +248,7 @@ class Study:
             label=wave, date=iso, rows=len(table), weighted_base=sw, effective_base=neff,
             efficiency=neff / len(table), metrics_present=present, metrics_absent=absent,
             variables_missing=missing_vars, warnings=warnings, exclusions=excl,
-            replaced=bool(old), weighting=weighting,
+            replaced=bool(old), weighting=weighting, make_up=make_up,
         )
 
 
@@ -317,8 +328,12 @@ class Study:
         return out
 
     def changes(self, wave: str | None = None, against: str = "previous", by=None, metrics=None,
-                adjust: str = "bh", level: float = 0.95):
-        """Test what changed in ``wave`` (default: the latest) against another wave or pooled waves."""
+                adjust: str = "bh", level: float = 0.95, mix: str | None = None):
+        """Test what changed in ``wave`` (default: the latest) against another wave or pooled waves.
+
+        With ``mix=GROUP``, each total change is also split into the part due to the sample's
+        mix on that group and the part within its levels, with the change standardised to
+        the earlier wave's mix and its test (``result.mix``; see docs/methods.md)."""
         from .changes import ChangeResult, compare, resolve_against
         from .estimates import overlap_covariance
 
@@ -339,7 +354,43 @@ class Study:
                 cov = c
                 notes.append(f"{matched:,} respondents answered both waves: their covariance is taken into account")
         table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level)
-        return ChangeResult(table, wave, note.split(": ", 1)[-1], adjust, level, tuple(notes), tuple(others))
+        mix_rows = None
+        if mix is not None:
+            mix_rows = self._mix(ms, others, wave, mix, adjust, level)
+            table = table.merge(mix_rows.drop(columns=["metric_label", "kind", "change"]).assign(group="total"),
+                                on=["metric", "group"], how="left")
+        return ChangeResult(table, wave, note.split(": ", 1)[-1], adjust, level, tuple(notes), tuple(others), mix_rows)
+
+    def _mix(self, ms, others, wave, var, adjust, level) -> pd.DataFrame:
+        from .composition import mix_table
+        from .significance import adjust_pvalues
+
+        if var not in self.codebook.groups:
+            raise TrackerError(f"--mix {var}: not a group of this study ({', '.join(self.codebook.groups) or 'none'})")
+        before = pd.concat([self.load(w) for w in others], ignore_index=True)
+        out = mix_table(self.codebook, before, self.load(wave), ms, var, level)
+        out["standardised_p_adjusted"] = adjust_pvalues(out["standardised_p"].to_numpy(float), adjust)
+        out["standardised_significant"] = out["standardised_p_adjusted"] <= 1 - level
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out["mix_share_of_change"] = out["mix_part"] / out["change"]
+        return out
+
+    def composition(self, wave: str | None = None, against: str = "previous", groups=None,
+                    adjust: str = "bh", level: float = 0.95):
+        """Compare the sample's make-up on the profile groups with another wave."""
+        from .changes import resolve_against
+        from .composition import compare_composition
+
+        labels = self._pick_waves()
+        wave = wave or labels[-1]
+        if against.startswith("pooled:"):
+            raise TrackerError("composition compares two single waves; give previous, year-ago or a wave label")
+        others, _ = resolve_against(labels, self.dates(), wave, against)
+        gs = list(self.codebook.profile) if groups is None else self._pick_groups(groups)
+        if not gs:
+            raise TrackerError("codebook: profile: no profile groups to compare (add 'profile: [...]' to the codebook)")
+        return compare_composition(self.codebook, self.load(others[0]), self.load(wave), others[0], wave, gs,
+                                   adjust, level)
 
     # -- trends ---------------------------------------------------------------------------
     def _window(self, last: int | None, since: str | None, until: str | None = None) -> list[str]:
@@ -427,10 +478,4 @@ class Study:
         out["direction"] = np.where(~tested, "not tested", np.where(
             out["significant"] & (d > 0), "rise", np.where(out["significant"] & (d < 0), "fall", "no clear change")))
         return out
-
-
-def _weights(book: Codebook, table: pd.DataFrame) -> np.ndarray:
-    if book.weight and book.weight in table.columns:
-        return table[book.weight].to_numpy(dtype=float)
-    return np.ones(len(table))
 
