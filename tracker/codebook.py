@@ -323,13 +323,18 @@ def _parse_variable(name: str, node: Any) -> Variable:
     )
 
 
-def _parse_group(name: str, node: Any, variables: dict[str, Variable]) -> Group:
-    path = f"groups.{name}"
-    node = _mapping(node, path)
+def _variable_of(node: dict, path: str, variables: dict[str, Variable]) -> Variable:
     vname = node.get("variable")
     if vname not in variables:
         raise _err(f"{path}.variable", f"{vname!r} is not a variable")
-    var = variables[vname]
+    return variables[vname]
+
+
+def _parse_group(name: str, node: Any, variables: dict[str, Variable]) -> Group:
+    path = f"groups.{name}"
+    node = _mapping(node, path)
+    var = _variable_of(node, path, variables)
+    vname = var.name
     if "bands" in node and "merge" in node:
         raise _err(path, "give bands or merge, not both")
     if "bands" in node:
@@ -391,10 +396,8 @@ def _codes_of(var: Variable, node: Any, path: str) -> tuple:
 def _parse_metric(name: str, node: Any, variables: dict[str, Variable]) -> Metric:
     path = f"metrics.{name}"
     node = _mapping(node, path)
-    vname = node.get("variable")
-    if vname not in variables:
-        raise _err(f"{path}.variable", f"{vname!r} is not a variable")
-    var = variables[vname]
+    var = _variable_of(node, path, variables)
+    vname = var.name
     kinds = [k for k in ("share", "mean", "balance") if k in node]
     if len(kinds) != 1:
         raise _err(path, "give exactly one of share, mean, balance")

@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import os
 import tempfile
+from contextlib import contextmanager
 from pathlib import Path
 
 import pandas as pd
@@ -28,28 +29,15 @@ def _umask_mode() -> int:
     return 0o666 & ~mask
 
 
-def write_atomic(path: Path, data: bytes) -> None:
-    """Write bytes to ``path`` via a temporary file in the same folder, fsync, then rename."""
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".incoming-", suffix=".tmp")
-    os.chmod(tmp, _umask_mode())  # mkstemp makes 0600; a finished file gets the usual mode
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    _fsync_dir(path.parent)
-
-
-def write_parquet_atomic(path: Path, table: pd.DataFrame) -> None:
+@contextmanager
+def _incoming(path: Path):
+    """A temporary file in ``path``'s folder, renamed over ``path`` when the block ends
+    without error and removed otherwise (an interrupt included)."""
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".incoming-", suffix=".tmp")
     os.close(fd)
-    os.chmod(tmp, _umask_mode())
+    os.chmod(tmp, _umask_mode())  # mkstemp makes 0600; a finished file gets the usual mode
     try:
-        table.to_parquet(tmp, index=False)
+        yield tmp
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, path)
@@ -57,6 +45,17 @@ def write_parquet_atomic(path: Path, table: pd.DataFrame) -> None:
         Path(tmp).unlink(missing_ok=True)
         raise
     _fsync_dir(path.parent)
+
+
+def write_atomic(path: Path, data: bytes) -> None:
+    """Write bytes to ``path`` via a temporary file in the same folder, fsync, then rename."""
+    with _incoming(path) as tmp:
+        Path(tmp).write_bytes(data)
+
+
+def write_parquet_atomic(path: Path, table: pd.DataFrame) -> None:
+    with _incoming(path) as tmp:
+        table.to_parquet(tmp, index=False)
 
 
 def _fsync_dir(folder: Path) -> None:

@@ -313,15 +313,19 @@ class Study:
         out = out[out["base"] > 0].reset_index(drop=True)
         return out if detail else out[COLUMNS]
 
+    def _breaks(self, metric):
+        """(variable, wave) for each wording break of the metric's variable and base variable."""
+        for vname in filter(None, (metric.variable, metric.base_variable)):
+            b = self.codebook.variables[vname].break_before
+            if b is not None:
+                yield vname, b
+
     def break_reasons(self, metrics: list, wave_from: list[str], wave_to: str) -> dict[str, str]:
         """Metrics whose series is split by a wording break between the waves compared."""
         order = self.dates()
         out = {}
         for m in metrics:
-            for vname in filter(None, (m.variable, m.base_variable)):
-                b = self.codebook.variables[vname].break_before
-                if b is None:
-                    continue
+            for vname, b in self._breaks(m):
                 after = [wave_in_span(w, b, None, order) for w in [*wave_from, wave_to]]
                 if len(set(after)) > 1:
                     out[m.name] = f"not compared: {vname} changed at {b} (wording break)"
@@ -413,10 +417,7 @@ class Study:
         order = self.dates()
         out = {}
         for m in metrics:
-            for vname in filter(None, (m.variable, m.base_variable)):
-                b = self.codebook.variables[vname].break_before
-                if b is None:
-                    continue
+            for _, b in self._breaks(m):
                 after = [w for w in labels if wave_in_span(w, b, None, order)]
                 if after and after[0] != labels[0]:
                     if m.name not in out or labels.index(after[0]) > labels.index(out[m.name]):

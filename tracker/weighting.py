@@ -92,6 +92,11 @@ def rake_table(book: Codebook, table: pd.DataFrame, cap: tuple[float, float] | N
         raise TrackerError("codebook: weight: raking needs a weight column name to store the weights under")
     if cap is None and book.rake.get("cap"):
         cap = parse_cap(str(book.rake["cap"]))
+    try:
+        tol = float(book.rake.get("tolerance", tol))
+        max_iter = int(book.rake.get("max_rounds", max_iter))
+    except (TypeError, ValueError):
+        raise TrackerError("codebook: rake: tolerance must be a number and max_rounds a whole number") from None
     labels, targets = [], []
     for gname, tgt in book.targets.items():
         lab = group_labels(book, table, gname)
