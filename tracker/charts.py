@@ -51,7 +51,8 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
     labels = study.labels
     if until is not None:
         labels = labels[:labels.index(until) + 1]
-    full = study.estimates(metrics=[metric], by=groups, waves=labels, level=level)
+    full = study.estimates(by=groups, waves=labels, level=level)  # all metrics: cached across charts
+    full = full[full["metric"] == metric].reset_index(drop=True)
     est = full[full["group"] == by].reset_index(drop=True) if by else full
     steps = study.wave_steps(metrics=[metric], by=groups, waves=labels, adjust=adjust, level=level)
     m = study.codebook.metrics[metric]

@@ -464,14 +464,19 @@ class Study:
         from .significance import adjust_pvalues
 
         ms, gs, labels = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
+        every = self._pick_metrics()  # computed once for all metrics, then narrowed: charts reuse it
         parts = []
         for before, after in zip(labels, labels[1:]):
-            now = self._wave_rows(after, ms, gs, level)
-            then = self._wave_rows(before, ms, gs, level)
-            parts.append(compare(now, then, self.break_reasons(ms, [before], after), None, "none", level))
+            key = ("step", before, after, tuple(gs), level)
+            if key not in self._cache:
+                now = self._wave_rows(after, every, gs, level)
+                then = self._wave_rows(before, every, gs, level)
+                self._cache[key] = compare(now, then, self.break_reasons(every, [before], after), None, "none", level)
+            parts.append(self._cache[key])
         if not parts:
             return pd.DataFrame()
         out = pd.concat(parts, ignore_index=True)
+        out = out[out["metric"].isin([m.name for m in ms])].reset_index(drop=True)
         out["p_adjusted"] = adjust_pvalues(out["p_raw"].to_numpy(), adjust)
         tested = out["p_adjusted"].notna()
         out["significant"] = tested & (out["p_adjusted"] <= 1 - level)
