@@ -22,6 +22,10 @@ def user_errors(fn):
         except TrackerError as exc:
             click.echo(f"error: {exc}", err=True)
             sys.exit(1)
+        except KeyboardInterrupt:
+            # stores commit with one rename: a wave is either wholly added or not at all
+            click.echo("interrupted: the study holds either all of the change or none of it", err=True)
+            sys.exit(130)
     return wrapper
 
 

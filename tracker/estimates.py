@@ -180,7 +180,8 @@ def wilson_interval(p, n, level: float = 0.95):
         denom = 1 + z * z / n
         centre = (p + z * z / (2 * n)) / denom
         half = z / denom * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n))
-    return centre - half, centre + half
+    # at p = 0 or 1 the limit is exactly 0 or 1; rounding must not put it past the estimate
+    return np.where(p <= 0, 0.0, np.clip(centre - half, 0, 1)), np.where(p >= 1, 1.0, np.clip(centre + half, 0, 1))
 
 
 def nchs_flags(p, width, design_base, df):

@@ -1,0 +1,55 @@
+"""Property checks with hypothesis: the fast paths agree with the plain definitions and with
+reference libraries on arbitrary inputs (statsmodels multipletests; the generic Taylor
+variance of tracker.estimates, itself checked against samplics)."""
+
+from __future__ import annotations
+
+import numpy as np
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
+
+from tracker.estimates import _unclustered_variance, taylor_variance, wilson_interval
+from tracker.significance import adjust_pvalues
+
+pvalues = arrays(float, st.integers(1, 60), elements=st.floats(0, 1, allow_nan=False))
+
+
+@settings(max_examples=60, deadline=None)
+@given(pvalues, st.sampled_from([("bh", "fdr_bh"), ("holm", "holm"), ("by", "fdr_by")]))
+def test_adjusted_p_values_equal_statsmodels(p, methods):
+    from statsmodels.stats.multitest import multipletests
+
+    ours, ref = methods
+    assert np.allclose(adjust_pvalues(p, ours), multipletests(p, method=ref)[1], atol=1e-12)
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(5, 80), st.integers(1, 4), st.integers(0, 2**31 - 1))
+def test_fast_unclustered_variance_equals_the_generic_estimator(n, n_strata, seed):
+    rng = np.random.default_rng(seed)
+    w = rng.uniform(0.2, 3.0, n)
+    Y = rng.integers(0, 2, (n, 3)).astype(float)
+    E = rng.random((n, 3)) < 0.8
+    D = np.column_stack([np.ones(n, bool), rng.random(n) < 0.5])
+    strata = rng.integers(0, n_strata, n)
+    Df = D.astype(float)
+    we = E * w[:, None]
+    wey = we * Y
+    sw = Df.T @ we
+    with np.errstate(invalid="ignore", divide="ignore"):
+        value = (Df.T @ wey) / sw
+    fast, _, _ = _unclustered_variance(Df, we, wey, value, sw, strata)
+    for level in range(D.shape[1]):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            z = np.nan_to_num(Df[:, level][:, None] * (wey - we * value[level]) / sw[level])
+        slow, _, _ = taylor_variance(z, strata, None)
+        assert np.allclose(np.nan_to_num(fast[level]), slow, rtol=1e-9, atol=1e-15)
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.integers(1, 5000), st.data())
+def test_wilson_interval_holds_the_estimate_inside_zero_one(n, data):
+    k = data.draw(st.integers(0, n))
+    lo, hi = wilson_interval(k / n, n)
+    assert 0 <= lo <= k / n <= hi <= 1 + 1e-12
