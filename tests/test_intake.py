@@ -343,3 +343,30 @@ def test_demo_command_builds_the_study(tmp_path):
     # weights vary, so effective bases are below bases
     w = first["wt"].to_numpy()
     assert w.sum() ** 2 / (w ** 2).sum() < 0.98 * len(w)
+
+
+def test_killed_add_processes_leave_whole_waves_only(study_dir, wave_csv):
+    """Kill real `tracker add` processes (SIGKILL) at several moments: every time the study
+    opens with either the wave stored whole or not at all (common practice, no source)."""
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    path = wave_csv(n=3000, seed=31, name="big.csv")
+    for delay in (0.2, 0.6, 1.0, 1.4, 1.8, 2.5):
+        proc = subprocess.Popen([sys.executable, "-m", "tracker", "add", str(study_dir), str(path),
+                                 "--wave", "2025-Q3", "--date", "2025-09-30"],
+                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        time.sleep(delay)
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        study = Study(study_dir)
+        if study.labels:
+            assert study.labels == ["2025-Q3"] and len(study.load("2025-Q3")) == 3000
+            break
+    # whatever happened, a (re)add now leaves exactly one whole wave
+    result = run("add", study_dir, path, "--wave", "2025-Q3", "--date", "2025-09-30", "--replace")
+    assert result.exit_code == 0, result.output
+    assert len(Study(study_dir).load("2025-Q3")) == 3000
+    assert not list(study_dir.rglob(".incoming-*"))

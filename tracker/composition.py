@@ -51,7 +51,7 @@ def share_covariance(labels: np.ndarray, levels: list[str], w: np.ndarray, strat
     """Weighted shares of each level among respondents with a label, and their Taylor covariance."""
     inside = np.isin(labels, levels)
     Y = np.column_stack([(labels == lev) for lev in levels]).astype(float)
-    W = (w * inside).sum()
+    W = max((w * inside).sum(), np.finfo(float).tiny)
     p = (w[:, None] * Y * inside[:, None]).sum(axis=0) / W
     z = (w * inside)[:, None] * (Y - p) / W
     return p, taylor_covariance(z, strata, psu)
@@ -128,6 +128,8 @@ def compare_composition(book: Codebook, a: pd.DataFrame, b: pd.DataFrame, wave_a
             pu, Vu = share_covariance(labels, levels, np.ones(len(table)), None, None)
             stats_[key] = (n, pw, Vw, pu, Vu)
         (n1, pw1, Vw1, pu1, Vu1), (n2, pw2, Vw2, pu2, Vu2) = stats_["from"], stats_["to"]
+        if n1 == 0 or n2 == 0:  # the group's variable is not in one of the waves
+            continue
         chi_w, delta, p_w, df = rao_scott(pw1, Vw1, n1, pw2, Vw2, n2, Vu1, Vu2)
         chi_u, _, p_u, _ = rao_scott(pu1, Vu1, n1, pu2, Vu2, n2, Vu1, Vu2)
         moves = pw2 - pw1
