@@ -171,6 +171,13 @@ def test_replace_keeps_the_old_version(study_dir, wave_csv):
     assert len(pd.read_parquet(study_dir / entry["history"][0]["file"])) == 40
 
 
+def test_a_renamed_column_gets_a_hint(study_dir, wave_csv):
+    frame = example_wave(n=20, seed=17).rename(columns={"recommend": "recommend_score"})
+    report = Study(study_dir).check(wave_csv(frame), "2025-Q3", "2025-09-30")
+    assert ("required column is missing for variable recommend; is column 'recommend_score' this variable "
+            "under a new name? then add it to the variable's aliases") in report.lines()[0]
+
+
 def test_reads_parquet_xlsx_semicolons_bom_and_latin1(study_dir, tmp_path):
     frame = example_wave(n=25, seed=10)
     study = Study(study_dir)

@@ -7,6 +7,7 @@ of problems; the study module decides whether to store it.
 from __future__ import annotations
 
 import csv
+import difflib
 import hashlib
 import io
 from dataclasses import dataclass, field
@@ -243,6 +244,10 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
                     add("error", col, f"{values[dup].nunique()} id(s) appear more than once (e.g. {values[dup].iloc[0]!r})", dup)
             out[col] = values
 
+    known = set(source.values()) | set(codebook.design_columns())
+    known |= {c for found in claimed.values() for c in found}
+    extra = [c for c in cols if c not in known]
+
     # Variables.
     order_present = []
     for v in codebook.variables.values():
@@ -253,7 +258,11 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
             if expected:
                 what = f"option columns {', '.join(v.options)}" if v.type == "multi" else "column"
                 alias = f" (or an alias: {', '.join(v.aliases)})" if v.aliases else ""
-                add("error", v.name, f"required {what}{alias} is missing for variable {v.name}")
+                near = ([c for c in extra if v.name.lower() in c.lower() or c.lower() in v.name.lower()]
+                        or difflib.get_close_matches(v.name, extra, n=1, cutoff=0.6)) if v.type != "multi" else []
+                hint = (f"; is column {near[0]!r} this variable under a new name? then add it to the "
+                        f"variable's aliases") if near else ""
+                add("error", v.name, f"required {what}{alias} is missing for variable {v.name}{hint}")
             continue
         if v.type == "multi" and len(present) < len(file_cols):
             lost = [c for c in file_cols if c not in present]
@@ -268,9 +277,6 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
             out[c] = _check_column(v, c, table[source[c]].astype(str).str.strip(), label, add)
             order_present.append(c)
 
-    known = set(source.values()) | set(codebook.design_columns())
-    known |= {c for found in claimed.values() for c in found}
-    extra = [c for c in cols if c not in known]
     if extra:
         shown = ", ".join(extra[:10]) + (" ..." if len(extra) > 10 else "")
         problems.append(Problem("warning", "", f"{len(extra)} column(s) not in the codebook are left out: {shown}"))
