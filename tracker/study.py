@@ -393,8 +393,11 @@ class Study:
         gs = list(self.codebook.profile) if groups is None else self._pick_groups(groups)
         if not gs:
             raise TrackerError("codebook: profile: no profile groups to compare (add 'profile: [...]' to the codebook)")
-        return compare_composition(self.codebook, self.load(others[0]), self.load(wave), others[0], wave, gs,
-                                   adjust, level)
+        key = ("composition", wave, others[0], tuple(gs), adjust, level)
+        if key not in self._cache:  # the brief asks twice (sample notes, mix notes)
+            self._cache[key] = compare_composition(self.codebook, self.load(others[0]), self.load(wave), others[0],
+                                                   wave, gs, adjust, level)
+        return self._cache[key]
 
     # -- trends ---------------------------------------------------------------------------
     def _window(self, last: int | None, since: str | None, until: str | None = None) -> list[str]:
