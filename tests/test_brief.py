@@ -12,7 +12,6 @@ import shutil
 import subprocess
 
 import numpy as np
-import pandas as pd
 import pytest
 from click.testing import CliRunner
 from openpyxl import load_workbook

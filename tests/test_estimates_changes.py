@@ -254,7 +254,6 @@ def test_calibration_under_no_change_and_power_under_a_planted_change():
     change is found with power near the normal theory value Phi(2 * 2.8016 - 1.96).
     """
     from tracker.changes import compare
-    from tracker.codebook import Metric
     from tracker.estimates import finish
 
     from tracker.significance import adjust_pvalues

@@ -111,7 +111,7 @@ def test_new_check_add_waves_through_the_command_line(tmp_path, wave_csv):
     assert result.exit_code == 0, result.output
     frame = example_wave(n=120, seed=3)
     w = frame["wt"].to_numpy()
-    assert f"respondents (base): 120" in result.output
+    assert "respondents (base): 120" in result.output
     assert f"weighted base: {w.sum():,.1f}" in result.output
     assert f"effective base: {w.sum() ** 2 / (w ** 2).sum():,.1f}" in result.output
     dk = int((frame["satisfaction"] == 9).sum())

@@ -205,7 +205,6 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
         add("error", ", ".join(found), f"these columns all map to variable {vname} (its name and aliases); keep one")
 
     out: dict[str, pd.Series] = {}
-    n = len(table)
 
     if len(cols) == 1:
         add("error", cols[0], "the header was read as a single column; is the delimiter right?")

@@ -105,8 +105,7 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
     z = stats.norm.ppf(0.5 + level / 2)
 
     # slope per year, centred time for stability
-    tc = np.where(ok, years[None, :], np.nan)
-    tbar = np.nanmean(np.where(fit_ok[:, None], tc, 0.0), axis=1)
+    tbar = (ok * years[None, :]).sum(axis=1) / np.maximum(k, 1)
     X = np.stack([np.ones((S, K)), np.where(ok, years[None, :] - tbar[:, None], 0.0)], axis=2)
     trend = meta_regression(y, np.where(ok, v, 1.0), X, ok)
     slope = trend["beta"][:, 1]
