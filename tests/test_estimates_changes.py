@@ -16,8 +16,7 @@ from scipy import stats
 
 from tracker import Study
 from tracker.cli import main
-from tracker.estimates import wilson_interval
-from tracker.significance import adjust_pvalues, min_detectable_change, newcombe_interval
+from tracker.methods import adjust_pvalues, min_detectable_change, newcombe_interval, wilson_interval
 
 BOOK = """\
 title: test study
@@ -154,6 +153,7 @@ def test_unweighted_changes_match_statsmodels_and_scipy(tmp_path):
     a = random_wave(rng, 500, weighted=False, design=False, prefix="a")
     b = random_wave(rng, 430, weighted=False, design=False, prefix="b")
     b.loc[:150, "q"] = 5
+    a["q"], b["q"] = a["q"].replace(9, 3), b["q"].replace(9, 3)  # everyone in the base (see below)
     study = make_study(tmp_path, [a, b])
     table = study.changes(by=["g"], adjust="none").table.set_index(["metric", "group", "subgroup"])
     from statsmodels.stats.proportion import test_proportions_2indep
@@ -164,26 +164,40 @@ def test_unweighted_changes_match_statsmodels_and_scipy(tmp_path):
         qb = b.loc[sel_b, "q"]
         qa, qb = qa[qa != 9], qb[qb != 9]
         key = "total" if group == "Total" else "g"
+        # every kind is a t test on the design variance, which for unweighted data without
+        # a design is Welch's t on what each respondent contributes: scipy ttest_ind(equal_var=False)
+        values = {"top2": lambda q: q.isin([4, 5]).astype(float), "avg": lambda q: q.astype(float),
+                  "bal": lambda q: q.isin([4, 5]).astype(float) - q.isin([1, 2])}
+        for metric, f in values.items():
+            ref = stats.ttest_ind(f(qb), f(qa), equal_var=False)
+            row = table.loc[(metric, key, group)]
+            if key == "total":
+                assert row["df"] == pytest.approx(ref.df, abs=1e-8)
+                assert row["statistic"] == pytest.approx(ref.statistic, abs=1e-10)
+                assert row["p_raw"] == pytest.approx(ref.pvalue, abs=1e-10)
+            else:
+                # a subgroup is a domain: its variance is c s^2 / n_g with c = N (n_g - 1) / ((N - 1) n_g),
+                # the whole wave's N/(N-1) (samplics' domain convention) where Welch has n_g/(n_g-1)
+                def dvar(q, wave):
+                    N, ng = len(wave), len(q)
+                    return N * (ng - 1) / ((N - 1) * ng) * np.var(q, ddof=1) / ng
+                vb, va = dvar(f(qb), b), dvar(f(qa), a)
+                assert row["statistic"] == pytest.approx((f(qb).mean() - f(qa).mean()) / np.sqrt(vb + va), abs=1e-10)
+        # statsmodels' Wald z for two shares uses p(1-p)/n where the design variance has
+        # p(1-p)/(n-1): the two agree to O(1/n)
         row = table.loc[("top2", key, group)]
-        # statsmodels test_proportions_2indep, Wald (unpooled) z
         ref = test_proportions_2indep(int(qb.isin([4, 5]).sum()), len(qb), int(qa.isin([4, 5]).sum()), len(qa),
                                       method="wald")
-        assert row["statistic"] == pytest.approx(ref.statistic, abs=1e-10)
-        assert row["p_raw"] == pytest.approx(ref.pvalue, abs=1e-10)
-        # scipy ttest_ind(equal_var=False): Welch t and its p
-        ref = stats.ttest_ind(qb, qa, equal_var=False)
-        row = table.loc[("avg", key, group)]
-        assert row["statistic"] == pytest.approx(ref.statistic, abs=1e-10)
-        assert row["p_raw"] == pytest.approx(ref.pvalue, abs=1e-10)
-        assert row["df"] == pytest.approx(ref.df, abs=1e-8)
-        # balance: multinomial variance (p+ + p- - (p+ - p-)^2)/n per wave (derivation in docs/methods.md)
+        assert row["statistic"] == pytest.approx(ref.statistic, rel=3 / min(len(qa), len(qb)))
+        # balance: the multinomial variance (p+ + p- - (p+ - p-)^2)/(n - 1) per wave (docs/methods.md)
         row = table.loc[("bal", key, group)]
         def bal(q):
             pp, pm = q.isin([4, 5]).mean(), q.isin([1, 2]).mean()
-            return pp - pm, (pp + pm - (pp - pm) ** 2) / len(q)
+            return pp - pm, (pp + pm - (pp - pm) ** 2) / (len(q) - 1)
         (b1, v1), (b0, v0) = bal(qb), bal(qa)
         assert row["change"] == pytest.approx(b1 - b0, abs=1e-12)
-        assert row["statistic"] == pytest.approx((b1 - b0) / np.sqrt(v1 + v0), abs=1e-10)
+        if key == "total":
+            assert row["statistic"] == pytest.approx((b1 - b0) / np.sqrt(v1 + v0), abs=1e-10)
 
 
 def test_unweighted_estimates_match_textbook_formulas(tmp_path):
@@ -197,14 +211,20 @@ def test_unweighted_estimates_match_textbook_formulas(tmp_path):
     assert est.loc["avg", "se"] == pytest.approx(q.std(ddof=1) / np.sqrt(len(q)), abs=1e-12)
     lo, hi = stats.t.interval(0.95, len(q) - 1, loc=q.mean(), scale=q.std(ddof=1) / np.sqrt(len(q)))
     assert (est.loc["avg", "ci_low"], est.loc["avg", "ci_high"]) == (pytest.approx(lo), pytest.approx(hi))
-    # share: Wilson interval on n (statsmodels proportion_confint)
+    # share: Wilson interval on the effective base p(1-p)/V = n - 1 with the t quantile on
+    # n - 1 df; Wilson with quantile t on m equals Wilson with z on m (z/t)^2, so statsmodels
+    # proportion_confint(method="wilson") on that base is the reference
     from statsmodels.stats.proportion import proportion_confint
 
+    n = len(q)
     k = int(q.isin([4, 5]).sum())
-    ref = proportion_confint(k, len(q), method="wilson")
+    m = (n - 1) * (stats.norm.ppf(0.975) / stats.t.ppf(0.975, n - 1)) ** 2
+    ref = proportion_confint(k / n * m, m, method="wilson")
     assert (est.loc["top2", "ci_low"], est.loc["top2", "ci_high"]) == (pytest.approx(ref[0], abs=1e-12),
                                                                         pytest.approx(ref[1], abs=1e-12))
-    assert est.loc["top2", "design_effect"] == pytest.approx(1.0, abs=1e-12)
+    # Kish design effect V / (p(1-p)/n): the with-replacement variance p(1-p)/(n-1) makes it n/(n-1)
+    assert est.loc["top2", "design_effect"] == pytest.approx(n / (n - 1), abs=1e-12)
+    assert est.loc["top2", "df"] == n - 1
 
 
 # -- weighted, stratified, clustered: samplics ------------------------------------------------
@@ -256,7 +276,6 @@ def test_calibration_under_no_change_and_power_under_a_planted_change():
     from tracker.changes import compare
     from tracker.estimates import finish
 
-    from tracker.significance import adjust_pvalues
 
     rng = np.random.default_rng(2026)
     reps, cells, n = 2000, 40, 800
@@ -354,13 +373,20 @@ def test_low_base_cells_are_flagged_and_never_significant(tmp_path):
 
 
 def test_nchs_rules_from_memory():
-    # NCHS Data Presentation Standards for Proportions (2017), rules as remembered (from memory)
-    from tracker.estimates import nchs_flags
+    # NCHS Data Presentation Standards for Proportions (Parker et al. 2017), rules as
+    # remembered (from memory), read on the Korn-Graubard interval; the interval widths
+    # behind each case come from statsmodels proportion_confint(method="beta")
+    from statsmodels.stats.proportion import proportion_confint
 
-    reliable, flags = nchs_flags(np.array([0.5, 0.5, 0.5, 0.02, 0.02, 0.5]),
-                                 np.array([0.10, 0.31, 0.10, 0.04, 0.06, 0.10]),
-                                 np.array([29, 100, 100, 100, 100, 100.0]),
-                                 np.array([50, 50, 50, 50, 50, 7.0]))
+    from tracker.kinds import KINDS, flag_text
+
+    p = np.array([0.5, 0.5, 0.5, 0.02, 0.04, 0.5])
+    base = np.array([29, 40, 1000, 1000, 120, 1000.0])
+    df = np.array([50, 50, 999, 999, 119, 7.0])
+    widths = [np.subtract(*proportion_confint(pp * nn, nn, method="beta")[::-1]) for pp, nn in zip(p, base)]
+    assert widths[1] >= 0.30 and widths[3] <= 0.05 and 0.05 < widths[4] and widths[4] / 0.04 > 1.30
+    reliable, pairs = KINDS["share"].reliability(p, None, None, base, base, df, 0.95)
+    flags = flag_text(pairs, len(p))
     assert reliable.tolist() == [False, False, True, True, False, True]
     assert flags[0] == "effective base under 30"
     assert flags[1] == "interval 30 points wide or more"

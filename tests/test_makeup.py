@@ -17,7 +17,8 @@ from scipy import stats
 
 from tracker import Study, TrackerError
 from tracker.cli import main
-from tracker.composition import kitagawa, rao_scott, share_covariance
+from tracker.composition import kitagawa, stacked_shares
+from tracker.methods import rao_scott_table
 from tracker.weighting import rake
 
 from .conftest import EXAMPLE_CODEBOOK, example_wave, snapshot
@@ -125,21 +126,58 @@ def test_raking_refusals_leave_the_study_unchanged(tmp_path, case, message):
 
 # -- composition -----------------------------------------------------------------------------
 
+def _two_waves_test(labels, levels, weights, strata, psus):
+    pi, V, n, df, _ = stacked_shares(labels, levels, weights, strata, psus)
+    return rao_scott_table(pi, V, n, df, 2, len(levels))
+
+
 def test_rao_scott_with_equal_weights_is_pearson_chi_square():
-    # scipy chi2_contingency without continuity correction is the reference
+    # scipy chi2_contingency without continuity correction is the reference for X^2; with
+    # equal weights and no design the design correction is 1 up to the n/(n-1) factor of
+    # the with-replacement variance in each wave
     rng = np.random.default_rng(5)
     a = rng.choice(["x", "y", "z", "u"], 500, p=[0.4, 0.3, 0.2, 0.1])
     b = rng.choice(["x", "y", "z", "u"], 450, p=[0.3, 0.3, 0.25, 0.15])
     levels = ["x", "y", "z", "u"]
-    pa, Va = share_covariance(a, levels, np.ones(a.size), None, None)
-    pb, Vb = share_covariance(b, levels, np.ones(b.size), None, None)
-    chi, delta, p, df = rao_scott(pa, Va, a.size, pb, Vb, b.size, Va, Vb)
+    rs = _two_waves_test([a, b], levels, [np.ones(500), np.ones(450)], [None, None], [None, None])
     table = np.array([[np.sum(a == k) for k in levels], [np.sum(b == k) for k in levels]])
     ref = stats.chi2_contingency(table, correction=False)
-    assert delta == pytest.approx(1.0, abs=1e-12)
-    assert chi == pytest.approx(ref.statistic, abs=1e-9)
-    assert p == pytest.approx(ref.pvalue, abs=1e-12)
-    assert df == ref.dof
+    assert rs.pearson == pytest.approx(ref.statistic, abs=1e-9)
+    assert rs.chi2_df == ref.dof
+    assert rs.mean_deff == pytest.approx(1.0, abs=3e-3)
+    assert rs.chi2_p == pytest.approx(ref.pvalue, rel=0.02)
+
+
+def test_rao_scott_equals_the_svy_package_on_a_weighted_clustered_table():
+    # svy (test-only dependency) Sample(...).categorical.tabulate(wave, group): Rao-Scott
+    # F, its two df and p, and the first-order chi-square p, on the stacked waves with each
+    # wave's weights scaled to its respondents
+    warnings.simplefilter("ignore")
+    import polars as pl
+    import svy
+
+    rng = np.random.default_rng(11)
+    frames = []
+    for k in (1, 2):
+        st = np.repeat(np.arange(6), 60)
+        cl = st * 10 + rng.integers(0, 4, st.size)
+        g = rng.choice(["a", "b", "c"], st.size, p=[0.3, 0.45, 0.25])
+        w = rng.lognormal(0, 0.5, st.size) * np.where(g == "a", 0.5, 1.0)  # 'a' over-sampled, weights correct it
+        frames.append((g, w, st.astype(str), cl.astype(str)))
+    rs = _two_waves_test([f[0] for f in frames], ["a", "b", "c"], [f[1] for f in frames],
+                         [f[2] for f in frames], [f[3] for f in frames])
+    rows = []
+    for k, (g, w, st, cl) in enumerate(frames, start=1):
+        rows.append(pl.DataFrame({"wave": k, "st": [f"{k}|{x}" for x in st], "cl": [f"{k}|{x}" for x in cl],
+                                  "w": w * len(w) / w.sum(), "g": g}))
+    sample = svy.Sample(pl.concat(rows), svy.Design(stratum="st", psu="cl", wgt="w"))
+    ref = sample.categorical.tabulate("wave", "g").stats
+    assert rs.f == pytest.approx(ref.f.value, rel=1e-6)
+    assert rs.f_df_num == pytest.approx(ref.f.df_num, rel=1e-6)
+    assert rs.f_df_den == pytest.approx(ref.f.df_den, rel=1e-6)
+    assert rs.f_p == pytest.approx(ref.f.p_value, abs=1e-6)
+    assert rs.pearson == pytest.approx(ref.chisq.value, rel=1e-6)
+    assert rs.chi2_p == pytest.approx(ref.chisq.p_value, abs=1e-6)
 
 
 def test_rao_scott_design_effect_shrinks_the_statistic_for_clustered_data():
@@ -151,13 +189,8 @@ def test_rao_scott_design_effect_shrinks_the_statistic_for_clustered_data():
     flip = rng.random(500) < 0.2
     cat = np.where(flip, np.where(cat == "x", "y", "x"), cat)
     other = rng.choice(["x", "y"], 500)
-    pa, Va = share_covariance(cat, ["x", "y"], np.ones(500), None, clusters)
-    pa0, Va0 = share_covariance(cat, ["x", "y"], np.ones(500), None, None)
-    pb, Vb = share_covariance(other, ["x", "y"], np.ones(500), None, np.repeat(np.arange(50), 10))
-    pb0, Vb0 = share_covariance(other, ["x", "y"], np.ones(500), None, None)
-    chi, delta, _, _ = rao_scott(pa, Va, 500, pb, Vb, 500, Va0, Vb0)
-    chi0, _, _, _ = rao_scott(pa0, Va0, 500, pb0, Vb0, 500, Va0, Vb0)
-    assert delta > 1.5 and chi < chi0
+    rs = _two_waves_test([cat, other], ["x", "y"], [np.ones(500)] * 2, [None, None], [clusters, clusters])
+    assert rs.mean_deff > 1.5 and rs.chi2 < rs.pearson
 
 
 def test_demo_mix_wave_is_flagged_and_its_move_is_mostly_mix(demo_study):

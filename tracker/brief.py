@@ -17,7 +17,9 @@ import pandas as pd
 
 from .errors import TrackerError
 from .estimates import weights_of
-from .significance import ADJUST_METHODS
+from .kinds import KINDS
+from .methods.bases import kish_base
+from .methods.tests import ADJUST_METHODS
 
 CAUTIONS = (
     "Significance is not importance: a significant change can be too small to matter, and a change "
@@ -59,19 +61,15 @@ class Brief:
 # -- wording --------------------------------------------------------------------------------
 
 def fmt_value(kind: str, v: float) -> str:
-    if kind == "share":
-        return f"{v * 100:.0f}%"
-    if kind == "balance":
-        return f"{v * 100:+.0f}"
-    return f"{v:.2f}"
+    return KINDS[kind].fmt_value(v)
 
 
 def fmt_size(kind: str, d: float) -> str:
-    return f"{abs(d):.2f}" if kind == "mean" else f"{abs(d) * 100:.1f} points"
+    return KINDS[kind].fmt_change(d)
 
 
 def _num(kind: str, d: float) -> str:
-    return f"{abs(d):.2f}" if kind == "mean" else f"{abs(d) * 100:.1f}"
+    return KINDS[kind].fmt_number(d)
 
 
 def change_sentence(row, level: float) -> str:
@@ -162,15 +160,17 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         f"Compared: {wave} with {result.against}. {n_tests} tests (every metric in total and in every subgroup), "
         f"{n_sig} significant at the {1 - level:g} level after {ADJUST_METHODS[adjust]} adjustment; only "
         f"adjusted results are called significant.",
-        "Shares: z test on design-based standard errors (Taylor linearization, with the study's weights, strata "
-        "and clusters), with Newcombe's hybrid score interval for the difference. Means: Welch's t. Balances: "
-        "z on the multinomial variance. Intervals are " + f"{level:.0%}.",
-        "Minimum detectable change: the change each comparison would find with 80% power at the unadjusted level.",
+        "Every change is tested with t on its design-based variance (Taylor linearization with the study's "
+        "weights, strata and clusters; minus the covariance of shared clusters or respondents) and the design's "
+        "degrees of freedom. Shares get Newcombe's hybrid score interval for the difference. Intervals are "
+        + f"{level:.0%}.",
+        "Minimum detectable change: the change each comparison would find with 80% power at the unadjusted level "
+        "(for shares, the larger of a rise and a fall, with the variance the changed share would have).",
         "Trends: a random-effects line per series through the wave estimates (sampling error plus the "
         "between-wave variation), per year of fieldwork time; shifts and one-wave blips are searched for with the "
         "search accounted for, and every series' tests are adjusted together.",
-        "Reliability: cells below an effective base of 30 or with too wide an interval (NCHS presentation "
-        "standard for proportions, 2017) are flagged and not tested.",
+        "Reliability: cells below an effective base of 30 or with too wide a Korn-Graubard interval (NCHS "
+        "presentation standard for proportions, 2017) are flagged and not tested.",
     ) + tuple(result.notes[1:])
 
     tables = {
@@ -226,7 +226,7 @@ def _sample_notes(study, result, trends) -> list[Item]:
     for w in waves:
         table = study.load(w)
         weights = weights_of(book, table)
-        eff = weights.sum() ** 2 / (weights**2).sum()
+        eff = float(kish_base(weights.sum(), (weights**2).sum()))
         notes.append(Item(f"{w}: {len(table):,} respondents; effective base {eff:,.0f} "
                           f"(weighting efficiency {eff / len(table):.0%}).", "note"))
     t = result.table
@@ -278,7 +278,7 @@ def mix_notes(study, result, headline_metrics: list[str]) -> dict[str, str]:
 
 
 def _signed(kind: str, d: float) -> str:
-    return f"{d:+.2f}" if kind == "mean" else f"{d * 100:+.1f} points"
+    return KINDS[kind].fmt_change(d, signed=True)
 
 
 # -- rendering ------------------------------------------------------------------------------

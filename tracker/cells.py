@@ -47,30 +47,27 @@ def _codes_mask(codebook: Codebook, table: pd.DataFrame, variable: str, codes: t
 def metric_matrix(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric]) -> tuple[np.ndarray, np.ndarray]:
     """Return (Y, E): each respondent's value for each metric, and who is in each base.
 
-    share: 1 if the answer is one of the codes, else 0; mean: the answer; balance: +1 for a
-    plus code, -1 for a minus code, 0 otherwise (so the weighted mean of Y is the balance).
+    What a respondent contributes is the metric kind's (tracker.kinds): a share 1 or 0, a
+    mean the answer, a balance +1, -1 or 0 (so the weighted mean of Y is the balance).
     The base holds respondents with a valid answer (blank and missing codes leave it) who
     also pass the metric's ``base`` filter.
     """
+    from .kinds import KINDS
+
     n = len(table)
     Y = np.zeros((n, len(metrics)))
     E = np.zeros((n, len(metrics)), dtype=bool)
-    for j, m in enumerate(metrics):
+    for j, m in enumerate(metrics):  # a loop over metric definitions, not cells
         var = codebook.variables[m.variable]
-        if m.kind == "share":
-            y, answered = _codes_mask(codebook, table, m.variable, m.codes)
-            Y[:, j] = y
-        elif m.kind == "balance":
-            plus, answered = _codes_mask(codebook, table, m.variable, m.plus)
-            minus, _ = _codes_mask(codebook, table, m.variable, m.minus)
-            Y[:, j] = plus.astype(float) - minus
-        else:
-            if m.variable in table.columns:
-                x = table[m.variable].to_numpy(dtype=float)
-                answered = ~np.isnan(x) & ~np.isin(x, list(var.missing))
-                Y[:, j] = np.where(answered, x, 0.0)
-            else:
-                answered = np.zeros(n, bool)
+
+        def numeric(m=m, var=var):
+            if m.variable not in table.columns:
+                return np.zeros(n), np.zeros(n, bool)
+            x = table[m.variable].to_numpy(dtype=float)
+            return x, ~np.isnan(x) & ~np.isin(x, list(var.missing))
+
+        Y[:, j], answered = KINDS[m.kind].values(
+            lambda codes, m=m: _codes_mask(codebook, table, m.variable, codes), numeric, m)
         if m.base_variable:
             inbase, _ = _codes_mask(codebook, table, m.base_variable, m.base_codes)
             answered = answered & inbase

@@ -1,7 +1,7 @@
 """Changes between two waves (or a wave and pooled earlier waves), from their estimates.
 
-Independent samples are assumed unless the study says the waves share respondents, in
-which case the covariance from the matched respondents is subtracted.
+Independent samples are assumed unless the waves share clusters or respondents, in which
+case their covariance (tracker.estimates.wave_covariance) is subtracted.
 """
 
 from __future__ import annotations
@@ -11,10 +11,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from .errors import TrackerError
-from .significance import ADJUST_METHODS, adjust_pvalues, min_detectable_change, newcombe_interval, welch_df
+from .kinds import KINDS
+from .methods.tests import ADJUST_METHODS, adjust_pvalues, difference_test, satterthwaite_df
 
 KEYS = ["metric", "group", "subgroup"]
 
@@ -118,13 +118,16 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
             covariance: np.ndarray | None = None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
     """Test every cell of ``now`` against the same cell of ``then`` (rows from the estimates step).
 
-    Each wave's variance is its design effect times the textbook variance (Kish 1965):
-    shares: z test with var = p(1-p)/n* per wave, n* = n / design effect (the design base),
-    and the Newcombe (1998) hybrid score interval on the design bases. Means: Welch t with
-    var = deff x s^2/n and Welch-Satterthwaite degrees of freedom on the Kish effective
-    bases (Welch 1947). Balances: z on the multinomial variance (p+ + p- - (p+ - p-)^2)/n*.
-    With no weights and no design every deff is 1 and these are the textbook tests. ``blocked`` maps metric to the reason no test is
-    made (a wording break). All tested rows form one family, adjusted by ``adjust``.
+    The variance of a change is the design variance itself, V_to + V_from - 2 Cov (Cov
+    from shared clusters or respondents, else 0), and the test is t = change / SE on the
+    Satterthwaite (1946) combination of the two cells' design degrees of freedom. With
+    unweighted data and no design this is Welch's t for means (scipy
+    ``ttest_ind(equal_var=False)``). The change interval and the minimum detectable change
+    are the metric kind's (tracker.kinds): for shares Newcombe's (1998) hybrid score
+    interval on the effective bases (the Wald form when the waves are not independent)
+    and a detectable change with the variance under the alternative. ``blocked`` maps
+    metric to the reason no test is made (a wording break). All tested rows form one
+    family, adjusted by ``adjust``.
     """
     if adjust not in ADJUST_METHODS:
         raise TrackerError(f"--adjust {adjust}: use one of {', '.join(ADJUST_METHODS)}")
@@ -132,32 +135,26 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     kind = m["kind_to"].to_numpy()
     p1, p0 = m["value_to"].to_numpy(float), m["value_from"].to_numpy(float)
     nd1, nd0 = m["design_base_to"].to_numpy(float), m["design_base_from"].to_numpy(float)
-    u1, u0 = m["unit_variance_to"].to_numpy(float), m["unit_variance_from"].to_numpy(float)
+    v1, v0 = m["variance_to"].to_numpy(float), m["variance_from"].to_numpy(float)
+    df1, df0 = m["df_to"].to_numpy(float), m["df_from"].to_numpy(float)
     k1, k0 = m["effective_base_to"].to_numpy(float), m["effective_base_from"].to_numpy(float)
-    b1, b0 = m["base_to"].to_numpy(float), m["base_from"].to_numpy(float)
-    cov = np.zeros(len(m)) if covariance is None else covariance
-    is_mean = kind == "mean"
-    with np.errstate(divide="ignore", invalid="ignore"):
-        # per-wave test variances: deff x textbook variance (s^2 = unit variance x n/(n-1))
-        v1 = np.where(is_mean, u1 * b1 / (b1 - 1), u1) / nd1
-        v0 = np.where(is_mean, u0 * b0 / (b0 - 1), u0) / nd0
-        var = v1 + v0 - 2 * cov
-        se = np.sqrt(np.maximum(var, 0.0))
-        d = p1 - p0
-        stat = d / se
-        df = welch_df(v1, v0, k1, k0)
-        p_mean = 2 * stats.t.sf(np.abs(stat), df)
-        p_norm = 2 * stats.norm.sf(np.abs(stat))
-    p_raw = np.where(is_mean, p_mean, p_norm)
-    zc = stats.norm.ppf(0.5 + level / 2)
-    with np.errstate(invalid="ignore"):
-        tc = stats.t.ppf(0.5 + level / 2, df)
-    nl, nu = newcombe_interval(p1, nd1, p0, nd0, level)
-    if covariance is not None and np.any(cov != 0):
-        # with overlap, the score interval's independence does not hold: use the Wald form
-        nl, nu = d - zc * se, d + zc * se
-    lo = np.select([kind == "share", is_mean], [nl, d - tc * se], d - zc * se)
-    hi = np.select([kind == "share", is_mean], [nu, d + tc * se], d + zc * se)
+    cov = np.zeros(len(m)) if covariance is None else np.asarray(covariance, float)
+    d = p1 - p0
+    var = np.maximum(v1 + v0 - 2 * cov, 0.0)
+    se = np.sqrt(var)
+    df = satterthwaite_df(v1, v0, np.maximum(df1, 1), np.maximum(df0, 1))
+    stat, p_raw = difference_test(d, var, df)
+    lo, hi, mde = np.full(len(m), np.nan), np.full(len(m), np.nan), np.full(len(m), np.nan)
+    paired = cov != 0
+    tests = np.full(len(m), "", dtype=object)
+    for name, k in KINDS.items():  # a loop over the kinds, every comparison of a kind at once
+        s = kind == name
+        if not s.any():
+            continue
+        lo[s], hi[s] = k.change_interval(d[s], se[s], df[s], level, p1[s], nd1[s], df1[s], p0[s], nd0[s], df0[s],
+                                         paired[s])
+        mde[s] = k.min_detectable(p0[s], v0[s], nd1[s], cov[s], se[s], df[s], level)
+        tests[s] = k.test
 
     blocked = blocked or {}
     why_blocked = np.array([blocked.get(x, "") for x in m["metric"].unique()], dtype=object)[
@@ -183,11 +180,11 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
         "value_from": p0, "value_to": p1, "change": d, "change_low": lo, "change_high": hi,
         "base_from": m["base_from"], "base_to": m["base_to"],
         "effective_base_from": k0, "effective_base_to": k1,
-        "test": np.select([kind == "share", is_mean], ["z (shares)", "Welch t"], "z (balance)"),
+        "test": tests,
         "statistic": stat, "p_raw": np.where(testable, p_raw, np.nan), "p_adjusted": p_adj,
-        "min_detectable_change": min_detectable_change(se, level),
+        "min_detectable_change": mde,
         "significant": sig, "direction": direction, "flags": flags,
-        "se": se, "df": np.where(is_mean, df, np.inf),
+        "se": se, "df": df, "covariance": cov,
     })
     return out
 

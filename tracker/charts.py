@@ -90,7 +90,7 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
                 width: int | None = None, height: int = 200, until: str | None = None) -> alt.FacetChart | alt.LayerChart:
     """The metric wave by wave: interval band, line, marked significant steps, fitted trend
     or shift levels, a wording break as a gap with a note, bases under the axis."""
-    from .significance import ADJUST_METHODS
+    from .methods.tests import ADJUST_METHODS
 
     if metric not in study.codebook.metrics:
         raise TrackerError(f"--metric {metric}: not a metric of this study ({', '.join(study.codebook.metrics)})")
@@ -164,7 +164,7 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
 def change_overview(result, totals_only: bool = False, width: int = 380) -> alt.VConcatChart | alt.Chart:
     """Every tested change of one comparison as a dot with its interval, sorted by size;
     significant ones emphasised; a zero line; the minimum detectable change as a shaded band."""
-    from .significance import ADJUST_METHODS
+    from .methods.tests import ADJUST_METHODS
 
     t = result.table[result.table["p_adjusted"].notna()].copy()
     if totals_only:

@@ -9,7 +9,7 @@ from pathlib import Path
 import click
 
 from .errors import TrackerError
-from .significance import ADJUST_METHODS as ADJUST_NAMES
+from .methods.tests import ADJUST_METHODS as ADJUST_NAMES
 from .study import Study
 
 

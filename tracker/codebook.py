@@ -101,6 +101,8 @@ class Codebook:
     rake: dict[str, Any]
     source: str  # the YAML text as given
     sha256: str
+    single_cluster_rule: str = "centre"  # key single_cluster_strata (tracker.methods.SINGLE_CLUSTER_RULES)
+    waves_share_clusters: bool = True    # a cluster label names the same cluster in every wave
 
     def design_columns(self) -> list[str]:
         return [c for c in (self.id, self.weight, self.strata, self.clusters) if c]
@@ -255,12 +257,27 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         targets[gname] = shares
 
     rake = _mapping(doc.get("rake"), "rake", required=False)
+    single_rule, share_clusters = _design_options(doc)
     return Codebook(
         title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
         variables=variables, groups=groups, metrics=metrics, profile=profile,
         targets=targets, rake=dict(rake), source=text,
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
+        single_cluster_rule=single_rule, waves_share_clusters=share_clusters,
     )
+
+
+def _design_options(doc: dict) -> tuple[str, bool]:
+    """The keys single_cluster_strata (a rule name) and waves_share_clusters (true/false)."""
+    from .methods.variance import SINGLE_CLUSTER_RULES
+
+    rule = doc.get("single_cluster_strata", "centre")
+    if rule not in SINGLE_CLUSTER_RULES:
+        raise _err("single_cluster_strata", f"{rule!r} is not one of {', '.join(SINGLE_CLUSTER_RULES)}")
+    share = doc.get("waves_share_clusters", True)
+    if not isinstance(share, bool):
+        raise _err("waves_share_clusters", f"{share!r}: write true or false")
+    return rule, share
 
 
 def _parse_variable(name: str, node: Any) -> Variable:

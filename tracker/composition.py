@@ -1,7 +1,8 @@
 """Sample make-up: composition shifts between waves, and mix-adjusted change.
 
 A measure can move only because the sample's make-up moved. This module compares the mix
-of two waves on the codebook's profile groups (Rao-Scott corrected chi-square) and splits
+of two waves on the codebook's profile groups (Rao-Scott test of the stacked waves x
+levels table, tracker.methods.raoscott) and splits
 a change into a part due to the mix on one group and a part within its levels (Kitagawa
 1955), with the change standardised to the earlier wave's mix and its test.
 """
@@ -12,76 +13,52 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-import scipy.sparse as sp
 from scipy import stats
 
 from .cells import group_labels
 from .codebook import Codebook
-from .estimates import cell_stats, design_of, weights_of
-from .significance import ADJUST_METHODS, adjust_pvalues
+from .estimates import cell_stats, design_labels, weights_of
+from .methods.raoscott import rao_scott_table
+from .methods.tests import ADJUST_METHODS, adjust_pvalues
+from .methods.variance import taylor_covariance
 
 
-def taylor_covariance(z: np.ndarray, strata: np.ndarray | None, psu: np.ndarray | None) -> np.ndarray:
-    """Covariance matrix (K x K) of the totals of linearized values z (N x K): the
-    with-replacement estimator of :func:`tracker.estimates.taylor_variance`, with cross
-    products (Wolter 2007, ch. 6)."""
-    n, k = z.shape
-    strata = np.zeros(n, dtype=np.int64) if strata is None else np.asarray(strata)
-    if psu is None:
-        totals, psu_stratum = z, strata
-    else:
-        _, psu_id = np.unique(np.stack([strata, psu]), axis=1, return_inverse=True)
-        psu_id = psu_id.ravel()
-        n_psu = psu_id.max() + 1
-        totals = sp.csr_matrix((np.ones(n), (psu_id, np.arange(n))), shape=(n_psu, n)) @ z
-        psu_stratum = np.zeros(n_psu, dtype=np.int64)
-        psu_stratum[psu_id] = strata
-    cov = np.zeros((k, k))
-    for h in np.unique(psu_stratum):  # a loop over strata
-        t = totals[psu_stratum == h]
-        m = t.shape[0]
-        if m < 2:
-            continue
-        c = t - t.mean(axis=0)
-        cov += m / (m - 1) * c.T @ c
-    return cov
+def stacked_shares(labels: list[np.ndarray], levels: list[str], weights: list[np.ndarray], strata: list, psus: list,
+                   rule: str = "centre") -> tuple[np.ndarray, np.ndarray, int, float, list[np.ndarray]]:
+    """The waves x levels table of the stacked waves: cell shares, their Taylor covariance,
+    the respondents with a label, the design degrees of freedom, and each wave's weighted
+    level shares.
 
-
-def share_covariance(labels: np.ndarray, levels: list[str], w: np.ndarray, strata, psu) -> tuple[np.ndarray, np.ndarray]:
-    """Weighted shares of each level among respondents with a label, and their Taylor covariance."""
-    inside = np.isin(labels, levels)
-    Y = np.column_stack([(labels == lev) for lev in levels]).astype(float)
-    W = max((w * inside).sum(), np.finfo(float).tiny)
-    p = (w[:, None] * Y * inside[:, None]).sum(axis=0) / W
-    z = (w * inside)[:, None] * (Y - p) / W
-    return p, taylor_covariance(z, strata, psu)
-
-
-def rao_scott(p1, V1, n1, p2, V2, n2, V1_srs, V2_srs) -> tuple[float, float, float, int]:
-    """First-order Rao-Scott corrected chi-square for equal distributions in two independent samples.
-
-    Pearson's X^2 is computed from the (weighted) shares and the unweighted bases; it is
-    divided by the mean generalized design effect delta = tr(P^-1 V) / (C - 1), where V is
-    the design covariance of the difference of shares and P the covariance the same data
-    would give as a simple random sample (Rao & Scott 1981, JASA 76:221; 1984, Ann Stat
-    12:46). X^2 / delta is referred to chi-square on C - 1 df. With equal weights and no
-    design, V = P, delta = 1 and this is Pearson's chi-square (scipy ``chi2_contingency``,
-    no continuity correction). Returns (X^2 corrected, delta, p, df).
+    Each wave's weights are scaled to sum to its respondents with a label (common
+    practice, no source), so the table's rows weigh as the waves' sample sizes; each wave
+    keeps its own strata and clusters (the waves are independent samples).
     """
-    p1, p2 = np.asarray(p1, float), np.asarray(p2, float)
-    keep = (p1 + p2) > 0
-    p1, p2 = p1[keep], p2[keep]
-    C = p1.size
-    if C < 2:
-        return 0.0, 1.0, 1.0, 0
-    pbar = (n1 * p1 + n2 * p2) / (n1 + n2)
-    x2 = float(n1 * ((p1 - pbar) ** 2 / pbar).sum() + n2 * ((p2 - pbar) ** 2 / pbar).sum())
-    idx = np.flatnonzero(keep)[:-1]  # C - 1 free shares
-    V = (V1 + V2)[np.ix_(idx, idx)]
-    P = (V1_srs + V2_srs)[np.ix_(idx, idx)]
-    delta = float(np.trace(np.linalg.pinv(P) @ V) / (C - 1))
-    corrected = x2 / delta if delta > 0 else x2
-    return corrected, delta, float(stats.chi2.sf(corrected, C - 1)), C - 1
+    rows_w, rows_lab, st_all, ps_all, shares = [], [], [], [], []
+    for k, (lab, w, st, ps) in enumerate(zip(labels, weights, strata, psus)):
+        inside = np.isin(lab, levels)
+        scale = inside.sum() / max(float((w * inside).sum()), np.finfo(float).tiny)
+        ww = w * inside * scale
+        rows_w.append(ww)
+        rows_lab.append(np.where(inside, lab, None))
+        n_k = len(lab)
+        st_all.append(np.char.add(f"{k}|", (np.zeros(n_k, int) if st is None else np.asarray(st)).astype(str)))
+        ps_all.append(np.char.add(f"{k}|", (np.arange(n_k) if ps is None else np.asarray(ps)).astype(str)))
+        shares.append(np.array([(ww * (lab == lev)).sum() for lev in levels]) / max(ww.sum(), np.finfo(float).tiny))
+    R, C = len(labels), len(levels)
+    w = np.concatenate(rows_w)
+    wave = np.repeat(np.arange(R), [len(x) for x in labels])
+    lab = np.concatenate(rows_lab)
+    cells = np.column_stack([(wave == r) & (lab == lev) for r in range(R) for lev in levels]).astype(float)
+    W = w.sum()
+    pi = (w[:, None] * cells).sum(axis=0) / W
+    z = w[:, None] * (cells - pi) / W
+    st_codes = pd.factorize(pd.Series(np.concatenate(st_all)))[0]
+    ps_codes = pd.factorize(pd.Series(np.concatenate(ps_all)))[0]
+    V = taylor_covariance(z, st_codes, ps_codes, rule)
+    used = w > 0
+    n = int(used.sum())
+    df = float(np.unique(ps_codes[used]).size - np.unique(st_codes[used]).size)
+    return pi, V, n, df, shares
 
 
 @dataclass(frozen=True)
@@ -102,48 +79,55 @@ class CompositionResult:
         out = []
         for r in self.tests.itertuples():
             verdict = "shifted" if r.shifted else "no clear shift"
-            out.append(f"{r.group}: {verdict} (weighted mix: Rao-Scott chi-square {r.chi2_weighted:.1f} on {r.df} df, "
-                       f"adjusted p {r.p_adjusted:.4f}; unweighted mix p {r.p_unweighted:.4f}); "
-                       f"largest move: {r.largest_move}")
+            out.append(f"{r.group}: {verdict} (weighted mix, Rao-Scott F {r.f:.2f} on {r.f_df_num:.1f} and "
+                       f"{r.f_df_den:.1f} df, adjusted p {r.p_adjusted:.4f}); largest move: {r.largest_move}")
         out.append(f"{len(self.tests)} profile groups tested, {int(self.tests['shifted'].sum())} shifted, after "
                    f"{ADJUST_METHODS[self.adjust]} adjustment at the {1 - self.level:g} level.")
         return out
 
 
+TEST_COLUMNS = ["group", "base_from", "base_to", "pearson_chi2", "design_effect", "df", "chi2_corrected", "p_chi2",
+                "f", "f_df_num", "f_df_den", "p", "largest_move"]
+
+
 def compare_composition(book: Codebook, a: pd.DataFrame, b: pd.DataFrame, wave_a: str, wave_b: str,
                         groups: list[str] | None = None, adjust: str = "bh", level: float = 0.95) -> CompositionResult:
-    """Compare the make-up of wave b (later) with wave a on each profile group, unweighted and weighted."""
+    """Compare the weighted make-up of wave b (later) with wave a on each profile group.
+
+    One Rao-Scott test per group on the stacked waves x levels table (tracker.methods.raoscott;
+    the verdict reads the second-order F), adjusted across the groups by ``adjust``.
+    """
     groups = list(groups if groups is not None else book.profile)
     share_rows, test_rows = [], []
-    for g in groups:
+    for g in groups:  # a loop over profile groups
         levels = list(book.groups[g].levels)
-        stats_ = {}
-        for key, table in (("from", a), ("to", b)):
-            labels = group_labels(book, table, g)
-            w = weights_of(book, table)
-            strata, psu = design_of(book, table)
-            inside = np.isin(labels, levels)
-            n = int(inside.sum())
-            pw, Vw = share_covariance(labels, levels, w, strata, psu)
-            pu, Vu = share_covariance(labels, levels, np.ones(len(table)), None, None)
-            stats_[key] = (n, pw, Vw, pu, Vu)
-        (n1, pw1, Vw1, pu1, Vu1), (n2, pw2, Vw2, pu2, Vu2) = stats_["from"], stats_["to"]
+        labs = [group_labels(book, t, g) for t in (a, b)]
+        n1, n2 = (int(np.isin(lab, levels).sum()) for lab in labs)
         if n1 == 0 or n2 == 0:  # the group's variable is not in one of the waves
             continue
-        chi_w, delta, p_w, df = rao_scott(pw1, Vw1, n1, pw2, Vw2, n2, Vu1, Vu2)
-        chi_u, _, p_u, _ = rao_scott(pu1, Vu1, n1, pu2, Vu2, n2, Vu1, Vu2)
+        designs = [design_labels(book, t) for t in (a, b)]
+        pi, V, n, df, (pw1, pw2) = stacked_shares(labs, levels, [weights_of(book, t) for t in (a, b)],
+                                                  [d[0] for d in designs], [d[1] for d in designs],
+                                                  book.single_cluster_rule)
+        keep = np.tile((pw1 + pw2) > 0, 2)  # a level empty in both waves is not part of the table
+        C = int(keep.sum() // 2)
+        if C < 2:
+            continue
+        rs = rao_scott_table(pi[keep], V[np.ix_(keep, keep)], n, df, 2, C)
+        pu1, pu2 = (np.array([(lab == lev).sum() for lev in levels]) / max(1, np.isin(lab, levels).sum())
+                    for lab in labs)
         moves = pw2 - pw1
         j = int(np.argmax(np.abs(moves)))
-        test_rows.append({"group": g, "base_from": n1, "base_to": n2, "chi2_weighted": chi_w, "design_effect": delta,
-                          "df": df, "p_weighted": p_w, "chi2_unweighted": chi_u, "p_unweighted": p_u,
-                          "largest_move": f"{levels[j]} {pw1[j]:.0%} to {pw2[j]:.0%}"})
+        test_rows.append({"group": g, "base_from": n1, "base_to": n2, "pearson_chi2": rs.pearson,
+                          "design_effect": rs.mean_deff, "df": rs.chi2_df, "chi2_corrected": rs.chi2,
+                          "p_chi2": rs.chi2_p, "f": rs.f, "f_df_num": rs.f_df_num, "f_df_den": rs.f_df_den,
+                          "p": rs.f_p, "largest_move": f"{levels[j]} {pw1[j]:.1%} to {pw2[j]:.1%}"})
         for k, lev in enumerate(levels):
             share_rows.append({"group": g, "level": lev, "share_from_unweighted": pu1[k], "share_to_unweighted": pu2[k],
                                "share_from_weighted": pw1[k], "share_to_weighted": pw2[k],
                                "move_weighted": pw2[k] - pw1[k], "move_unweighted": pu2[k] - pu1[k]})
-    tests = pd.DataFrame(test_rows, columns=["group", "base_from", "base_to", "chi2_weighted", "design_effect", "df",
-                                             "p_weighted", "chi2_unweighted", "p_unweighted", "largest_move"])
-    tests["p_adjusted"] = adjust_pvalues(tests["p_weighted"].to_numpy(float), adjust)
+    tests = pd.DataFrame(test_rows, columns=TEST_COLUMNS)
+    tests["p_adjusted"] = adjust_pvalues(tests["p"].to_numpy(float), adjust)
     tests["shifted"] = tests["p_adjusted"] <= 1 - level
     shares = pd.DataFrame(share_rows)
     if len(shares):

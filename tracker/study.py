@@ -77,6 +77,12 @@ class AddReport:
         return out
 
 
+def check_level(level: float) -> None:
+    """Refuse a confidence level outside (0.5, 1)."""
+    if not 0.5 < level < 1:
+        raise TrackerError(f"--level {level}: give a confidence level between 0.5 and 1, e.g. 0.95")
+
+
 def parse_date(text: str) -> str:
     try:
         return dt.date.fromisoformat(str(text).strip()).isoformat()
@@ -182,8 +188,25 @@ class Study:
                 pass
         table, found = check_wave(self.codebook, wf, label or "", order, rake=rake)
         problems.extend(found)
+        if not any(p.severity == "error" for p in found) and len(table):
+            problems.extend(self._design_problems(table))
         report = CheckReport(str(file), len(wf.table), tuple(problems))
         return report, table, wf
+
+    def _design_problems(self, table: pd.DataFrame) -> list[Problem]:
+        """Strata holding a single cluster, in total and in each subgroup: a warning, or an
+        error under the rule single_cluster_strata: refuse."""
+        from .estimates import single_cluster_lines
+
+        book = self.codebook
+        lines = single_cluster_lines(book, table)
+        column = book.strata or ""
+        out = []
+        for i, line in enumerate(lines):
+            total = i == 0 and not line.startswith("subgroup ")
+            severity = "error" if total and book.single_cluster_rule == "refuse" else "warning"
+            out.append(Problem(severity, column, line))
+        return out
 
     def add(self, file: str | Path, wave: str, date: str, encoding: str | None = None,
             replace: bool = False, rake: bool = False, cap: tuple[float, float] | None = None) -> AddReport:
@@ -281,13 +304,14 @@ class Study:
             self._entry(lab)
         return [lab for lab in self.labels if lab in labels]
 
-    def _wave_rows(self, label: str, metrics: list, groups: list[str], level: float) -> pd.DataFrame:
+    def _wave_rows(self, label: str, metrics: list, groups: list[str], level: float,
+                   interval: str = "wilson") -> pd.DataFrame:
         from .estimates import wave_estimates
 
-        key = ("est", label, tuple(m.name for m in metrics), tuple(groups), level)
+        key = ("est", label, tuple(m.name for m in metrics), tuple(groups), level, interval)
         if key not in self._cache:
             self._cache[key] = wave_estimates(self.codebook, self.load(label), metrics, groups, label,
-                                              self.dates()[label], level)
+                                              self.dates()[label], level, interval=interval)
         return self._cache[key]
 
     def _pooled_rows(self, labels: list[str], metrics: list, groups: list[str], level: float) -> pd.DataFrame:
@@ -299,17 +323,20 @@ class Study:
         name = f"{labels[0]}..{labels[-1]}" if len(labels) > 1 else labels[0]
         return wave_estimates(self.codebook, table, metrics, groups, name, self.dates()[labels[-1]], level, sample)
 
-    def estimates(self, metrics=None, by=None, waves=None, level: float = 0.95, detail: bool = False) -> pd.DataFrame:
+    def estimates(self, metrics=None, by=None, waves=None, level: float = 0.95, detail: bool = False,
+                  interval: str = "wilson") -> pd.DataFrame:
         """One row per wave x subgroup x metric: value, bases, SE, interval, reliability.
 
         ``by`` lists subgroup splits (default: every group in the codebook; [] for totals
         only). Metrics not asked in a wave are left out of that wave. ``detail`` keeps the
-        sufficient statistics (variance, sum of squared weights, design df).
+        sufficient statistics (variance, sum of squared weights, design df). ``interval``
+        chooses the interval of shares: 'wilson' or 'korn-graubard' (tracker.kinds.INTERVALS).
         """
         from .estimates import COLUMNS
 
+        check_level(level)
         ms, gs, ws = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
-        out = pd.concat([self._wave_rows(w, ms, gs, level) for w in ws], ignore_index=True)
+        out = pd.concat([self._wave_rows(w, ms, gs, level, interval) for w in ws], ignore_index=True)
         out = out[out["base"] > 0].reset_index(drop=True)
         return out if detail else out[COLUMNS]
 
@@ -339,12 +366,11 @@ class Study:
         mix on that group and the part within its levels, with the change standardised to
         the earlier wave's mix and its test (``result.mix``; see docs/methods.md)."""
         from .changes import ChangeResult, compare, resolve_against
-        from .estimates import overlap_covariance
+        from .estimates import wave_covariance
 
         labels = self._pick_waves()
         wave = wave or labels[-1]
-        if not 0.5 < level < 1:
-            raise TrackerError(f"--level {level}: give a confidence level between 0.5 and 1, e.g. 0.95")
+        check_level(level)
         ms, gs = self._pick_metrics(metrics), self._pick_groups(by)
         others, note = resolve_against(labels, self.dates(), wave, against)
         now = self._wave_rows(wave, ms, gs, level)
@@ -352,11 +378,16 @@ class Study:
                 else self._pooled_rows(others, ms, gs, level))
         notes = [note]
         cov = None
-        if len(others) == 1 and self.codebook.id:
-            c, matched = overlap_covariance(self.codebook, self.load(wave), self.load(others[0]), ms, gs, now, then)
-            if matched:
+        if len(others) == 1:
+            c, shared, unit = wave_covariance(self.codebook, self.load(wave), self.load(others[0]), ms, gs, now, then)
+            if shared and unit == "respondents":
                 cov = c
-                notes.append(f"{matched:,} respondents answered both waves: their covariance is taken into account")
+                notes.append(f"{shared:,} respondents answered both waves: their covariance is taken into account")
+            elif shared:
+                cov = c
+                notes.append(f"{shared:,} clusters appear in both waves: their covariance is taken into account "
+                             f"(write waves_share_clusters: false in the codebook if a cluster label can name "
+                             f"different clusters in different waves)")
         table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level)
         mix_rows = None
         if mix is not None:
@@ -367,7 +398,7 @@ class Study:
 
     def _mix(self, ms, others, wave, var, adjust, level) -> pd.DataFrame:
         from .composition import mix_table
-        from .significance import adjust_pvalues
+        from .methods.tests import adjust_pvalues
 
         if var not in self.codebook.groups:
             raise TrackerError(f"--mix {var}: not a group of this study ({', '.join(self.codebook.groups) or 'none'})")
@@ -433,6 +464,7 @@ class Study:
         of every metric x subgroup series; see docs/methods.md."""
         from .trends import fit_trends
 
+        check_level(level)
         if adjust not in ("bh", "holm", "by", "none"):
             raise TrackerError(f"--adjust {adjust}: use one of bh, holm, by, none")
         ms = self._pick_metrics(metrics)
@@ -464,7 +496,7 @@ class Study:
         """Every wave against the one before it, for the given metrics and subgroups, adjusted
         as one family across all the steps (what a trend chart marks)."""
         from .changes import compare
-        from .significance import adjust_pvalues
+        from .methods.tests import adjust_pvalues
 
         ms, gs, labels = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
         every = self._pick_metrics()  # computed once for all metrics, then narrowed: charts reuse it

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .significance import ADJUST_METHODS, adjust_pvalues
+from .methods.tests import ADJUST_METHODS, adjust_pvalues
 
 MIN_WAVES = 4
 

@@ -1,0 +1,152 @@
+"""The registry of metric kinds: everything that differs between a share, a mean and a balance.
+
+Each kind says what a respondent contributes, how its interval, reliability, change
+interval and minimum detectable change are made (from :mod:`tracker.methods`), and how its
+values are shown. A new kind is one class here plus its entry in :data:`KINDS`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+
+from .methods.intervals import korn_graubard_interval, newcombe_interval, t_interval, wilson_interval
+from .methods.power import min_detectable_change, min_detectable_share_change
+
+__all__ = ["INTERVALS", "KINDS", "Kind", "flag_text"]
+
+#: Interval choices for shares (means and balances always use t).
+INTERVALS = {
+    "wilson": "Wilson score interval on the effective base, t quantile on the design degrees of freedom",
+    "korn-graubard": "Korn-Graubard exact interval on the degrees-of-freedom adjusted effective base",
+}
+
+Mask = Callable[[tuple], tuple[np.ndarray, np.ndarray]]
+
+
+def flag_text(pairs: list[tuple[np.ndarray, str]], n: int) -> np.ndarray:
+    """Join the texts of the masks that hold, per cell ('; ' between), without repeats."""
+    out = np.full(n, "", dtype=object)
+    for mask, text in pairs:
+        mask = np.asarray(mask, bool)
+        out = np.where(mask, np.where(out == "", text, out + "; " + text), out)
+    return out
+
+
+class Kind:
+    """Base of the metric kinds; the subclasses fill in what differs."""
+
+    name = ""
+    test = "t on the design variance"
+    scale = 1.0          # shown values are value x scale
+    unit = ""            # after a shown value
+    change_unit = ""     # after a shown change
+    decimals = 2
+
+    def values(self, codes_mask: Mask, numeric: Callable[[], tuple[np.ndarray, np.ndarray]], metric) \
+            -> tuple[np.ndarray, np.ndarray]:
+        """(what each respondent contributes, who has an answer)."""
+        raise NotImplementedError
+
+    def interval(self, value, se, design_base, n, df, level, method="wilson"):
+        return t_interval(value, se, df, level)
+
+    def reliability(self, value, lo, hi, design_base, n, df, level):
+        """(reliable, flag texts): not reliable under an effective base of 30 (common practice,
+        no source); flagged for review under 8 degrees of freedom."""
+        low_n = ~(np.minimum(design_base, n) >= 30)
+        return ~low_n, [(low_n, "effective base under 30"), (df < 8, "under 8 degrees of freedom")]
+
+    def change_interval(self, d, se, df, level, p1, n1, df1, p0, n0, df0, paired):
+        return t_interval(d, se, df, level)
+
+    def min_detectable(self, p0, v0, n1, cov, se, df, level):
+        return min_detectable_change(se, level, df=df)
+
+    # display
+    def fmt_value(self, v: float) -> str:
+        return f"{v * self.scale:.{self.decimals}f}{self.unit}"
+
+    def fmt_change(self, d: float, signed: bool = False) -> str:
+        text = f"{d * self.scale:+.{self.decimals}f}" if signed else f"{abs(d) * self.scale:.{self.decimals}f}"
+        return text + (f" {self.change_unit}" if self.change_unit else "")
+
+    def fmt_number(self, d: float) -> str:
+        return f"{abs(d) * self.scale:.{self.decimals}f}"
+
+
+class Share(Kind):
+    name = "share"
+    test = "t on the design variance (shares)"
+    scale, unit, change_unit, decimals = 100.0, "%", "points", 1
+
+    def values(self, codes_mask, numeric, metric):
+        y, answered = codes_mask(metric.codes)
+        return y.astype(float), answered
+
+    def interval(self, value, se, design_base, n, df, level, method="wilson"):
+        if method == "korn-graubard":
+            return korn_graubard_interval(value, design_base, n, df, level)
+        return wilson_interval(value, design_base, level, df)
+
+    def reliability(self, value, lo, hi, design_base, n, df, level):
+        """NCHS Data Presentation Standards for Proportions (Parker et al. 2017), from memory
+        (check the document's wording): not reliable when the effective base is under 30,
+        when the Korn-Graubard interval is 0.30 or more wide, or when it is wider than 0.05
+        and its width relative to the share is above 130 %; flagged for review under 8
+        degrees of freedom and at 0 % or 100 %. The rule always reads the Korn-Graubard
+        interval, whatever interval is shown."""
+        kg_lo, kg_hi = korn_graubard_interval(value, design_base, n, df, level)
+        width = kg_hi - kg_lo
+        low_n = ~(np.minimum(design_base, n) >= 30)
+        wide = ~low_n & (width >= 0.30)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            rel = np.where(value > 0, width / value, np.inf)
+        unstable = ~low_n & ~wide & (width > 0.05) & (rel > 1.30)
+        edge = (value == 0) | (value == 1)
+        reliable = ~(low_n | wide | unstable)
+        return reliable, [(low_n, "effective base under 30"), (wide, "interval 30 points wide or more"),
+                          (unstable, "interval too wide for the value"), (df < 8, "under 8 degrees of freedom"),
+                          (edge, "0% or 100%")]
+
+    def change_interval(self, d, se, df, level, p1, n1, df1, p0, n0, df0, paired):
+        lo, hi = newcombe_interval(p1, n1, p0, n0, level, df1, df0)
+        # with shared respondents or clusters the two waves are not independent: Wald form
+        wl, wh = t_interval(d, se, df, level)
+        return np.where(paired, wl, lo), np.where(paired, wh, hi)
+
+    def min_detectable(self, p0, v0, n1, cov, se, df, level):
+        return min_detectable_share_change(p0, v0, n1, cov, level, df=df)[0]
+
+    def fmt_value(self, v: float) -> str:
+        return f"{v * 100:.0f}%"
+
+
+class Mean(Kind):
+    name = "mean"
+    test = "t on the design variance (means)"
+
+    def values(self, codes_mask, numeric, metric):
+        x, answered = numeric()
+        return np.where(answered, x, 0.0), answered
+
+    def fmt_value(self, v: float) -> str:
+        return f"{v:.2f}"
+
+
+class Balance(Kind):
+    name = "balance"
+    test = "t on the design variance (balances)"
+    scale, unit, change_unit, decimals = 100.0, "", "points", 1
+
+    def values(self, codes_mask, numeric, metric):
+        plus, answered = codes_mask(metric.plus)
+        minus, _ = codes_mask(metric.minus)
+        return plus.astype(float) - minus, answered
+
+    def fmt_value(self, v: float) -> str:
+        return f"{v * 100:+.0f}"
+
+
+KINDS: dict[str, Kind] = {k.name: k for k in (Share(), Mean(), Balance())}
