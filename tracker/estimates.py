@@ -298,8 +298,10 @@ def single_cluster_lines(codebook: Codebook, table: pd.DataFrame, groups: list[s
     out = []
     lone = single_cluster_strata(strata, clusters)
     if lone.size:
-        out.append(f"{lone.size} stratum(s) hold a single cluster: {_names(names[lone])}; their variance follows "
-                   f"the rule single_cluster_strata: {rule} (docs/methods.md)")
+        then = ("the codebook refuses such a wave (single_cluster_strata: refuse); merge each with a neighbouring "
+                "stratum in the file or choose another rule (docs/codebook.md)" if rule == "refuse" else
+                f"their variance follows the rule single_cluster_strata: {rule} (docs/methods.md)")
+        out.append(f"{lone.size} stratum(s) hold a single cluster: {_names(names[lone])}; {then}")
     D, levels = group_matrix(codebook, table, list(codebook.groups) if groups is None else groups)
     for j in range(1, D.shape[1]):  # a loop over subgroup levels
         sub = single_cluster_strata(strata, clusters, D[:, j])
