@@ -264,3 +264,19 @@ def test_detectable_share_change_has_80_percent_power_under_its_own_variance():
     effect = NormalIndPower().solve_power(nobs1=600, ratio=1, alpha=0.05, power=0.8)
     k2 = (stats.norm.ppf(0.975) + stats.norm.ppf(0.8)) ** 2
     assert float(mde) == pytest.approx(effect * np.sqrt(0.25) / np.sqrt(1 + k2 / 600), rel=1e-3)
+
+
+def test_estimates_command_offers_the_korn_graubard_interval(tmp_path):
+    from click.testing import CliRunner
+
+    from tracker.cli import main
+
+    rng = np.random.default_rng(18)
+    study, _ = make(tmp_path, [clustered_wave(rng)])
+    runner = CliRunner()
+    args = ["estimates", str(tmp_path / "s"), "--metric", "top2", "--by", "total", "--format", "json"]
+    kg = pd.read_json(__import__("io").StringIO(runner.invoke(main, args + ["--interval", "korn-graubard"]).output))
+    api = study.estimates(metrics=["top2"], by=[], interval="korn-graubard")
+    assert np.allclose(kg["ci_low"], api["ci_low"], atol=1e-12) and np.allclose(kg["ci_high"], api["ci_high"])
+    bad = runner.invoke(main, args + ["--interval", "exact"])
+    assert bad.exit_code == 2 and "'exact' is not one of 'wilson', 'korn-graubard'" in bad.output

@@ -132,14 +132,16 @@ def _fmt_option(fn):
 @click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
 @click.option("--wave", "waves", multiple=True, help="Wave to show (repeatable; default all).")
 @click.option("--level", default=0.95, show_default=True, help="Confidence level of the intervals.")
+@click.option("--interval", type=click.Choice(["wilson", "korn-graubard"]), default="wilson", show_default=True,
+              help="Interval for shares (means and balances use t).")
 @_fmt_option
 @user_errors
-def estimates_cmd(study, metrics, by, waves, level, fmt):
+def estimates_cmd(study, metrics, by, waves, level, interval, fmt):
     """Every metric by wave and subgroup: value, bases, standard error, interval, flags."""
     from .formatting import render
 
     table = Study(study).estimates(metrics=list(metrics) or None, by=list(by) if by else None,
-                                   waves=list(waves) or None, level=level)
+                                   waves=list(waves) or None, level=level, interval=interval)
     click.echo(render(table, fmt), nl=False)
 
 

@@ -131,9 +131,6 @@ class Mean(Kind):
         x, answered = numeric()
         return np.where(answered, x, 0.0), answered
 
-    def fmt_value(self, v: float) -> str:
-        return f"{v:.2f}"
-
 
 class Balance(Kind):
     name = "balance"

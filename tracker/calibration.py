@@ -1,0 +1,359 @@
+"""Seeded simulation of the rates the tool promises, run through its own functions.
+
+Waves are drawn from a known superpopulation under a stratified, clustered design with
+unequal weights; each wave goes through the same code as a stored wave
+(:func:`tracker.estimates.wave_estimates`, :func:`tracker.estimates.wave_covariance`,
+:func:`tracker.changes.compare`, :func:`tracker.composition.compare_composition`), and the
+measured rates are set beside their nominal values with Monte Carlo standard errors.
+``scripts/calibrate.py`` writes the table to docs/validation.md; the test suite runs a
+small tier and checks the rates within Monte Carlo bounds.
+
+The model (common practice for such checks, no single source): every item is a latent
+normal b_c + e_i, with a cluster effect b_c ~ N(0, sigma_b^2) and e_i ~ N(0, 1); a share
+item is 1 below the threshold that gives the target share exactly, a 1-5 rating cuts the
+latent at thresholds that give known category shares. Waves that share clusters keep
+correlated cluster effects (0.8); respondents in both waves keep correlated latents (0.6).
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from .changes import compare
+from .codebook import Codebook, parse_codebook
+from .composition import compare_composition
+from .estimates import wave_covariance, wave_estimates
+from .methods.tests import adjust_pvalues
+
+__all__ = ["DESIGNS", "TIERS", "Design", "Rate", "run"]
+
+RATING = np.array([0.10, 0.15, 0.25, 0.30, 0.20])     # category shares of the 1-5 rating
+TRUTH = {"p50": 0.5, "p30": 0.3, "p10": 0.1, "p03": 0.03,
+         "rating_mean": float(RATING @ np.arange(1, 6)), "rating_balance": float(RATING[3:].sum() - RATING[:2].sum())}
+PROFILE = np.array([0.6, 0.4, 0.3]) / 1.3  # level 'a' drawn twice as often as its population share ...
+PROFILE_WEIGHT = np.array([0.5, 1.0, 1.0])  # ... and weighted down by half
+LEVEL = 0.95
+
+
+@dataclass(frozen=True)
+class Design:
+    """A sampling design: strata x clusters x respondents per cluster."""
+
+    name: str
+    strata: int
+    clusters: int
+    size: int
+    sigma_b: float = 0.3     # SD of the cluster effect on the latent scale
+    weight_sd: float = 0.5   # SD of log weights
+    subgroup: float = 80 / 960  # chance of being in the thin subgroup
+
+    @property
+    def n(self) -> int:
+        return self.strata * self.clusters * self.size
+
+    def describe(self) -> str:
+        return (f"{self.strata} strata x {self.clusters} clusters x {self.size} respondents = {self.n:,}; "
+                f"cluster effect SD {self.sigma_b} (latent), log-weight SD {self.weight_sd}; "
+                f"a subgroup of about {self.subgroup * self.n:.0f} respondents")
+
+
+DESIGNS = (Design("stratified clustered", 10, 8, 12), Design("two clusters per stratum", 30, 2, 16))
+
+
+@dataclass(frozen=True)
+class Tier:
+    pairs: int        # wave pairs per sharing scenario (coverage, size, Rao-Scott)
+    power_pairs: int  # wave pairs per share and effect size
+    fdr_reps: int     # replicates of the 80-test family
+
+
+TIERS = {"full": Tier(1500, 600, 600), "quick": Tier(240, 120, 120), "test": Tier(120, 80, 60)}
+
+
+@dataclass(frozen=True)
+class Rate:
+    """One measured rate beside its nominal value and target."""
+
+    design: str
+    what: str
+    setting: str
+    measured: float
+    mc_se: float
+    reps: int
+    target: tuple[float, float] | None = None   # (low, high); None = reported only
+    nominal: float | None = None
+
+    @property
+    def meets(self) -> bool | None:
+        if self.target is None:
+            return None
+        return self.target[0] <= self.measured <= self.target[1]
+
+    def within_mc(self, k: float = 3.0) -> bool:
+        """Inside the target widened by k Monte Carlo standard errors (what a small run can show)."""
+        return self.target is None or self.target[0] - k * self.mc_se <= self.measured <= self.target[1] + k * self.mc_se
+
+
+def _codebook(shares: list[str], rating: bool = True, profile: bool = True) -> Codebook:
+    yes_no = "{type: category, codes: {0: no, 1: yes}}"
+    lines = ["title: calibration", "id: rid", "weight: w", "strata: st", "clusters: cl", "variables:"]
+    lines += [f"  {s}: {yes_no}" for s in shares]
+    lines += ["  sub: {type: category, codes: {1: in, 2: out}}"]
+    if rating:
+        lines += ["  rating: {type: scale, codes: {1: a, 2: b, 3: c, 4: d, 5: e}}"]
+    if profile:
+        lines += ["  prof: {type: category, codes: {1: a, 2: b, 3: c}}"]
+    lines += ["groups:", "  sub: {variable: sub, merge: {in: [1]}}"]
+    if profile:
+        lines += ["  prof: {variable: prof}"]
+    lines += ["metrics:"] + [f"  {s}: {{variable: {s}, share: [1]}}" for s in shares]
+    if rating:
+        lines += ["  rating_mean: {variable: rating, mean: true}",
+                  "  rating_balance: {variable: rating, balance: {plus: [4, 5], minus: [1, 2]}}"]
+    if profile:
+        lines += ["profile: [prof]"]
+    return parse_codebook("\n".join(lines) + "\n")
+
+
+@dataclass
+class _Wave:
+    table: pd.DataFrame
+    latent: np.ndarray      # respondents x items (e), kept for respondents who come back
+    effects: np.ndarray     # clusters x items (b)
+
+
+def _draw(rng, d: Design, items: dict[str, float], tag: str, prev: _Wave | None = None, shared: float = 0.0,
+          recurring: bool = False) -> _Wave:
+    """One wave. ``items`` maps each share item to its true share; the rating is always drawn."""
+    n_cl = d.strata * d.clusters
+    k = len(items) + 1
+    if prev is not None and recurring:
+        effects = 0.8 * prev.effects + 0.6 * rng.normal(0, d.sigma_b, (n_cl, k))
+    else:
+        effects = rng.normal(0, d.sigma_b, (n_cl, k))
+    cluster = np.repeat(np.arange(n_cl), d.size)
+    n = cluster.size
+    e = rng.normal(size=(n, k))
+    back = np.zeros(n, bool)
+    if prev is not None and shared > 0:
+        back = np.tile(np.arange(d.size) < round(shared * d.size), n_cl)
+        e[back] = 0.6 * prev.latent[back] + 0.8 * e[back]
+    latent = effects[cluster] + e
+    sd = np.sqrt(1 + d.sigma_b**2)
+    cols = {name: (latent[:, j] < stats.norm.ppf(p) * sd).astype(int) for j, (name, p) in enumerate(items.items())}
+    cuts = stats.norm.ppf(np.cumsum(RATING)[:-1]) * sd
+    cols["rating"] = 1 + np.searchsorted(cuts, latent[:, -1])
+    u = rng.normal(0, 0.4, (n_cl, 3))
+    probs = PROFILE * np.exp(u)
+    probs /= probs.sum(axis=1, keepdims=True)
+    prof = (rng.random(n)[:, None] > np.cumsum(probs[cluster], axis=1)).sum(axis=1)
+    sub = np.where(rng.random(n) < d.subgroup, 1, 2)
+    w = np.exp(rng.normal(0, d.weight_sd, n))
+    ids = np.array([f"{tag}{i}" for i in range(n)], dtype=object)
+    if prev is not None and shared > 0:
+        old = prev.table
+        ids[back] = old["rid"].to_numpy()[back]
+        prof[back] = old["prof"].to_numpy()[back] - 1
+        sub[back] = old["sub"].to_numpy()[back]
+        w[back] = old["w"].to_numpy()[back] / PROFILE_WEIGHT[prof[back]]
+    label = "R" if recurring or prev is None else tag
+    table = pd.DataFrame({"rid": ids, "w": w * PROFILE_WEIGHT[prof], "st": cluster // d.clusters,
+                          "cl": [f"{label}{c}" for c in cluster], "sub": sub, "prof": prof + 1, **cols})
+    return _Wave(table, e, effects)
+
+
+def _pair(rng, book, d, items1, items2, shared, recurring, metrics, groups):
+    first = _draw(rng, d, items1, "a")
+    second = _draw(rng, d, items2, "b", first, shared, recurring)
+    a, b = first.table, second.table
+    est_a = wave_estimates(book, a, metrics, groups, "A", "2025-01-15")
+    est_b = wave_estimates(book, b, metrics, groups, "B", "2025-04-15")
+    cov, shared_units, _ = wave_covariance(book, b, a, metrics, groups, est_b, est_a)
+    changes = compare(est_b, est_a, None, cov if shared_units else None, "none", LEVEL)
+    return a, b, est_a, est_b, changes
+
+
+def _prop(x) -> tuple[float, float, int]:
+    x = np.asarray(x, float)
+    x = x[~np.isnan(x)]
+    r = float(x.mean()) if x.size else np.nan
+    return r, float(np.sqrt(r * (1 - r) / max(x.size, 1))), int(x.size)
+
+
+SHARES = {"p50": 0.5, "p10": 0.1, "p03": 0.03}
+MEASURES = ["p50", "p10", "p03", "rating_mean", "rating_balance"]
+LABELS = {"p50": "share 0.5", "p10": "share 0.1", "p03": "share 0.03", "p30": "share 0.3",
+          "rating_mean": "mean of a 1-5 rating", "rating_balance": "balance (4-5 minus 1-2)"}
+
+
+def _coverage_and_size(rng, d: Design, tier: Tier, out: list[Rate], deffs: list[float]) -> None:
+    book = _codebook(list(SHARES))
+    metrics = list(book.metrics.values())
+    groups = ["sub"]
+    scen = {"independent waves": (0.0, False), "30% shared respondents, recurring clusters": (0.3, True),
+            "70% shared respondents, recurring clusters": (0.7, True)}
+    cover = {(m, g, iv): [] for m in MEASURES for g in ("total", "sub") for iv in ("wilson", "korn-graubard")}
+    cover_reliable = {m: [] for m in MEASURES}
+    rs_p = []
+    for name, (shared, recurring) in scen.items():
+        reject, inside, change, se = ({m: [] for m in MEASURES} for _ in range(4))
+        for _ in range(tier.pairs):
+            a, b, est_a, est_b, ch = _pair(rng, book, d, SHARES, SHARES, shared, recurring, metrics, groups)
+            if not shared:
+                for est, table in ((est_a, a), (est_b, b)):
+                    _collect_coverage(book, est, table, metrics, groups, cover, cover_reliable, deffs)
+                rs = compare_composition(book, a, b, "A", "B", ["prof"], "none", LEVEL)
+                rs_p.append(float(rs.tests["p"].iloc[0]) <= 1 - LEVEL)
+            tot = ch[ch["group"] == "total"].set_index("metric")
+            for m in MEASURES:
+                r = tot.loc[m]
+                reject[m].append(float(r["p_raw"] <= 1 - LEVEL) if np.isfinite(r["p_raw"]) else np.nan)
+                inside[m].append(float(r["change_low"] <= 0 <= r["change_high"]))
+                change[m].append(r["change"])
+                se[m].append(r["se"])
+        for m in MEASURES:
+            rate, mc, k = _prop(reject[m])
+            out.append(Rate(d.name, "change-test size", f"{LABELS[m]}, total; {name}", rate, mc, k, (0.04, 0.06), 0.05))
+            rate, mc, k = _prop(inside[m])
+            out.append(Rate(d.name, "change-interval coverage", f"{LABELS[m]}, total; {name}", rate, mc, k,
+                            (0.94, 0.96), 0.95))
+            ratio = float(np.sqrt(np.mean(np.square(se[m]))) / np.std(change[m], ddof=1))
+            # delta method: the ratio's relative MC error is about 1 / sqrt(2 (reps - 1))
+            out.append(Rate(d.name, "SE of change / SD of change", f"{LABELS[m]}, total; {name}", ratio,
+                            ratio / np.sqrt(2 * (len(se[m]) - 1)), len(se[m]), (0.95, 1.05), 1.0))
+    for (m, g, iv), hits in cover.items():
+        rate, mc, k = _prop(hits)
+        if g == "total":
+            target = (0.94, 0.96)
+        else:
+            target = (0.93, 1.0) if m != "p03" else None
+        where = "total" if g == "total" else f"subgroup of about {d.subgroup * d.n:.0f}"
+        interval = "" if m.startswith("rating") else f", {iv}"
+        if m.startswith("rating") and iv != "wilson":
+            continue
+        out.append(Rate(d.name, "95% interval coverage", f"{LABELS[m]}, {where}{interval}", rate, mc, k, target, 0.95))
+    for m, hits in cover_reliable.items():
+        if m in SHARES:
+            rate, mc, k = _prop(hits)
+            out.append(Rate(d.name, "95% interval coverage, cells passing the reliability rule",
+                            f"{LABELS[m]}, subgroup of about {d.subgroup * d.n:.0f}, wilson", rate, mc, k, None, 0.95))
+    rate, mc, k = _prop(rs_p)
+    out.append(Rate(d.name, "Rao-Scott size", "profile with an over-sampled level (weights correct it); "
+                                               "independent waves", rate, mc, k, (0.04, 0.06), 0.05))
+
+
+def _collect_coverage(book, est, table, metrics, groups, cover, cover_reliable, deffs):
+    kg = wave_estimates(book, table, metrics, groups, "A", "2025-01-15", interval="korn-graubard")
+    for frame, iv in ((est, "wilson"), (kg, "korn-graubard")):
+        rows = frame[frame["subgroup"].isin(["Total", "in"])]
+        for r in rows.itertuples():
+            g = "total" if r.group == "total" else "sub"
+            truth = TRUTH[r.metric]
+            hit = float(r.ci_low <= truth <= r.ci_high) if np.isfinite(r.ci_low) else np.nan
+            cover[(r.metric, g, iv)].append(hit)
+            if iv == "wilson" and g == "sub" and r.reliable:
+                cover_reliable[r.metric].append(hit)
+            if iv == "wilson" and g == "total" and r.metric == "p50":
+                deffs.append(r.design_effect)
+
+
+def _power(rng, d: Design, tier: Tier, out: list[Rate]) -> None:
+    shares = {"p03": 0.03, "p10": 0.1, "p30": 0.3, "p50": 0.5}
+    book = _codebook(list(shares), rating=False, profile=False)
+    metrics = list(book.metrics.values())
+    # the detectable change the tool reports under no change (median over pairs)
+    reported = {m: [] for m in shares}
+    for _ in range(max(40, tier.power_pairs // 3)):
+        *_, ch = _pair(rng, book, d, shares, shares, 0.0, False, metrics, [])
+        for r in ch.itertuples():
+            reported[r.metric].append(r.min_detectable_change)
+    for m, p in shares.items():
+        mde = float(np.median(reported[m]))
+        for times in (1, 2):
+            moved = dict(shares)
+            moved[m] = min(p + times * mde, 0.999)  # a rise: the larger of rise and fall for p <= 0.5
+            hits = []
+            for _ in range(tier.power_pairs):
+                *_, ch = _pair(rng, book, d, shares, moved, 0.0, False, metrics, [])
+                r = ch.set_index("metric").loc[m]
+                hits.append(float(r["p_raw"] <= 1 - LEVEL))
+            rate, mc, k = _prop(hits)
+            what = "power at the reported detectable change" if times == 1 else "power at twice the detectable change"
+            target = (0.75, 0.85) if times == 1 else None
+            out.append(Rate(d.name, what, f"{LABELS[m]} rising by {times * mde * 100:.1f} points (unadjusted test)",
+                            rate, mc, k, target, 0.80 if times == 1 else None))
+
+
+def _fdr(rng, d: Design, tier: Tier, out: list[Rate]) -> None:
+    base = np.random.default_rng(99).uniform(0.2, 0.6, 80)
+    names = [f"f{i:02d}" for i in range(80)]
+    book = _codebook(names, rating=False, profile=False)
+    metrics = list(book.metrics.values())
+    real = set(names[:8])
+    before = dict(zip(names, base))
+    after = {k: v + (0.09 if k in real else 0.0) for k, v in before.items()}
+    fdp, power = [], []
+    for _ in range(tier.fdr_reps):
+        *_, ch = _pair(rng, book, d, before, after, 0.0, False, metrics, [])
+        sig = adjust_pvalues(ch["p_raw"].to_numpy(), "bh") <= 1 - LEVEL
+        is_real = ch["metric"].isin(real).to_numpy()
+        fdp.append((sig & ~is_real).sum() / max(sig.sum(), 1))
+        power.append((sig & is_real).sum() / len(real))
+    fdr = float(np.mean(fdp))
+    mc = float(np.std(fdp, ddof=1) / np.sqrt(len(fdp)))
+    out.append(Rate(d.name, "Benjamini-Hochberg false discovery rate", "80 tests of which 8 real (+9 points)",
+                    fdr, mc, len(fdp), (0.0, 0.05 + 2 * mc), 0.05))
+    out.append(Rate(d.name, "Benjamini-Hochberg power", "the 8 real changes of +9 points", float(np.mean(power)),
+                    float(np.std(power, ddof=1) / np.sqrt(len(power))), len(power), None, None))
+
+
+@dataclass
+class Report:
+    rates: list[Rate]
+    tier: str
+    seed: int
+    seconds: float
+    deff: dict[str, tuple[float, float, float]] = field(default_factory=dict)  # design -> (min, median, max)
+
+
+def _one_design(args) -> tuple[list[Rate], tuple[float, float, float]]:
+    d, tier, seed, verbose = args
+    t = TIERS[tier]
+    rng = np.random.default_rng(seed)
+    rates: list[Rate] = []
+    deffs: list[float] = []
+    for step in (_coverage_and_size, _power, _fdr):
+        if verbose:
+            print(f"{d.name}: {step.__name__.strip('_').replace('_', ' ')}", file=sys.stderr, flush=True)
+        if step is _coverage_and_size:
+            step(rng, d, t, rates, deffs)
+        else:
+            step(rng, d, t, rates)
+    return rates, (float(np.min(deffs)), float(np.median(deffs)), float(np.max(deffs)))
+
+
+def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DESIGNS, verbose: bool = False,
+        workers: int = 2) -> Report:
+    """Every rate of docs/validation.md for ``designs`` at one tier of replicates.
+
+    Each design runs in its own process with its own seed (``SeedSequence(seed).spawn``),
+    so the results do not depend on how many workers there are."""
+    start = time.perf_counter()
+    seeds = np.random.SeedSequence(seed).spawn(len(designs))
+    jobs = [(d, tier, s, verbose) for d, s in zip(designs, seeds)]
+    if workers > 1 and len(jobs) > 1:
+        from concurrent.futures import ProcessPoolExecutor
+
+        with ProcessPoolExecutor(max_workers=min(workers, len(jobs))) as pool:
+            results = list(pool.map(_one_design, jobs))
+    else:
+        results = [_one_design(j) for j in jobs]
+    rates = [r for part, _ in results for r in part]
+    deff = {d.name: dd for d, (_, dd) in zip(designs, results)}
+    return Report(rates, tier, seed, time.perf_counter() - start, deff)
