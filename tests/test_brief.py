@@ -42,9 +42,12 @@ def test_headline_lists_the_planted_drop_with_its_numbers(q2_brief, demo_study):
     assert f"base {int(big['base_from']):,} and {int(big['base_to']):,}" in text
     assert any(i.metric == "on_time_good" and i.mark == "fall" for i in q2_brief.headline)
     assert not any(i.metric == "info_good" for i in q2_brief.headline)
-    steady = {i.metric for i in q2_brief.steady}
-    assert "info_good" in steady
-    assert any("could detect a change of about" in i.text for i in q2_brief.steady)
+    # one verdict per move: the brief's sections hold exactly the table's steady and unclear totals
+    totals = row.xs("Total", level="subgroup")
+    assert {i.metric for i in q2_brief.steady} == set(totals.index[totals["verdict"] == "steady"])
+    assert {i.metric for i in q2_brief.unclear} == set(totals.index[totals["verdict"] == "unclear"])
+    assert "info_good" in {i.metric for i in q2_brief.steady + q2_brief.unclear}
+    assert any("lies within" in i.text and "either way" in i.text for i in q2_brief.steady)
 
 
 def test_latest_brief_trends_and_cautions(demo_study):
@@ -143,8 +146,8 @@ def test_charts_use_the_palette_and_tell_rise_from_fall_by_shape(demo_study, tmp
         assert f'"{red_green}"' not in spec.lower()
     frame = __import__("tracker.charts", fromlist=["trend_frame"]).trend_frame(demo_study, "on_time_good")
     row = frame.set_index("wave").loc["2025-Q2"]
-    assert row["direction"] == "fall" and row["base"] > 0
-    assert frame.set_index("wave").loc["2023-Q1", "direction"] == "first wave"
+    assert row["verdict"] == "fall" and row["base"] > 0
+    assert frame.set_index("wave").loc["2023-Q1", "verdict"] == "first wave"
     assert not np.isnan(row["fitted"])  # the shift levels are drawn
     safe = __import__("tracker.charts", fromlist=["trend_frame"]).trend_frame(demo_study, "safe")
     assert set(safe["segment"]) == {"before wording change", "after wording change"}

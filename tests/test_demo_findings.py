@@ -15,7 +15,7 @@ def _significant(result):
 def test_planted_sudden_drop_is_found(demo_study):
     result = demo_study.changes(wave="2025-Q2")
     row = result.table.set_index(["metric", "subgroup"]).loc[("on_time_good", "Total")]
-    assert row["significant"] and row["direction"] == "fall"
+    assert row["significant"] and row["verdict"] == "fall"
     assert row["change_high"] < 0
 
 
@@ -31,7 +31,7 @@ def test_pure_noise_measure_is_never_significant(demo_study):
 def test_wording_break_is_not_compared(demo_study):
     result = demo_study.changes(wave="2024-Q1")
     rows = result.table[result.table["metric"] == "safe"]
-    assert (rows["direction"] == "not tested").all()
+    assert (rows["verdict"] == "not tested").all()
     assert rows["flags"].str.contains("safety changed at 2024-Q1").all()
 
 

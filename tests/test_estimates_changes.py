@@ -350,7 +350,7 @@ def test_changes_command_lists_significant_first_with_footer(tmp_path):
     shown = pd.read_csv(__import__("io").StringIO(result.output))
     assert set(shown["metric"]) == {"top2", "avg", "bal"} and shown["significant"].all()
     result = CliRunner().invoke(main, ["changes", str(tmp_path / "s"), "--by", "g", "--adjust", "holm"])
-    assert "Holm family-wise error rate adjustment at the 0.05 level" in result.output
+    assert "Holm family-wise error rate adjustment across" in result.output
     assert "Significance is not importance" in result.output
     result = CliRunner().invoke(main, ["changes", str(tmp_path / "s"), "--against", "W9"])
     assert result.exit_code == 1 and "not 'previous', 'year-ago', 'pooled:K' or a stored wave label" in result.output
@@ -368,7 +368,7 @@ def test_low_base_cells_are_flagged_and_never_significant(tmp_path):
     t = study.changes(by=["g"]).table.set_index(["metric", "subgroup"])
     row = t.loc[("top2", "three")]
     assert row["change"] == 1.0
-    assert not row["significant"] and row["direction"] == "not tested"
+    assert not row["significant"] and row["verdict"] == "not tested"
     assert "effective base under 30" in row["flags"]
 
 

@@ -53,6 +53,8 @@ class Brief:
     trends: tuple[Item, ...]
     sample_notes: tuple[Item, ...]
     method: tuple[str, ...]
+    mix_moves: tuple[Item, ...] = ()
+    unclear: tuple[Item, ...] = ()
     cautions: tuple[str, ...] = CAUTIONS
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     charts: tuple[tuple[str, dict], ...] = ()
@@ -84,14 +86,30 @@ def change_sentence(row, level: float) -> str:
             f"base {int(row.base_from):,} and {int(row.base_to):,}.")
 
 
-def steady_sentence(row) -> str:
+def steady_sentence(row, limit: float, matters_given: bool) -> str:
+    """'Information good: 61% (was 62%); held steady: the change ... lies within 3.9 points either way'."""
     kind = row.kind
-    if row.direction == "not tested":
-        return (f"{row.metric_label}: {fmt_value(kind, row.value_to)} (was {fmt_value(kind, row.value_from)}); "
-                f"not tested: {row.flags}.")
+    what = ("the smallest change that matters for this measure" if matters_given
+            else "the change this comparison could detect with 80% power")
+    return (f"{row.metric_label}: {fmt_value(kind, row.value_to)} (was {fmt_value(kind, row.value_from)}); held "
+            f"steady: the whole interval of the change ({_span(kind, row.change_low, row.change_high)}) "
+            f"lies within {fmt_size(kind, limit)} either way, {what}.")
+
+
+def unclear_sentence(row, family: int) -> str:
+    """A move that is not significant but not ruled out either: never 'held steady'."""
+    kind = row.kind
+    who = row.metric_label if row.group == "total" else f"{row.metric_label}, {row.subgroup}"
+    return (f"{who}: {fmt_value(kind, row.value_to)} (was {fmt_value(kind, row.value_from)}), a move of "
+            f"{_signed(kind, row.change)} (interval {_span(kind, row.change_low, row.change_high)}). Not beyond the noise of the {family} comparisons made, but a change "
+            f"of this size is not ruled out either; this comparison could detect about "
+            f"{fmt_size(kind, row.min_detectable_change)}. Watch the next wave before reading it either way.")
+
+
+def not_tested_sentence(row) -> str:
+    kind = row.kind
     return (f"{row.metric_label}: {fmt_value(kind, row.value_to)} (was {fmt_value(kind, row.value_from)}); "
-            f"no clear change. This comparison could detect a change of about "
-            f"{fmt_size(kind, row.min_detectable_change)} (80% power), so a smaller move may have gone unseen.")
+            f"not tested: {row.flags}.")
 
 
 def trend_sentence(row, level: float) -> str:
@@ -129,17 +147,25 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     total_sig = tested_sig[tested_sig["group"] == "total"]
     head = total_sig.reindex(total_sig["change"].abs().sort_values(ascending=False).index)
     mixes = mix_notes(study, result, list(head["metric"]))
-    headline = tuple(Item(change_sentence(r, level) + (" " + mixes[r.metric] if r.metric in mixes else ""),
+    by_mix = {m for m, (_, explained) in mixes.items() if explained}
+    headline = tuple(Item(change_sentence(r, level) + (" " + mixes[r.metric][0] if r.metric in mixes else ""),
                           "fall" if r.change < 0 else "rise", r.metric, r.subgroup)
-                     for r in head.itertuples())
+                     for r in head.itertuples() if r.metric not in by_mix)
+    mix_moves = tuple(Item(change_sentence(r, level) + " " + mixes[r.metric][0], "note", r.metric, r.subgroup)
+                      for r in head.itertuples() if r.metric in by_mix)
     moved_totals = set(total_sig["metric"])
     sub = tested_sig[(tested_sig["group"] != "total") & ~tested_sig["metric"].isin(moved_totals)]
     sub = sub.reindex(sub["change"].abs().sort_values(ascending=False).index)
     subgroup_moves = tuple(Item(change_sentence(r, level) + " The total did not move significantly.",
                                 "fall" if r.change < 0 else "rise", r.metric, r.subgroup) for r in sub.itertuples())
-    totals = t[(t["group"] == "total") & ~t["significant"]]
-    steady = tuple(Item(steady_sentence(r), "flat" if r.direction != "not tested" else "note", r.metric)
-                   for r in totals.itertuples())
+    totals = t[t["group"] == "total"]
+    matters = study.matters()
+    steady = tuple(Item(steady_sentence(r, matters.get(r.metric, r.min_detectable_change), r.metric in matters),
+                        "flat", r.metric) for r in totals[totals["verdict"] == "steady"].itertuples())
+    family = result.family_size or result.n_tests
+    unclear_rows = totals[totals["verdict"] == "unclear"]
+    unclear_rows = unclear_rows.reindex(unclear_rows["change"].abs().sort_values(ascending=False).index)
+    unclear = tuple(Item(unclear_sentence(r, family), "note", r.metric) for r in unclear_rows.itertuples())
 
     trends = study.trends(adjust=adjust, level=level, until=wave)
     moving = trends[~trends["pattern"].isin(["steady", "too few waves"])]
@@ -147,7 +173,13 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     sub_moving = moving[(moving["group"] != "total") & ~moving["metric"].isin(set(total_moving["metric"]))]
     trend_items = [Item(trend_sentence(r, level), _trend_mark(r), r.metric, r.subgroup)
                    for r in pd.concat([total_moving, sub_moving]).itertuples()]
+    headline_metrics = {i.metric for i in headline}
     still = trends[(trends["group"] == "total") & (trends["pattern"] == "steady")]
+    for r in still[still["metric"].isin(headline_metrics)].itertuples():
+        trend_items.append(Item(f"{r.metric_label}: the move in {wave} is a single wave so far; before it the series "
+                                f"shows no trend or shift. A step needs later waves to confirm it, so brief it as the "
+                                f"latest wave's change, not yet as a new level.", "note", r.metric))
+    still = still[~still["metric"].isin(headline_metrics)]
     if len(still):
         trend_items.append(Item("Steady over the series: " + "; ".join(still["metric_label"]) + ".", "flat"))
     short = trends[(trends["group"] == "total") & (trends["pattern"] == "too few waves")]
@@ -159,7 +191,9 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     method = (
         f"Compared: {wave} with {result.against}. {n_tests} tests (every metric in total and in every subgroup), "
         f"{n_sig} significant at the {1 - level:g} level after {ADJUST_METHODS[adjust]} adjustment; only "
-        f"adjusted results are called significant.",
+        f"adjusted results are called significant. 'Held steady' means the whole interval of the change lies "
+        f"within the smallest change that matters (by default the change the comparison could detect); a move "
+        f"that is neither is 'not clear either way'.",
         "Every change is tested with t on its design-based variance (Taylor linearization with the study's "
         "weights, strata and clusters; minus the covariance of shared clusters or respondents) and the design's "
         "degrees of freedom. Shares get Newcombe's hybrid score interval for the difference. Intervals are "
@@ -199,13 +233,13 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     return Brief(
         title=study.codebook.title, wave=wave, against=result.against, headline=headline,
         subgroup_moves=subgroup_moves, steady=steady, trends=tuple(trend_items), sample_notes=tuple(sample),
-        method=method, tables=tables, charts=tuple(chart_list),
+        method=method, tables=tables, charts=tuple(chart_list), mix_moves=mix_moves, unclear=unclear,
     )
 
 
 _TABLE_COLS = ["metric_label", "group", "subgroup", "wave_from", "wave_to", "value_from", "value_to", "change",
                "change_low", "change_high", "base_from", "base_to", "effective_base_from", "effective_base_to",
-               "p_raw", "p_adjusted", "min_detectable_change", "direction", "flags"]
+               "p_raw", "p_adjusted", "min_detectable_change", "verdict", "flags"]
 _TREND_COLS = ["metric_label", "group", "subgroup", "first_wave", "last_wave", "waves", "latest_value",
                "slope_per_year", "slope_low", "slope_high", "between_wave_sd", "q_p", "pattern",
                "pattern_p_adjusted", "shift_wave", "level_before", "level_after", "blip_wave", "note"]
@@ -230,6 +264,8 @@ def _sample_notes(study, result, trends) -> list[Item]:
         notes.append(Item(f"{w}: {len(table):,} respondents; effective base {eff:,.0f} "
                           f"(weighting efficiency {eff / len(table):.0%}).", "note"))
     t = result.table
+    untested = t[(t["group"] == "total") & (t["verdict"] == "not tested") & ~t["flags"].str.contains("wording break")]
+    notes.extend(Item(not_tested_sentence(r), "note", r.metric) for r in untested.itertuples())
     flagged = t[t["flags"].str.contains("unreliable|no respondents", regex=True)]
     if len(flagged):
         ex = "; ".join(f"{r.metric_label}, {r.subgroup}" for r in flagged.head(5).itertuples())
@@ -254,14 +290,16 @@ def _sample_notes(study, result, trends) -> list[Item]:
     return notes
 
 
-def mix_notes(study, result, headline_metrics: list[str]) -> dict[str, str]:
-    """For headline metrics: a note when most of the change is due to the mix on a shifted profile group."""
+def mix_notes(study, result, headline_metrics: list[str]) -> dict[str, tuple[str, bool]]:
+    """For headline metrics: (a note, explained) when most of the change is due to the mix on a
+    shifted profile group; ``explained`` when, at the earlier wave's mix, the change is not
+    significant (the move then belongs with the make-up, not the headline)."""
     book = study.codebook
     if not book.profile or len(result.compared_with) != 1 or not headline_metrics:
         return {}
     comp = study.composition(wave=result.wave, against=result.compared_with[0], adjust=result.adjust,
                              level=result.level)
-    out: dict[str, str] = {}
+    out: dict[str, tuple[str, bool]] = {}
     for group in comp.tests.loc[comp.tests["shifted"], "group"]:
         mixed = study.changes(wave=result.wave, against=result.compared_with[0], by=[], metrics=headline_metrics,
                               adjust=result.adjust, level=result.level, mix=group).mix
@@ -273,12 +311,18 @@ def mix_notes(study, result, headline_metrics: list[str]) -> dict[str, str]:
             out[r.metric] = (f"Most of this change ({r.mix_share_of_change:.0%}) comes from the shift in the sample's "
                              f"mix on {group}; within its groups the change is {fmt_size(kind, r.within_part)}, and "
                              f"at the earlier wave's mix the change is {_signed(kind, r.standardised_change)} "
-                             f"({verdict}).")
+                             f"({verdict}).", not r.standardised_significant)
     return out
 
 
 def _signed(kind: str, d: float) -> str:
     return KINDS[kind].fmt_change(d, signed=True)
+
+
+def _span(kind: str, lo: float, hi: float) -> str:
+    """'-4.5 to +3.7 points'"""
+    k = KINDS[kind]
+    return f"{lo * k.scale:+.{k.decimals}f} to {k.fmt_change(hi, signed=True)}"
 
 
 # -- rendering ------------------------------------------------------------------------------
@@ -305,8 +349,10 @@ def write_brief(brief: Brief, path: str | Path) -> Path:
 
 SECTIONS = [
     ("headline", "What moved", "No measure moved significantly in total."),
+    ("mix_moves", "Moved with the sample's make-up", ""),
     ("subgroup_moves", "Moves in one subgroup only", "No subgroup moved on its own."),
-    ("steady", "Held steady", "Every measure moved."),
+    ("steady", "Held steady", "No measure can be called steady: see the next section."),
+    ("unclear", "Not clear either way", ""),
     ("trends", "Trends", "No series has enough waves for a trend."),
     ("sample_notes", "Sample notes", ""),
 ]
@@ -317,6 +363,8 @@ def render_markdown(brief: Brief) -> str:
     out = [f"# {brief.title}", "", f"Briefing for wave {brief.wave}, compared with {brief.against}.", ""]
     for attr, heading, empty in SECTIONS:
         items = getattr(brief, attr)
+        if not items and not empty:
+            continue
         out += [f"## {heading}", ""]
         out += [f"- {WORD[i.mark]}{i.text}" for i in items] or ([f"- {empty}"] if empty else [])
         out.append("")
@@ -336,6 +384,8 @@ def render_html(brief: Brief) -> str:
     chart_at = {"headline": [0]} if charts else {}
     for attr, heading, empty in SECTIONS:
         items = getattr(brief, attr)
+        if not items and not empty and attr not in chart_at:
+            continue
         parts.append(f"<h2>{e(heading)}</h2>")
         if items:
             parts.append("<ul>" + "".join(
@@ -376,6 +426,8 @@ def render_xlsx(brief: Brief) -> bytes:
     ws["A1"].font = Font(bold=True, size=14)
     ws.append([_safe_cell(f"Wave {brief.wave}, compared with {brief.against}")])
     for attr, heading, empty in SECTIONS:
+        if not getattr(brief, attr) and not empty:
+            continue
         ws.append([])
         ws.append([heading])
         ws.cell(ws.max_row, 1).font = Font(bold=True)

@@ -23,8 +23,30 @@ COLUMNS = [
     "value_from", "value_to", "change", "change_low", "change_high",
     "base_from", "base_to", "effective_base_from", "effective_base_to",
     "test", "statistic", "p_raw", "p_adjusted", "min_detectable_change",
-    "significant", "direction", "flags",
+    "significant", "verdict", "flags",
 ]
+
+#: The words of a verdict, the same in every table, chart and brief.
+VERDICTS = {
+    "rise": "a significant rise after adjustment",
+    "fall": "a significant fall after adjustment",
+    "steady": "the whole interval of the change lies within the smallest change that matters",
+    "unclear": "not beyond the noise of the comparisons made, but a change that matters is not ruled out",
+    "not tested": "a base too small, an interval too wide, or a wording break",
+}
+
+
+def verdict_of(testable, significant, change, low, high, mde, matters=None) -> np.ndarray:
+    """The verdict of each move (VERDICTS). 'steady' is a claim: the interval lies within
+    plus or minus the smallest change that matters (``matters``, else the minimum
+    detectable change), and the move itself is no larger than its detectable change;
+    anything else that is not significant is 'unclear'."""
+    change, low, high, mde = (np.asarray(x, float) for x in (change, low, high, mde))
+    limit = mde if matters is None else np.where(np.isnan(matters), mde, matters)
+    steady = (low >= -limit) & (high <= limit) & (np.abs(change) <= mde)
+    return np.where(~np.asarray(testable, bool), "not tested",
+                    np.where(significant & (change > 0), "rise", np.where(significant & (change < 0), "fall",
+                             np.where(steady, "steady", "unclear"))))
 
 
 @dataclass(frozen=True)
@@ -39,6 +61,7 @@ class ChangeResult:
     notes: tuple[str, ...] = field(default_factory=tuple)
     compared_with: tuple[str, ...] = ()
     mix: pd.DataFrame | None = None
+    family_size: int | None = None  # the comparisons the p-values were adjusted across
 
     @property
     def n_tests(self) -> int:
@@ -57,12 +80,14 @@ class ChangeResult:
 
     def footer(self) -> list[str]:
         alpha = 1 - self.level
+        family = self.family_size if self.family_size is not None else self.n_tests
         lines = [
-            f"{self.wave} against {self.against}: {self.n_tests} tests, {self.n_significant} significant "
-            f"after {ADJUST_METHODS[self.adjust]} adjustment at the {alpha:g} level "
-            f"({len(self.table) - self.n_tests} comparisons not tested).",
+            f"{self.wave} against {self.against}: {self.n_tests} of these comparisons tested, {self.n_significant} "
+            f"significant after {ADJUST_METHODS[self.adjust]} adjustment across {family} comparisons at the "
+            f"{alpha:g} level ({len(self.table) - self.n_tests} not tested).",
         ]
         lines.extend(self.notes)
+        lines.append("Verdicts: " + "; ".join(f"{k}: {v}" for k, v in VERDICTS.items()) + ".")
         lines.append("Significance is not importance; intervals cover sampling error only; a change in the "
                      "sample's make-up can move a measure; small bases are flagged and never called significant.")
         return lines
@@ -115,7 +140,8 @@ def resolve_against(labels: list[str], dates: dict[str, str], wave: str, against
 
 
 def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | None = None,
-            covariance: np.ndarray | None = None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+            covariance: np.ndarray | None = None, adjust: str = "bh", level: float = 0.95,
+            matters: dict[str, float] | None = None) -> pd.DataFrame:
     """Test every cell of ``now`` against the same cell of ``then`` (rows from the estimates step).
 
     The variance of a change is the design variance itself, V_to + V_from - 2 Cov (Cov
@@ -127,7 +153,8 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     interval on the effective bases (the Wald form when the waves are not independent)
     and a detectable change with the variance under the alternative. ``blocked`` maps
     metric to the reason no test is made (a wording break). All tested rows form one
-    family, adjusted by ``adjust``.
+    family, adjusted by ``adjust``. ``matters`` maps a metric to the smallest change that
+    matters, in value units (see :func:`verdict_of`).
     """
     if adjust not in ADJUST_METHODS:
         raise TrackerError(f"--adjust {adjust}: use one of {', '.join(ADJUST_METHODS)}")
@@ -171,8 +198,8 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     testable &= np.isfinite(p_raw)
     p_adj = adjust_pvalues(np.where(testable, p_raw, np.nan), adjust)
     sig = testable & (p_adj <= 1 - level)
-    direction = np.where(~testable, "not tested",
-                         np.where(sig & (d > 0), "rise", np.where(sig & (d < 0), "fall", "no clear change")))
+    limit = m["metric"].map(matters or {}).to_numpy(float)
+    verdict = verdict_of(testable, sig, d, lo, hi, mde, limit)
     out = pd.DataFrame({
         "metric": m["metric"], "metric_label": m["metric_label_to"], "kind": kind,
         "group": m["group"], "subgroup": m["subgroup"],
@@ -183,7 +210,7 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
         "test": tests,
         "statistic": stat, "p_raw": np.where(testable, p_raw, np.nan), "p_adjusted": p_adj,
         "min_detectable_change": mde,
-        "significant": sig, "direction": direction, "flags": flags,
+        "significant": sig, "verdict": verdict, "flags": flags,
         "se": se, "df": df, "covariance": cov,
     })
     return out

@@ -22,9 +22,9 @@ OKABE_ITO = {
     "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "reddish purple": "#CC79A7",
 }
 MUTED = "#999999"
-STATUS_ORDER = ["rise", "fall", "no clear change", "not tested", "first wave"]
-STATUS_COLOUR = [OKABE_ITO["blue"], OKABE_ITO["vermillion"], MUTED, "#cccccc", MUTED]
-STATUS_SHAPE = ["triangle-up", "triangle-down", "circle", "circle", "circle"]
+STATUS_ORDER = ["rise", "fall", "steady", "unclear", "not tested", "first wave"]
+STATUS_COLOUR = [OKABE_ITO["blue"], OKABE_ITO["vermillion"], MUTED, "#666666", "#cccccc", "#cccccc"]
+STATUS_SHAPE = ["triangle-up", "triangle-down", "circle", "diamond", "cross", "square"]
 FONT = "Helvetica, Arial, sans-serif"
 
 
@@ -62,12 +62,12 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
     out["fitted"] = fitted_values(trends, est).to_numpy() if len(est) else np.nan
     if len(steps):
         steps = steps.rename(columns={"wave_to": "wave"})[
-            ["metric", "group", "subgroup", "wave", "direction", "change", "p_adjusted", "flags"]]
+            ["metric", "group", "subgroup", "wave", "verdict", "change", "p_adjusted", "flags"]]
         out = out.merge(steps.rename(columns={"flags": "change_flags"}), on=["metric", "group", "subgroup", "wave"],
                         how="left")
     else:
-        out["direction"], out["change"], out["p_adjusted"], out["change_flags"] = np.nan, np.nan, np.nan, ""
-    out["direction"] = out["direction"].fillna("first wave")
+        out["verdict"], out["change"], out["p_adjusted"], out["change_flags"] = np.nan, np.nan, np.nan, ""
+    out["verdict"] = out["verdict"].fillna("first wave")
     out["segment"] = "series"
     if metric in starts:
         start_rank = labels.index(starts[metric])
@@ -105,7 +105,7 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
         alt.Tooltip("value_shown:Q", title="value", format=".1f" if unit != "mean" else ".2f"),
         alt.Tooltip("ci_low_shown:Q", title="interval from", format=".1f" if unit != "mean" else ".2f"),
         alt.Tooltip("ci_high_shown:Q", title="interval to", format=".1f" if unit != "mean" else ".2f"),
-        alt.Tooltip("direction:N", title="change from wave before"),
+        alt.Tooltip("verdict:N", title="change from wave before"),
         alt.Tooltip("change_shown:Q", title="change", format="+.1f" if unit != "mean" else "+.2f"),
         alt.Tooltip("base:Q", title="base", format=","),
         alt.Tooltip("effective_base:Q", title="effective base", format=",.0f"),
@@ -125,9 +125,9 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
     legend = alt.Legend(title="change from the wave before", orient="bottom")
     points = alt.Chart().mark_point(filled=True, size=70).encode(
         x=x, y=y,
-        color=alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=legend),
-        shape=alt.Shape("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=legend),
-        opacity=alt.condition("datum.direction == 'rise' || datum.direction == 'fall'", alt.value(1.0),
+        color=alt.Color("verdict:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=legend),
+        shape=alt.Shape("verdict:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=legend),
+        opacity=alt.condition("datum.verdict == 'rise' || datum.verdict == 'fall'", alt.value(1.0),
                               alt.value(0.55)),
         tooltip=tooltip)
     bases = alt.Chart().mark_text(fontSize=8, color="#555555", angle=0, baseline="bottom").encode(
@@ -150,7 +150,7 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
     subtitle = [
         f"Band: {level:.0%} interval (sampling error only). Numbers along the foot: base.",
         f"Triangles: change from the wave before significant at {1 - level:g}, after {ADJUST_METHODS[adjust]}",
-        f"adjustment across the {a['n_steps']} changes drawn. Dashed: fitted trend or shift levels.",
+        "adjustment across every metric and subgroup of that wave (as in its brief). Dashed: fitted trend or shift.",
     ]
     title = alt.TitleParams(a["label"], subtitle=subtitle, anchor="start", fontSize=14, subtitleFontSize=10)
     if by:
@@ -187,14 +187,14 @@ def change_overview(result, totals_only: bool = False, width: int = 380) -> alt.
             x=alt.X("mde_low:Q", title=f"change, {unit}"), x2="min_detectable_change_shown:Q", y=y)
         zero = alt.Chart(pd.DataFrame({"zero": [0]})).mark_rule(color=OKABE_ITO["black"]).encode(x="zero:Q")
         legend = alt.Legend(title="change", orient="bottom")
-        colour = alt.Color("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=legend)
+        colour = alt.Color("verdict:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=legend)
         bars = base.mark_rule(strokeWidth=1.5).encode(
             x="change_low_shown:Q", x2="change_high_shown:Q", y=y, color=colour)
         dots = base.mark_point(filled=True, size=70).encode(
             x="change_shown:Q", y=y, color=colour,
-            shape=alt.Shape("direction:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=legend),
+            shape=alt.Shape("verdict:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=legend),
             opacity=alt.condition("datum.significant", alt.value(1.0), alt.value(0.5)),
-            tooltip=[alt.Tooltip("row:N", title="measure"), alt.Tooltip("direction:N", title="verdict"),
+            tooltip=[alt.Tooltip("row:N", title="measure"), alt.Tooltip("verdict:N", title="verdict"),
                      alt.Tooltip("change_shown:Q", title="change", format="+.1f"),
                      alt.Tooltip("change_low_shown:Q", title="interval from", format="+.1f"),
                      alt.Tooltip("change_high_shown:Q", title="interval to", format="+.1f"),

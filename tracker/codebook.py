@@ -84,6 +84,7 @@ class Metric:
     minus: tuple = ()
     base_variable: str | None = None
     base_codes: tuple = ()
+    smallest_change: float | None = None  # the smallest change that matters, in the units shown
 
 
 @dataclass(frozen=True)
@@ -453,4 +454,10 @@ def _parse_metric(name: str, node: Any, variables: dict[str, Variable]) -> Metri
             raise _err(f"{path}.base.variable", f"{bv} is a {variables[bv].type} variable; a base needs codes")
         base_var = bv
         base_codes = _codes_of(variables[bv], base.get("codes"), f"{path}.base.codes")
-    return Metric(name, label, vname, kind, codes, plus, minus, base_var, base_codes)
+    smallest = node.get("smallest_change")
+    if smallest is not None and (isinstance(smallest, bool) or not isinstance(smallest, (int, float))
+                                 or not 0 < smallest < math.inf):
+        raise _err(f"{path}.smallest_change", f"{smallest!r}: give a positive number (percentage points for a "
+                                              f"share or balance, the mean's own units for a mean)")
+    return Metric(name, label, vname, kind, codes, plus, minus, base_var, base_codes,
+                  None if smallest is None else float(smallest))

@@ -340,6 +340,13 @@ class Study:
         out = out[out["base"] > 0].reset_index(drop=True)
         return out if detail else out[COLUMNS]
 
+    def matters(self) -> dict[str, float]:
+        """The smallest change that matters per metric (codebook ``smallest_change``), in value units."""
+        from .kinds import KINDS
+
+        return {m.name: m.smallest_change / KINDS[m.kind].scale for m in self.codebook.metrics.values()
+                if m.smallest_change is not None}
+
     def _breaks(self, metric):
         """(variable, wave) for each wording break of the metric's variable and base variable."""
         for vname in filter(None, (metric.variable, metric.base_variable)):
@@ -359,24 +366,60 @@ class Study:
         return out
 
     def changes(self, wave: str | None = None, against: str = "previous", by=None, metrics=None,
-                adjust: str = "bh", level: float = 0.95, mix: str | None = None):
+                adjust: str = "bh", level: float = 0.95, mix: str | None = None, family: str = "brief"):
         """Test what changed in ``wave`` (default: the latest) against another wave or pooled waves.
+
+        The p-values are adjusted in one family. By default (``family="brief"``) that is
+        every metric in total and in every subgroup of the comparison, the family the brief
+        tests, whatever ``metrics`` and ``by`` narrow the rows to; ``family="asked"`` adjusts
+        only across the comparisons asked for (and says that it differs from the brief).
 
         With ``mix=GROUP``, each total change is also split into the part due to the sample's
         mix on that group and the part within its levels, with the change standardised to
         the earlier wave's mix and its test (``result.mix``; see docs/methods.md)."""
-        from .changes import ChangeResult, compare, resolve_against
-        from .estimates import wave_covariance
+        from .changes import ChangeResult, resolve_against
 
+        if family not in ("brief", "asked"):
+            raise TrackerError(f"--family {family}: use brief (every metric and subgroup) or asked")
         labels = self._pick_waves()
         wave = wave or labels[-1]
         check_level(level)
         ms, gs = self._pick_metrics(metrics), self._pick_groups(by)
         others, note = resolve_against(labels, self.dates(), wave, against)
+        if family == "brief":
+            table, notes = self._compare(wave, others, self._pick_metrics(), self._pick_groups(), adjust, level)
+            keep = table["metric"].isin([m.name for m in ms]) & table["group"].isin(["total", *gs])
+            table = table[keep].reset_index(drop=True)
+            size = int(notes.pop())
+            notes.append(f"p-values adjusted across the {size:,} comparisons of {wave} against {others[-1] if len(others) == 1 else 'the pooled waves'} "
+                         f"(every metric in total and in every subgroup: the brief's family)")
+        else:
+            table, notes = self._compare(wave, others, ms, gs, adjust, level)
+            size = int(notes.pop())
+            notes.append(f"p-values adjusted across only the {size:,} comparisons asked for: a narrower family than "
+                         f"the brief's, so these verdicts can differ from the brief")
+        notes = [note, *notes]
+        mix_rows = None
+        if mix is not None:
+            mix_rows = self._mix(ms, others, wave, mix, adjust, level)
+            table = table.merge(mix_rows.drop(columns=["metric_label", "kind", "change"]).assign(group="total"),
+                                on=["metric", "group"], how="left")
+        return ChangeResult(table, wave, note.split(": ", 1)[-1], adjust, level, tuple(notes), tuple(others), mix_rows,
+                            size)
+
+    def _compare(self, wave: str, others: list[str], ms: list, gs: list[str], adjust: str, level: float):
+        """One family of comparisons; returns (table, notes + [family size as text])."""
+        from .changes import compare
+        from .estimates import wave_covariance
+
+        key = ("compare", wave, tuple(others), tuple(m.name for m in ms), tuple(gs), adjust, level)
+        if key in self._cache:
+            table, notes = self._cache[key]
+            return table, list(notes)
         now = self._wave_rows(wave, ms, gs, level)
         then = (self._wave_rows(others[0], ms, gs, level) if len(others) == 1
                 else self._pooled_rows(others, ms, gs, level))
-        notes = [note]
+        notes: list[str] = []
         cov = None
         if len(others) == 1:
             c, shared, unit = wave_covariance(self.codebook, self.load(wave), self.load(others[0]), ms, gs, now, then)
@@ -388,13 +431,10 @@ class Study:
                 notes.append(f"{shared:,} clusters appear in both waves: their covariance is taken into account "
                              f"(write waves_share_clusters: false in the codebook if a cluster label can name "
                              f"different clusters in different waves)")
-        table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level)
-        mix_rows = None
-        if mix is not None:
-            mix_rows = self._mix(ms, others, wave, mix, adjust, level)
-            table = table.merge(mix_rows.drop(columns=["metric_label", "kind", "change"]).assign(group="total"),
-                                on=["metric", "group"], how="left")
-        return ChangeResult(table, wave, note.split(": ", 1)[-1], adjust, level, tuple(notes), tuple(others), mix_rows)
+        table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level, self.matters())
+        notes.append(str(int(table["p_adjusted"].notna().sum())))
+        self._cache[key] = (table, tuple(notes))
+        return table, list(notes)
 
     def _mix(self, ms, others, wave, var, adjust, level) -> pd.DataFrame:
         from .composition import mix_table
@@ -493,30 +533,17 @@ class Study:
         return out[["wave", "pooled_waves", *COLUMNS[1:]]]
 
     def wave_steps(self, metrics=None, by=None, waves=None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
-        """Every wave against the one before it, for the given metrics and subgroups, adjusted
-        as one family across all the steps (what a trend chart marks)."""
-        from .changes import compare
-        from .methods.tests import adjust_pvalues
-
+        """Every wave against the one before it, for the given metrics and subgroups. Each step
+        keeps the p-values and verdicts of its own wave's comparison family (every metric in
+        total and in every subgroup, as ``changes`` and the brief of that wave report them)."""
         ms, gs, labels = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
-        every = self._pick_metrics()  # computed once for all metrics, then narrowed: charts reuse it
+        every, groups = self._pick_metrics(), self._pick_groups()
         parts = []
         for before, after in zip(labels, labels[1:]):
-            key = ("step", before, after, tuple(gs), level)
-            if key not in self._cache:
-                now = self._wave_rows(after, every, gs, level)
-                then = self._wave_rows(before, every, gs, level)
-                self._cache[key] = compare(now, then, self.break_reasons(every, [before], after), None, "none", level)
-            parts.append(self._cache[key])
+            table, _ = self._compare(after, [before], every, groups, adjust, level)
+            parts.append(table)
         if not parts:
             return pd.DataFrame()
         out = pd.concat(parts, ignore_index=True)
-        out = out[out["metric"].isin([m.name for m in ms])].reset_index(drop=True)
-        out["p_adjusted"] = adjust_pvalues(out["p_raw"].to_numpy(), adjust)
-        tested = out["p_adjusted"].notna()
-        out["significant"] = tested & (out["p_adjusted"] <= 1 - level)
-        d = out["change"].to_numpy()
-        out["direction"] = np.where(~tested, "not tested", np.where(
-            out["significant"] & (d > 0), "rise", np.where(out["significant"] & (d < 0), "fall", "no clear change")))
-        return out
-
+        keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
+        return out[keep].reset_index(drop=True)
