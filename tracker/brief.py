@@ -55,6 +55,7 @@ class Brief:
     method: tuple[str, ...]
     mix_moves: tuple[Item, ...] = ()
     unclear: tuple[Item, ...] = ()
+    data: dict = field(default_factory=dict)  # the analysis as plain data (Analysis.to_dict)
     cautions: tuple[str, ...] = CAUTIONS
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     charts: tuple[tuple[str, dict], ...] = ()
@@ -139,14 +140,15 @@ def trend_sentence(row, level: float) -> str:
 
 def build_brief(study, wave: str | None = None, against: str = "previous", adjust: str = "bh",
                 level: float = 0.95, charts: bool = True) -> Brief:
-    """Everything the brief says, from the study's changes, trends and estimates."""
-    result = study.changes(wave=wave, against=against, adjust=adjust, level=level)
+    """Everything the brief says, read from the wave's one analysis (Study.analysis)."""
+    analysis = study.analysis(wave=wave, against=against, adjust=adjust, level=level)
+    result = analysis.changes
     wave = result.wave
     t = result.table
     tested_sig = t[t["significant"]]
     total_sig = tested_sig[tested_sig["group"] == "total"]
     head = total_sig.reindex(total_sig["change"].abs().sort_values(ascending=False).index)
-    mixes = mix_notes(study, result, list(head["metric"]))
+    mixes = analysis.mix
     by_mix = {m for m, (_, explained) in mixes.items() if explained}
     headline = tuple(Item(change_sentence(r, level) + (" " + mixes[r.metric][0] if r.metric in mixes else ""),
                           "fall" if r.change < 0 else "rise", r.metric, r.subgroup)
@@ -167,7 +169,7 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     unclear_rows = unclear_rows.reindex(unclear_rows["change"].abs().sort_values(ascending=False).index)
     unclear = tuple(Item(unclear_sentence(r, family), "note", r.metric) for r in unclear_rows.itertuples())
 
-    trends = study.trends(adjust=adjust, level=level, until=wave)
+    trends = analysis.trends
     moving = trends[~trends["pattern"].isin(["steady", "too few waves"])]
     total_moving = moving[moving["group"] == "total"]
     sub_moving = moving[(moving["group"] != "total") & ~moving["metric"].isin(set(total_moving["metric"]))]
@@ -186,7 +188,7 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     for r in short.itertuples():
         trend_items.append(Item(f"{r.metric_label}: {r.note}.", "note", r.metric))
 
-    sample = _sample_notes(study, result, trends)
+    sample = _sample_notes(study, analysis)
     n_tests, n_sig = result.n_tests, result.n_significant
     method = (
         f"Compared: {wave} with {result.against}. {n_tests} tests (every metric in total and in every subgroup), "
@@ -234,6 +236,7 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         title=study.codebook.title, wave=wave, against=result.against, headline=headline,
         subgroup_moves=subgroup_moves, steady=steady, trends=tuple(trend_items), sample_notes=tuple(sample),
         method=method, tables=tables, charts=tuple(chart_list), mix_moves=mix_moves, unclear=unclear,
+        data=analysis.to_dict(),
     )
 
 
@@ -253,7 +256,8 @@ def _trend_mark(row) -> str:
     return "note"
 
 
-def _sample_notes(study, result, trends) -> list[Item]:
+def _sample_notes(study, analysis) -> list[Item]:
+    result, trends = analysis.changes, analysis.trends
     notes = []
     waves = [result.wave, *result.compared_with]
     book = study.codebook
@@ -275,11 +279,10 @@ def _sample_notes(study, result, trends) -> list[Item]:
         notes.append(Item(f"{rows['metric_label'].iloc[0]}: {rows['flags'].iloc[0].split(' | ')[0]}.", "note", metric))
     for r in trends[(trends["group"] == "total") & trends["note"].str.contains("wording break")].itertuples():
         notes.append(Item(f"{r.metric_label}: {r.note}; its trend uses only the waves since.", "note", r.metric))
-    overlap = [n for n in result.notes if "answered both waves" in n]
+    overlap = [n for n in result.notes if "answered both waves" in n or "appear in both waves" in n]
     notes.extend(Item(n + ".", "note") for n in overlap)
-    if book.profile and len(result.compared_with) == 1:
-        comp = study.composition(wave=result.wave, against=result.compared_with[0], adjust=result.adjust,
-                                 level=result.level)
+    comp = analysis.composition
+    if comp is not None:
         for r in comp.tests.itertuples():
             if r.shifted:
                 notes.append(Item(f"The sample's make-up shifted on {r.group}: {r.largest_move} of the weighted sample "
@@ -288,31 +291,6 @@ def _sample_notes(study, result, trends) -> list[Item]:
         if not comp.tests["shifted"].any():
             notes.append(Item(f"No shift in the weighted make-up on {', '.join(comp.tests['group'])}.", "flat"))
     return notes
-
-
-def mix_notes(study, result, headline_metrics: list[str]) -> dict[str, tuple[str, bool]]:
-    """For headline metrics: (a note, explained) when most of the change is due to the mix on a
-    shifted profile group; ``explained`` when, at the earlier wave's mix, the change is not
-    significant (the move then belongs with the make-up, not the headline)."""
-    book = study.codebook
-    if not book.profile or len(result.compared_with) != 1 or not headline_metrics:
-        return {}
-    comp = study.composition(wave=result.wave, against=result.compared_with[0], adjust=result.adjust,
-                             level=result.level)
-    out: dict[str, tuple[str, bool]] = {}
-    for group in comp.tests.loc[comp.tests["shifted"], "group"]:
-        mixed = study.changes(wave=result.wave, against=result.compared_with[0], by=[], metrics=headline_metrics,
-                              adjust=result.adjust, level=result.level, mix=group).mix
-        for r in mixed.itertuples():
-            if r.metric in out or not np.isfinite(r.mix_share_of_change) or r.mix_share_of_change <= 0.5:
-                continue
-            kind = r.kind
-            verdict = ("still significant" if r.standardised_significant else "not significant")
-            out[r.metric] = (f"Most of this change ({r.mix_share_of_change:.0%}) comes from the shift in the sample's "
-                             f"mix on {group}; within its groups the change is {fmt_size(kind, r.within_part)}, and "
-                             f"at the earlier wave's mix the change is {_signed(kind, r.standardised_change)} "
-                             f"({verdict}).", not r.standardised_significant)
-    return out
 
 
 def _signed(kind: str, d: float) -> str:
@@ -341,8 +319,10 @@ def write_brief(brief: Brief, path: str | Path) -> Path:
         data = render_markdown(brief).encode("utf-8")
     elif suffix == ".xlsx":
         data = render_xlsx(brief)
+    elif suffix == ".json":
+        data = render_json(brief).encode("utf-8")
     else:
-        raise TrackerError(f"{path}: give a file ending in .html, .md or .xlsx")
+        raise TrackerError(f"{path}: give a file ending in .html, .md, .xlsx or .json")
     write_atomic(path, data)
     return path
 
@@ -357,6 +337,19 @@ SECTIONS = [
     ("sample_notes", "Sample notes", ""),
 ]
 WORD = {"rise": "Up: ", "fall": "Down: ", "flat": "", "note": ""}
+
+
+def render_json(brief: Brief) -> str:
+    """The machine-readable brief: every comparison of the analysis (with its verdict), every
+    series' pattern, the make-up tests, and each section's items as the other forms show them."""
+    import json
+
+    doc = dict(brief.data)
+    doc["sections"] = {attr: [{"text": i.text, "mark": i.mark, "metric": i.metric, "subgroup": i.subgroup}
+                              for i in getattr(brief, attr)] for attr, _, _ in SECTIONS}
+    doc["method"] = list(brief.method)
+    doc["cautions"] = list(brief.cautions)
+    return json.dumps(doc, indent=1, ensure_ascii=False, allow_nan=False) + "\n"
 
 
 def render_markdown(brief: Brief) -> str:

@@ -45,7 +45,7 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
                 until: str | None = None) -> pd.DataFrame:
     """Everything the trend chart draws, one row per wave x subgroup (a plain DataFrame).
     ``until`` ends the series at that wave (a brief of an earlier wave sees no later one)."""
-    from .trends import fit_trends, fitted_values
+    from .trends import fitted_values
 
     groups = [by] if by else []
     labels = study.labels
@@ -57,9 +57,12 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
     steps = study.wave_steps(metrics=[metric], by=groups, waves=labels, adjust=adjust, level=level)
     m = study.codebook.metrics[metric]
     starts = study.segment_starts([m], labels)
-    trends = fit_trends(full, starts, adjust, level)
+    # the patterns of the analysis of the last wave drawn: one family for every series
+    every = study.trends(adjust=adjust, level=level, until=labels[-1])
+    trends = every[(every["metric"] == metric) & every["group"].isin(["total", *groups])]
+    t0 = study.dates()[labels[0]]
     out = est.copy()
-    out["fitted"] = fitted_values(trends, est).to_numpy() if len(est) else np.nan
+    out["fitted"] = fitted_values(trends, est, t0).to_numpy() if len(est) else np.nan
     if len(steps):
         steps = steps.rename(columns={"wave_to": "wave"})[
             ["metric", "group", "subgroup", "wave", "verdict", "change", "p_adjusted", "flags"]]
@@ -79,7 +82,8 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
     out["change_shown"] = out["change"] * f
     out["panel"] = np.where(out["group"] == "total", "Total", out["subgroup"])
     out["date"] = pd.to_datetime(out["fieldwork_date"])
-    trend_by = trends.set_index("subgroup")["pattern"].to_dict()
+    trend_by = trends.set_index("subgroup")["pattern"].to_dict() if by else \
+        trends[trends["group"] == "total"].set_index("subgroup")["pattern"].to_dict()
     out["pattern"] = out["subgroup"].map(trend_by)
     out.attrs.update(metric=metric, label=m.label, kind=m.kind, break_wave=starts.get(metric),
                      n_steps=int(steps["p_adjusted"].notna().sum()) if len(steps) else 0, adjust=adjust, level=level)

@@ -156,17 +156,19 @@ def estimates_cmd(study, metrics, by, waves, level, interval, fmt):
               help="Multiple-comparison control across every test of the call.")
 @click.option("--level", default=0.95, show_default=True, help="Confidence level (significance at 1 - level).")
 @click.option("--all", "show_all", is_flag=True, help="List every comparison, not only significant changes.")
+@click.option("--family", type=click.Choice(["brief", "asked"]), default="brief", show_default=True,
+              help="Adjust across every metric and subgroup (as the brief does), or only the comparisons asked for.")
 @click.option("--mix", help="Split each total change into the part due to the sample's mix on this group and the "
                             "part within its levels, with the change standardised to the earlier mix.")
 @_fmt_option
 @user_errors
-def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, mix, fmt):
+def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, family, mix, fmt):
     """What changed in a wave, tested with control of the many comparisons."""
     from .changes import COLUMNS
     from .formatting import render
 
     result = Study(study).changes(wave=wave, against=against, by=list(by) if by else None,
-                                  metrics=list(metrics) or None, adjust=adjust, level=level, mix=mix)
+                                  metrics=list(metrics) or None, adjust=adjust, level=level, mix=mix, family=family)
     if mix:
         click.echo(render(result.mix, fmt), nl=False)
         if fmt in ("table", "md"):
@@ -253,14 +255,15 @@ def chart_cmd(study, metric, by, overview, wave, against, adjust, level, output)
               help="previous, year-ago, a wave label, or pooled:K.")
 @click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True)
 @click.option("--level", default=0.95, show_default=True)
-@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False), help="brief.html, brief.md or brief.xlsx")
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False),
+              help="brief.html, brief.md, brief.xlsx or brief.json (every comparison and pattern, for other tools)")
 @user_errors
 def brief_cmd(study, wave, against, adjust, level, output):
     """Write the briefing: what moved, what held steady, trends, sample notes, method and cautions."""
     from .brief import build_brief, write_brief
 
-    if Path(output).suffix.lower() not in (".html", ".htm", ".md", ".xlsx"):
-        raise TrackerError(f"{output}: give a file ending in .html, .md or .xlsx")
+    if Path(output).suffix.lower() not in (".html", ".htm", ".md", ".xlsx", ".json"):
+        raise TrackerError(f"{output}: give a file ending in .html, .md, .xlsx or .json")
     brief = build_brief(Study(study), wave=wave, against=against, adjust=adjust, level=level,
                         charts=Path(output).suffix.lower() in (".html", ".htm"))
     click.echo(f"wrote {write_brief(brief, output)}")

@@ -509,8 +509,23 @@ class Study:
             raise TrackerError(f"--adjust {adjust}: use one of bh, holm, by, none")
         ms = self._pick_metrics(metrics)
         labels = self._window(last, since, until)
-        est = self.estimates(metrics=[m.name for m in ms], by=by, waves=labels, level=level)
-        return fit_trends(est, self.segment_starts(ms, labels), adjust, level)
+        key = ("trends", tuple(m.name for m in ms), None if by is None else tuple(by), tuple(labels), adjust, level)
+        if key not in self._cache:
+            est = self.estimates(metrics=[m.name for m in ms], by=by, waves=labels, level=level)
+            self._cache[key] = fit_trends(est, self.segment_starts(ms, labels), adjust, level)
+        return self._cache[key].copy()
+
+    def analysis(self, wave: str | None = None, against: str = "previous", adjust: str = "bh",
+                 level: float = 0.95):
+        """The one analysis of ``wave`` (tracker.analysis.Analysis) that the brief, the charts and
+        the JSON brief render: computed once per wave, baseline, adjustment and level."""
+        from .analysis import analyse
+
+        wave = wave or self._pick_waves()[-1]
+        key = ("analysis", wave, against, adjust, level)
+        if key not in self._cache:
+            self._cache[key] = analyse(self, wave, against, adjust, level)
+        return self._cache[key]
 
     def pooled(self, k: int, metrics=None, by=None, level: float = 0.95) -> pd.DataFrame:
         """Rolling estimates pooling each wave with the k - 1 waves before it (for thin subgroups)."""

@@ -264,14 +264,14 @@ def _blip_search(y, v, ok, X_trend):
     return {"p": p_series, "index": best_j, "size": size}
 
 
-def fitted_values(trend_rows: pd.DataFrame, est: pd.DataFrame) -> pd.Series:
+def fitted_values(trend_rows: pd.DataFrame, est: pd.DataFrame, t0: str | None = None) -> pd.Series:
     """The fitted line or shift levels at each estimate row (NaN where the pattern is
     steady, a blip, or the wave lies outside the fitted series).
 
-    ``est`` must be the estimates table the trends were fitted on (its first wave fixes
-    time zero)."""
+    Time zero is ``t0``, the fieldwork date of the first wave the trends were fitted on
+    (default: the first date in ``est``)."""
     keys = ["metric", "group", "subgroup"]
-    t0 = dt.date.fromisoformat(est["fieldwork_date"].min())
+    t0 = dt.date.fromisoformat(t0 or est["fieldwork_date"].min())
     years = est["fieldwork_date"].map(lambda d: (dt.date.fromisoformat(d) - t0).days / 365.25)
     m = est[keys].join(years.rename("years")).merge(trend_rows, on=keys, how="left")
     m.index = est.index
