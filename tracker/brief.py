@@ -155,6 +155,9 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
                      for r in head.itertuples() if r.metric not in by_mix)
     mix_moves = tuple(Item(change_sentence(r, level) + " " + mixes[r.metric][0], "note", r.metric, r.subgroup)
                       for r in head.itertuples() if r.metric in by_mix)
+    if not headline and mix_moves:
+        headline = (Item("No measure moved in total beyond what the sample's changed make-up explains (next "
+                         "section).", "note"),)
     moved_totals = set(total_sig["metric"])
     sub = tested_sig[(tested_sig["group"] != "total") & ~tested_sig["metric"].isin(moved_totals)]
     sub = sub.reindex(sub["change"].abs().sort_values(ascending=False).index)
