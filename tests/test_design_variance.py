@@ -280,3 +280,17 @@ def test_estimates_command_offers_the_korn_graubard_interval(tmp_path):
     assert np.allclose(kg["ci_low"], api["ci_low"], atol=1e-12) and np.allclose(kg["ci_high"], api["ci_high"])
     bad = runner.invoke(main, args + ["--interval", "exact"])
     assert bad.exit_code == 2 and "'exact' is not one of 'wilson', 'korn-graubard'" in bad.output
+
+
+def test_estimation_refuses_and_names_the_right_stratum():
+    # the estimation path (e.g. a library call on rows that never went through add) names
+    # the stratum holding one cluster, whatever the order strata first appear in
+    from tracker.codebook import parse_codebook
+    from tracker.estimates import cell_stats
+
+    book = parse_codebook(BOOK.format(extra="single_cluster_strata: refuse"))
+    rng = np.random.default_rng(19)
+    frame = clustered_wave(rng, n_strata=3, lone=(0,))
+    frame["st"] = frame["st"].map({"S0": "Z-last", "S1": "A-first", "S2": "M-mid"})
+    with pytest.raises(TrackerError, match="strata Z-last hold a single cluster"):
+        cell_stats(book, frame, list(book.metrics.values()), [])

@@ -62,7 +62,8 @@ def design_of(codebook: Codebook, table: pd.DataFrame) -> tuple[np.ndarray | Non
 
 def _refuse(codebook: Codebook, table: pd.DataFrame, exc: SingleClusterError) -> TrackerError:
     strata, _ = design_labels(codebook, table)
-    names = np.unique(strata)[exc.strata] if strata is not None else exc.strata
+    # the variance code numbers strata in order of first appearance (pd.factorize)
+    names = np.asarray(pd.factorize(pd.Series(strata))[1])[exc.strata] if strata is not None else exc.strata
     return TrackerError(f"strata {', '.join(map(str, names[:10]))} hold a single cluster, and the codebook says "
                         f"single_cluster_strata: refuse (see docs/codebook.md for the other rules)")
 

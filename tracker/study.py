@@ -387,15 +387,13 @@ class Study:
         ms, gs = self._pick_metrics(metrics), self._pick_groups(by)
         others, note = resolve_against(labels, self.dates(), wave, against)
         if family == "brief":
-            table, notes = self._compare(wave, others, self._pick_metrics(), self._pick_groups(), adjust, level)
+            table, notes, size = self._compare(wave, others, self._pick_metrics(), self._pick_groups(), adjust, level)
             keep = table["metric"].isin([m.name for m in ms]) & table["group"].isin(["total", *gs])
             table = table[keep].reset_index(drop=True)
-            size = int(notes.pop())
             notes.append(f"p-values adjusted across the {size:,} comparisons of {wave} against {others[-1] if len(others) == 1 else 'the pooled waves'} "
                          f"(every metric in total and in every subgroup: the brief's family)")
         else:
-            table, notes = self._compare(wave, others, ms, gs, adjust, level)
-            size = int(notes.pop())
+            table, notes, size = self._compare(wave, others, ms, gs, adjust, level)
             notes.append(f"p-values adjusted across only the {size:,} comparisons asked for: a narrower family than "
                          f"the brief's, so these verdicts can differ from the brief")
         notes = [note, *notes]
@@ -408,14 +406,14 @@ class Study:
                             size)
 
     def _compare(self, wave: str, others: list[str], ms: list, gs: list[str], adjust: str, level: float):
-        """One family of comparisons; returns (table, notes + [family size as text])."""
+        """One family of comparisons: (table, notes, number of comparisons tested), cached."""
         from .changes import compare
         from .estimates import wave_covariance
 
         key = ("compare", wave, tuple(others), tuple(m.name for m in ms), tuple(gs), adjust, level)
         if key in self._cache:
-            table, notes = self._cache[key]
-            return table, list(notes)
+            table, notes, size = self._cache[key]
+            return table, list(notes), size
         now = self._wave_rows(wave, ms, gs, level)
         then = (self._wave_rows(others[0], ms, gs, level) if len(others) == 1
                 else self._pooled_rows(others, ms, gs, level))
@@ -432,9 +430,9 @@ class Study:
                              f"(write waves_share_clusters: false in the codebook if a cluster label can name "
                              f"different clusters in different waves)")
         table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level, self.matters())
-        notes.append(str(int(table["p_adjusted"].notna().sum())))
-        self._cache[key] = (table, tuple(notes))
-        return table, list(notes)
+        size = int(table["p_adjusted"].notna().sum())
+        self._cache[key] = (table, tuple(notes), size)
+        return table, list(notes), size
 
     def _mix(self, ms, others, wave, var, adjust, level) -> pd.DataFrame:
         from .composition import mix_table
@@ -555,7 +553,7 @@ class Study:
         every, groups = self._pick_metrics(), self._pick_groups()
         parts = []
         for before, after in zip(labels, labels[1:]):
-            table, _ = self._compare(after, [before], every, groups, adjust, level)
+            table, _, _ = self._compare(after, [before], every, groups, adjust, level)
             parts.append(table)
         if not parts:
             return pd.DataFrame()
