@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import pytest
 
-from tracker.calibration import DESIGNS, run
+from tracker.calibration import DESIGNS, TREND_DESIGN, run
 
 
 @pytest.fixture(scope="module")
@@ -19,8 +19,11 @@ def report():
 
 
 def test_every_promised_rate_holds_within_monte_carlo_error(report):
-    targeted = [r for r in report.rates if r.target is not None]
-    assert len(targeted) >= 2 * 40  # both designs, every quantity of the issue
+    # the pattern classifier's detection targets belong to its open replacement; of its rates
+    # only the false-call rate is promised today
+    targeted = [r for r in report.rates if r.target is not None
+                and (r.design != TREND_DESIGN or r.what == "false pattern calls")]
+    assert len(targeted) >= 2 * 40 + 1  # both designs, every quantity, and the trend false calls
     off = [f"{r.design}: {r.what}, {r.setting}: {r.measured:.3f} (target {r.target}, MC SE {r.mc_se:.3f})"
            for r in targeted if not r.within_mc(3.5)]
     assert not off, "\n".join(off)

@@ -74,6 +74,8 @@ class Tier:
 
 
 TIERS = {"full": Tier(1500, 600, 600), "quick": Tier(240, 120, 120), "test": Tier(120, 80, 60)}
+TREND_REPS = {"full": 1000, "quick": 200, "test": 60}
+TREND_DESIGN = "trend patterns"
 
 
 @dataclass(frozen=True)
@@ -313,6 +315,53 @@ def _fdr(rng, d: Design, tier: Tier, out: list[Rate]) -> None:
                     float(np.std(power, ddof=1) / np.sqrt(len(power))), len(power), None, None))
 
 
+def _trend_patterns(rng, reps: int, out: list[Rate]) -> None:
+    """The pattern classifier (tracker.trends.fit_trends) on one series at a time: 14 quarterly
+    waves, sampling SE 1.6 points, between-wave SD 1.5 points (the setting of issue 10)."""
+    from .trends import fit_trends
+
+    K, se, tau = 14, 0.016, 0.015
+    dates = [f"{2020 + q // 4}-{3 * (q % 4) + 2:02d}-15" for q in range(K)]
+    years = np.arange(K) / 4
+    scenarios = {
+        "no change": (np.zeros(K), None),
+        "an 8-point one-wave blip at wave 7 (5 single-wave SEs)": (np.where(np.arange(K) == 6, 0.08, 0.0), None),
+        "a 6-point step down at wave 8": (np.where(np.arange(K) >= 7, -0.06, 0.0), None),
+        "a slope of 3 points a year": (0.03 * years, 0.03),
+    }
+    for name, (signal, slope) in scenarios.items():
+        calls, covered = [], []
+        for _ in range(reps):
+            y = 0.6 + signal + rng.normal(0, tau, K) + rng.normal(0, se, K)
+            est = pd.DataFrame({"metric": "m", "metric_label": "m", "kind": "share", "group": "total",
+                                "subgroup": "Total", "wave": [f"W{i:02d}" for i in range(K)], "fieldwork_date": dates,
+                                "value": y, "se": se, "reliable": True})
+            row = fit_trends(est).iloc[0]
+            calls.append(str(row["pattern"]))
+            if slope is not None:
+                covered.append(float(row["slope_low"] <= slope <= row["slope_high"]))
+        calls = np.array(calls)
+        moving = ~np.isin(calls, ["steady", "too few waves"])
+        if not signal.any():
+            rate, mc, k = _prop(moving)
+            out.append(Rate(TREND_DESIGN, "false pattern calls", name, rate, mc, k, (0.0, 0.05), 0.05))
+        elif "blip" in name:
+            rate, mc, k = _prop(calls == "one-wave blip")
+            out.append(Rate(TREND_DESIGN, "called a one-wave blip", name, rate, mc, k, (0.60, 1.0)))
+        elif "step" in name:
+            rate, mc, k = _prop(np.char.startswith(calls.astype(str), "shifted"))
+            out.append(Rate(TREND_DESIGN, "called a step", name, rate, mc, k, (0.75, 1.0)))
+            rate, mc, k = _prop(np.isin(calls, ["rising", "falling"]))
+            out.append(Rate(TREND_DESIGN, "called a trend", name, rate, mc, k, (0.0, 0.10)))
+        else:
+            rate, mc, k = _prop(np.isin(calls, ["rising", "falling"]))
+            out.append(Rate(TREND_DESIGN, "called a trend", name, rate, mc, k, (0.80, 1.0)))
+            rate, mc, k = _prop(np.char.startswith(calls.astype(str), "shifted"))
+            out.append(Rate(TREND_DESIGN, "called a step", name, rate, mc, k, (0.0, 0.10)))
+            rate, mc, k = _prop(covered)
+            out.append(Rate(TREND_DESIGN, "95% slope interval coverage", name, rate, mc, k, (0.94, 0.96), 0.95))
+
+
 @dataclass
 class Report:
     rates: list[Rate]
@@ -356,4 +405,8 @@ def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DES
         results = [_one_design(j) for j in jobs]
     rates = [r for part, _ in results for r in part]
     deff = {d.name: dd for d, (_, dd) in zip(designs, results)}
+    if verbose:
+        print(f"{TREND_DESIGN}", file=sys.stderr, flush=True)
+    _trend_patterns(np.random.default_rng(np.random.SeedSequence(seed).spawn(len(designs) + 1)[-1]),
+                    TREND_REPS[tier], rates)
     return Report(rates, tier, seed, time.perf_counter() - start, deff)
