@@ -28,7 +28,7 @@ from scipy import stats
 from .changes import compare
 from .codebook import Codebook, parse_codebook
 from .composition import compare_composition
-from .estimates import wave_covariance, wave_estimates
+from .estimates import finish, wave_covariance, wave_estimates
 from .methods.tests import adjust_pvalues
 
 __all__ = ["DESIGNS", "TIERS", "Design", "Rate", "run"]
@@ -251,7 +251,8 @@ def _coverage_and_size(rng, d: Design, tier: Tier, out: list[Rate], deffs: list[
 
 
 def _collect_coverage(book, est, table, metrics, groups, cover, cover_reliable, deffs):
-    kg = wave_estimates(book, table, metrics, groups, "A", "2025-01-15", interval="korn-graubard")
+    # the finished estimates keep their sufficient statistics: re-finish them, no second pass over rows
+    kg = finish(est, {m.name: m.kind for m in metrics}, LEVEL, "korn-graubard")
     for frame, iv in ((est, "wilson"), (kg, "korn-graubard")):
         rows = frame[frame["subgroup"].isin(["Total", "in"])]
         for r in rows.itertuples():
