@@ -19,11 +19,13 @@ def report():
 
 
 def test_every_promised_rate_holds_within_monte_carlo_error(report):
-    # the pattern classifier's detection targets belong to its open replacement; of its rates
-    # only the false-call rate is promised today
+    # the pattern classifier's three hit rates (blip found, step called a step, trend called a
+    # trend) stay below the targets for one series of 14 waves (docs/validation.md
+    # says why); its false calls, cross-calls and slope coverage are promised
+    unmet = {("called a one-wave blip", "blip"), ("called a step", "step"), ("called a trend", "slope")}
     targeted = [r for r in report.rates if r.target is not None
-                and (r.design != TREND_DESIGN or r.what == "false pattern calls")]
-    assert len(targeted) >= 2 * 40 + 1  # both designs, every quantity, and the trend false calls
+                and not (r.design == TREND_DESIGN and any(w == r.what and s in r.setting for w, s in unmet))]
+    assert len(targeted) >= 2 * 40 + 4  # both designs, every quantity, and four trend rates
     off = [f"{r.design}: {r.what}, {r.setting}: {r.measured:.3f} (target {r.target}, MC SE {r.mc_se:.3f})"
            for r in targeted if not r.within_mc(3.5)]
     assert not off, "\n".join(off)

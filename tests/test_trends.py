@@ -139,8 +139,9 @@ def test_trends_command_and_pooled_estimates(demo_study):
     result = CliRunner().invoke(main, ["trends", root, "--by", "total", "--moving-only", "--format", "csv"])
     assert result.exit_code == 0, result.output
     shown = pd.read_csv(__import__("io").StringIO(result.output))
+    # fares_fair: the planted one-wave jump of the sample's make-up at 2025-Q4 (a blip in total)
     assert set(shown["metric"]) == {"satisfied", "satisfaction_mean", "on_time_good", "tram_on_time",
-                                    "clean_good", "staff_good"}
+                                    "clean_good", "staff_good", "fares_fair"}
     result = CliRunner().invoke(main, ["trends", root, "--by", "total", "--last", "3"])
     assert result.exit_code == 0 and "too few waves" in result.output
     pooled = demo_study.pooled(4, metrics=["staff_good"], by=["area"])
@@ -150,3 +151,39 @@ def test_trends_command_and_pooled_estimates(demo_study):
     assert first["base"] == sum(int(((t["area"] == 3) & t["staff"].between(1, 5)).sum()) for t in waves)
     result = CliRunner().invoke(main, ["trends", root, "--pool", "4", "--metric", "staff_good", "--by", "area"])
     assert result.exit_code == 0 and "2023-Q1..2023-Q4" in result.output
+
+
+def test_effective_number_of_tests_follows_li_and_ji():
+    # Li & Ji (2005, Heredity 95:221), formula from memory: M_eff = sum I(|l| >= 1) + (|l| - floor|l|)
+    # over the eigenvalues l of the correlation matrix: m independent tests count m, m identical ones 1
+    from tracker.trends import effective_tests
+
+    R = np.stack([np.eye(5), np.ones((5, 5))])
+    assert list(effective_tests(R)) == pytest.approx([5.0, 1.0])
+    r = 0.5  # two tests correlated 0.5: eigenvalues 1.5 and 0.5, so 1 + 0.5 + 0.5 = 2
+    assert effective_tests(np.array([[[1, r], [r, 1]]]))[0] == pytest.approx(2.0)
+    r = 0.9  # eigenvalues 1.9 and 0.1: 1 + 0.9 + 0.1 = 2 as well (the formula's known coarseness)
+    assert effective_tests(np.array([[[1, r], [r, 1]]]))[0] == pytest.approx(2.0)
+
+
+def test_between_a_step_and_a_line_the_shape_goes_line_then_undecided_then_step():
+    # noiseless mixtures of a 3-point-a-year line and a 6-point step at wave 8 of 14 (sampling SE
+    # 2 points): pure line reads rising, pure step shifted down, and the mixtures in between pass
+    # through "moved" in that order, never back (common practice, no source: a model choice
+    # must be monotone in the evidence)
+    from tracker.brief import trend_sentence
+
+    K = 14
+    t = years(K)
+    mix = np.linspace(0, 1, 41)
+    line = -0.03 * (t - t.mean())
+    step = -0.06 * (np.arange(K) >= 7)
+    y = 0.6 + (1 - mix)[:, None] * line[None] + mix[:, None] * step[None]
+    out = fit_trends(est_frame(y, np.full(y.shape, 0.02)), adjust="none")
+    order = {"falling": 0, "moved down": 1, "shifted down": 2}
+    ranks = out["pattern"].map(order).to_numpy()
+    assert out["pattern"].iloc[0] == "falling" and out["pattern"].iloc[-1] == "shifted down"
+    assert (np.diff(ranks) >= 0).all() and (ranks == 1).any()
+    text = trend_sentence(out[out["pattern"] == "moved down"].iloc[0], 0.95)
+    assert text.startswith("m moved down over 14 waves (W00 to W13): -")
+    assert "cannot tell a steady trend from a one-off step" in text

@@ -128,10 +128,16 @@ def trend_sentence(row, level: float) -> str:
                 f"({level:.0%} interval {row.slope_low * f:+.{2 if kind == 'mean' else 1}f} to "
                 f"{row.slope_high * f:+.{2 if kind == 'mean' else 1}f}) over {row.waves} waves "
                 f"({row.first_wave} to {row.last_wave}).")
+    if row.pattern in ("moved up", "moved down"):
+        unit = "" if kind == "mean" else " points"
+        f = 1 if kind == "mean" else 100
+        return (f"{who} {row.pattern} over {row.waves} waves ({row.first_wave} to {row.last_wave}): "
+                f"{row.slope_per_year * f:+.{2 if kind == 'mean' else 1}f}{unit} a year on a straight-line reading, "
+                f"but the waves cannot tell a steady trend from a one-off step; brief the move, not its shape.")
     if row.pattern == "one-wave blip":
         side = "below" if row.blip_size < 0 else "above"
-        return (f"{who}: {row.blip_wave} was a one-wave blip ({fmt_size(kind, row.blip_size)} {side} the waves "
-                f"either side, which agree with each other). The series did not turn; do not brief it as a change "
+        return (f"{who}: {row.blip_wave} was a one-wave blip ({fmt_size(kind, row.blip_size)} {side} the rest "
+                f"of the series, which does not move with it). The series did not turn; do not brief it as a change "
                 f"of direction.")
     return f"{who}: {row.pattern}."
 
@@ -205,9 +211,11 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         + f"{level:.0%}.",
         "Minimum detectable change: the change each comparison would find with 80% power at the unadjusted level "
         "(for shares, the larger of a rise and a fall, with the variance the changed share would have).",
-        "Trends: a random-effects line per series through the wave estimates (sampling error plus the "
-        "between-wave variation), per year of fieldwork time; shifts and one-wave blips are searched for with the "
-        "search accounted for, and every series' tests are adjusted together.",
+        "Trends: each series (sampling error plus the between-wave variation) is tested once for not being "
+        "steady, against a straight line, a step at any wave and a one-wave blip at any wave, with the search "
+        "accounted for; those tests are adjusted together across every series, and a series that moved gets "
+        "the shape that fits it best ('moved up/down' when its waves cannot tell a trend from a step). Slopes "
+        "are per year of fieldwork time.",
         "Reliability: cells below an effective base of 30 or with too wide a Korn-Graubard interval (NCHS "
         "presentation standard for proportions, 2017) are flagged and not tested.",
     ) + tuple(result.notes[1:])
@@ -252,9 +260,9 @@ _TREND_COLS = ["metric_label", "group", "subgroup", "first_wave", "last_wave", "
 
 
 def _trend_mark(row) -> str:
-    if row.pattern in ("rising", "shifted up"):
+    if row.pattern in ("rising", "shifted up", "moved up"):
         return "rise"
-    if row.pattern in ("falling", "shifted down"):
+    if row.pattern in ("falling", "shifted down", "moved down"):
         return "fall"
     return "note"
 
