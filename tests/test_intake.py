@@ -373,7 +373,8 @@ def test_killed_add_processes_leave_whole_waves_only(study_dir, wave_csv):
             assert study.labels == ["2025-Q3"] and len(study.load("2025-Q3")) == 3000
             break
     # whatever happened, a (re)add now leaves exactly one whole wave
-    result = run("add", study_dir, path, "--wave", "2025-Q3", "--date", "2025-09-30", "--replace")
+    again = ["--replace", "--allow-duplicate"] if Study(study_dir).labels else []
+    result = run("add", study_dir, path, "--wave", "2025-Q3", "--date", "2025-09-30", *again)
     assert result.exit_code == 0, result.output
     assert len(Study(study_dir).load("2025-Q3")) == 3000
     assert not list(study_dir.rglob(".incoming-*"))

@@ -46,6 +46,24 @@ def new_cmd(study, codebook):
                f"{len(s.codebook.metrics)} metrics, {len(s.codebook.groups)} subgroup splits")
 
 
+@main.command("verify")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--repair", is_flag=True,
+              help="Remove files no ledger entry names and leftovers of interrupted writes (never a stored wave).")
+@user_errors
+def verify_cmd(study, repair):
+    """Check a study on disk: the ledger, every stored file against its SHA-256, orphans, leftovers.
+
+    Exit 0 when everything agrees, 1 naming each problem otherwise.
+    """
+    from . import store
+
+    result = store.verify(Path(study), repair=repair)
+    for line in result.lines():
+        click.echo(line)
+    sys.exit(0 if result.ok else 1)
+
+
 @main.command("check")
 @click.argument("study", type=click.Path(file_okay=False))
 @click.argument("file", type=click.Path(dir_okay=False))
@@ -75,15 +93,17 @@ def check_cmd(study, file, wave, date, encoding):
 @click.option("--date", required=True, help="Fieldwork date (ISO, e.g. 2025-09-30).")
 @click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
 @click.option("--replace", is_flag=True, help="Replace a stored wave of the same label (the old version is kept).")
+@click.option("--allow-duplicate", is_flag=True,
+              help="Store the wave even though its data equal a stored wave's (refused by default: a re-delivery).")
 @click.option("--rake", is_flag=True, help="Compute raking weights to the codebook's targets.")
 @click.option("--cap", help="With --rake: keep each weight within LOW:HIGH times its starting weight, e.g. 0.2:5.")
 @user_errors
-def add_cmd(study, file, wave, date, encoding, replace, rake, cap):
+def add_cmd(study, file, wave, date, encoding, replace, allow_duplicate, rake, cap):
     """Check, harmonize and store a wave."""
     from .weighting import parse_cap
 
     report = Study(study).add(file, wave=wave, date=date, encoding=encoding, replace=replace,
-                              rake=rake, cap=parse_cap(cap) if cap else None)
+                              rake=rake, cap=parse_cap(cap) if cap else None, allow_duplicate=allow_duplicate)
     for line in report.lines():
         click.echo(line)
 

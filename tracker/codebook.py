@@ -18,7 +18,7 @@ import yaml
 from .errors import TrackerError
 
 TYPES = ("category", "scale", "number", "multi", "text")
-LABEL_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,39}$")
+LABEL_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,39}")  # always used with fullmatch
 
 
 class _Loader(yaml.SafeLoader):
@@ -160,7 +160,7 @@ def _code_map(node: Any, path: str) -> dict[float, str]:
 
 def _wave_label(node: Any, path: str) -> str:
     label = _text(node, path)
-    if not LABEL_RE.match(label):
+    if not LABEL_RE.fullmatch(label):
         raise _err(path, f"{label!r} is not a valid wave label (letters, digits, '.', '_', '-'; at most 40)")
     return label
 

@@ -51,6 +51,7 @@ class WaveFile:
     first_row: int  # the spreadsheet row number of the first respondent
     sha256: str
     problems: list[Problem] = field(default_factory=list)
+    content_sha256: str = ""  # of the harmonized table, set by Study's check
 
 
 def file_sha256(path: Path) -> str:

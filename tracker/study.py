@@ -90,6 +90,19 @@ def parse_date(text: str) -> str:
         raise TrackerError(f"fieldwork date {text!r} is not an ISO date (YYYY-MM-DD)") from None
 
 
+def content_fingerprint(table: pd.DataFrame) -> str:
+    """SHA-256 of a harmonized table that ignores row order (and so line ends, quoting and
+    any other detail of the delivered file): the sorted per-row hashes of its columns in
+    name order."""
+    import hashlib
+
+    cols = sorted(table.columns)
+    rows = pd.util.hash_pandas_object(table[cols], index=False).to_numpy()
+    h = hashlib.sha256(",".join(cols).encode("utf-8"))
+    h.update(np.sort(rows).tobytes())
+    return h.hexdigest()
+
+
 class Study:
     """A tracking study on disk. ``Study.create`` makes one; ``Study(path)`` opens one."""
 
@@ -112,6 +125,7 @@ class Study:
             raise TrackerError(f"{root}: the folder exists and is not empty")
         root.mkdir(parents=True, exist_ok=True)
         (root / store.WAVES).mkdir(exist_ok=True)
+        (root / store.LOCK).touch()
         store.write_atomic(root / store.CODEBOOK, book.source.encode("utf-8"))
         store.write_ledger(root, {"format": 1, "title": book.title, "waves": []})
         return cls(root)
@@ -142,7 +156,20 @@ class Study:
         """The harmonized respondent table of one stored wave."""
         if label not in self._cache:
             entry = self._entry(label)
-            self._cache[label] = pd.read_parquet(self.root / entry["file"])
+            path = self.root / entry["file"]
+            if not path.is_file():
+                raise TrackerError(f"{path}: the stored file of wave {label} is missing; "
+                                   f"run 'tracker verify {self.root}'")
+            try:
+                self._cache[label] = pd.read_parquet(path)
+            except OSError as exc:
+                if isinstance(exc, PermissionError) or exc.errno is not None:
+                    raise store.fs_problem(exc, path, f"read wave {label}") from None
+                raise TrackerError(f"{path}: the stored file of wave {label} is damaged ({exc}); "
+                                   f"run 'tracker verify {self.root}'") from None
+            except Exception as exc:  # pyarrow's own errors for truncated or foreign files
+                raise TrackerError(f"{path}: the stored file of wave {label} is damaged "
+                                   f"({exc.__class__.__name__}); run 'tracker verify {self.root}'") from None
         return self._cache[label]
 
     def _entry(self, label: str) -> dict:
@@ -153,20 +180,24 @@ class Study:
 
     # -- intake -----------------------------------------------------------------------
     def check(self, file: str | Path, wave: str | None = None, date: str | None = None,
-              encoding: str | None = None, replace: bool = False) -> CheckReport:
+              encoding: str | None = None, replace: bool = False, allow_duplicate: bool = False) -> CheckReport:
         """Check a wave file against the codebook without changing anything."""
-        report, _, _ = self._check(file, wave, date, encoding, replace)
+        report, _, _ = self._check(file, wave, date, encoding, replace, allow_duplicate=allow_duplicate)
         return report
 
-    def _check(self, file, wave, date, encoding, replace, rake=False):
+    def _check(self, file, wave, date, encoding, replace, rake=False, allow_duplicate=False):
         wf = read_wave_file(file, encoding)
         problems: list[Problem] = []
         label = wave
         if label is not None:
-            if not LABEL_RE.match(label):
-                problems.append(Problem("error", "", f"wave label {label!r} is not valid (letters, digits, '.', '_', '-'; at most 40)"))
+            if not LABEL_RE.fullmatch(label):
+                problems.append(Problem("error", "", f"wave label {label!r} is not valid (a letter or digit, then "
+                                        f"letters, digits, '.', '_', '-'; at most 40 characters, no spaces)"))
             elif label in self.labels and not replace:
                 problems.append(Problem("error", "", f"a wave labelled {label} is already stored; use --replace to replace it"))
+            elif replace and label not in self.labels:
+                problems.append(Problem("error", "", f"--replace: no wave labelled {label} is stored (stored: "
+                                        f"{', '.join(self.labels) or 'none'}); leave out --replace to add it"))
         if date is not None:
             try:
                 iso = parse_date(date)
@@ -188,6 +219,13 @@ class Study:
                 pass
         table, found = check_wave(self.codebook, wf, label or "", order, rake=rake)
         problems.extend(found)
+        wf.content_sha256 = mark = content_fingerprint(table) if len(table) else ""
+        if mark and not allow_duplicate:
+            for w in self.wave_entries:
+                if w.get("content_sha256") == mark and not (replace and w["label"] == label):
+                    problems.append(Problem("error", "", f"the data are the same as stored wave {w['label']} "
+                                            f"(same respondents and answers, in any row order); a re-delivery? "
+                                            f"Use --allow-duplicate if the two waves really are identical"))
         if not any(p.severity == "error" for p in found) and len(table):
             problems.extend(self._design_problems(table))
         report = CheckReport(str(file), len(wf.table), tuple(problems))
@@ -209,13 +247,22 @@ class Study:
         return out
 
     def add(self, file: str | Path, wave: str, date: str, encoding: str | None = None,
-            replace: bool = False, rake: bool = False, cap: tuple[float, float] | None = None) -> AddReport:
-        """Validate, harmonize and store a wave; raise TrackerError (study unchanged) if it cannot be."""
+            replace: bool = False, rake: bool = False, cap: tuple[float, float] | None = None,
+            allow_duplicate: bool = False) -> AddReport:
+        """Validate, harmonize and store a wave; raise TrackerError (study unchanged) if it cannot be.
+
+        The whole add runs under the study's write lock, against the ledger as it stands
+        once the lock is held, so two adds at once are serialised, never interleaved."""
         if not wave:
             raise TrackerError("a wave label is required (--wave)")
         iso = parse_date(date)
+        with store.study_lock(self.root):
+            self._ledger = store.read_ledger(self.root)
+            return self._add_locked(file, wave, iso, encoding, replace, rake, cap, allow_duplicate)
+
+    def _add_locked(self, file, wave, iso, encoding, replace, rake, cap, allow_duplicate) -> AddReport:
         rake = rake or bool(self.codebook.rake.get("always"))
-        report, table, wf = self._check(file, wave, iso, encoding, replace, rake)
+        report, table, wf = self._check(file, wave, iso, encoding, replace, rake, allow_duplicate)
         if not report.ok:
             raise TrackerError("\n".join(["cannot add " + str(file) + ":"] + report.lines()))
         book = self.codebook
@@ -248,10 +295,14 @@ class Study:
         # Store: new Parquet under a fresh name, then the ledger rename commits it.
         store.sweep_incoming(self.root)
         fname = store.free_wave_file(self.root, wave)
-        store.write_parquet_atomic(self.root / fname, table)
+        try:
+            store.write_parquet_atomic(self.root / fname, table)
+        except OSError as exc:
+            raise store.fs_problem(exc, self.root / fname, "store the wave") from None
         entry = {
-            "label": wave, "date": iso, "file": fname, "source": Path(file).name,
-            "source_sha256": wf.sha256, "rows": int(len(table)), "codebook_sha256": book.sha256,
+            "label": wave, "date": iso, "file": fname, "sha256": store.sha256_of(self.root / fname),
+            "source": Path(file).name,
+            "source_sha256": wf.sha256, "content_sha256": wf.content_sha256, "rows": int(len(table)), "codebook_sha256": book.sha256,
             "added": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
             "weighting": weighting,
         }
@@ -263,7 +314,13 @@ class Study:
             entry["history"] = history + [prev]  # the old file stays on disk, named here
             ledger["waves"] = [w for w in ledger["waves"] if w["label"] != wave]
         ledger["waves"].append(entry)
-        store.write_ledger(self.root, ledger)
+        try:
+            store.write_ledger(self.root, ledger)
+        except BaseException as exc:  # not committed: the new file must not stay behind as an orphan
+            (self.root / fname).unlink(missing_ok=True)
+            if isinstance(exc, OSError):
+                raise store.fs_problem(exc, self.root / store.LEDGER, "record the wave in the ledger") from None
+            raise
         self._ledger = ledger
         self._cache.pop(wave, None)
         warnings = tuple(p.describe(Path(file).name) for p in report.problems) + tuple(extra_lines)
