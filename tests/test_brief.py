@@ -12,6 +12,7 @@ import shutil
 import subprocess
 
 import numpy as np
+import pandas as pd
 import pytest
 from click.testing import CliRunner
 from openpyxl import load_workbook
@@ -136,6 +137,20 @@ def test_labels_are_escaped_and_cells_cannot_run_as_formulas(tmp_path):
     texts = [c for ws in wb.worksheets for row in ws.iter_rows() for c in row if isinstance(c.value, str)]
     risky = [c for c in texts if c.value.lstrip("'")[:1] in ("=", "+", "@")]
     assert risky and all(c.value.startswith("'") and c.data_type == "s" for c in risky)
+    markdown = write_brief(brief, tmp_path / "b.md").read_text()  # Markdown renderers pass HTML through
+    assert "<script>" not in markdown and "&lt;script&gt;alert(1)&lt;/script&gt;" in markdown
+    # table outputs: CSV cells neutralised (OWASP "CSV Injection"), md escaped
+    from click.testing import CliRunner
+
+    from tracker.cli import main
+
+    out = CliRunner().invoke(main, ["estimates", str(study.root), "--by", "g", "--format", "csv"]).output
+    frame = pd.read_csv(__import__("io").StringIO(out))
+    subgroups = set(frame["subgroup"])
+    assert {"'=HYPERLINK(\"x\")", "'@two", "'+three"} <= subgroups
+    assert not any(str(v)[:1] in "=+@" for v in frame.select_dtypes(object).to_numpy().ravel())
+    out = CliRunner().invoke(main, ["estimates", str(study.root), "--format", "md"]).output
+    assert "<script>" not in out and "&lt;script&gt;" in out
 
 
 def test_charts_use_the_palette_and_tell_rise_from_fall_by_shape(demo_study, tmp_path):

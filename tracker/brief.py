@@ -17,6 +17,7 @@ import pandas as pd
 
 from .errors import TrackerError
 from .estimates import weights_of
+from .formatting import safe_cell
 from .kinds import KINDS
 from .methods.bases import kish_base
 from .methods.tests import ADJUST_METHODS
@@ -364,16 +365,21 @@ def render_json(brief: Brief) -> str:
 
 
 def render_markdown(brief: Brief) -> str:
-    out = [f"# {brief.title}", "", f"Briefing for wave {brief.wave}, compared with {brief.against}.", ""]
+    """The brief as Markdown; every text from the study is HTML-escaped, since Markdown
+    renderers pass raw HTML through."""
+    def e(text) -> str:
+        return html.escape(str(text), quote=False)
+
+    out = [f"# {e(brief.title)}", "", f"Briefing for wave {e(brief.wave)}, compared with {e(brief.against)}.", ""]
     for attr, heading, empty in SECTIONS:
         items = getattr(brief, attr)
         if not items and not empty:
             continue
         out += [f"## {heading}", ""]
-        out += [f"- {WORD[i.mark]}{i.text}" for i in items] or ([f"- {empty}"] if empty else [])
+        out += [f"- {WORD[i.mark]}{e(i.text)}" for i in items] or ([f"- {empty}"] if empty else [])
         out.append("")
-    out += ["## Method", ""] + [f"- {m}" for m in brief.method] + [""]
-    out += ["## Cautions", ""] + [f"- {c}" for c in brief.cautions] + [""]
+    out += ["## Method", ""] + [f"- {e(m)}" for m in brief.method] + [""]
+    out += ["## Cautions", ""] + [f"- {e(c)}" for c in brief.cautions] + [""]
     out.append(f"Made by tracker on {dt.date.today().isoformat()}. Charts are in the HTML version of this brief.")
     return "\n".join(out) + "\n"
 
@@ -410,13 +416,6 @@ def render_html(brief: Brief) -> str:
     return page(f"{brief.title}: {brief.wave}", "\n".join(parts), [spec for _, spec in charts])
 
 
-def _safe_cell(value):
-    """Text that a spreadsheet could run as a formula is stored as plain text with a leading quote."""
-    if isinstance(value, str) and value[:1] in ("=", "+", "-", "@", "\t", "\r"):
-        return "'" + value
-    return value
-
-
 def render_xlsx(brief: Brief) -> bytes:
     """One sheet per table, plus the brief's text; numbers keep proper formats."""
     from openpyxl import Workbook
@@ -426,9 +425,9 @@ def render_xlsx(brief: Brief) -> bytes:
     wb = Workbook()
     ws = wb.active
     ws.title = "Brief"
-    ws.append([_safe_cell(brief.title)])
+    ws.append([safe_cell(brief.title)])
     ws["A1"].font = Font(bold=True, size=14)
-    ws.append([_safe_cell(f"Wave {brief.wave}, compared with {brief.against}")])
+    ws.append([safe_cell(f"Wave {brief.wave}, compared with {brief.against}")])
     for attr, heading, empty in SECTIONS:
         if not getattr(brief, attr) and not empty:
             continue
@@ -436,13 +435,13 @@ def render_xlsx(brief: Brief) -> bytes:
         ws.append([heading])
         ws.cell(ws.max_row, 1).font = Font(bold=True)
         for i in getattr(brief, attr) or [Item(empty)]:
-            ws.append([_safe_cell(WORD[i.mark] + i.text)])
+            ws.append([safe_cell(WORD[i.mark] + i.text)])
     for heading, lines in (("Method", brief.method), ("Cautions", brief.cautions)):
         ws.append([])
         ws.append([heading])
         ws.cell(ws.max_row, 1).font = Font(bold=True)
         for line in lines:
-            ws.append([_safe_cell(line)])
+            ws.append([safe_cell(line)])
     ws.column_dimensions["A"].width = 140
     for name, table in brief.tables.items():
         sheet = wb.create_sheet(name[:31])
@@ -480,7 +479,7 @@ def _xlsx_value(v):
     if isinstance(v, np.floating):
         return float(v) if np.isfinite(v) else None
     if isinstance(v, str):
-        return _safe_cell(v)
+        return safe_cell(v)
     if pd.isna(v):
         return None
     return v

@@ -8,10 +8,28 @@ import pandas as pd
 FORMATS = ("table", "csv", "json", "md")
 
 
+#: First characters with which a spreadsheet would read a text cell as a formula (OWASP,
+#: "CSV Injection"): such cells get a leading apostrophe in CSV and XLSX output.
+FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def safe_cell(value):
+    """Text that a spreadsheet could run as a formula, made plain text with a leading quote."""
+    if isinstance(value, str) and value[:1] in FORMULA_START:
+        return "'" + value
+    return value
+
+
 def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
-    """Render a DataFrame; numbers are rounded for the table and md forms only."""
+    """Render a DataFrame; numbers are rounded for the table and md forms only. CSV text
+    cells that a spreadsheet would run as formulas are neutralised (``safe_cell``); the md
+    form escapes HTML, so a label cannot inject markup into a rendered page."""
     if fmt == "csv":
-        return frame.to_csv(index=False)
+        out = frame.copy()
+        for col in out.columns:
+            if not pd.api.types.is_numeric_dtype(out[col]) and not pd.api.types.is_bool_dtype(out[col]):
+                out[col] = out[col].astype(object).map(safe_cell)
+        return out.to_csv(index=False)
     if fmt == "json":
         return frame.to_json(orient="records", indent=1, double_precision=10)
     shown = frame.copy()
@@ -31,4 +49,6 @@ def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
 
 
 def _md(v) -> str:
-    return str(v).replace("|", "\\|").replace("\n", " ")
+    import html
+
+    return html.escape(str(v), quote=False).replace("|", "\\|").replace("\n", " ")
