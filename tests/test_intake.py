@@ -353,26 +353,42 @@ def test_demo_command_builds_the_study(tmp_path):
 
 
 def test_killed_add_processes_leave_whole_waves_only(study_dir, wave_csv):
-    """Kill real `tracker add` processes (SIGKILL) at several moments: every time the study
-    opens with either the wave stored whole or not at all (common practice, no source)."""
+    """Kill real `tracker add` processes (SIGKILL) in the write phase: the kill is triggered
+    by the temporary wave file appearing, then at later moments of the write; every time the
+    study opens with either the wave stored whole or not at all (common practice, no source)."""
     import signal
     import subprocess
     import sys
     import time
 
+    from tracker import store
+
     path = wave_csv(n=3000, seed=31, name="big.csv")
-    for delay in (0.2, 0.6, 1.0, 1.4, 1.8, 2.5):
+    killed_in_write = 0
+    for extra_delay in (0.0, 0.0, 0.005, 0.02, 0.05):
         proc = subprocess.Popen([sys.executable, "-m", "tracker", "add", str(study_dir), str(path),
                                  "--wave", "2025-Q3", "--date", "2025-09-30"],
                                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        time.sleep(delay)
+        deadline = time.monotonic() + 120
+        seen = False
+        while proc.poll() is None and time.monotonic() < deadline:
+            if list((study_dir / "waves").glob(".incoming-*.tmp")):
+                seen = True
+                break
+            time.sleep(0.001)
+        time.sleep(extra_delay)
         proc.send_signal(signal.SIGKILL)
         proc.wait()
+        killed_in_write += seen
         study = Study(study_dir)
         if study.labels:
             assert study.labels == ["2025-Q3"] and len(study.load("2025-Q3")) == 3000
             break
-    # whatever happened, a (re)add now leaves exactly one whole wave
+        # a wave not committed leaves at most a temporary file of a dead writer, which verify names
+        assert store.verify(study_dir).ok or all("temporary leftover" in p or "orphan" in p
+                                                 for p in store.verify(study_dir).problems)
+    assert killed_in_write >= 1  # at least one kill landed in the write phase
+    # whatever happened, a (re)add now leaves exactly one whole wave and sweeps the dead writers' files
     again = ["--replace", "--allow-duplicate"] if Study(study_dir).labels else []
     result = run("add", study_dir, path, "--wave", "2025-Q3", "--date", "2025-09-30", *again)
     assert result.exit_code == 0, result.output

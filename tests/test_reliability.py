@@ -196,3 +196,22 @@ def test_sweeps_never_touch_a_live_writers_temporary_file(study_dir):
     dead.write_bytes(b"x")
     store.sweep_incoming(study_dir)
     assert live.exists() and not dead.exists()
+
+
+def test_implausible_fieldwork_dates_are_warned(study_dir, wave_csv):
+    path = wave_csv(n=30, seed=1)
+    for date in ("0001-01-01", "9999-12-31"):
+        result = run("check", study_dir, path, "--wave", "2025-Q1", "--date", date)
+        assert result.exit_code == 0  # a warning: the analyst may mean it
+        assert f"fieldwork date {date} lies outside 1950-01-01 to" in result.output
+
+
+def test_the_next_add_clears_what_a_killed_writer_left(study_dir, wave_csv):
+    Study(study_dir).add(wave_csv(n=30, seed=1, name="a.csv"), "2025-Q1", "2025-03-31")
+    (study_dir / "waves" / "2025-Q2.parquet").write_bytes(b"an orphan of a killed add")
+    (study_dir / "waves" / ".incoming-999999999-y.tmp").write_bytes(b"half")
+    assert not store.verify(study_dir).ok
+    Study(study_dir).add(wave_csv(n=30, seed=2, name="b.csv"), "2025-Q2", "2025-06-30")
+    check = store.verify(study_dir)
+    assert check.ok, check.lines()
+    assert len(Study(study_dir).load("2025-Q2")) == 30

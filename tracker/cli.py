@@ -70,13 +70,15 @@ def verify_cmd(study, repair):
 @click.option("--wave", help="The label the wave would get (checks it is free).")
 @click.option("--date", help="The fieldwork date it would get (ISO).")
 @click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
+@click.option("--sheet", help="XLSX: the sheet to read (needed when several sheets hold data).")
+@click.option("--header-row", type=click.IntRange(min=1), help="XLSX: the row holding the column names (default: found).")
 @user_errors
-def check_cmd(study, file, wave, date, encoding):
+def check_cmd(study, file, wave, date, encoding, sheet, header_row):
     """List every problem of a wave file against the codebook; change nothing.
 
     Exit 0 when the file can be added (warnings allowed), 1 when it cannot.
     """
-    report = Study(study).check(file, wave=wave, date=date, encoding=encoding)
+    report = Study(study).check(file, wave=wave, date=date, encoding=encoding, sheet=sheet, header_row=header_row)
     for line in report.lines():
         click.echo(line)
     n_err = len(report.errors)
@@ -97,13 +99,16 @@ def check_cmd(study, file, wave, date, encoding):
               help="Store the wave even though its data equal a stored wave's (refused by default: a re-delivery).")
 @click.option("--rake", is_flag=True, help="Compute raking weights to the codebook's targets.")
 @click.option("--cap", help="With --rake: keep each weight within LOW:HIGH times its starting weight, e.g. 0.2:5.")
+@click.option("--sheet", help="XLSX: the sheet to read (needed when several sheets hold data).")
+@click.option("--header-row", type=click.IntRange(min=1), help="XLSX: the row holding the column names (default: found).")
 @user_errors
-def add_cmd(study, file, wave, date, encoding, replace, allow_duplicate, rake, cap):
+def add_cmd(study, file, wave, date, encoding, replace, allow_duplicate, rake, cap, sheet, header_row):
     """Check, harmonize and store a wave."""
     from .weighting import parse_cap
 
     report = Study(study).add(file, wave=wave, date=date, encoding=encoding, replace=replace,
-                              rake=rake, cap=parse_cap(cap) if cap else None, allow_duplicate=allow_duplicate)
+                              rake=rake, cap=parse_cap(cap) if cap else None, allow_duplicate=allow_duplicate,
+                              sheet=sheet, header_row=header_row)
     for line in report.lines():
         click.echo(line)
 

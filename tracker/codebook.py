@@ -38,6 +38,95 @@ _Loader.add_implicit_resolver(
 )
 
 
+def _construct_mapping_once(loader, node, deep=False):
+    """A mapping whose keys are all different: YAML would silently keep the last of two."""
+    seen: dict = {}
+    for key_node, _ in node.value:
+        key = loader.construct_object(key_node, deep=True)
+        try:
+            hash(key)
+        except TypeError:
+            raise yaml.constructor.ConstructorError(None, None, "a key must be a plain value", key_node.start_mark)
+        if key in seen:
+            raise TrackerError(f"codebook: key {key!r} is given twice in one mapping (lines {seen[key] + 1} and "
+                               f"{key_node.start_mark.line + 1}); YAML would silently keep only the second")
+        seen[key] = key_node.start_mark.line
+    return yaml.SafeLoader.construct_mapping(loader, node, deep=deep)
+
+
+_Loader.add_constructor("tag:yaml.org,2002:map", lambda loader, node: _construct_mapping_once(loader, node, deep=True))
+
+#: Limits checked on the YAML event stream before anything is built, so that a hostile or
+#: broken codebook cannot exhaust the stack or the memory (PyYAML builds nodes recursively,
+#: and aliases can multiply a document's size).
+MAX_BYTES = 2_000_000
+MAX_DEPTH = 32
+MAX_ALIASES = 500
+
+
+def _guard(text: str, name: str) -> None:
+    if len(text.encode("utf-8")) > MAX_BYTES:
+        raise TrackerError(f"codebook: {name}: larger than {MAX_BYTES // 1_000_000} MB; is this the codebook?")
+    depth = aliases = 0
+    try:
+        for event in yaml.parse(text, Loader=_Loader):
+            if isinstance(event, (yaml.MappingStartEvent, yaml.SequenceStartEvent)):
+                depth += 1
+                if depth > MAX_DEPTH:
+                    line = event.start_mark.line + 1
+                    raise TrackerError(f"codebook: {name}: nested more than {MAX_DEPTH} levels deep at line {line}")
+            elif isinstance(event, (yaml.MappingEndEvent, yaml.SequenceEndEvent)):
+                depth -= 1
+            elif isinstance(event, yaml.AliasEvent):
+                aliases += 1
+                if aliases > MAX_ALIASES:
+                    raise TrackerError(f"codebook: {name}: more than {MAX_ALIASES} aliases (*name); write the "
+                                       f"codebook out plainly")
+    except yaml.YAMLError:
+        return  # the load reports where the YAML is broken
+
+
+def _schema() -> dict:
+    import json
+    from importlib.resources import files
+
+    return json.loads(files("tracker").joinpath("codebook.schema.json").read_text(encoding="utf-8"))
+
+
+def _keys(schema: dict, ref: str | None = None) -> tuple[str, ...]:
+    node = schema if ref is None else schema["$defs"][ref]
+    return tuple(node["properties"])
+
+
+def _unknown_keys(doc: dict) -> None:
+    """Refuse keys the schema (tracker/codebook.schema.json) does not know, suggesting the
+    nearest known spelling: a misspelt ``weight`` would otherwise leave a study unweighted."""
+    import difflib
+
+    schema = _schema()
+
+    def check(node, allowed, path):
+        if not isinstance(node, dict):
+            return
+        for key in node:
+            if str(key) not in allowed:
+                near = difflib.get_close_matches(str(key), allowed, n=1, cutoff=0.6)
+                hint = f"; did you mean {near[0]!r}?" if near else f" (known here: {', '.join(allowed)})"
+                raise _err(f"{path}{key}", f"unknown key{hint}")
+
+    check(doc, _keys(schema), "")
+    for section, ref in (("variables", "variable"), ("groups", "group"), ("metrics", "metric")):
+        for name, node in (doc.get(section) or {}).items() if isinstance(doc.get(section), dict) else ():
+            check(node, _keys(schema, ref), f"{section}.{name}.")
+            if ref == "variable" and isinstance(node, dict):
+                for i, rc in enumerate(node.get("recode") or [] if isinstance(node.get("recode"), list) else []):
+                    check(rc, ("waves", "map"), f"{section}.{name}.recode[{i}].")
+            if ref == "metric" and isinstance(node, dict):
+                check(node.get("balance"), ("plus", "minus"), f"{section}.{name}.balance.")
+                check(node.get("base"), ("variable", "codes"), f"{section}.{name}.base.")
+    check(doc.get("rake"), tuple(schema["properties"]["rake"]["properties"]), "rake.")
+
+
 @dataclass(frozen=True)
 class Recode:
     waves: tuple[str, ...]
@@ -154,7 +243,7 @@ def _code_map(node: Any, path: str) -> dict[float, str]:
         code = _as_code(key, f"{path}.{key}")
         if code in out:
             raise _err(path, f"code {_fmt_code(code)} is given twice")
-        out[code] = str(label)
+        out[code] = _text(label, f"{path}.{key}")
     return out
 
 
@@ -178,6 +267,7 @@ def load_codebook(path: str | Path) -> Codebook:
 
 
 def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
+    _guard(text, name)
     try:
         doc = yaml.load(text, Loader=_Loader)  # noqa: S506 - a SafeLoader subclass
     except yaml.MarkedYAMLError as exc:
@@ -188,6 +278,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         raise TrackerError(f"codebook: {name}: broken YAML: {exc}") from None
     if not isinstance(doc, dict):
         raise TrackerError(f"codebook: {name}: expected a mapping at the top level")
+    _unknown_keys(doc)
 
     for key in ("title", "id", "variables", "metrics"):
         if key not in doc:
@@ -211,8 +302,14 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
     for v in variables.values():
         owned = list(v.options) if v.type == "multi" else [v.name, *v.aliases]
         for col in owned:
-            if col in design:
-                raise _err(f"variables.{v.name}", f"column {col!r} is also a design column (id/weight/strata/clusters)")
+            # strata and clusters may also be variables (results by region are a common need);
+            # the id and the weight may not: they are not answers
+            if col in (id_col, weight):
+                raise _err(f"variables.{v.name}", f"column {col!r} is the {'id' if col == id_col else 'weight'} "
+                                                  f"column and cannot also be a variable")
+            if col in (strata, clusters) and col != v.name:
+                raise _err(f"variables.{v.name}", f"column {col!r} is a design column; it can be a variable "
+                                                  f"only under its own name, not as an alias")
             if col in columns:
                 raise _err(f"variables.{v.name}", f"column {col!r} is also used by variable {columns[col]}")
             columns[col] = v.name
@@ -287,7 +384,7 @@ def _parse_variable(name: str, node: Any) -> Variable:
     vtype = node.get("type")
     if vtype not in TYPES:
         raise _err(f"{path}.type", f"{vtype!r} is not one of {', '.join(TYPES)}")
-    label = str(node.get("label", name))
+    label = _text(node.get("label", name), f"{path}.label")
     codes = _code_map(node["codes"], f"{path}.codes") if "codes" in node else {}
     missing = _code_map(node["missing"], f"{path}.missing") if "missing" in node else {}
     if vtype in ("category", "scale") and not codes:
@@ -299,7 +396,7 @@ def _parse_variable(name: str, node: Any) -> Variable:
         raise _err(f"{path}.missing", f"code {_fmt_code(min(both))} is also in codes")
     options = {}
     if vtype == "multi":
-        options = {str(k): str(v) for k, v in _mapping(node.get("options"), f"{path}.options").items()}
+        options = {str(k): _text(v, f"{path}.options.{k}") for k, v in _mapping(node.get("options"), f"{path}.options").items()}
         if not options:
             raise _err(f"{path}.options", "a multi variable needs at least one option column")
     elif "options" in node:
@@ -311,6 +408,8 @@ def _parse_variable(name: str, node: Any) -> Variable:
             raise _err(f"{path}.range", "only a number variable has a range")
         if (not isinstance(r, list) or len(r) != 2 or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in r)):
             raise _err(f"{path}.range", "expected [low, high]")
+        if not all(math.isfinite(x) for x in r):
+            raise _err(f"{path}.range", f"{r}: both ends must be finite numbers (not .nan or .inf)")
         if r[0] > r[1]:
             raise _err(f"{path}.range", f"low {r[0]} is above high {r[1]}")
         rng = (float(r[0]), float(r[1]))
@@ -364,6 +463,8 @@ def _parse_group(name: str, node: Any, variables: dict[str, Variable]) -> Group:
             if (not isinstance(rng, list) or len(rng) != 2
                     or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in rng)):
                 raise _err(bpath, "expected [low, high]")
+            if not all(math.isfinite(x) for x in rng):
+                raise _err(bpath, f"{rng}: both ends must be finite numbers (not .nan or .inf)")
             if rng[0] > rng[1]:
                 raise _err(bpath, f"low {rng[0]} is above high {rng[1]}")
             for other, (lo, hi) in bands.items():
@@ -420,7 +521,7 @@ def _parse_metric(name: str, node: Any, variables: dict[str, Variable]) -> Metri
     if len(kinds) != 1:
         raise _err(path, "give exactly one of share, mean, balance")
     kind = kinds[0]
-    label = str(node.get("label", name))
+    label = _text(node.get("label", name), f"{path}.label")
     codes: tuple = ()
     plus: tuple = ()
     minus: tuple = ()

@@ -62,30 +62,75 @@ def file_sha256(path: Path) -> str:
     return h.hexdigest()
 
 
-def read_wave_file(path: str | Path, encoding: str | None = None) -> WaveFile:
-    """Read CSV (delimiter sniffed, UTF-8 with or without BOM by default), Parquet or XLSX."""
+#: Weights above this, or a largest weight more than MAX_WEIGHT_RATIO times the smallest,
+#: are refused: no survey design produces them, and squares of 1e300 overflow.
+MAX_WEIGHT = 1e12
+MAX_WEIGHT_RATIO = 1e6
+
+#: What the first bytes of a file say it is, whatever its name.
+MAGIC = ((b"PAR1", "Parquet", ".parquet"), (b"PK\x03\x04", "XLSX (a zip archive)", ".xlsx"),
+         (b"\xff\xfe", "UTF-16 text", None), (b"\xfe\xff", "UTF-16 text", None))
+
+
+def _sniff(path: Path, suffix: str) -> None:
+    """Refuse a file whose content is not what its name says, naming what it looks like."""
+    with open(path, "rb") as fh:
+        head = fh.read(4096)
+    for magic, what, right in MAGIC:
+        if head.startswith(magic):
+            if right == suffix or (right == ".xlsx" and suffix == ".xlsm"):
+                return
+            if right is None:
+                raise TrackerError(f"{path}: the file is {what}; save it as UTF-8 CSV, or give --encoding utf-16")
+            raise TrackerError(f"{path}: the file is {what} although its name ends in {suffix or 'nothing'}; "
+                               f"rename it to end in {right}")
+    if suffix in (".parquet", ".xlsx", ".xlsm"):
+        what = "a Parquet file" if suffix == ".parquet" else "an XLSX workbook"
+        raise TrackerError(f"{path}: the file is not {what} (its first bytes say otherwise); "
+                           f"is it a CSV file with the wrong name?")
+    if b"\x00" in head:
+        raise TrackerError(f"{path}: the file holds binary data, not CSV text (a NUL byte in its first 4 KB)")
+    if head.lstrip()[:1] in (b"{", b"["):
+        raise TrackerError(f"{path}: the file looks like JSON, not CSV; export the wave as CSV, XLSX or Parquet")
+
+
+def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | None = None,
+                   header_row: int | None = None) -> WaveFile:
+    """Read CSV (delimiter sniffed, UTF-8 with or without BOM by default), Parquet or XLSX.
+
+    XLSX: ``sheet`` names the sheet (required when several hold data); ``header_row`` the
+    spreadsheet row holding the column names (default: found as the first row that fills
+    at least half the table's width with text)."""
     path = Path(path)
     if not path.is_file():
         raise TrackerError(f"{path}: file not found")
-    if path.stat().st_size == 0:
-        raise TrackerError(f"{path}: the file is empty")
-    sha = file_sha256(path)
+    try:
+        if path.stat().st_size == 0:
+            raise TrackerError(f"{path}: the file is empty")
+        sha = file_sha256(path)
+    except OSError as exc:
+        raise TrackerError(f"{path}: cannot be read ({(exc.strerror or str(exc)).lower()})") from None
     suffix = path.suffix.lower()
+    if not (encoding and suffix not in (".parquet", ".xlsx", ".xlsm")):
+        _sniff(path, suffix)
+    problems: list[Problem] = []
     if suffix == ".parquet":
         try:
             table = pd.read_parquet(path)
         except Exception as exc:  # pyarrow raises many types for a broken file
-            raise TrackerError(f"{path}: cannot be read as Parquet ({exc})") from None
+            text = str(exc)
+            if "duplicate" in text.lower():
+                raise TrackerError(f"{path}: a column name appears more than once; every column needs its own "
+                                   f"name") from None
+            raise TrackerError(f"{path}: cannot be read as Parquet ({text.splitlines()[0][:200]})") from None
+        if table.columns.duplicated().any():
+            raise TrackerError(f"{path}, column {table.columns[table.columns.duplicated()][0]}: the column name "
+                               f"appears more than once")
         table = table.astype(object).where(table.notna(), "")
         table = table.map(lambda v: v if isinstance(v, str) else _plain(v))
         first_row = 1
     elif suffix in (".xlsx", ".xlsm"):
-        try:
-            table = pd.read_excel(path, dtype=object, engine="openpyxl")
-        except Exception as exc:
-            raise TrackerError(f"{path}: cannot be read as XLSX ({exc})") from None
-        table = table.where(table.notna(), "").map(lambda v: v if isinstance(v, str) else _plain(v))
-        first_row = 2
+        table, first_row, problems = _read_xlsx(path, sheet, header_row)
     else:
         table = _read_csv(path, encoding)
         first_row = 2
@@ -94,7 +139,61 @@ def read_wave_file(path: str | Path, encoding: str | None = None) -> WaveFile:
         raise TrackerError(f"{path}: the file has no columns")
     if len(table) == 0:
         raise TrackerError(f"{path}: the file has a header but no respondents")
-    return WaveFile(path, table, first_row, sha)
+    return WaveFile(path, table, first_row, sha, problems)
+
+
+def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
+    """One sheet of a workbook as text cells, refusing what would silently lose data:
+    merged cells, formulas with no stored result, data on a sheet not chosen."""
+    from openpyxl import load_workbook
+    from openpyxl.utils import get_column_letter
+
+    try:
+        book = load_workbook(path, data_only=True)
+        formulas = load_workbook(path, data_only=False)
+    except Exception as exc:
+        raise TrackerError(f"{path}: cannot be read as XLSX ({str(exc)[:200]})") from None
+    filled = [ws.title for ws in book.worksheets if ws.max_row > 1 or ws.max_column > 1 or ws.cell(1, 1).value is not None]
+    if sheet is None:
+        if len(filled) > 1:
+            raise TrackerError(f"{path}: {len(filled)} sheets hold data ({', '.join(filled)}); choose one with --sheet")
+        if not filled:
+            raise TrackerError(f"{path}: every sheet is empty")
+        sheet = filled[0]
+    elif sheet not in book.sheetnames:
+        raise TrackerError(f"{path}: no sheet named {sheet!r} (sheets: {', '.join(book.sheetnames)})")
+    ws, wf = book[sheet], formulas[sheet]
+    if ws.merged_cells.ranges:
+        shown = ", ".join(str(r) for r in list(ws.merged_cells.ranges)[:5])
+        raise TrackerError(f"{path}, sheet {sheet}: merged cells ({shown}); unmerge them so that every respondent "
+                           f"has their own value")
+    rows = [list(r) for r in ws.iter_rows(values_only=True)]
+    lost = [f"{get_column_letter(c.column)}{c.row}" for r in wf.iter_rows() for c in r
+            if c.data_type == "f" and ws.cell(c.row, c.column).value is None]
+    if lost:
+        raise TrackerError(f"{path}, sheet {sheet}: {len(lost)} formula cell(s) have no stored value (e.g. "
+                           f"{', '.join(lost[:5])}); open the file in a spreadsheet program and save it, or paste "
+                           f"the values")
+    width = max((sum(v is not None for v in r) for r in rows), default=0)
+    if header_row is None:
+        header_row = next((i + 1 for i, r in enumerate(rows)
+                           if sum(isinstance(v, str) and v.strip() != "" for v in r) >= max(1, width / 2)
+                           and all(v is None or isinstance(v, str) for v in r)), 1)
+    elif not 1 <= header_row <= len(rows):
+        raise TrackerError(f"{path}, sheet {sheet}: --header-row {header_row} is outside rows 1 to {len(rows)}")
+    header = rows[header_row - 1] if rows else []
+    keep = [j for j, v in enumerate(header) if v is not None and str(v).strip() != ""]
+    body = [[r[j] if j < len(r) else None for j in keep] for r in rows[header_row:]]
+    body = [r for r in body if any(v is not None and str(v).strip() != "" for v in r)]
+    names = [str(header[j]).strip() for j in keep]
+    dupes = sorted({c for c in names if names.count(c) > 1})
+    if dupes:
+        raise TrackerError(f"{path}, sheet {sheet}, column {dupes[0]}: the column name appears more than once")
+    table = pd.DataFrame(body, columns=names, dtype=object)
+    table = table.where(table.notna(), "").map(lambda v: v if isinstance(v, str) else _plain(v))
+    problems = [Problem("warning", "", f"sheet {sheet}: column names read from row {header_row}; rows above it "
+                                       f"left out")] if header_row > 1 else []
+    return table, header_row + 1, problems
 
 
 def _plain(v) -> str:
@@ -134,6 +233,13 @@ def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
     dupes = sorted({c.strip() for c in header if [h.strip() for h in header].count(c.strip()) > 1})
     if dupes:
         raise TrackerError(f"{path}, column {dupes[0]}: the column name appears more than once in the header")
+    widths = [(i, len(r)) for i, r in enumerate(csv.reader(io.StringIO(text), delimiter=delimiter), 1) if r]
+    want = widths[0][1] if widths else 0
+    odd = [(i, n) for i, n in widths if n != want]
+    if odd:
+        shown = ", ".join(f"line {i} ({n})" for i, n in odd[:5])
+        raise TrackerError(f"{path}: {len(odd)} row(s) do not have the header's {want} fields: {shown}; a row cut "
+                           f"short or a stray delimiter would shift answers between columns")
     try:
         table = pd.read_csv(io.StringIO(text), sep=delimiter, dtype=str, keep_default_na=False,
                             skip_blank_lines=True)
@@ -234,6 +340,15 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
             inf = np.isinf(num)
             if inf.any():
                 add("error", col, "weight is not finite", inf)
+            huge = np.isfinite(num) & (num > MAX_WEIGHT)
+            if huge.any():
+                add("error", col, f"weight above {MAX_WEIGHT:.0e} (sums of squares would overflow)", huge)
+            fine = np.isfinite(num) & (num > 0) & ~huge
+            if fine.any() and num[fine].max() > MAX_WEIGHT_RATIO * num[fine].min():
+                ratio = num[fine].max() / num[fine].min()
+                add("error", col, f"the largest weight is {ratio:,.3g} times the smallest (over "
+                                  f"{MAX_WEIGHT_RATIO:,.0f}): a scaling slip or a broken weight; the rows are the "
+                                  f"largest", fine & (num == num[fine].max()))
             out[col] = pd.Series(num, index=table.index)
         else:
             if blank.any():
@@ -288,6 +403,8 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
 
 def _check_column(v: Variable, col: str, values: pd.Series, label: str, add) -> pd.Series:
     blank = (values == "").to_numpy()
+    if blank.all() and v.type != "multi":  # a multi option nobody ticked may be all blank
+        add("error", col, "the column is blank in every row (a lost export or a wrong sheet?)")
     if v.type == "text":
         return values
     num = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)

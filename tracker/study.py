@@ -90,6 +90,10 @@ def parse_date(text: str) -> str:
         raise TrackerError(f"fieldwork date {text!r} is not an ISO date (YYYY-MM-DD)") from None
 
 
+#: Fieldwork dates before this (or over a year ahead) are warned about at check and add.
+EARLIEST_DATE = dt.date(1950, 1, 1)
+
+
 def content_fingerprint(table: pd.DataFrame) -> str:
     """SHA-256 of a harmonized table that ignores row order (and so line ends, quoting and
     any other detail of the delivered file): the sorted per-row hashes of its columns in
@@ -180,14 +184,17 @@ class Study:
 
     # -- intake -----------------------------------------------------------------------
     def check(self, file: str | Path, wave: str | None = None, date: str | None = None,
-              encoding: str | None = None, replace: bool = False, allow_duplicate: bool = False) -> CheckReport:
+              encoding: str | None = None, replace: bool = False, allow_duplicate: bool = False,
+              sheet: str | None = None, header_row: int | None = None) -> CheckReport:
         """Check a wave file against the codebook without changing anything."""
-        report, _, _ = self._check(file, wave, date, encoding, replace, allow_duplicate=allow_duplicate)
+        report, _, _ = self._check(file, wave, date, encoding, replace, allow_duplicate=allow_duplicate,
+                                   sheet=sheet, header_row=header_row)
         return report
 
-    def _check(self, file, wave, date, encoding, replace, rake=False, allow_duplicate=False):
-        wf = read_wave_file(file, encoding)
-        problems: list[Problem] = []
+    def _check(self, file, wave, date, encoding, replace, rake=False, allow_duplicate=False, sheet=None,
+               header_row=None):
+        wf = read_wave_file(file, encoding, sheet=sheet, header_row=header_row)
+        problems: list[Problem] = list(wf.problems)
         label = wave
         if label is not None:
             if not LABEL_RE.fullmatch(label):
@@ -207,6 +214,10 @@ class Study:
                 clash = [w["label"] for w in self.wave_entries if w["date"] == iso and w["label"] != label]
                 if clash:
                     problems.append(Problem("error", "", f"wave {clash[0]} already has fieldwork date {iso}"))
+                latest = dt.date.today() + dt.timedelta(days=366)
+                if not EARLIEST_DATE <= dt.date.fromisoformat(iso) <= latest:
+                    problems.append(Problem("warning", "", f"fieldwork date {iso} lies outside {EARLIEST_DATE} to "
+                                            f"{latest} (a year from today); is it a typing slip?"))
         for w in self.wave_entries:
             if w["source_sha256"] == wf.sha256 and not (replace and w["label"] == label):
                 problems.append(Problem("error", "", f"this file is already stored as wave {w['label']}"
@@ -248,7 +259,7 @@ class Study:
 
     def add(self, file: str | Path, wave: str, date: str, encoding: str | None = None,
             replace: bool = False, rake: bool = False, cap: tuple[float, float] | None = None,
-            allow_duplicate: bool = False) -> AddReport:
+            allow_duplicate: bool = False, sheet: str | None = None, header_row: int | None = None) -> AddReport:
         """Validate, harmonize and store a wave; raise TrackerError (study unchanged) if it cannot be.
 
         The whole add runs under the study's write lock, against the ledger as it stands
@@ -258,11 +269,12 @@ class Study:
         iso = parse_date(date)
         with store.study_lock(self.root):
             self._ledger = store.read_ledger(self.root)
-            return self._add_locked(file, wave, iso, encoding, replace, rake, cap, allow_duplicate)
+            return self._add_locked(file, wave, iso, encoding, replace, rake, cap, allow_duplicate, sheet, header_row)
 
-    def _add_locked(self, file, wave, iso, encoding, replace, rake, cap, allow_duplicate) -> AddReport:
+    def _add_locked(self, file, wave, iso, encoding, replace, rake, cap, allow_duplicate, sheet,
+                    header_row) -> AddReport:
         rake = rake or bool(self.codebook.rake.get("always"))
-        report, table, wf = self._check(file, wave, iso, encoding, replace, rake, allow_duplicate)
+        report, table, wf = self._check(file, wave, iso, encoding, replace, rake, allow_duplicate, sheet, header_row)
         if not report.ok:
             raise TrackerError("\n".join(["cannot add " + str(file) + ":"] + report.lines()))
         book = self.codebook
@@ -292,8 +304,11 @@ class Study:
             comp = compare_composition(book, self.load(prev), table, prev, wave)
             make_up = (f"sample make-up against {prev}:", *(f"  {line}" for line in comp.lines()))
 
-        # Store: new Parquet under a fresh name, then the ledger rename commits it.
+        # Store: new Parquet under a fresh name, then the ledger rename commits it. Under the
+        # lock no other writer is at work, so what earlier killed writers left can go.
         store.sweep_incoming(self.root)
+        for orphan in store.orphans(self.root, self._ledger):
+            orphan.unlink(missing_ok=True)
         fname = store.free_wave_file(self.root, wave)
         try:
             store.write_parquet_atomic(self.root / fname, table)

@@ -1,0 +1,341 @@
+"""Every bad input the tool meets, in one table: each must end in a clear message naming
+what is wrong, exit code 1, no traceback, and a byte-identical study (or no study at all).
+
+Common practice, no source: refusing bad input atomically and saying why. The cases are
+the ones a tester tried against the tool (wave files, codebooks, damaged studies).
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+
+from tracker import Study
+from tracker.cli import main
+
+from .conftest import EXAMPLE_CODEBOOK, example_wave, snapshot
+
+BOOK = EXAMPLE_CODEBOOK.read_text()
+
+
+def run(*args):
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+# -- wave files: (id, writer(tmp) -> path or (path, extra args), expected text) -------------
+
+def csv_of(frame, name="w.csv", **kw):
+    def write(tmp):
+        path = tmp / name
+        frame.to_csv(path, index=False, **kw)
+        return path
+    return write
+
+
+def changed(**cols):
+    frame = example_wave(n=60, seed=2)
+    for col, value in cols.items():
+        frame[col] = frame[col].astype(object)
+        if callable(value):
+            value(frame)
+        else:
+            frame.loc[3, col] = value
+    return frame
+
+
+def dropped(*cols):
+    return example_wave(n=60, seed=2).drop(columns=list(cols))
+
+
+def raw(data: bytes, name="w.csv"):
+    def write(tmp):
+        path = tmp / name
+        path.write_bytes(data)
+        return path
+    return write
+
+
+def good_csv_bytes(seed=2):
+    return example_wave(n=60, seed=seed).to_csv(index=False).encode()
+
+
+def parquet_named(name):
+    def write(tmp):
+        path = tmp / name
+        example_wave(n=60, seed=2).to_parquet(path)
+        return path
+    return write
+
+
+def xlsx(build, name="w.xlsx"):
+    def write(tmp):
+        from openpyxl import Workbook
+
+        wb = Workbook()
+        ws = wb.active
+        frame = example_wave(n=20, seed=2)
+        ws.append(list(frame.columns))
+        for row in frame.itertuples(index=False):
+            ws.append([v.item() if hasattr(v, "item") else v for v in row])
+        build(wb, ws)
+        path = tmp / name
+        wb.save(path)
+        return path
+    return write
+
+
+def two_sheets(wb, ws):
+    other = wb.create_sheet("notes")
+    other.append(["written by the fieldwork agency"])
+
+
+def merged(wb, ws):
+    ws.merge_cells("H2:H6")
+
+
+def formula(wb, ws):
+    ws["I3"] = "=1+1"  # openpyxl stores no cached value
+
+
+def dup_header(wb, ws):
+    ws["B1"] = "member_id"
+
+
+def short_row(tmp):
+    lines = good_csv_bytes().decode().splitlines()
+    lines[5] = ",".join(lines[5].split(",")[:-3])
+    path = tmp / "w.csv"
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def long_row(tmp):
+    lines = good_csv_bytes().decode().splitlines()
+    lines[7] = lines[7] + ",1,2"
+    path = tmp / "w.csv"
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def dup_column_csv(tmp):
+    lines = good_csv_bytes().decode().splitlines()
+    lines[0] = lines[0].replace("age", "sex", 1)
+    path = tmp / "w.csv"
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def both_names(tmp):
+    frame = example_wave(n=60, seed=2)
+    frame["sat_overall"] = frame["satisfaction"]
+    path = tmp / "w.csv"
+    frame.to_csv(path, index=False)
+    return path
+
+
+def stored_again(tmp):
+    return tmp / "first.csv", []
+
+
+def redelivered(tmp):
+    frame = pd.read_csv(tmp / "first.csv").sample(frac=1.0, random_state=3)
+    path = tmp / "again.csv"
+    path.write_bytes(frame.to_csv(index=False).replace("\n", "\r\n").encode())
+    return path
+
+
+def labelled(label, date="2025-06-30", extra=()):
+    def write(tmp):
+        path = tmp / "w.csv"
+        example_wave(n=60, seed=2).to_csv(path, index=False)
+        return path, ["--wave", label, "--date", date, *extra]
+    return write
+
+
+def latin1(tmp):
+    path = tmp / "w.csv"
+    frame = example_wave(n=60, seed=2)
+    frame["member_id"] = frame["member_id"].astype(str) + "\u00e9"
+    path.write_bytes(frame.to_csv(index=False).encode("latin-1"))
+    return path
+
+
+def huge_ratio(frame):
+    frame["wt"] = 1.0
+    frame.loc[0, "wt"] = 1e7
+
+
+WAVE_CASES = [
+    ("no id column", csv_of(dropped("member_id")), "the id column is missing"),
+    ("duplicate ids", csv_of(changed(member_id=lambda f: f.__setitem__("member_id", ["M1"] * len(f)))),
+     "appear more than once"),
+    ("blank id", csv_of(changed(member_id="")), "blank id"),
+    ("no weight column", csv_of(dropped("wt")), "the weight column is missing"),
+    ("blank weight", csv_of(changed(wt="")), "blank weight"),
+    ("weight as text", csv_of(changed(wt="heavy")), "weight is not a number"),
+    ("zero weight", csv_of(changed(wt=0)), "weight is zero or negative"),
+    ("negative weight", csv_of(changed(wt=-1.5)), "weight is zero or negative"),
+    ("infinite weight", csv_of(changed(wt="inf")), "weight is not finite"),
+    ("weight 1e300", csv_of(changed(wt=1e300)), "weight above 1e+12"),
+    ("weight ratio", csv_of(changed(wt=huge_ratio)), "times the smallest"),
+    ("no strata column", csv_of(dropped("site_stratum")), "the strata column is missing"),
+    ("blank stratum", csv_of(changed(site_stratum="")), "blank strata"),
+    ("blank cluster", csv_of(changed(visit_day="")), "blank clusters"),
+    ("code outside the frame", csv_of(changed(satisfaction=7)), "7"),
+    ("text in a scale", csv_of(changed(satisfaction="good")), "text where a number belongs"),
+    ("number out of range", csv_of(changed(age=150)), "150"),
+    ("text in a number", csv_of(changed(age="forty")), "text where a number belongs"),
+    ("multi not 0/1", csv_of(changed(use_pool=2)), "use_pool"),
+    ("required column missing", csv_of(dropped("satisfaction")), "required column"),
+    ("multi option missing", csv_of(dropped("use_pool")), "option column(s) of classes_used missing"),
+    ("name and alias both present", both_names, "all map to variable satisfaction"),
+    ("duplicate header in CSV", dup_column_csv, "the column name appears more than once"),
+    ("row cut short", short_row, "do not have the header's 14 fields: line 6 (11)"),
+    ("row too long", long_row, "line 8 (16)"),
+    ("blank column", csv_of(changed(cleanliness=lambda f: f.__setitem__("cleanliness", ""))),
+     "the column is blank in every row"),
+    ("empty file", raw(b""), "the file is empty"),
+    ("whitespace only", raw(b"  \n\n "), "the file is empty"),
+    ("header only", raw(good_csv_bytes().splitlines()[0] + b"\n"), "a header but no respondents"),
+    ("binary garbage", raw(bytes(range(256)) * 8), "binary data, not CSV text"),
+    ("UTF-16 text", raw(good_csv_bytes().decode().encode("utf-16")), "UTF-16 text"),
+    ("JSON named .csv", raw(json.dumps([{"member_id": 1}]).encode()), "looks like JSON"),
+    ("Parquet named .csv", parquet_named("w.csv"), "Parquet although its name ends in .csv"),
+    ("CSV named .parquet", raw(good_csv_bytes(), "w.parquet"), "is it a CSV file with the wrong name"),
+    ("CSV named .xlsx", raw(good_csv_bytes(), "w.xlsx"), "the file is not an XLSX workbook"),
+    ("latin-1 without --encoding", latin1, "is not valid utf-8-sig text"),
+    ("XLSX with two filled sheets", xlsx(two_sheets), "2 sheets hold data (Sheet, notes); choose one with --sheet"),
+    ("XLSX merged cells", xlsx(merged), "merged cells (H2:H6)"),
+    ("XLSX formula without a value", xlsx(formula), "formula cell(s) have no stored value (e.g. I3)"),
+    ("XLSX duplicate header", xlsx(dup_header), "column member_id: the column name appears more than once"),
+    ("the same file again", stored_again, "this file is already stored as wave 2025-Q1"),
+    ("re-delivered data", redelivered, "the data are the same as stored wave 2025-Q1"),
+    ("label with a newline", labelled("2025-Q2\n"), "is not valid"),
+    ("label with a space", labelled("2025 Q2"), "is not valid"),
+    ("label too long", labelled("Q" * 41), "at most 40 characters"),
+    ("label already stored", labelled("2025-Q1"), "already stored; use --replace"),
+    ("--replace of a missing label", labelled("2025-Q2", extra=["--replace"]), "--replace: no wave labelled 2025-Q2"),
+    ("date not ISO", labelled("2025-Q2", date="30/06/2025"), "is not an ISO date"),
+    ("date taken", labelled("2025-Q2", date="2025-03-31"), "already has fieldwork date 2025-03-31"),
+    ("unknown encoding", lambda tmp: (raw(good_csv_bytes())(tmp), ["--encoding", "klingon"]), "unknown encoding"),
+    ("XLSX sheet not there", lambda tmp: (xlsx(lambda wb, ws: None)(tmp), ["--sheet", "Data"]),
+     "no sheet named 'Data'"),
+]
+
+
+@pytest.fixture(scope="module")
+def base(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("bad")
+    study = Study.create(tmp / "study", EXAMPLE_CODEBOOK)
+    example_wave(n=60, seed=1).to_csv(tmp / "first.csv", index=False)
+    study.add(tmp / "first.csv", "2025-Q1", "2025-03-31")
+    return tmp
+
+
+@pytest.mark.parametrize("name, write, expected", WAVE_CASES, ids=[c[0] for c in WAVE_CASES])
+def test_a_bad_wave_file_is_refused_whole(base, name, write, expected):
+    made = write(base)
+    path, extra = made if isinstance(made, tuple) else (made, None)
+    args = extra if extra is not None else ["--wave", "2025-Q2", "--date", "2025-06-30"]
+    if extra is not None and "--wave" not in extra:
+        args = ["--wave", "2025-Q2", "--date", "2025-06-30", *extra]
+    before = snapshot(base / "study")
+    result = run("add", base / "study", path, *args)
+    assert result.exit_code == 1, result.output
+    assert expected in result.output, result.output
+    assert "Traceback" not in result.output and isinstance(result.exception, SystemExit)  # a message, not a crash
+    assert snapshot(base / "study") == before
+
+
+# -- codebooks: (id, text, expected) --------------------------------------------------------
+
+def nested(depth):
+    return "title: x\nid: i\nvariables: " + "[" * depth + "]" * depth + "\nmetrics: {}\n"
+
+
+def bomb():
+    lines = ["a0: &a0 [lol, lol, lol, lol, lol, lol, lol, lol, lol]"]
+    lines += [f"a{i}: &a{i} [" + ", ".join([f"*a{i - 1}"] * 9) + "]" for i in range(1, 9)]
+    return "\n".join(lines) + "\n" + BOOK.replace("label: Centre usually visited", "label: *a8")
+
+
+CODEBOOK_CASES = [
+    ("misspelt weight", BOOK.replace("weight: wt", "wieght: wt"), "wieght: unknown key; did you mean 'weight'?"),
+    ("misspelt missing", BOOK.replace("missing: {9:", "mising: {9:"),
+     "variables.satisfaction.mising: unknown key; did you mean 'missing'?"),
+    ("misspelt label", BOOK.replace("label: Age in years", "lable: Age in years"),
+     "variables.age.lable: unknown key; did you mean 'label'?"),
+    ("misspelt metric key", BOOK.replace("share: [4, 5]                     #", "shares: [4, 5]  #"),
+     "unknown key; did you mean 'share'?"),
+    ("duplicate key", BOOK.replace("weight: wt ", "weight: wt\nweight: wt2 "), "key 'weight' is given twice"),
+    ("range with NaN", BOOK.replace("range: [16, 99]", "range: [.nan, 99]"), "both ends must be finite"),
+    ("band with inf", BOOK.replace('"55+": [55, 99]', '"55+": [55, .inf]'), "both ends must be finite"),
+    ("20,000 nested brackets", nested(20000), "nested more than 32 levels deep"),
+    ("alias bomb as a label", bomb(), "unknown key"),
+    ("unknown type", BOOK.replace("type: number", "type: numeric"), "'numeric' is not one of"),
+    ("share code not in the frame", BOOK.replace("share: [4, 5]                     #", "share: [4, 7]  #"),
+     "code 7 is not a code of satisfaction"),
+    ("metric of an unknown variable", BOOK.replace("variable: recommend", "variable: recommends"),
+     "'recommends' is not a variable"),
+    ("merge code twice", BOOK.replace("merge: {Female: [1], Male: [2]}", "merge: {Female: [1], Male: [1]}"),
+     "code 1 is already in Female"),
+    ("id also a variable", BOOK.replace("  site:\n    label: Centre", "  member_id:\n    type: text\n  site:\n    label: Centre"),
+     "is the id column and cannot also be a variable"),
+    ("bad single-cluster rule", BOOK.replace("title: Northgate", "single_cluster_strata: ignore\ntitle: Northgate"),
+     "'ignore' is not one of"),
+    ("broken YAML", BOOK.replace("codes: {1: Harbour Road", "codes: {1: [Harbour Road"), "broken YAML at line"),
+    ("not a mapping", "- just\n- a list\n", "expected a mapping at the top level"),
+    ("no metrics key", BOOK.split("metrics:")[0], "metrics: is required"),
+    ("label a list", BOOK.replace("label: Age in years", "label: [Age, years]"), "variables.age.label: expected a text value"),
+    ("recode to an unknown code", BOOK.replace("map: {4: 3}", "map: {4: 8}"), "code 8 is not a code of membership"),
+]
+
+
+@pytest.mark.parametrize("name, text, expected", CODEBOOK_CASES, ids=[c[0] for c in CODEBOOK_CASES])
+def test_a_bad_codebook_makes_no_study(tmp_path, name, text, expected):
+    book = tmp_path / "book.yaml"
+    book.write_text(text)
+    result = run("new", tmp_path / "study", "--codebook", book)
+    assert result.exit_code == 1, result.output
+    assert expected in result.output, result.output
+    assert "Traceback" not in result.output
+    assert not (tmp_path / "study").exists()
+
+
+def test_a_codebook_not_in_utf8_and_one_too_large(tmp_path):
+    book = tmp_path / "book.yaml"
+    book.write_bytes(BOOK.replace("Centre usually visited", "Centre usually visit\u00e9d").encode("latin-1"))
+    result = run("new", tmp_path / "s1", "--codebook", book)
+    assert result.exit_code == 1 and "not UTF-8 text" in result.output
+    book.write_text(BOOK + "#" * 2_100_000 + "\n")
+    result = run("new", tmp_path / "s2", "--codebook", book)
+    assert result.exit_code == 1 and "larger than 2 MB" in result.output
+    assert not (tmp_path / "s1").exists() and not (tmp_path / "s2").exists()
+
+
+def test_the_table_holds_at_least_sixty_distinct_bad_inputs():
+    assert len(WAVE_CASES) + len(CODEBOOK_CASES) + 1 >= 60  # the issue's floor, each case distinct
+    assert len({c[0] for c in WAVE_CASES + CODEBOOK_CASES}) == len(WAVE_CASES) + len(CODEBOOK_CASES)
+
+
+def test_design_columns_are_also_variables_and_groups(tmp_path):
+    # results by the stratification column are a common need (common practice, no source)
+    text = BOOK.replace("  site:\n    label: Centre usually visited",
+                        "  site_stratum:\n    label: Sampling stratum\n    type: category\n"
+                        "    codes: {1: North, 2: Central, 3: South}\n  site:\n    label: Centre usually visited")
+    text = text.replace("groups:                               # subgroups",
+                        "groups:\n  stratum: {variable: site_stratum}\n  # subgroups")
+    (tmp_path / "book.yaml").write_text(text)
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    frame = example_wave(n=300, seed=4)
+    frame.to_csv(tmp_path / "w.csv", index=False)
+    study.add(tmp_path / "w.csv", "2025-Q1", "2025-03-31")
+    est = study.estimates(metrics=["satisfied"], by=["stratum"])
+    north = est[est["subgroup"] == "North"].iloc[0]
+    stored = study.load("2025-Q1")
+    assert north["base"] == int(((stored["site_stratum"] == 1) & stored["satisfaction"].isin([1, 2, 3, 4, 5])).sum())
+    assert set(est["subgroup"]) == {"Total", "North", "Central", "South"}
