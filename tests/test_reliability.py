@@ -215,3 +215,73 @@ def test_the_next_add_clears_what_a_killed_writer_left(study_dir, wave_csv):
     check = store.verify(study_dir)
     assert check.ok, check.lines()
     assert len(Study(study_dir).load("2025-Q2")) == 30
+
+
+def test_an_output_that_cannot_be_written_ends_in_one_line(demo_study, tmp_path, monkeypatch):
+    import contextlib
+
+    @contextlib.contextmanager
+    def refused(path):
+        raise PermissionError(errno.EACCES, "Permission denied")
+        yield
+
+    monkeypatch.setattr(store, "_incoming", refused)
+    result = run("brief", demo_study.root, "-o", tmp_path / "b.md")
+    assert result.exit_code == 1 and "Traceback" not in result.output
+    assert f"{tmp_path / 'b.md'}: cannot write the file (permission denied); check the folder's permissions" \
+        in result.output
+    assert not (tmp_path / "b.md").exists()
+
+
+def test_the_codebook_schema_is_valid_and_agrees_with_the_parser():
+    # jsonschema (Draft 2020-12 validator) as the outside reference for the shipped schema
+    import jsonschema
+    import yaml
+
+    from tracker.codebook import _Loader, _schema
+
+    from .conftest import EXAMPLE_CODEBOOK
+
+    schema = _schema()
+    jsonschema.Draft202012Validator.check_schema(schema)
+    validator = jsonschema.Draft202012Validator(schema)
+    from pathlib import Path
+
+    for book in (EXAMPLE_CODEBOOK, Path(__file__).parents[1] / "waves" / "codebook.yaml"):
+        doc = yaml.load(book.read_text(), Loader=_Loader)  # noqa: S506
+        doc = json.loads(json.dumps(doc, default=str))  # YAML keys such as 1: become text, as in JSON
+        errors = [e.message for e in validator.iter_errors(doc)]
+        assert not errors, (book, errors)
+    bad = json.loads(json.dumps(yaml.load(EXAMPLE_CODEBOOK.read_text().replace("weight: wt", "wieght: wt"),
+                                          Loader=_Loader), default=str))  # noqa: S506
+    assert any("wieght" in e.message for e in validator.iter_errors(bad))
+
+
+def test_xlsx_with_a_notes_sheet_and_a_header_on_row_four(study_dir, tmp_path):
+    from openpyxl import Workbook
+
+    from .conftest import example_wave
+
+    frame = example_wave(n=25, seed=6)
+    wb = Workbook()
+    notes = wb.active
+    notes.title = "notes"
+    notes.append(["fieldwork summary"])
+    data = wb.create_sheet("data")
+    data.append(["Rider survey export"])
+    data.append([])
+    data.append(["exported 2025-07-01"])
+    data.append(list(frame.columns))
+    for row in frame.itertuples(index=False):
+        data.append([v.item() if hasattr(v, "item") else v for v in row])
+    wb.save(tmp_path / "w.xlsx")
+    result = run("check", study_dir, tmp_path / "w.xlsx")
+    assert result.exit_code == 1 and "2 sheets hold data (notes, data); choose one with --sheet" in result.output
+    result = run("add", study_dir, tmp_path / "w.xlsx", "--wave", "2025-Q1", "--date", "2025-03-31", "--sheet", "data")
+    assert result.exit_code == 0, result.output
+    assert "sheet data: column names read from row 4; rows above it left out" in result.output
+    stored = Study(study_dir).load("2025-Q1")
+    assert len(stored) == 25 and list(stored["member_id"]) == list(frame["member_id"])
+    # an explicit --header-row wins, and a wrong one is refused by the checks it fails
+    result = run("check", study_dir, tmp_path / "w.xlsx", "--sheet", "data", "--header-row", "3")
+    assert result.exit_code == 1

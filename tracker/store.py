@@ -105,9 +105,13 @@ def _incoming(path: Path):
 
 
 def write_atomic(path: Path, data: bytes) -> None:
-    """Write bytes to ``path`` via a temporary file in the same folder, fsync, then rename."""
-    with _incoming(path) as tmp:
-        Path(tmp).write_bytes(data)
+    """Write bytes to ``path`` via a temporary file in the same folder, fsync, then rename.
+    A file-system failure ends in one TrackerError naming the path (nothing left behind)."""
+    try:
+        with _incoming(path) as tmp:
+            Path(tmp).write_bytes(data)
+    except OSError as exc:
+        raise fs_problem(exc, path, "write the file") from None
 
 
 def write_parquet_atomic(path: Path, table: pd.DataFrame) -> None:

@@ -127,11 +127,21 @@ class Study:
             raise TrackerError(f"{root}: a study already exists here")
         if root.exists() and any(root.iterdir()):
             raise TrackerError(f"{root}: the folder exists and is not empty")
-        root.mkdir(parents=True, exist_ok=True)
-        (root / store.WAVES).mkdir(exist_ok=True)
-        (root / store.LOCK).touch()
-        store.write_atomic(root / store.CODEBOOK, book.source.encode("utf-8"))
-        store.write_ledger(root, {"format": 1, "title": book.title, "waves": []})
+        made = not root.exists()
+        try:
+            root.mkdir(parents=True, exist_ok=True)
+            (root / store.WAVES).mkdir(exist_ok=True)
+            (root / store.LOCK).touch()
+            store.write_atomic(root / store.CODEBOOK, book.source.encode("utf-8"))
+            store.write_ledger(root, {"format": 1, "title": book.title, "waves": []})
+        except (OSError, TrackerError) as exc:
+            if made:  # leave no half-made study behind
+                import shutil
+
+                shutil.rmtree(root, ignore_errors=True)
+            if isinstance(exc, OSError):
+                raise store.fs_problem(exc, root, "make the study folder") from None
+            raise
         return cls(root)
 
     @property
