@@ -71,6 +71,16 @@ def parquet_named(name):
     return write
 
 
+def parquet_twice(tmp):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    path = tmp / "twice.parquet"
+    pq.write_table(pa.Table.from_arrays([pa.array(["a", "b"]), pa.array(["c", "d"])],
+                                        names=["member_id", "member_id"]), path)
+    return path
+
+
 def xlsx(build, name="w.xlsx"):
     def write(tmp):
         from openpyxl import Workbook
@@ -205,6 +215,7 @@ WAVE_CASES = [
     ("UTF-16 text", raw(good_csv_bytes().decode().encode("utf-16")), "UTF-16 text"),
     ("JSON named .csv", raw(json.dumps([{"member_id": 1}]).encode()), "looks like JSON"),
     ("Parquet named .csv", parquet_named("w.csv"), "Parquet although its name ends in .csv"),
+    ("Parquet with a column twice", parquet_twice, "column member_id: the column name appears more than once"),
     ("CSV named .parquet", raw(good_csv_bytes(), "w.parquet"), "is it a CSV file with the wrong name"),
     ("CSV named .xlsx", raw(good_csv_bytes(), "w.xlsx"), "the file is not an XLSX workbook"),
     ("latin-1 without --encoding", latin1, "is not valid utf-8-sig text"),

@@ -116,6 +116,15 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
     problems: list[Problem] = []
     if suffix == ".parquet":
         try:
+            import pyarrow.parquet as pq
+
+            names = pq.read_schema(path).names
+        except Exception:  # pyarrow raises many types for a broken file; read_parquet says which
+            names = []
+        twice = sorted({n for n in names if names.count(n) > 1})
+        if twice:
+            raise TrackerError(f"{path}, column {twice[0]}: the column name appears more than once")
+        try:
             table = pd.read_parquet(path)
         except Exception as exc:  # pyarrow raises many types for a broken file
             text = str(exc)
