@@ -302,6 +302,8 @@ CODEBOOK_CASES = [
     ("not a mapping", "- just\n- a list\n", "expected a mapping at the top level"),
     ("no metrics key", BOOK.split("metrics:")[0], "metrics: is required"),
     ("label a list", BOOK.replace("label: Age in years", "label: [Age, years]"), "variables.age.label: expected a text value"),
+    ("group on an undeclared design column", BOOK.replace("  site: {variable: site}", "  stratum: {variable: site_stratum}"),
+     "'site_stratum' is the strata column; to break results down by it, also declare it under variables"),
     ("recode to an unknown code", BOOK.replace("map: {4: 3}", "map: {4: 8}"), "code 8 is not a code of membership"),
 ]
 

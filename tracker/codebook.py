@@ -316,7 +316,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
 
     groups = {}
     for gname, node in _mapping(doc.get("groups"), "groups", required=False).items():
-        groups[str(gname)] = _parse_group(str(gname), node, variables)
+        groups[str(gname)] = _parse_group(str(gname), node, variables, {strata: "strata", clusters: "clusters"})
 
     metrics = {}
     for mname, node in _mapping(doc["metrics"], "metrics").items():
@@ -440,17 +440,21 @@ def _parse_variable(name: str, node: Any) -> Variable:
     )
 
 
-def _variable_of(node: dict, path: str, variables: dict[str, Variable]) -> Variable:
+def _variable_of(node: dict, path: str, variables: dict[str, Variable], design: dict | None = None) -> Variable:
     vname = node.get("variable")
     if vname not in variables:
+        role = (design or {}).get(vname)
+        if role:
+            raise _err(f"{path}.variable", f"{vname!r} is the {role} column; to break results down by it, also "
+                                           f"declare it under variables (e.g. type: category with its codes)")
         raise _err(f"{path}.variable", f"{vname!r} is not a variable")
     return variables[vname]
 
 
-def _parse_group(name: str, node: Any, variables: dict[str, Variable]) -> Group:
+def _parse_group(name: str, node: Any, variables: dict[str, Variable], design: dict | None = None) -> Group:
     path = f"groups.{name}"
     node = _mapping(node, path)
-    var = _variable_of(node, path, variables)
+    var = _variable_of(node, path, variables, design)
     vname = var.name
     if "bands" in node and "merge" in node:
         raise _err(path, "give bands or merge, not both")
