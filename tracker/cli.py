@@ -9,8 +9,14 @@ from pathlib import Path
 import click
 
 from .errors import TrackerError
-from .methods.tests import ADJUST_METHODS as ADJUST_NAMES
-from .study import Study
+from .names import ADJUST_METHODS as ADJUST_NAMES
+from .names import FORMATS
+
+
+def Study(path):  # noqa: N802 - reads as the class it opens; imported here so --help starts at once
+    from .study import Study as _Study
+
+    return _Study(path)
 
 
 def user_errors(fn):
@@ -30,7 +36,7 @@ def user_errors(fn):
 
 
 @click.group()
-@click.version_option(package_name="tracker")
+@click.version_option(package_name="wavetell")
 def main():
     """Fold each new wave of a tracking study in, and tell what really moved."""
 
@@ -41,7 +47,9 @@ def main():
 @user_errors
 def new_cmd(study, codebook):
     """Make a study folder from a codebook."""
-    s = Study.create(study, codebook)
+    from .study import Study as _Study
+
+    s = _Study.create(study, codebook)
     click.echo(f"made study {s.root} ({s.codebook.title}): {len(s.codebook.variables)} variables, "
                f"{len(s.codebook.metrics)} metrics, {len(s.codebook.groups)} subgroup splits")
 
@@ -144,8 +152,21 @@ def demo_cmd(folder):
     click.echo(f"briefing for {study.labels[-1]} written to {path}")
 
 
+def level_option(fn):
+    """--level, the same in every command: a confidence level strictly between 0.5 and 1."""
+    return click.option("--level", type=click.FloatRange(0.5, 1.0, min_open=True, max_open=True), default=0.95,
+                        show_default=True,
+                        help="Confidence level of the intervals; changes are significant at 1 - level.")(fn)
+
+
+def adjust_option(fn):
+    """--adjust, the same in every command (names that cannot be read as a subgroup split)."""
+    return click.option("--adjust", type=click.Choice(list(ADJUST_NAMES)), default="bh", show_default=True,
+                        help="Control of the many comparisons: " + "; ".join(f"{k} = {v}" for k, v in ADJUST_NAMES.items())
+                        + ".")(fn)
+
+
 def _fmt_option(fn):
-    from .formatting import FORMATS
 
     return click.option("--format", "fmt", type=click.Choice(FORMATS), default="table", show_default=True,
                         help="Output form.")(fn)
@@ -156,7 +177,7 @@ def _fmt_option(fn):
 @click.option("--metric", "metrics", multiple=True, help="Metric to show (repeatable; default all).")
 @click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
 @click.option("--wave", "waves", multiple=True, help="Wave to show (repeatable; default all).")
-@click.option("--level", default=0.95, show_default=True, help="Confidence level of the intervals.")
+@level_option
 @click.option("--interval", type=click.Choice(["wilson", "korn-graubard"]), default="wilson", show_default=True,
               help="Interval for shares (means and balances use t).")
 @_fmt_option
@@ -177,9 +198,8 @@ def estimates_cmd(study, metrics, by, waves, level, interval, fmt):
               help="previous, year-ago, a wave label, or pooled:K (the K waves before, pooled).")
 @click.option("--metric", "metrics", multiple=True, help="Metric to test (repeatable; default all).")
 @click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
-@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True,
-              help="Multiple-comparison control across every test of the call.")
-@click.option("--level", default=0.95, show_default=True, help="Confidence level (significance at 1 - level).")
+@adjust_option
+@level_option
 @click.option("--all", "show_all", is_flag=True, help="List every comparison, not only significant changes.")
 @click.option("--family", type=click.Choice(["brief", "asked"]), default="brief", show_default=True,
               help="Adjust across every metric and subgroup (as the brief does), or only the comparisons asked for.")
@@ -216,9 +236,8 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fami
 @click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
 @click.option("--last", type=int, help="Use only the last N waves.")
 @click.option("--since", help="Use the waves from this one on.")
-@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True,
-              help="Multiple-comparison control across every series of the call.")
-@click.option("--level", default=0.95, show_default=True, help="Confidence level.")
+@adjust_option
+@level_option
 @click.option("--pool", type=int, help="Instead: rolling estimates pooling each wave with the POOL-1 before it.")
 @click.option("--moving-only", is_flag=True, help="List only series whose pattern is not steady.")
 @_fmt_option
@@ -253,8 +272,8 @@ def trends_cmd(study, metrics, by, last, since, adjust, level, pool, moving_only
 @click.option("--overview", is_flag=True, help="Instead: every tested change of a comparison (see --wave, --against).")
 @click.option("--wave", help="With --overview: the wave tested (default: the latest).")
 @click.option("--against", default="previous", show_default=True, help="With --overview: what it is tested against.")
-@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True)
-@click.option("--level", default=0.95, show_default=True)
+@adjust_option
+@level_option
 @click.option("-o", "--output", required=True, type=click.Path(dir_okay=False), help="FILE.html, .png, .svg or .json")
 @user_errors
 def chart_cmd(study, metric, by, overview, wave, against, adjust, level, output):
@@ -278,8 +297,8 @@ def chart_cmd(study, metric, by, overview, wave, against, adjust, level, output)
 @click.option("--wave", help="The wave to brief (default: the latest).")
 @click.option("--against", default="previous", show_default=True,
               help="previous, year-ago, a wave label, or pooled:K.")
-@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True)
-@click.option("--level", default=0.95, show_default=True)
+@adjust_option
+@level_option
 @click.option("-o", "--output", required=True, type=click.Path(dir_okay=False),
               help="brief.html, brief.md, brief.xlsx or brief.json (every comparison and pattern, for other tools)")
 @user_errors
@@ -298,8 +317,8 @@ def brief_cmd(study, wave, against, adjust, level, output):
 @click.argument("study", type=click.Path(file_okay=False))
 @click.option("--wave", help="The wave whose make-up is checked (default: the latest).")
 @click.option("--against", default="previous", show_default=True, help="previous, year-ago or a wave label.")
-@click.option("--adjust", type=click.Choice(["bh", "holm", "by", "none"]), default="bh", show_default=True)
-@click.option("--level", default=0.95, show_default=True)
+@adjust_option
+@level_option
 @_fmt_option
 @user_errors
 def composition_cmd(study, wave, against, adjust, level, fmt):

@@ -367,7 +367,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
 
 def _design_options(doc: dict) -> tuple[str, bool]:
     """The keys single_cluster_strata (a rule name) and waves_share_clusters (true/false)."""
-    from .methods.variance import SINGLE_CLUSTER_RULES
+    from .names import SINGLE_CLUSTER_RULES
 
     rule = doc.get("single_cluster_strata", "centre")
     if rule not in SINGLE_CLUSTER_RULES:

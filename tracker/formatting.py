@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-FORMATS = ("table", "csv", "json", "md")
+from .names import FORMATS  # noqa: E402
 
 
 #: First characters with which a spreadsheet would read a text cell as a formula (OWASP,

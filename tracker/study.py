@@ -10,9 +10,7 @@ import numpy as np
 import pandas as pd
 
 from . import store
-from .cells import exclusions, metric_matrix
 from .codebook import LABEL_RE, Codebook, load_codebook
-from .estimates import weights_of
 from .errors import TrackerError
 from .intake import Problem, check_wave, read_wave_file, wave_in_span
 
@@ -296,6 +294,9 @@ class Study:
             table, result = rake_table(book, table, cap=cap)
             weighting = result.ledger_entry()
             extra_lines = result.lines()
+        from .cells import exclusions, metric_matrix
+        from .estimates import weights_of
+
         weights = weights_of(book, table)
         sw, sw2 = float(weights.sum()), float((weights**2).sum())
         neff = sw * sw / sw2
@@ -533,6 +534,7 @@ class Study:
     def composition(self, wave: str | None = None, against: str = "previous", groups=None,
                     adjust: str = "bh", level: float = 0.95):
         """Compare the sample's make-up on the profile groups with another wave."""
+        check_level(level)
         from .changes import resolve_against
         from .composition import compare_composition
 
@@ -601,6 +603,7 @@ class Study:
         the JSON brief render: computed once per wave, baseline, adjustment and level."""
         from .analysis import analyse
 
+        check_level(level)
         wave = wave or self._pick_waves()[-1]
         key = ("analysis", wave, against, adjust, level)
         if key not in self._cache:
@@ -611,6 +614,7 @@ class Study:
         """Rolling estimates pooling each wave with the k - 1 waves before it (for thin subgroups)."""
         from .estimates import COLUMNS
 
+        check_level(level)
         if k < 2:
             raise TrackerError(f"--pool {k}: pool at least 2 waves")
         ms, gs, labels = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves()

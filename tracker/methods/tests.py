@@ -7,12 +7,7 @@ from scipy import stats
 
 __all__ = ["ADJUST_METHODS", "adjust_pvalues", "difference_test", "satterthwaite_df"]
 
-ADJUST_METHODS = {
-    "bh": "Benjamini-Hochberg false discovery rate",
-    "holm": "Holm family-wise error rate",
-    "by": "Benjamini-Yekutieli false discovery rate",
-    "none": "no adjustment",
-}
+from ..names import ADJUST_METHODS  # noqa: E402 - one list of names for the whole tool
 
 
 def adjust_pvalues(p, method: str = "bh") -> np.ndarray:

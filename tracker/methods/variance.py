@@ -22,12 +22,7 @@ __all__ = [
 #: What a stratum holding a single PSU contributes to the variance (codebook key
 #: ``single_cluster_strata``). Each rule is checked against the svy package's singleton
 #: rule named in brackets (tests/test_design_variance.py).
-SINGLE_CLUSTER_RULES = {
-    "centre": "the lone cluster is compared with the mean of all clusters (svy 'center')",
-    "average": "the stratum gets the average contribution of the other strata (svy 'scale')",
-    "certainty": "the stratum adds nothing: it was taken with certainty (svy 'skip', samplics 'skip')",
-    "refuse": "estimation is refused while such a stratum exists",
-}
+from ..names import SINGLE_CLUSTER_RULES  # noqa: E402 - one list of names for the whole tool
 
 
 class SingleClusterError(ValueError):
