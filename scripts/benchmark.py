@@ -48,6 +48,23 @@ def build(root: Path, waves: int, n: int, metrics: int, groups: int) -> Study:
     return Study(root / "study")
 
 
+def startup(study: Path, runs: int = 7) -> dict[str, float]:
+    """Median wall time of `tracker --help` and `tracker waves STUDY` as fresh processes."""
+    import statistics
+    import subprocess
+    import sys
+
+    out = {}
+    for name, args in (("tracker --help", ["--help"]), ("tracker waves", ["waves", str(study)])):
+        times = []
+        for _ in range(runs):
+            t = time.perf_counter()
+            subprocess.run([sys.executable, "-m", "tracker", *args], check=True, capture_output=True)
+            times.append(time.perf_counter() - t)
+        out[name] = statistics.median(times)
+    return out
+
+
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--waves", type=int, default=24)
@@ -68,6 +85,7 @@ def main() -> None:
         if hasattr(study, "trends"):
             tr = study.trends()
         t4 = time.perf_counter()
+        starts = startup(Path(tmp) / "study")
     print(f"cores: {os.cpu_count()}")
     print(f"study: {args.waves} waves x {args.n} respondents x {args.metrics} metrics x {args.groups} splits")
     print(f"building (intake of every wave): {t1 - t0:.2f} s")
@@ -76,6 +94,8 @@ def main() -> None:
     if tr is not None:
         print(f"trends ({len(tr):,} series): {t4 - t3:.2f} s")
     print(f"estimates + changes: {t3 - t1:.2f} s")
+    for name, sec in starts.items():
+        print(f"start-up, {name} (median of 7 fresh processes): {sec:.2f} s")
 
 
 if __name__ == "__main__":

@@ -64,3 +64,18 @@ def test_the_distribution_has_a_name_of_its_own():
 
     dist = distribution("wavetell")
     assert any(ep.name == "tracker" and ep.value == "tracker.cli:main" for ep in dist.entry_points)
+
+
+def test_waves_answers_from_the_ledger_alone(demo_study):
+    code = ("import sys; from tracker.cli import main\n"
+            f"try: main(['waves', {str(demo_study.root)!r}])\n"
+            "except SystemExit: pass\n"
+            "print('heavy:', [m for m in ('pandas', 'numpy', 'scipy') if m in sys.modules])")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip().endswith("heavy: []")
+    lines = out.splitlines()
+    assert lines[0].split() == ["wave", "fieldwork_date", "respondents", "source_file", "added_at", "weighting"]
+    first = demo_study.waves().iloc[0]
+    assert lines[1].startswith(f"{first['wave']}  {first['fieldwork_date']}")
+    assert f"{first['respondents']:,}" in lines[1] and lines[1].endswith("weights from the file (wt)")
+    assert len(lines) == 1 + len(demo_study.labels) + 1

@@ -98,7 +98,7 @@ def test_rake_on_add_reports_and_records_the_weighting(tmp_path):
     w = table["wt"].to_numpy()
     site = table["site"].map({1: "Harbour Road", 2: "Millfield", 3: "Ashby Park"})
     assert w[site == "Harbour Road"].sum() / w.sum() == pytest.approx(0.45, abs=1e-8)
-    assert study.waves()["weighting"].tolist() == ["raked"]
+    assert study.waves()["weighting"].tolist() == ["raked to the codebook's targets"]
 
 
 @pytest.mark.parametrize("case,message", [

@@ -125,12 +125,23 @@ def add_cmd(study, file, wave, date, encoding, replace, allow_duplicate, rake, c
 @click.argument("study", type=click.Path(file_okay=False))
 @user_errors
 def waves_cmd(study):
-    """List the stored waves in fieldwork order."""
-    table = Study(study).waves()
-    if table.empty:
+    """List the stored waves in fieldwork order.
+
+    Example: tracker waves demo-study
+    """
+    from . import store
+
+    root = Path(study)
+    rows = store.wave_rows(store.read_ledger(root))  # the ledger alone: no pandas, an instant answer
+    if not rows:
         click.echo("no waves stored yet")
         return
-    click.echo(table.to_string(index=False))
+    cols = store.WAVE_COLUMNS
+    cells = [[str(r[c]) if c != "respondents" else f"{r[c]:,}" for c in cols] for r in rows]
+    widths = [max(len(c), *(len(row[i]) for row in cells)) for i, c in enumerate(cols)]
+    click.echo("  ".join(c.ljust(w) for c, w in zip(cols, widths)).rstrip())
+    for row in cells:
+        click.echo("  ".join(v.rjust(w) if i == 2 else v.ljust(w) for i, (v, w) in enumerate(zip(row, widths))).rstrip())
 
 
 @main.command("demo")

@@ -18,8 +18,6 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import pandas as pd
-
 from .errors import TrackerError
 
 LEDGER = "ledger.json"
@@ -114,7 +112,7 @@ def write_atomic(path: Path, data: bytes) -> None:
         raise fs_problem(exc, path, "write the file") from None
 
 
-def write_parquet_atomic(path: Path, table: pd.DataFrame) -> None:
+def write_parquet_atomic(path: Path, table) -> None:
     with _incoming(path) as tmp:
         table.to_parquet(tmp, index=False)
 
@@ -164,6 +162,30 @@ def read_ledger(root: Path) -> dict:
     if problems:
         raise TrackerError(f"{path}: the ledger is damaged ({problems[0]}); run 'tracker verify {root}'")
     return ledger
+
+
+WAVE_COLUMNS = ["wave", "fieldwork_date", "respondents", "source_file", "added_at", "weighting"]
+
+
+def weighting_words(entry: dict) -> str:
+    """How a stored wave is weighted, in words."""
+    w = entry.get("weighting") or {}
+    kind = w.get("kind", "")
+    if kind == "file":
+        return f"weights from the file ({w.get('column', 'weight column')})"
+    if kind == "raked":
+        return "raked to the codebook's targets"
+    if kind == "none":
+        return "unweighted"
+    return kind
+
+
+def wave_rows(ledger: dict) -> list[dict]:
+    """The stored waves in fieldwork order, one plain row each (no pandas: `tracker waves`
+    answers at once)."""
+    return [{"wave": w["label"], "fieldwork_date": w["date"], "respondents": w["rows"], "source_file": w["source"],
+             "added_at": w.get("added", ""), "weighting": weighting_words(w)}
+            for w in sorted(ledger["waves"], key=lambda w: w["date"])]
 
 
 def write_ledger(root: Path, ledger: dict) -> None:

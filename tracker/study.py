@@ -155,14 +155,7 @@ class Study:
 
     def waves(self) -> pd.DataFrame:
         """The stored waves in fieldwork order."""
-        cols = ["wave", "fieldwork_date", "respondents", "source_file", "added_at", "weighting"]
-        rows = [
-            {"wave": w["label"], "fieldwork_date": w["date"], "respondents": w["rows"],
-             "source_file": w["source"], "added_at": w["added"],
-             "weighting": w.get("weighting", {}).get("kind", "")}
-            for w in self.wave_entries
-        ]
-        return pd.DataFrame(rows, columns=cols)
+        return pd.DataFrame(store.wave_rows(self._ledger), columns=store.WAVE_COLUMNS)
 
     def load(self, label: str) -> pd.DataFrame:
         """The harmonized respondent table of one stored wave."""
