@@ -79,3 +79,62 @@ def test_waves_answers_from_the_ledger_alone(demo_study):
     assert lines[1].startswith(f"{first['wave']}  {first['fieldwork_date']}")
     assert f"{first['respondents']:,}" in lines[1] and lines[1].endswith("weights from the file (wt)")
     assert len(lines) == 1 + len(demo_study.labels) + 1
+
+
+# -- the readable view (common practice, no source: a table should fit the screen and read in
+#    the units the brief uses); values are checked against the full-precision CSV of the same call
+
+def _run(*args, columns=100):
+    return CliRunner(env={"COLUMNS": str(columns)}).invoke(main, [str(a) for a in args])
+
+
+def test_changes_read_in_points_fit_the_width_and_put_what_moved_first(demo_study):
+    import io
+
+    import pandas as pd
+
+    root = demo_study.root
+    text = _run("changes", root, "--wave", "2025-Q2", "--all").output
+    table = [line for line in text.splitlines()]
+    assert all(len(line) <= 100 for line in table)
+    full = pd.read_csv(io.StringIO(_run("changes", root, "--wave", "2025-Q2", "--all", "--format", "csv").output))
+    assert table[0].split()[:3] == ["metric", "subgroup", "from"]
+    first = full.iloc[0]
+    assert bool(first["significant"]) and first["group"] == "total"  # what moved, totals first
+    sig = full["significant"].to_numpy()
+    assert not (sig[1:] & ~sig[:-1]).any()  # no significant row after a non-significant one
+    totals_first = full[full["significant"]]["group"].eq("total").to_numpy()
+    assert not (totals_first[1:] & ~totals_first[:-1]).any()
+    row = table[1].split()
+    assert row[0] == first["metric"] and f"{first['value_to'] * 100:.1f}%" in row
+    assert f"{first['change'] * 100:+.1f}" in row and "pts" in row
+    assert "p adj." in table[0] and "p raw" not in table[0]
+    wide = _run("changes", root, "--wave", "2025-Q2", "--all", "--wide").output
+    assert "p raw" in wide.splitlines()[0] and max(map(len, wide.splitlines())) > 100
+    assert "Metrics are shown by their short names to fit" in text
+
+
+def test_estimates_show_the_latest_wave_readably_and_write_every_column(demo_study, tmp_path):
+    import pandas as pd
+
+    root = demo_study.root
+    out = _run("estimates", root, "--metric", "satisfied", "--by", "area").output.splitlines()
+    latest = demo_study.labels[-1]
+    assert out[0].split()[:4] == ["wave", "metric", "subgroup", "value"]
+    rows = [line for line in out[1:] if line.startswith(latest)]
+    assert len(rows) == 4 and all(len(line) <= 100 for line in out)
+    est = demo_study.estimates(metrics=["satisfied"], by=["area"], waves=[latest]).set_index("subgroup")
+    assert f"{est.loc['Total', 'value'] * 100:.1f}%" in rows[0]
+    assert f"{est.loc['Total', 'base']:,}" in rows[0]
+    assert f"Wave {latest} only; --all-waves or --wave LABEL for others." in out
+    result = _run("estimates", root, "--metric", "satisfied", "-o", tmp_path / "e.xlsx")
+    assert result.exit_code == 0 and "wrote" in result.output
+    sheet = pd.read_excel(tmp_path / "e.xlsx")
+    assert set(sheet.columns) >= {"unit_variance", "design_effect", "df"} and len(sheet) == len(
+        demo_study.estimates(metrics=["satisfied"]))
+
+
+def test_nothing_moved_says_so_instead_of_an_empty_table(demo_study):
+    out = _run("changes", demo_study.root, "--wave", "2025-Q2", "--metric", "info_good", "--format", "md").output
+    assert out.startswith("No significant change in 2025-Q2 against 2025-Q1.")
+    assert "| metric |" not in out

@@ -72,11 +72,16 @@ class ChangeResult:
         return int(self.table["significant"].sum())
 
     def shown(self, show_all: bool = False) -> pd.DataFrame:
-        """Significant changes, largest first (or everything with ``show_all``)."""
+        """Significant changes (or everything with ``show_all``) in reading order: significant
+        first, totals before subgroups, then by kind (shares, balances, means: sizes in one
+        unit) and the size of the change within it."""
         t = self.table
         if not show_all:
             t = t[t["significant"]]
-        return t.reindex(t["change"].abs().sort_values(ascending=False, kind="mergesort").index)
+        kind_order = t["kind"].map({"share": 0, "balance": 1, "mean": 2}).fillna(3)
+        keys = pd.DataFrame({"sig": ~t["significant"].astype(bool), "sub": t["group"] != "total",
+                             "kind": kind_order, "size": -t["change"].abs().fillna(-1)}, index=t.index)
+        return t.loc[keys.sort_values(["sig", "sub", "kind", "size"], kind="mergesort").index]
 
     def footer(self) -> list[str]:
         alpha = 1 - self.level

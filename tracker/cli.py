@@ -178,28 +178,69 @@ def adjust_option(fn):
 
 
 def _fmt_option(fn):
-
+    """--format, --wide and -o/--output, the same on every command that prints a table."""
+    fn = click.option("-o", "--output", type=click.Path(dir_okay=False),
+                      help="Write the table to FILE (.csv, .json, .md or .xlsx: every column, full precision).")(fn)
+    fn = click.option("--wide", is_flag=True, help="At the terminal: every column, not only those that fit.")(fn)
     return click.option("--format", "fmt", type=click.Choice(FORMATS), default="table", show_default=True,
-                        help="Output form.")(fn)
+                        help="table: readable, fitted to the terminal; csv, json, md: every column at full "
+                             "precision.")(fn)
+
+
+def emit(frame, fmt: str, view: str | None, wide: bool = False, output: str | None = None,
+         footer: tuple[str, ...] | list[str] = ()) -> None:
+    """Print (or write) one result table: the readable view at the terminal, every column
+    otherwise; the footer lines go with the table and md forms."""
+    from .formatting import render
+
+    if output:
+        from .formatting import write_table
+
+        path = write_table(frame, output)
+        click.echo(f"wrote {len(frame):,} rows to {path}")
+        return
+    if fmt == "table" and view:
+        from .view import human_table
+
+        import textwrap
+
+        from .view import terminal_width
+
+        text, notes = human_table(frame, view, wide=wide)
+        click.echo(text, nl=False)
+        width = terminal_width()
+        footer = [textwrap.fill(line, width) for line in [*notes, *footer]]
+    else:
+        click.echo(render(frame, fmt), nl=False)
+    if fmt in ("table", "md"):
+        for line in footer:
+            click.echo(line)
 
 
 @main.command("estimates")
 @click.argument("study", type=click.Path(file_okay=False))
 @click.option("--metric", "metrics", multiple=True, help="Metric to show (repeatable; default all).")
 @click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
-@click.option("--wave", "waves", multiple=True, help="Wave to show (repeatable; default all).")
+@click.option("--wave", "waves", multiple=True,
+              help="Wave to show (repeatable; default: every wave, or at the terminal the latest).")
+@click.option("--all-waves", is_flag=True, help="At the terminal: every wave, not only the latest.")
 @level_option
 @click.option("--interval", type=click.Choice(["wilson", "korn-graubard"]), default="wilson", show_default=True,
               help="Interval for shares (means and balances use t).")
 @_fmt_option
 @user_errors
-def estimates_cmd(study, metrics, by, waves, level, interval, fmt):
-    """Every metric by wave and subgroup: value, bases, standard error, interval, flags."""
-    from .formatting import render
+def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, fmt, wide, output):
+    """Every metric by wave and subgroup: value, bases, standard error, interval, flags.
 
-    table = Study(study).estimates(metrics=list(metrics) or None, by=list(by) if by else None,
-                                   waves=list(waves) or None, level=level, interval=interval)
-    click.echo(render(table, fmt), nl=False)
+    Example: tracker estimates demo-study --metric satisfied --by area
+    """
+    s = Study(study)
+    latest_only = fmt == "table" and not output and not waves and not all_waves
+    table = s.estimates(metrics=list(metrics) or None, by=list(by) if by else None,
+                        waves=[s.labels[-1]] if latest_only and s.labels else (list(waves) or None),
+                        level=level, interval=interval)
+    note = [f"Wave {s.labels[-1]} only; --all-waves or --wave LABEL for others."] if latest_only and s.labels else []
+    emit(table, fmt, "estimates", wide, output, note)
 
 
 @main.command("changes")
@@ -218,27 +259,30 @@ def estimates_cmd(study, metrics, by, waves, level, interval, fmt):
                             "part within its levels, with the change standardised to the earlier mix.")
 @_fmt_option
 @user_errors
-def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, family, mix, fmt):
-    """What changed in a wave, tested with control of the many comparisons."""
+def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, family, mix, fmt, wide, output):
+    """What changed in a wave, tested with control of the many comparisons.
+
+    Example: tracker changes demo-study --wave 2025-Q2 --against year-ago
+    """
     from .changes import COLUMNS
-    from .formatting import render
 
     result = Study(study).changes(wave=wave, against=against, by=list(by) if by else None,
                                   metrics=list(metrics) or None, adjust=adjust, level=level, mix=mix, family=family)
     if mix:
-        click.echo(render(result.mix, fmt), nl=False)
-        if fmt in ("table", "md"):
-            click.echo(f"Kitagawa split of each total change by the mix on {mix}; the standardised change re-weights "
-                       f"{result.wave} to the mix of {result.against}, tested with {ADJUST_NAMES[adjust]} adjustment.")
+        emit(result.mix, fmt, None, wide, output,
+             [f"Kitagawa split of each total change by the mix on {mix}; the standardised change re-weights "
+              f"{result.wave} to the mix of {result.against}, tested with {ADJUST_NAMES[adjust]} adjustment."])
         return
     shown = result.shown(show_all)[COLUMNS]
-    click.echo(render(shown, fmt), nl=False)
-    if fmt in ("table", "md"):
-        rest = len(result.table) - len(shown)
-        if rest:
-            click.echo(f"({rest} other comparisons without a significant change; --all lists them)")
-        for line in result.footer():
+    rest = len(result.table) - len(shown)
+    footer = ([f"({rest} other comparisons without a significant change; --all lists them)"] if rest else []) \
+        + list(result.footer())
+    if fmt in ("table", "md") and not output and shown.empty:  # no header-only table
+        click.echo(f"No significant change in {result.wave} against {result.against}.")
+        for line in footer:
             click.echo(line)
+        return
+    emit(shown, fmt, "changes", wide, output, footer)
 
 
 @main.command("trends")
@@ -253,27 +297,28 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fami
 @click.option("--moving-only", is_flag=True, help="List only series whose pattern is not steady.")
 @_fmt_option
 @user_errors
-def trends_cmd(study, metrics, by, last, since, adjust, level, pool, moving_only, fmt):
-    """Slope per year, extra variation and the pattern of every series (steady, rising, falling, shifted, blip)."""
-    from .formatting import render
+def trends_cmd(study, metrics, by, last, since, adjust, level, pool, moving_only, fmt, wide, output):
+    """The pattern of every series (steady, rising, falling, shifted, a one-wave blip, moved) and its slope.
+
+    Example: tracker trends demo-study --by total --moving-only
+    """
     from .trends import COLUMNS
 
     s = Study(study)
     if pool:
-        click.echo(render(s.pooled(pool, metrics=list(metrics) or None, by=list(by) if by else None, level=level), fmt),
-                   nl=False)
+        pooled = s.pooled(pool, metrics=list(metrics) or None, by=list(by) if by else None, level=level)
+        emit(pooled, fmt, "estimates", wide, output, [f"Each wave pooled with the {pool - 1} before it."])
         return
     table = s.trends(metrics=list(metrics) or None, by=list(by) if by else None, last=last, since=since,
                      adjust=adjust, level=level)
     shown = table[table["pattern"] != "steady"] if moving_only else table
-    click.echo(render(shown[COLUMNS], fmt), nl=False)
-    if fmt in ("table", "md"):
-        counts = table["pattern"].value_counts()
-        click.echo(f"{len(table)} series: " + ", ".join(f"{v} {k}" for k, v in counts.items()))
-        click.echo(f"Patterns decided after {table.attrs['adjust']} adjustment across the slope, shift and blip "
-                   f"tests of all series, at the {1 - level:g} level. Slopes are per year of fieldwork time.")
-        click.echo("Sampling error and the between-wave variation are both in the intervals; "
-                   "significance is not importance.")
+    counts = table["pattern"].value_counts()
+    emit(shown[COLUMNS], fmt, "trends", wide, output, [
+        f"{len(table)} series: " + ", ".join(f"{v} {k}" for k, v in counts.items()),
+        f"Each series tested once for not being steady (a line, a step or a one-wave blip), after "
+        f"{table.attrs['adjust']} adjustment across all series at the {1 - level:g} level. Slopes are per year "
+        f"of fieldwork time.",
+        "Sampling error and the between-wave variation are both in the intervals; significance is not importance."])
 
 
 @main.command("chart")
@@ -332,14 +377,22 @@ def brief_cmd(study, wave, against, adjust, level, output):
 @level_option
 @_fmt_option
 @user_errors
-def composition_cmd(study, wave, against, adjust, level, fmt):
-    """Compare the sample's make-up on the profile groups with another wave."""
-    from .formatting import render
+def composition_cmd(study, wave, against, adjust, level, fmt, wide, output):
+    """Compare the sample's make-up on the profile groups with another wave.
 
+    \b
+    Example:  tracker composition demo-study --wave 2025-Q4
+    """
     result = Study(study).composition(wave=wave, against=against, adjust=adjust, level=level)
-    click.echo(render(result.shares, fmt), nl=False)
-    if fmt in ("table", "md"):
-        for line in result.lines():
-            click.echo(line)
-    else:
-        click.echo(render(result.tests, fmt), nl=False)
+    if fmt == "json" and not output:
+        import json
+
+        doc = {"wave": result.wave, "against": result.against, "adjust": result.adjust, "level": result.level,
+               "tests": json.loads(result.tests.to_json(orient="records", double_precision=10)),
+               "shares": json.loads(result.shares.to_json(orient="records", double_precision=10))}
+        click.echo(json.dumps(doc, indent=1))
+        return
+    if fmt == "table" and not output:
+        emit(result.shares, fmt, "composition", wide, None, result.lines())
+        return
+    emit(result.table(), fmt, None, wide, output, result.lines())

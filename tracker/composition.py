@@ -61,6 +61,10 @@ def stacked_shares(labels: list[np.ndarray], levels: list[str], weights: list[np
     return pi, V, n, df, shares
 
 
+def _p(p: float) -> str:
+    return "<0.001" if p < 0.001 else f"{p:.3f}"
+
+
 @dataclass(frozen=True)
 class CompositionResult:
     """The make-up of two waves on the profile groups, with one test per group."""
@@ -75,12 +79,18 @@ class CompositionResult:
     def shifted(self) -> pd.DataFrame:
         return self.tests[self.tests["shifted"]]
 
+    def table(self) -> pd.DataFrame:
+        """One table for machine formats: a row per group x level, carrying its group's test."""
+        tests = self.tests.drop(columns=["largest_move"]).rename(
+            columns={c: f"test_{c}" for c in self.tests.columns if c not in ("group", "largest_move")})
+        return self.shares.merge(tests, on="group", how="left")
+
     def lines(self) -> list[str]:
         out = []
         for r in self.tests.itertuples():
             verdict = "shifted" if r.shifted else "no clear shift"
             out.append(f"{r.group}: {verdict} (weighted mix, Rao-Scott F {r.f:.2f} on {r.f_df_num:.1f} and "
-                       f"{r.f_df_den:.1f} df, adjusted p {r.p_adjusted:.4f}); largest move: {r.largest_move}")
+                       f"{r.f_df_den:.1f} df, adjusted p {_p(r.p_adjusted)}); largest move: {r.largest_move}")
         out.append(f"{len(self.tests)} profile groups tested, {int(self.tests['shifted'].sum())} shifted, after "
                    f"{ADJUST_METHODS[self.adjust]} adjustment at the {1 - self.level:g} level.")
         return out
@@ -118,10 +128,16 @@ def compare_composition(book: Codebook, a: pd.DataFrame, b: pd.DataFrame, wave_a
                     for lab in labs)
         moves = pw2 - pw1
         j = int(np.argmax(np.abs(moves)))
+        if abs(moves[j]) < 0.0005:  # weighting to targets holds the weighted shares: say so
+            ju = int(np.argmax(np.abs(pu2 - pu1)))
+            largest = (f"{levels[ju]} {pu1[ju]:.1%} to {pu2[ju]:.1%} unweighted (the weights hold the "
+                       f"weighted shares at their targets)")
+        else:
+            largest = f"{levels[j]} {pw1[j]:.1%} to {pw2[j]:.1%}"
         test_rows.append({"group": g, "base_from": n1, "base_to": n2, "pearson_chi2": rs.pearson,
                           "design_effect": rs.mean_deff, "df": rs.chi2_df, "chi2_corrected": rs.chi2,
                           "p_chi2": rs.chi2_p, "f": rs.f, "f_df_num": rs.f_df_num, "f_df_den": rs.f_df_den,
-                          "p": rs.f_p, "largest_move": f"{levels[j]} {pw1[j]:.1%} to {pw2[j]:.1%}"})
+                          "p": rs.f_p, "largest_move": largest})
         for k, lev in enumerate(levels):
             share_rows.append({"group": g, "level": lev, "share_from_unweighted": pu1[k], "share_to_unweighted": pu2[k],
                                "share_from_weighted": pw1[k], "share_to_weighted": pw2[k],

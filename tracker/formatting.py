@@ -52,3 +52,32 @@ def _md(v) -> str:
     import html
 
     return html.escape(str(v), quote=False).replace("|", "\\|").replace("\n", " ")
+
+
+def write_table(frame: pd.DataFrame, path) -> "Path":
+    """Write a result table to ``path`` by its suffix (.csv, .json, .md, .xlsx), every column
+    at full precision, atomically; formula-like text cells are neutralised in CSV and XLSX."""
+    import io
+    from pathlib import Path
+
+    from .errors import TrackerError
+    from .store import write_atomic
+
+    path = Path(path)
+    if not path.parent.is_dir():
+        raise TrackerError(f"{path}: the folder {path.parent} does not exist")
+    suffix = path.suffix.lower()
+    if suffix in (".csv", ".json", ".md"):
+        data = render(frame, suffix[1:]).encode("utf-8")
+    elif suffix == ".xlsx":
+        out = frame.copy()
+        for col in out.columns:
+            if not pd.api.types.is_numeric_dtype(out[col]) and not pd.api.types.is_bool_dtype(out[col]):
+                out[col] = out[col].astype(object).map(safe_cell)
+        buf = io.BytesIO()
+        out.to_excel(buf, index=False)
+        data = buf.getvalue()
+    else:
+        raise TrackerError(f"{path}: give a file ending in .csv, .json, .md or .xlsx")
+    write_atomic(path, data)
+    return path
