@@ -76,7 +76,9 @@ def test_brief_html_in_headless_chromium(q2_brief, tmp_path):
                           "--v=0", "--dump-dom", url], capture_output=True, text=True, timeout=180)
     expected = int(re.search(r'data-charts-expected="(\d+)"', dom.stdout).group(1))
     drawn = int(re.search(r'data-charts-drawn="(\d+)"', dom.stdout).group(1))
-    assert expected == len(q2_brief.charts) >= 10
+    # the series that held are drawn small in a grid; the rest full width
+    assert expected == len(q2_brief.charts) + len(q2_brief.compact_charts) >= 10
+    assert len(q2_brief.charts) >= 4 and len(q2_brief.compact_charts) >= 2
     assert drawn == expected
     assert re.search(r"<body[^>]*data-chart-errors", dom.stdout) is None
     console = [line for line in dom.stderr.splitlines() if "CONSOLE" in line]
@@ -87,6 +89,8 @@ def test_brief_html_in_headless_chromium(q2_brief, tmp_path):
     subprocess.run([chromium, *CHROME_FLAGS, f"--user-data-dir={tmp_path / 'p2'}", "--window-size=1000,3000",
                     "--hide-scrollbars", f"--screenshot={shot}", url], capture_output=True, timeout=180)
     assert shot.is_file() and shot.stat().st_size > 50_000
+    # the page's height as laid out by the browser (the page of full-size charts ran to about 7,400 px)
+    assert int(re.search(r'data-page-height="(\d+)"', dom.stdout).group(1)) < 6500
 
 
 def test_html_is_self_contained(q2_brief, tmp_path):
@@ -155,8 +159,14 @@ def test_labels_are_escaped_and_cells_cannot_run_as_formulas(tmp_path):
 
 def test_charts_use_the_palette_and_tell_rise_from_fall_by_shape(demo_study, tmp_path):
     spec = json.dumps(trend_chart(demo_study, "on_time_good").to_dict())
-    assert OKABE_ITO["blue"] in spec and OKABE_ITO["vermillion"] in spec
-    assert "triangle-up" in spec and "triangle-down" in spec
+    # this series only falls, and the legend names only what is drawn; the mapping itself
+    # gives a rise blue triangles up and a fall vermillion triangles down
+    from tracker.charts import STATUS_COLOUR, STATUS_ORDER, STATUS_SHAPE
+
+    assert OKABE_ITO["vermillion"] in spec and "triangle-down" in spec and "triangle-up" not in spec
+    rise, fall = STATUS_ORDER.index("rise"), STATUS_ORDER.index("fall")
+    assert (STATUS_COLOUR[rise], STATUS_SHAPE[rise]) == (OKABE_ITO["blue"], "triangle-up")
+    assert (STATUS_COLOUR[fall], STATUS_SHAPE[fall]) == (OKABE_ITO["vermillion"], "triangle-down")
     for red_green in ("#ff0000", "#00ff00", "red", "green"):
         assert f'"{red_green}"' not in spec.lower()
     frame = __import__("tracker.charts", fromlist=["trend_frame"]).trend_frame(demo_study, "on_time_good")

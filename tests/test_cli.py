@@ -138,3 +138,129 @@ def test_nothing_moved_says_so_instead_of_an_empty_table(demo_study):
     out = _run("changes", demo_study.root, "--wave", "2025-Q2", "--metric", "info_good", "--format", "md").output
     assert out.startswith("No significant change in 2025-Q2 against 2025-Q1.")
     assert "| metric |" not in out
+
+
+# -- shared options, formats of the quick commands, help, quiet, progress --------------------
+
+COMMANDS = ["new", "check", "add", "waves", "verify", "estimates", "changes", "trends", "composition", "chart",
+            "brief", "demo"]
+
+
+def test_top_level_help_lists_the_work_in_order_untruncated_and_every_command_has_an_example():
+    text = _run("--help", columns=80).output
+    listed = [line.split()[0] for line in text.split("Commands:")[1].splitlines() if line.strip()]
+    assert listed == COMMANDS
+    assert "..." not in text.split("Commands:")[1]
+    for name in COMMANDS:
+        sub = _run(name, "--help").output
+        example = [line for line in sub.splitlines() if line.strip().startswith("Example:")]
+        assert len(example) == 1 and f"tracker {name}" in example[0], name
+        assert "-q, --quiet" in sub, name
+
+
+def test_the_shared_options_read_the_same_in_every_command():
+    import re
+
+    def option_help(command, option):
+        text = " ".join(_run(command, "--help", columns=200).output.split())
+        m = re.search(rf"{option} [A-Z]+ (.*?)(?= -[-a-z]|$)", text)
+        return m.group(1) if m else None
+
+    assert len({option_help(c, "--metric") for c in ("estimates", "changes", "trends")}) == 1
+    assert len({option_help(c, "--by") for c in ("estimates", "changes", "trends")}) == 1
+    assert len({option_help(c, "--against") for c in ("changes", "chart", "brief")}) == 1
+    assert "pooled:K" not in option_help("composition", "--against")
+    # one name per kind of pooling: a baseline of K waves, or rolling estimates over K waves
+    assert "--rolling" in _run("trends", "--help").output and "--pool " not in _run("trends", "--help").output
+
+
+def test_waves_and_check_print_machine_formats_and_write_files(demo_study, tmp_path):
+    import csv
+    import io
+    import json
+
+    root = demo_study.root
+    rows = json.loads(_run("waves", root, "--format", "json").output)
+    assert [r["wave"] for r in rows] == demo_study.labels
+    assert rows[0]["respondents"] == int(demo_study.waves().iloc[0]["respondents"])  # a number, not text
+    table = list(csv.DictReader(io.StringIO(_run("waves", root, "--format", "csv").output)))
+    assert [r["wave"] for r in table] == demo_study.labels
+    md = _run("waves", root, "--format", "md").output.splitlines()
+    assert md[0].startswith("| wave | fieldwork_date |") and len(md) == 2 + len(demo_study.labels)
+    result = _run("waves", root, "-o", tmp_path / "w.json")
+    assert result.exit_code == 0 and json.loads((tmp_path / "w.json").read_text()) == rows
+    assert _run("waves", root, "-o", tmp_path / "w.json", "-q").output == ""
+    bad = tmp_path / "bad.csv"
+    bad.write_text("resp_id,area\n1,9\n")
+    result = _run("check", root, bad, "--format", "json")
+    problems = json.loads(result.output)
+    assert result.exit_code == 1 and problems and {p["severity"] for p in problems} <= {"error", "warning"}
+    assert all(p["file"].endswith("bad.csv") for p in problems) and any(p["severity"] == "error" for p in problems)
+
+
+def test_add_reports_as_one_json_document(demo_study, tmp_path):
+    import json
+    import shutil
+
+    from tracker.demo import bundled_waves
+    from tracker.study import Study
+
+    study = Study.create(tmp_path / "s", bundled_waves() / "codebook.yaml")
+    result = _run("add", study.root, bundled_waves() / "riders-2023-Q1.csv", "--wave", "2023-Q1", "--date",
+                  "2023-02-20", "--format", "json")
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.output)
+    assert doc["label"] == "2023-Q1" and doc["rows"] == int(demo_study.waves().iloc[0]["respondents"])
+    shutil.rmtree(tmp_path / "s")
+
+
+def test_progress_is_drawn_on_a_terminal_only_and_never_with_quiet():
+    import io
+
+    from tracker import progress
+
+    class Tty(io.StringIO):
+        def isatty(self):
+            return True
+
+    tty, pipe = Tty(), io.StringIO()
+    with progress.reporting(stream=tty):
+        progress.step("adding waves", 1, 4, "2023-Q2")
+    assert "adding waves [######" in tty.getvalue() and "1/4 2023-Q2" in tty.getvalue()
+    for stream, quiet in ((pipe, False), (Tty(), True)):
+        with progress.reporting(quiet=quiet, stream=stream):
+            progress.step("adding waves", 1, 4)
+        assert stream.getvalue() == ""
+    progress.step("outside", 1, 2)  # no reporter: nothing, no error
+
+
+def test_trend_charts_name_waves_by_label_and_the_legend_only_what_is_drawn(demo_study):
+    import json
+
+    from tracker.charts import FIT_COLOUR, OKABE_ITO, change_overview, chart_spec, trend_charts
+
+    spec = chart_spec(trend_charts(demo_study, "on_time_good", by=["area"]))
+    text = json.dumps(spec)
+    layer = spec["spec"]["layer"]
+    xs = [part["encoding"]["x"] for part in layer if "x" in part.get("encoding", {})]
+    assert all(x["field"] == "wave" and x["type"] == "ordinal" for x in xs)
+    assert xs[0]["sort"] == demo_study.labels
+    points = [p for p in layer if p["mark"]["type"] == "point"][0]
+    domain = points["encoding"]["color"]["scale"]["domain"]
+    data = spec["datasets"][spec["data"]["name"]]
+    assert set(domain) == {d["verdict"] for d in data}  # no unused legend entries
+    assert spec["columns"] == 3  # three areas: one full row
+    assert FIT_COLOUR != OKABE_ITO["orange"] and OKABE_ITO["orange"] not in text
+    both = chart_spec(trend_charts(demo_study, "on_time_good", by=["area", "age_band"]))
+    assert len(both["vconcat"]) == 2
+    result = demo_study.changes(wave="2025-Q2")
+    over = chart_spec(change_overview(result, totals_only=True))
+    n_total = int((result.table["group"] == "total").sum())
+    assert f"Drawn: {n_total} changes" in " ".join(over["title"]["subtitle"])
+
+
+def test_small_multiples_fill_their_rows():
+    from tracker.charts import _columns
+
+    # common practice, no source: as few empty places as can be, at most four panels a row
+    assert [_columns(n) for n in range(1, 10)] == [1, 2, 3, 4, 3, 3, 4, 4, 3]

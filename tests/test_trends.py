@@ -149,7 +149,7 @@ def test_trends_command_and_pooled_estimates(demo_study):
     assert first["pooled_waves"] == "2023-Q1..2023-Q4"
     waves = [demo_study.load(w) for w in demo_study.labels[:4]]
     assert first["base"] == sum(int(((t["area"] == 3) & t["staff"].between(1, 5)).sum()) for t in waves)
-    result = CliRunner().invoke(main, ["trends", root, "--pool", "4", "--metric", "staff_good", "--by", "area"])
+    result = CliRunner().invoke(main, ["trends", root, "--rolling", "4", "--metric", "staff_good", "--by", "area"])
     assert result.exit_code == 0 and "2023-Q1..2023-Q4" in result.output
 
 

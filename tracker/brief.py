@@ -60,6 +60,7 @@ class Brief:
     cautions: tuple[str, ...] = CAUTIONS
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     charts: tuple[tuple[str, dict], ...] = ()
+    compact_charts: tuple[tuple[str, dict], ...] = ()  # small charts of the series that held, drawn in a grid
 
 
 # -- wording --------------------------------------------------------------------------------
@@ -148,6 +149,9 @@ def trend_sentence(row, level: float) -> str:
 def build_brief(study, wave: str | None = None, against: str = "previous", adjust: str = "bh",
                 level: float = 0.95, charts: bool = True) -> Brief:
     """Everything the brief says, read from the wave's one analysis (Study.analysis)."""
+    from .progress import step
+
+    step("briefing", 0, 2, "estimates, changes and trends")
     analysis = study.analysis(wave=wave, against=against, adjust=adjust, level=level)
     result = analysis.changes
     wave = result.wave
@@ -229,15 +233,25 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         "Estimates": study.estimates(waves=[wave, *result.compared_with], level=level),
     }
     chart_list: list[tuple[str, dict]] = []
+    compact: list[tuple[str, dict]] = []
     if charts:
         from .charts import change_overview, chart_spec, trend_chart
 
+        from .progress import step
+
         chart_list.append(("Every tested change in total", chart_spec(change_overview(result, totals_only=True))))
         shown_sub = {(r.metric, g) for r, g in zip(sub.itertuples(), sub["group"])}
-        for metric in study.codebook.metrics:
-            if metric not in set(t["metric"]):
-                continue
+        drawn = [m for m in study.codebook.metrics if m in set(t["metric"])]
+        # a metric that neither moved this wave nor follows a pattern gets a small chart in a grid
+        moved = headline_metrics | {i.metric for i in subgroup_moves} | {i.metric for i in mix_moves} \
+            | set(moving["metric"]) | set(unclear_rows["metric"])
+        for k, metric in enumerate(drawn):
+            step("drawing charts", k, len(drawn), metric)
             label = study.codebook.metrics[metric].label
+            if metric not in moved:
+                compact.append((f"{label}: wave by wave", chart_spec(trend_chart(
+                    study, metric, adjust=adjust, level=level, until=wave, compact=True))))
+                continue
             chart_list.append((f"{label}: wave by wave", chart_spec(trend_chart(study, metric, adjust=adjust,
                                                                                 level=level, until=wave))))
             for m, g in sorted(shown_sub):
@@ -247,7 +261,7 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     return Brief(
         title=study.codebook.title, wave=wave, against=result.against, headline=headline,
         subgroup_moves=subgroup_moves, steady=steady, trends=tuple(trend_items), sample_notes=tuple(sample),
-        method=method, tables=tables, charts=tuple(chart_list), mix_moves=mix_moves, unclear=unclear,
+        method=method, tables=tables, charts=tuple(chart_list), compact_charts=tuple(compact), mix_moves=mix_moves, unclear=unclear,
         data=analysis.to_dict(),
     )
 
@@ -405,15 +419,21 @@ def render_html(brief: Brief) -> str:
             parts.append(f'<p class="muted">{e(empty)}</p>')
         for k in chart_at.get(attr, []):
             parts.append(f"<figure>{chart_div(k)}<figcaption class=\"muted\">{e(charts[k][0])}</figcaption></figure>")
-    if len(charts) > 1:
+    if len(charts) > 1 or brief.compact_charts:
         parts.append("<h2>Every measure, wave by wave</h2>")
         for k in range(1, len(charts)):
             parts.append(f"<figure>{chart_div(k)}<figcaption class=\"muted\">{e(charts[k][0])}</figcaption></figure>")
+    if brief.compact_charts:
+        parts.append('<p class="muted">Held or not clear this wave, with no trend over the series:</p><div class="grid">')
+        for k in range(len(charts), len(charts) + len(brief.compact_charts)):
+            parts.append(f"<figure>{chart_div(k)}</figure>")
+        parts.append("</div>")
     parts.append("<h2>Method</h2><ul>" + "".join(f"<li>{e(m)}</li>" for m in brief.method) + "</ul>")
     parts.append('<h2>Cautions</h2><div class="caution"><ul>' + "".join(f"<li>{e(c)}</li>" for c in brief.cautions)
                  + "</ul></div>")
     parts.append(f'<p class="muted">Made by tracker on {dt.date.today().isoformat()}.</p>')
-    return page(f"{brief.title}: {brief.wave}", "\n".join(parts), [spec for _, spec in charts])
+    return page(f"{brief.title}: {brief.wave}", "\n".join(parts),
+                [spec for _, spec in charts] + [spec for _, spec in brief.compact_charts])
 
 
 def render_xlsx(brief: Brief) -> bytes:

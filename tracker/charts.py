@@ -90,20 +90,55 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
     return out
 
 
+def _columns(n: int) -> int:
+    """Panels per row for n small multiples: rows filled (fewest empty places), at most 4."""
+    if n <= 4:
+        return n
+    return min((4, 3, 2), key=lambda c: (-(-n // c) * c - n, -c))
+
+
+def _wave_axis(labels: list[str], width: int) -> alt.X:
+    # waves are placed and named by their labels, in fieldwork order (a date axis would put
+    # a quarter's point under the next period's tick)
+    crowded = len(labels) * 7 * max(map(len, labels)) > width
+    return alt.X("wave:O", sort=labels, title=None,
+                 axis=alt.Axis(labelAngle=-45 if crowded else 0, labelAlign="right" if crowded else "center"))
+
+
+def _legend_domain(verdicts) -> tuple[list[str], list[str], list[str]]:
+    """The verdicts present, in STATUS_ORDER, with their colours and shapes: a legend names
+    only the marks drawn."""
+    present = set(verdicts)
+    keep = [k for k, v in enumerate(STATUS_ORDER) if v in present]
+    return ([STATUS_ORDER[k] for k in keep], [STATUS_COLOUR[k] for k in keep], [STATUS_SHAPE[k] for k in keep])
+
+
+#: The fitted trend or shift levels: dashed bluish green, far in hue from the rise blue and
+#: the fall vermillion.
+FIT_COLOUR = OKABE_ITO["bluish green"]
+
+
 def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95,
-                width: int | None = None, height: int = 200, until: str | None = None) -> alt.FacetChart | alt.LayerChart:
+                width: int | None = None, height: int = 200, until: str | None = None,
+                compact: bool = False) -> alt.FacetChart | alt.LayerChart:
     """The metric wave by wave: interval band, line, marked significant steps, fitted trend
-    or shift levels, a wording break as a gap with a note, bases under the axis."""
+    or shift levels, a wording break as a gap with a note, bases under the axis.
+
+    ``compact``: a small chart for a grid (no subtitle, no bases), for series that held."""
     from .methods.tests import ADJUST_METHODS
 
     if metric not in study.codebook.metrics:
         raise TrackerError(f"--metric {metric}: not a metric of this study ({', '.join(study.codebook.metrics)})")
     data = trend_frame(study, metric, by, adjust, level, until)
     a = data.attrs
-    width = width or (260 if by else 460)
+    panels = list(dict.fromkeys(data["panel"]))
+    columns = _columns(len(panels)) if by else 1
+    if compact:
+        width, height = width or 250, 110
+    width = width or (min(260, 820 // columns - 20) if by else 820)
     unit = _unit(a["kind"])
-    y_title = f"{a['label']} ({unit})" if unit else a["label"]
-    x = alt.X("date:T", title=None, axis=alt.Axis(format="%Y-%m", labelAngle=0, tickCount=6))
+    labels = list(dict.fromkeys(data.sort_values("date")["wave"]))
+    x = _wave_axis(labels, width)
     tooltip = [
         alt.Tooltip("wave:N", title="wave"), alt.Tooltip("panel:N", title="who"),
         alt.Tooltip("value_shown:Q", title="value", format=".1f" if unit != "mean" else ".2f"),
@@ -115,22 +150,24 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
         alt.Tooltip("effective_base:Q", title="effective base", format=",.0f"),
         alt.Tooltip("flags:N", title="flags"),
     ]
-    y = alt.Y("value_shown:Q", title=y_title, scale=alt.Scale(zero=False))
+    # the metric's label is the chart's title; the axis names only the unit, so it is never cut
+    y = alt.Y("value_shown:Q", title=unit or None, scale=alt.Scale(zero=False))
     band = alt.Chart().mark_area(opacity=0.18, color=OKABE_ITO["sky blue"]).encode(
-        x=x, y=alt.Y("ci_low_shown:Q", title=y_title), y2="ci_high_shown:Q", detail="segment:N")
+        x=x, y=alt.Y("ci_low_shown:Q", title=unit or None), y2="ci_high_shown:Q", detail="segment:N")
     line = alt.Chart().mark_line(color=OKABE_ITO["black"], strokeWidth=1.5).encode(x=x, y=y, detail="segment:N")
-    fitted = alt.Chart().mark_line(color=OKABE_ITO["orange"], strokeDash=[6, 3], strokeWidth=2).encode(
+    fitted = alt.Chart().mark_line(color=FIT_COLOUR, strokeDash=[6, 3], strokeWidth=2).encode(
         x=x, y="fitted_shown:Q", detail="segment:N").transform_filter(
         "isValid(datum.fitted_shown) && (datum.pattern == 'rising' || datum.pattern == 'falling')")
-    levels = alt.Chart().mark_line(color=OKABE_ITO["orange"], strokeDash=[6, 3], strokeWidth=2,
+    levels = alt.Chart().mark_line(color=FIT_COLOUR, strokeDash=[6, 3], strokeWidth=2,
                                    interpolate="step-after").encode(
         x=x, y="fitted_shown:Q", detail="segment:N").transform_filter(
         "isValid(datum.fitted_shown) && indexof(datum.pattern, 'shifted') == 0")
-    legend = alt.Legend(title="change from the wave before", orient="bottom")
-    points = alt.Chart().mark_point(filled=True, size=70).encode(
+    domain, colours, shapes = _legend_domain(data["verdict"])
+    legend = None if compact else alt.Legend(title="change from the wave before", orient="bottom")
+    points = alt.Chart().mark_point(filled=True, size=40 if compact else 70).encode(
         x=x, y=y,
-        color=alt.Color("verdict:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=legend),
-        shape=alt.Shape("verdict:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=legend),
+        color=alt.Color("verdict:N", scale=alt.Scale(domain=domain, range=colours), legend=legend),
+        shape=alt.Shape("verdict:N", scale=alt.Scale(domain=domain, range=shapes), legend=legend),
         opacity=alt.condition("datum.verdict == 'rise' || datum.verdict == 'fall'", alt.value(1.0),
                               alt.value(0.55)),
         tooltip=tooltip)
@@ -142,7 +179,7 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
         layers.append(fitted)
     if (has_fit & data["pattern"].astype(str).str.startswith("shifted")).any():
         layers.append(levels)  # only layers with data: an empty layer makes the renderer warn
-    layers += [points, bases]
+    layers += [points] if compact else [points, bases]
     if a["break_wave"]:
         rule = alt.Chart().mark_rule(color=OKABE_ITO["reddish purple"], strokeDash=[2, 2]).encode(x=x).transform_filter(
             alt.datum.wave == a["break_wave"])
@@ -151,21 +188,32 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
             alt.datum.wave == a["break_wave"])
         layers += [rule, note]
     chart = alt.layer(*layers, data=data).properties(width=width, height=height)
-    subtitle = [
-        f"Band: {level:.0%} interval (sampling error only). Numbers along the foot: base.",
-        f"Triangles: change from the wave before significant at {1 - level:g}, after {ADJUST_METHODS[adjust]}",
-        "adjustment across every metric and subgroup of that wave (as in its brief). Dashed: fitted trend or shift.",
-    ]
-    title = alt.TitleParams(a["label"], subtitle=subtitle, anchor="start", fontSize=14, subtitleFontSize=10)
+    if compact:
+        title = alt.TitleParams(a["label"], anchor="start", fontSize=11, limit=width)
+    else:
+        subtitle = [
+            f"Band: {level:.0%} interval (sampling error only). Numbers along the foot: base.",
+            f"Triangles: change from the wave before significant at {1 - level:g}, after {ADJUST_METHODS[adjust]}",
+            "adjustment across every metric and subgroup of that wave (as in its brief). Dashed green: the fitted "
+            "trend or shift.",
+        ]
+        title = alt.TitleParams(a["label"], subtitle=subtitle, anchor="start", fontSize=14, subtitleFontSize=10)
     if by:
-        chart = chart.facet(facet=alt.Facet("panel:N", title=None, sort=list(dict.fromkeys(data["panel"]))),
-                            columns=3, title=title)
+        chart = chart.facet(facet=alt.Facet("panel:N", title=None, sort=panels), columns=columns, title=title)
     else:
         chart = chart.properties(title=title)
     return chart
 
 
-def change_overview(result, totals_only: bool = False, width: int = 380) -> alt.VConcatChart | alt.Chart:
+def trend_charts(study, metric: str, by: list[str] | tuple[str, ...] = (), adjust: str = "bh",
+                 level: float = 0.95, until: str | None = None):
+    """The trend chart of ``metric``: in total, by one split, or one block of panels per split."""
+    if len(by) <= 1:
+        return trend_chart(study, metric, by=by[0] if by else None, adjust=adjust, level=level, until=until)
+    return alt.vconcat(*(trend_chart(study, metric, by=g, adjust=adjust, level=level, until=until) for g in by))
+
+
+def change_overview(result, totals_only: bool = False, width: int = 520) -> alt.VConcatChart | alt.Chart:
     """Every tested change of one comparison as a dot with its interval, sorted by size;
     significant ones emphasised; a zero line; the minimum detectable change as a shaded band."""
     from .methods.tests import ADJUST_METHODS
@@ -191,12 +239,13 @@ def change_overview(result, totals_only: bool = False, width: int = 380) -> alt.
             x=alt.X("mde_low:Q", title=f"change, {unit}"), x2="min_detectable_change_shown:Q", y=y)
         zero = alt.Chart(pd.DataFrame({"zero": [0]})).mark_rule(color=OKABE_ITO["black"]).encode(x="zero:Q")
         legend = alt.Legend(title="change", orient="bottom")
-        colour = alt.Color("verdict:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_COLOUR), legend=legend)
+        domain, colours, shapes = _legend_domain(t["verdict"])
+        colour = alt.Color("verdict:N", scale=alt.Scale(domain=domain, range=colours), legend=legend)
         bars = base.mark_rule(strokeWidth=1.5).encode(
             x="change_low_shown:Q", x2="change_high_shown:Q", y=y, color=colour)
         dots = base.mark_point(filled=True, size=70).encode(
             x="change_shown:Q", y=y, color=colour,
-            shape=alt.Shape("verdict:N", scale=alt.Scale(domain=STATUS_ORDER, range=STATUS_SHAPE), legend=legend),
+            shape=alt.Shape("verdict:N", scale=alt.Scale(domain=domain, range=shapes), legend=legend),
             opacity=alt.condition("datum.significant", alt.value(1.0), alt.value(0.5)),
             tooltip=[alt.Tooltip("row:N", title="measure"), alt.Tooltip("verdict:N", title="verdict"),
                      alt.Tooltip("change_shown:Q", title="change", format="+.1f"),
@@ -208,11 +257,15 @@ def change_overview(result, totals_only: bool = False, width: int = 380) -> alt.
                      alt.Tooltip("base_to:Q", title="base now", format=",")])
         charts.append(alt.layer(mde, zero, bars, dots).properties(width=width, height=max(60, 16 * len(part))))
     chart = alt.vconcat(*charts).resolve_scale(x="independent", y="independent")
+    family = result.family_size if getattr(result, "family_size", None) is not None else result.n_tests
     return chart.properties(title=alt.TitleParams(
         f"{result.wave} against {result.against}: every tested change", anchor="start", fontSize=14,
         subtitle=[f"Line: {result.level:.0%} interval. Grey band: the minimum detectable change (80 % power).",
-                  f"Emphasised: significant at {1 - result.level:g} after {ADJUST_METHODS[result.adjust]} "
-                  f"adjustment ({result.n_significant} of {result.n_tests} tests)."], subtitleFontSize=10))
+                  f"Drawn: {len(t)} changes, {int(t['significant'].sum())} significant at {1 - result.level:g} after "
+                  f"{ADJUST_METHODS[result.adjust]} adjustment",
+                  f"across the {family} tests of the comparison" + (
+                      "." if len(t) == family else f" ({result.n_significant} significant in all).")],
+        subtitleFontSize=10))
 
 
 def chart_spec(chart) -> dict:

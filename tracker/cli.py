@@ -19,12 +19,26 @@ def Study(path):  # noqa: N802 - reads as the class it opens; imported here so -
     return _Study(path)
 
 
+_quiet = {"on": False}
+
+
+def say(text: str) -> None:
+    """An informational line ("wrote ...", "added ..."): silenced by -q, unlike results."""
+    if not _quiet["on"]:
+        click.echo(text)
+
+
 def user_errors(fn):
-    """Print a TrackerError as a plain message and exit 1 (no traceback)."""
+    """Print a TrackerError as a plain message and exit 1 (no traceback); add -q/--quiet and
+    show progress of long work on a terminal unless it is given."""
     @wraps(fn)
-    def wrapper(*args, **kwargs):
+    def wrapper(*args, quiet=False, **kwargs):
+        from .progress import reporting
+
+        _quiet["on"] = quiet
         try:
-            return fn(*args, **kwargs)
+            with reporting(quiet):
+                return fn(*args, **kwargs)
         except TrackerError as exc:
             click.echo(f"error: {exc}", err=True)
             sys.exit(1)
@@ -32,135 +46,49 @@ def user_errors(fn):
             # stores commit with one rename: a wave is either wholly added or not at all
             click.echo("interrupted: the study holds either all of the change or none of it", err=True)
             sys.exit(130)
-    return wrapper
+    return click.option("-q", "--quiet", is_flag=True,
+                        help="No progress bar and no 'wrote ...' lines; results and errors still print.")(wrapper)
 
 
-@click.group()
+class _InOrder(click.Group):
+    """Commands listed in the order of the work (new, check, add, ... brief), not alphabetically."""
+
+    def list_commands(self, ctx):
+        return list(self.commands)
+
+
+@click.group(cls=_InOrder, context_settings={"max_content_width": 100})
 @click.version_option(package_name="wavetell")
 def main():
-    """Fold each new wave of a tracking study in, and tell what really moved."""
+    """Fold each new wave of a tracking study in, and tell what really moved.
 
-
-@main.command("new")
-@click.argument("study", type=click.Path(file_okay=False))
-@click.option("--codebook", required=True, type=click.Path(dir_okay=False), help="The study's codebook (YAML).")
-@user_errors
-def new_cmd(study, codebook):
-    """Make a study folder from a codebook."""
-    from .study import Study as _Study
-
-    s = _Study.create(study, codebook)
-    click.echo(f"made study {s.root} ({s.codebook.title}): {len(s.codebook.variables)} variables, "
-               f"{len(s.codebook.metrics)} metrics, {len(s.codebook.groups)} subgroup splits")
-
-
-@main.command("verify")
-@click.argument("study", type=click.Path(file_okay=False))
-@click.option("--repair", is_flag=True,
-              help="Remove files no ledger entry names and leftovers of interrupted writes (never a stored wave).")
-@user_errors
-def verify_cmd(study, repair):
-    """Check a study on disk: the ledger, every stored file against its SHA-256, orphans, leftovers.
-
-    Exit 0 when everything agrees, 1 naming each problem otherwise.
+    \b
+    Start with:  tracker demo demo-study      (builds the demo study and its brief)
+    Then:        tracker changes demo-study   (what moved in the latest wave)
+    Every command has --help with an example.
     """
-    from . import store
-
-    result = store.verify(Path(study), repair=repair)
-    for line in result.lines():
-        click.echo(line)
-    sys.exit(0 if result.ok else 1)
 
 
-@main.command("check")
-@click.argument("study", type=click.Path(file_okay=False))
-@click.argument("file", type=click.Path(dir_okay=False))
-@click.option("--wave", help="The label the wave would get (checks it is free).")
-@click.option("--date", help="The fieldwork date it would get (ISO).")
-@click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
-@click.option("--sheet", help="XLSX: the sheet to read (needed when several sheets hold data).")
-@click.option("--header-row", type=click.IntRange(min=1), help="XLSX: the row holding the column names (default: found).")
-@user_errors
-def check_cmd(study, file, wave, date, encoding, sheet, header_row):
-    """List every problem of a wave file against the codebook; change nothing.
+# -- the options every command shares ------------------------------------------------------
 
-    Exit 0 when the file can be added (warnings allowed), 1 when it cannot.
-    """
-    report = Study(study).check(file, wave=wave, date=date, encoding=encoding, sheet=sheet, header_row=header_row)
-    for line in report.lines():
-        click.echo(line)
-    n_err = len(report.errors)
-    n_warn = len(report.problems) - n_err
-    verdict = "can be added" if report.ok else "cannot be added"
-    click.echo(f"{file}: {report.rows:,} rows; {n_err} error(s), {n_warn} warning(s); {verdict}")
-    sys.exit(0 if report.ok else 1)
+def wave_option(help="The wave (default: the latest).", multiple=False, name="wave"):
+    return click.option("--wave", name, multiple=multiple, metavar="LABEL", help=help)
 
 
-@main.command("add")
-@click.argument("study", type=click.Path(file_okay=False))
-@click.argument("file", type=click.Path(dir_okay=False))
-@click.option("--wave", required=True, help="Wave label, e.g. 2025-Q3.")
-@click.option("--date", required=True, help="Fieldwork date (ISO, e.g. 2025-09-30).")
-@click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
-@click.option("--replace", is_flag=True, help="Replace a stored wave of the same label (the old version is kept).")
-@click.option("--allow-duplicate", is_flag=True,
-              help="Store the wave even though its data equal a stored wave's (refused by default: a re-delivery).")
-@click.option("--rake", is_flag=True, help="Compute raking weights to the codebook's targets.")
-@click.option("--cap", help="With --rake: keep each weight within LOW:HIGH times its starting weight, e.g. 0.2:5.")
-@click.option("--sheet", help="XLSX: the sheet to read (needed when several sheets hold data).")
-@click.option("--header-row", type=click.IntRange(min=1), help="XLSX: the row holding the column names (default: found).")
-@user_errors
-def add_cmd(study, file, wave, date, encoding, replace, allow_duplicate, rake, cap, sheet, header_row):
-    """Check, harmonize and store a wave."""
-    from .weighting import parse_cap
-
-    report = Study(study).add(file, wave=wave, date=date, encoding=encoding, replace=replace,
-                              rake=rake, cap=parse_cap(cap) if cap else None, allow_duplicate=allow_duplicate,
-                              sheet=sheet, header_row=header_row)
-    for line in report.lines():
-        click.echo(line)
+def against_option(pooled: bool = True):
+    choices = "previous, year-ago, a wave label" + (", or pooled:K (the K waves before, pooled)" if pooled else "")
+    return click.option("--against", default="previous", show_default=True, metavar="BASELINE",
+                        help=f"What the wave is compared with: {choices}.")
 
 
-@main.command("waves")
-@click.argument("study", type=click.Path(file_okay=False))
-@user_errors
-def waves_cmd(study):
-    """List the stored waves in fieldwork order.
-
-    Example: tracker waves demo-study
-    """
-    from . import store
-
-    root = Path(study)
-    rows = store.wave_rows(store.read_ledger(root))  # the ledger alone: no pandas, an instant answer
-    if not rows:
-        click.echo("no waves stored yet")
-        return
-    cols = store.WAVE_COLUMNS
-    cells = [[str(r[c]) if c != "respondents" else f"{r[c]:,}" for c in cols] for r in rows]
-    widths = [max(len(c), *(len(row[i]) for row in cells)) for i, c in enumerate(cols)]
-    click.echo("  ".join(c.ljust(w) for c, w in zip(cols, widths)).rstrip())
-    for row in cells:
-        click.echo("  ".join(v.rjust(w) if i == 2 else v.ljust(w) for i, (v, w) in enumerate(zip(row, widths))).rstrip())
+def metric_option(fn):
+    return click.option("--metric", "metrics", multiple=True, metavar="NAME",
+                        help="A metric by its short name (repeatable; default: every metric).")(fn)
 
 
-@main.command("demo")
-@click.argument("folder", default="demo-study", type=click.Path(file_okay=False))
-@user_errors
-def demo_cmd(folder):
-    """Build the bundled demo study in FOLDER (default ./demo-study) and write its briefing."""
-    from .demo import build_demo
-
-    if Path(folder).exists() and any(Path(folder).iterdir()):
-        raise TrackerError(f"{folder}: the folder exists and is not empty; give another folder")
-    from .brief import build_brief, write_brief
-
-    study, reports = build_demo(folder)
-    for r in reports:
-        click.echo(f"added {r.label}: {r.rows:,} respondents, effective base {r.effective_base:,.0f}")
-    click.echo(f"demo study ready at {study.root}")
-    path = write_brief(build_brief(study), study.root / "brief.html")
-    click.echo(f"briefing for {study.labels[-1]} written to {path}")
+def by_option(fn):
+    return click.option("--by", "by", multiple=True, metavar="GROUP",
+                        help="A subgroup split (repeatable; default: every split; 'total' for totals only).")(fn)
 
 
 def level_option(fn):
@@ -197,7 +125,7 @@ def emit(frame, fmt: str, view: str | None, wide: bool = False, output: str | No
         from .formatting import write_table
 
         path = write_table(frame, output)
-        click.echo(f"wrote {len(frame):,} rows to {path}")
+        say(f"wrote {len(frame):,} rows to {path}")
         return
     if fmt == "table" and view:
         from .view import human_table
@@ -217,12 +145,169 @@ def emit(frame, fmt: str, view: str | None, wide: bool = False, output: str | No
             click.echo(line)
 
 
-@main.command("estimates")
+def _plain_fmt_option(fn):
+    """--format and -o/--output for the quick commands (standard library only)."""
+    fn = click.option("-o", "--output", type=click.Path(dir_okay=False),
+                      help="Write the table to FILE (.csv, .json or .md).")(fn)
+    return click.option("--format", "fmt", type=click.Choice(FORMATS), default="table", show_default=True,
+                        help="table, csv, json or md.")(fn)
+
+
+def emit_rows(rows: list[dict], columns: list[str], fmt: str, output: str | None, right=()) -> None:
+    """Print (or write) plain rows without pandas."""
+    from .plain import render_rows
+
+    if output:
+        from .store import write_atomic
+
+        suffix = Path(output).suffix.lower()
+        if suffix not in (".csv", ".json", ".md"):
+            raise TrackerError(f"{output}: give a file ending in .csv, .json or .md")
+        if not Path(output).parent.is_dir():
+            raise TrackerError(f"{output}: the folder {Path(output).parent} does not exist")
+        write_atomic(Path(output), render_rows(rows, columns, suffix[1:]).encode("utf-8"))
+        say(f"wrote {len(rows):,} rows to {output}")
+        return
+    click.echo(render_rows(rows, columns, fmt, right), nl=False)
+
+
+@main.command("new", short_help="Make a study folder from a codebook.")
 @click.argument("study", type=click.Path(file_okay=False))
-@click.option("--metric", "metrics", multiple=True, help="Metric to show (repeatable; default all).")
-@click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
-@click.option("--wave", "waves", multiple=True,
-              help="Wave to show (repeatable; default: every wave, or at the terminal the latest).")
+@click.option("--codebook", required=True, type=click.Path(dir_okay=False), help="The study's codebook (YAML).")
+@user_errors
+def new_cmd(study, codebook):
+    """Make a study folder from a codebook.
+
+    \b
+    Example:  tracker new rider-survey --codebook codebook.yaml
+    """
+    from .study import Study as _Study
+
+    s = _Study.create(study, codebook)
+    click.echo(f"made study {s.root} ({s.codebook.title}): {len(s.codebook.variables)} variables, "
+               f"{len(s.codebook.metrics)} metrics, {len(s.codebook.groups)} subgroup splits")
+
+
+CHECK_COLUMNS = ["file", "severity", "column", "message", "rows", "count"]
+
+
+@main.command("check", short_help="List a wave file's problems; change nothing.")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.argument("file", type=click.Path(dir_okay=False))
+@wave_option("The label the wave would get (checks it is free).")
+@click.option("--date", help="The fieldwork date it would get (ISO).")
+@click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
+@click.option("--sheet", help="XLSX: the sheet to read (needed when several sheets hold data).")
+@click.option("--header-row", type=click.IntRange(min=1), help="XLSX: the row holding the column names (default: found).")
+@_plain_fmt_option
+@user_errors
+def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output):
+    """List every problem of a wave file against the codebook; change nothing.
+
+    Exit 0 when the file can be added (warnings allowed), 1 when it cannot.
+
+    \b
+    Example:  tracker check demo-study new-wave.csv --wave 2026-Q1
+    """
+    report = Study(study).check(file, wave=wave, date=date, encoding=encoding, sheet=sheet, header_row=header_row)
+    n_err = len(report.errors)
+    n_warn = len(report.problems) - n_err
+    verdict = "can be added" if report.ok else "cannot be added"
+    if fmt == "table" and not output:
+        for line in report.lines():
+            click.echo(line)
+        click.echo(f"{file}: {report.rows:,} rows; {n_err} error(s), {n_warn} warning(s); {verdict}")
+    else:
+        rows = [{"file": report.file, "severity": p.severity, "column": p.column, "message": p.message,
+                 "rows": " ".join(map(str, p.rows)), "count": p.count} for p in report.problems]
+        emit_rows(rows, CHECK_COLUMNS, fmt, output)
+    sys.exit(0 if report.ok else 1)
+
+
+@main.command("add", short_help="Check, harmonize and store a wave.")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.argument("file", type=click.Path(dir_okay=False))
+@click.option("--wave", required=True, metavar="LABEL", help="Wave label, e.g. 2025-Q3.")
+@click.option("--date", required=True, help="Fieldwork date (ISO, e.g. 2025-09-30).")
+@click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
+@click.option("--replace", is_flag=True, help="Replace a stored wave of the same label (the old version is kept).")
+@click.option("--allow-duplicate", is_flag=True,
+              help="Store the wave even though its data equal a stored wave's (refused by default: a re-delivery).")
+@click.option("--rake", is_flag=True, help="Compute raking weights to the codebook's targets.")
+@click.option("--cap", help="With --rake: keep each weight within LOW:HIGH times its starting weight, e.g. 0.2:5.")
+@click.option("--sheet", help="XLSX: the sheet to read (needed when several sheets hold data).")
+@click.option("--header-row", type=click.IntRange(min=1), help="XLSX: the row holding the column names (default: found).")
+@click.option("--format", "fmt", type=click.Choice(["table", "json"]), default="table", show_default=True,
+              help="table: the summary in lines; json: the same as one document.")
+@user_errors
+def add_cmd(study, file, wave, date, encoding, replace, allow_duplicate, rake, cap, sheet, header_row, fmt):
+    """Check, harmonize and store a wave.
+
+    \b
+    Example:  tracker add demo-study new-wave.csv --wave 2026-Q1 --date 2026-03-31
+    """
+    from .weighting import parse_cap
+
+    report = Study(study).add(file, wave=wave, date=date, encoding=encoding, replace=replace,
+                              rake=rake, cap=parse_cap(cap) if cap else None, allow_duplicate=allow_duplicate,
+                              sheet=sheet, header_row=header_row)
+    if fmt == "json":
+        import dataclasses
+        import json
+
+        click.echo(json.dumps(dataclasses.asdict(report), indent=1, default=str))
+        return
+    for line in report.lines():
+        click.echo(line)
+
+
+@main.command("waves", short_help="List the stored waves in fieldwork order.")
+@click.argument("study", type=click.Path(file_okay=False))
+@_plain_fmt_option
+@user_errors
+def waves_cmd(study, fmt, output):
+    """List the stored waves in fieldwork order.
+
+    \b
+    Example:  tracker waves demo-study
+    """
+    from . import store
+
+    rows = store.wave_rows(store.read_ledger(Path(study)))  # the ledger alone: no pandas, an instant answer
+    if not rows and fmt == "table" and not output:
+        click.echo("no waves stored yet")
+        return
+    if fmt == "table" and not output:
+        rows = [{**r, "respondents": f"{r['respondents']:,}"} for r in rows]
+    emit_rows(rows, store.WAVE_COLUMNS, fmt, output, right=("respondents",))
+
+
+@main.command("verify", short_help="Check a study on disk against its ledger.")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--repair", is_flag=True,
+              help="Remove files no ledger entry names and leftovers of interrupted writes (never a stored wave).")
+@user_errors
+def verify_cmd(study, repair):
+    """Check a study on disk: the ledger, every stored file against its SHA-256, orphans, leftovers.
+
+    Exit 0 when everything agrees, 1 naming each problem otherwise.
+
+    \b
+    Example:  tracker verify demo-study
+    """
+    from . import store
+
+    result = store.verify(Path(study), repair=repair)
+    for line in result.lines():
+        click.echo(line)
+    sys.exit(0 if result.ok else 1)
+
+
+@main.command("estimates", short_help="Every metric by wave and subgroup, with intervals.")
+@click.argument("study", type=click.Path(file_okay=False))
+@metric_option
+@by_option
+@wave_option("A wave to show (repeatable; default: every wave, or at the terminal the latest).", True, "waves")
 @click.option("--all-waves", is_flag=True, help="At the terminal: every wave, not only the latest.")
 @level_option
 @click.option("--interval", type=click.Choice(["wilson", "korn-graubard"]), default="wilson", show_default=True,
@@ -232,7 +317,8 @@ def emit(frame, fmt: str, view: str | None, wide: bool = False, output: str | No
 def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, fmt, wide, output):
     """Every metric by wave and subgroup: value, bases, standard error, interval, flags.
 
-    Example: tracker estimates demo-study --metric satisfied --by area
+    \b
+    Example:  tracker estimates demo-study --metric satisfied --by area
     """
     s = Study(study)
     latest_only = fmt == "table" and not output and not waves and not all_waves
@@ -243,26 +329,27 @@ def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, fmt, wi
     emit(table, fmt, "estimates", wide, output, note)
 
 
-@main.command("changes")
+@main.command("changes", short_help="What changed in a wave, with the many tests controlled.")
 @click.argument("study", type=click.Path(file_okay=False))
-@click.option("--wave", help="The wave to test (default: the latest).")
-@click.option("--against", default="previous", show_default=True,
-              help="previous, year-ago, a wave label, or pooled:K (the K waves before, pooled).")
-@click.option("--metric", "metrics", multiple=True, help="Metric to test (repeatable; default all).")
-@click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
+@wave_option("The wave to test (default: the latest).")
+@against_option()
+@metric_option
+@by_option
 @adjust_option
 @level_option
 @click.option("--all", "show_all", is_flag=True, help="List every comparison, not only significant changes.")
 @click.option("--family", type=click.Choice(["brief", "asked"]), default="brief", show_default=True,
               help="Adjust across every metric and subgroup (as the brief does), or only the comparisons asked for.")
-@click.option("--mix", help="Split each total change into the part due to the sample's mix on this group and the "
-                            "part within its levels, with the change standardised to the earlier mix.")
+@click.option("--mix", metavar="GROUP",
+              help="Split each total change into the part due to the sample's mix on this group and the "
+                   "part within its levels, with the change standardised to the earlier mix.")
 @_fmt_option
 @user_errors
 def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, family, mix, fmt, wide, output):
     """What changed in a wave, tested with control of the many comparisons.
 
-    Example: tracker changes demo-study --wave 2025-Q2 --against year-ago
+    \b
+    Example:  tracker changes demo-study --wave 2025-Q2 --against year-ago
     """
     from .changes import COLUMNS
 
@@ -285,29 +372,31 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fami
     emit(shown, fmt, "changes", wide, output, footer)
 
 
-@main.command("trends")
+@main.command("trends", short_help="The pattern and slope of every series.")
 @click.argument("study", type=click.Path(file_okay=False))
-@click.option("--metric", "metrics", multiple=True, help="Metric (repeatable; default all).")
-@click.option("--by", "by", multiple=True, help="Subgroup split (repeatable; default every group; 'total' for totals only).")
-@click.option("--last", type=int, help="Use only the last N waves.")
-@click.option("--since", help="Use the waves from this one on.")
+@metric_option
+@by_option
+@click.option("--last", type=click.IntRange(min=2), metavar="N", help="Use only the last N waves.")
+@click.option("--since", metavar="LABEL", help="Use the waves from this one on.")
 @adjust_option
 @level_option
-@click.option("--pool", type=int, help="Instead: rolling estimates pooling each wave with the POOL-1 before it.")
+@click.option("--rolling", type=click.IntRange(min=2), metavar="K",
+              help="Instead: rolling estimates, each wave pooled with the K-1 waves before it.")
 @click.option("--moving-only", is_flag=True, help="List only series whose pattern is not steady.")
 @_fmt_option
 @user_errors
-def trends_cmd(study, metrics, by, last, since, adjust, level, pool, moving_only, fmt, wide, output):
+def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_only, fmt, wide, output):
     """The pattern of every series (steady, rising, falling, shifted, a one-wave blip, moved) and its slope.
 
-    Example: tracker trends demo-study --by total --moving-only
+    \b
+    Example:  tracker trends demo-study --by total --moving-only
     """
     from .trends import COLUMNS
 
     s = Study(study)
-    if pool:
-        pooled = s.pooled(pool, metrics=list(metrics) or None, by=list(by) if by else None, level=level)
-        emit(pooled, fmt, "estimates", wide, output, [f"Each wave pooled with the {pool - 1} before it."])
+    if rolling:
+        pooled = s.pooled(rolling, metrics=list(metrics) or None, by=list(by) if by else None, level=level)
+        emit(pooled, fmt, "estimates", wide, output, [f"Each wave pooled with the {rolling - 1} before it."])
         return
     table = s.trends(metrics=list(metrics) or None, by=list(by) if by else None, last=last, since=since,
                      adjust=adjust, level=level)
@@ -321,58 +410,10 @@ def trends_cmd(study, metrics, by, last, since, adjust, level, pool, moving_only
         "Sampling error and the between-wave variation are both in the intervals; significance is not importance."])
 
 
-@main.command("chart")
+@main.command("composition", short_help="Compare the sample's make-up with another wave.")
 @click.argument("study", type=click.Path(file_okay=False))
-@click.option("--metric", help="Draw this metric's trend chart.")
-@click.option("--by", help="Subgroup split drawn as small multiples.")
-@click.option("--overview", is_flag=True, help="Instead: every tested change of a comparison (see --wave, --against).")
-@click.option("--wave", help="With --overview: the wave tested (default: the latest).")
-@click.option("--against", default="previous", show_default=True, help="With --overview: what it is tested against.")
-@adjust_option
-@level_option
-@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False), help="FILE.html, .png, .svg or .json")
-@user_errors
-def chart_cmd(study, metric, by, overview, wave, against, adjust, level, output):
-    """Draw a metric's trend chart, or the overview of every tested change."""
-    from .charts import change_overview, save_chart, trend_chart
-
-    s = Study(study)
-    if overview:
-        chart = change_overview(s.changes(wave=wave, against=against, adjust=adjust, level=level))
-    else:
-        if not metric:
-            raise TrackerError("give --metric for a trend chart, or --overview")
-        if by and by not in s.codebook.groups:
-            raise TrackerError(f"--by {by}: not a group of this study ({', '.join(s.codebook.groups)})")
-        chart = trend_chart(s, metric, by=by, adjust=adjust, level=level)
-    click.echo(f"wrote {save_chart(chart, output)}")
-
-
-@main.command("brief")
-@click.argument("study", type=click.Path(file_okay=False))
-@click.option("--wave", help="The wave to brief (default: the latest).")
-@click.option("--against", default="previous", show_default=True,
-              help="previous, year-ago, a wave label, or pooled:K.")
-@adjust_option
-@level_option
-@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False),
-              help="brief.html, brief.md, brief.xlsx or brief.json (every comparison and pattern, for other tools)")
-@user_errors
-def brief_cmd(study, wave, against, adjust, level, output):
-    """Write the briefing: what moved, what held steady, trends, sample notes, method and cautions."""
-    from .brief import build_brief, write_brief
-
-    if Path(output).suffix.lower() not in (".html", ".htm", ".md", ".xlsx", ".json"):
-        raise TrackerError(f"{output}: give a file ending in .html, .md, .xlsx or .json")
-    brief = build_brief(Study(study), wave=wave, against=against, adjust=adjust, level=level,
-                        charts=Path(output).suffix.lower() in (".html", ".htm"))
-    click.echo(f"wrote {write_brief(brief, output)}")
-
-
-@main.command("composition")
-@click.argument("study", type=click.Path(file_okay=False))
-@click.option("--wave", help="The wave whose make-up is checked (default: the latest).")
-@click.option("--against", default="previous", show_default=True, help="previous, year-ago or a wave label.")
+@wave_option("The wave whose make-up is checked (default: the latest).")
+@against_option(pooled=False)
 @adjust_option
 @level_option
 @_fmt_option
@@ -396,3 +437,83 @@ def composition_cmd(study, wave, against, adjust, level, fmt, wide, output):
         emit(result.shares, fmt, "composition", wide, None, result.lines())
         return
     emit(result.table(), fmt, None, wide, output, result.lines())
+
+
+@main.command("chart", short_help="Draw a metric's trend, or every tested change.")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--metric", metavar="NAME", help="Draw this metric's trend chart.")
+@click.option("--by", "by", multiple=True, metavar="GROUP",
+              help="A subgroup split drawn as small multiples (repeatable: one row of panels each).")
+@click.option("--overview", is_flag=True, help="Instead: every tested change of a comparison (see --wave, --against).")
+@wave_option("With --overview: the wave tested (default: the latest).")
+@against_option()
+@adjust_option
+@level_option
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False), help="FILE.html, .png, .svg or .json")
+@user_errors
+def chart_cmd(study, metric, by, overview, wave, against, adjust, level, output):
+    """Draw a metric's trend chart, or the overview of every tested change.
+
+    \b
+    Example:  tracker chart demo-study --metric satisfied --by area -o satisfied.html
+    """
+    from .charts import change_overview, save_chart, trend_charts
+
+    s = Study(study)
+    if overview:
+        chart = change_overview(s.changes(wave=wave, against=against, adjust=adjust, level=level))
+    else:
+        if not metric:
+            raise TrackerError("give --metric for a trend chart, or --overview")
+        for g in by:
+            if g not in s.codebook.groups:
+                raise TrackerError(f"--by {g}: not a group of this study ({', '.join(s.codebook.groups)})")
+        chart = trend_charts(s, metric, by=list(by), adjust=adjust, level=level)
+    say(f"wrote {save_chart(chart, output)}")
+
+
+@main.command("brief", short_help="Write the briefing for a wave.")
+@click.argument("study", type=click.Path(file_okay=False))
+@wave_option("The wave to brief (default: the latest).")
+@against_option()
+@adjust_option
+@level_option
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False),
+              help="brief.html, brief.md, brief.xlsx or brief.json (every comparison and pattern, for other tools)")
+@user_errors
+def brief_cmd(study, wave, against, adjust, level, output):
+    """Write the briefing: what moved, what held steady, trends, sample notes, method and cautions.
+
+    \b
+    Example:  tracker brief demo-study --against year-ago -o brief.html
+    """
+    from .brief import build_brief, write_brief
+
+    if Path(output).suffix.lower() not in (".html", ".htm", ".md", ".xlsx", ".json"):
+        raise TrackerError(f"{output}: give a file ending in .html, .md, .xlsx or .json")
+    brief = build_brief(Study(study), wave=wave, against=against, adjust=adjust, level=level,
+                        charts=Path(output).suffix.lower() in (".html", ".htm"))
+    say(f"wrote {write_brief(brief, output)}")
+
+
+@main.command("demo", short_help="Build the bundled demo study and its briefing.")
+@click.argument("folder", default="demo-study", type=click.Path(file_okay=False))
+@user_errors
+def demo_cmd(folder):
+    """Build the bundled demo study in FOLDER (default ./demo-study) and write its briefing.
+
+    \b
+    Example:  tracker demo demo-study
+    """
+    from .demo import build_demo
+
+    if Path(folder).exists() and any(Path(folder).iterdir()):
+        raise TrackerError(f"{folder}: the folder exists and is not empty; give another folder")
+    from .brief import build_brief, write_brief
+
+    study, reports = build_demo(folder)
+    for r in reports:
+        say(f"added {r.label}: {r.rows:,} respondents, effective base {r.effective_base:,.0f}")
+    say(f"demo study ready at {study.root}")
+    path = write_brief(build_brief(study), study.root / "brief.html")
+    click.echo(f"briefing for {study.labels[-1]} written to {path}")

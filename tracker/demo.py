@@ -287,9 +287,14 @@ def build_demo(target: str | Path, source: str | Path | None = None):
         source = Path(tempfile.mkdtemp(prefix="tracker-demo-waves-"))
         write_demo_waves(source)
     study = Study.create(target, source / "codebook.yaml")
+    from .progress import step
+
     reports = []
-    for row in pd.read_csv(source / "manifest.csv", dtype=str).itertuples():
+    manifest = pd.read_csv(source / "manifest.csv", dtype=str)
+    for k, row in enumerate(manifest.itertuples()):
+        step("adding waves", k, len(manifest), row.wave)
         reports.append(study.add(source / row.file, row.wave, row.fieldwork_date))
+    step("adding waves", len(manifest), len(manifest))
     return study, reports
 
 

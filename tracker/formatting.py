@@ -8,16 +8,7 @@ import pandas as pd
 from .names import FORMATS  # noqa: E402
 
 
-#: First characters with which a spreadsheet would read a text cell as a formula (OWASP,
-#: "CSV Injection"): such cells get a leading apostrophe in CSV and XLSX output.
-FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
-
-
-def safe_cell(value):
-    """Text that a spreadsheet could run as a formula, made plain text with a leading quote."""
-    if isinstance(value, str) and value[:1] in FORMULA_START:
-        return "'" + value
-    return value
+from .plain import FORMULA_START, safe_cell  # noqa: F401 - re-exported for older imports
 
 
 def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
@@ -49,9 +40,9 @@ def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
 
 
 def _md(v) -> str:
-    import html
+    from .plain import md_cell
 
-    return html.escape(str(v), quote=False).replace("|", "\\|").replace("\n", " ")
+    return md_cell(v)
 
 
 def write_table(frame: pd.DataFrame, path) -> "Path":

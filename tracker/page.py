@@ -25,6 +25,9 @@ th, td { border-bottom: 1px solid #ddd; padding: .25rem .5rem; text-align: right
 th:first-child, td:first-child { text-align: left; }
 .chart { margin: 1rem 0; overflow-x: auto; max-width: 100%; }
 .chart svg { max-width: 100%; height: auto; }
+figure { margin: 1rem 0; }
+.grid { display: grid; grid-template-columns: repeat(auto-fill, minmax(300px, 1fr)); gap: 0 1rem; }
+.grid figure, .grid .chart { margin: 0; }
 .caution { background: #f6f6f6; border-left: 4px solid #E69F00; padding: .5rem 1rem; }
 @media print { .chart { page-break-inside: avoid; } body { max-width: none; } }
 """
@@ -37,6 +40,9 @@ var done = 0;
 specs.forEach(function (spec, i) {
   vegaEmbed('#chart-' + i, spec, {actions: false, renderer: 'svg'}).then(function () {
     done += 1; document.body.setAttribute('data-charts-drawn', String(done));
+    if (done === specs.length) {  // the page's drawn height, for checks of its length
+      document.body.setAttribute('data-page-height', String(document.documentElement.scrollHeight));
+    }
   }).catch(function (err) {
     window.__chartErrors.push(String(err));
     document.body.setAttribute('data-chart-errors', window.__chartErrors.join(' | '));

@@ -274,6 +274,9 @@ class Study:
 
     def _add_locked(self, file, wave, iso, encoding, replace, rake, cap, allow_duplicate, sheet,
                     header_row) -> AddReport:
+        from .progress import step
+
+        step(f"adding {wave}", 0, 4, "reading and checking")
         rake = rake or bool(self.codebook.rake.get("always"))
         report, table, wf = self._check(file, wave, iso, encoding, replace, rake, allow_duplicate, sheet, header_row)
         if not report.ok:
@@ -290,6 +293,7 @@ class Study:
         from .cells import exclusions, metric_matrix
         from .estimates import weights_of
 
+        step(f"adding {wave}", 1, 4, "summarising")
         weights = weights_of(book, table)
         sw, sw2 = float(weights.sum()), float((weights**2).sum())
         neff = sw * sw / sw2
@@ -306,8 +310,10 @@ class Study:
 
             prev = earlier[-1]["label"]
             comp = compare_composition(book, self.load(prev), table, prev, wave)
+            step(f"adding {wave}", 2, 4, "checking the make-up")
             make_up = (f"sample make-up against {prev}:", *(f"  {line}" for line in comp.lines()))
 
+        step(f"adding {wave}", 3, 4, "storing")
         # Store: new Parquet under a fresh name, then the ledger rename commits it. Under the
         # lock no other writer is at work, so what earlier killed writers left can go.
         store.sweep_incoming(self.root)
