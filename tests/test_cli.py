@@ -264,3 +264,33 @@ def test_small_multiples_fill_their_rows():
 
     # common practice, no source: as few empty places as can be, at most four panels a row
     assert [_columns(n) for n in range(1, 10)] == [1, 2, 3, 4, 3, 3, 4, 4, 3]
+
+
+def test_docs_columns_lists_exactly_the_columns_each_command_writes(demo_study):
+    import re
+    from pathlib import Path
+
+    from tracker.changes import COLUMNS as CHANGE_COLUMNS
+    from tracker.estimates import COLUMNS as ESTIMATE_COLUMNS
+    from tracker.trends import COLUMNS as TREND_COLUMNS
+
+    doc = (Path(__file__).resolve().parent.parent / "docs" / "columns.md").read_text()
+
+    def named(section):
+        text = doc.split(f"## {section}\n")[1].split("\n## ")[0]
+        rows = [line.split("|")[1] for line in text.splitlines() if line.startswith("| `")]
+        return [c for row in rows for c in re.findall(r"`([a-z0-9_*]+)`", row)]
+
+    def expand(cols):  # `level_before*` stands for the level and its interval
+        return [x for c in cols for x in ([x for x in TREND_COLUMNS if x.startswith(c[:-1])] if c.endswith("*")
+                                          else [c])]
+
+    assert named("estimates") == ESTIMATE_COLUMNS
+    assert set(expand(named("changes"))) == set(CHANGE_COLUMNS)
+    assert set(expand(named("trends"))) == set(TREND_COLUMNS)
+    mix = demo_study.changes(wave="2025-Q4", by=[], mix="frequency").mix
+    mix_text = doc.split("With `--mix GROUP`")[1].split("## trends")[0]
+    assert set(re.findall(r"`([a-z0-9_]+)`", mix_text)) >= set(mix.columns)
+    comp = demo_study.composition(wave="2025-Q4").table()
+    comp_text = doc.split("## composition\n")[1].split("\n## ")[0]
+    assert set(comp.columns) <= set(re.findall(r"`([a-z0-9_]+)`", comp_text))

@@ -394,3 +394,21 @@ def test_killed_add_processes_leave_whole_waves_only(study_dir, wave_csv):
     assert result.exit_code == 0, result.output
     assert len(Study(study_dir).load("2025-Q3")) == 3000
     assert not list(study_dir.rglob(".incoming-*"))
+
+
+def test_the_complete_example_of_docs_codebook_makes_a_study(tmp_path):
+    # the format's own documentation: its complete example must be a codebook the tool accepts
+    import re
+    from pathlib import Path
+
+    from tracker.study import Study
+
+    doc = (Path(__file__).resolve().parent.parent / "docs" / "codebook.md").read_text()
+    block = re.search(r"## A complete example.*?```yaml\n(.*?)```", doc, re.S).group(1)
+    (tmp_path / "codebook.yaml").write_text(block)
+    study = Study.create(tmp_path / "s", tmp_path / "codebook.yaml")
+    book = study.codebook
+    assert set(book.metrics) == {"rated_good", "overall_mean", "came_to_study", "return_balance", "wifi_good"}
+    assert {m.kind for m in book.metrics.values()} == {"share", "mean", "balance"}
+    assert book.metrics["rated_good"].label == "Visit rated good or excellent"
+    assert set(book.groups) == {"branch", "age_band", "helped"} and book.weight == "w_final"

@@ -70,7 +70,7 @@ def test_noiseless_straight_series_recovers_its_slope_exactly():
     y = 0.3 + 0.025 * t
     out = fit_trends(est_frame(y[None], np.full((1, K), 0.01)))
     assert out.loc[0, "slope_per_year"] == pytest.approx(0.025, abs=1e-12)
-    assert out.loc[0, "between_wave_sd"] == 0.0
+    assert out.loc[0, "wave_to_wave_sd"] == 0.0
     assert out.loc[0, "pattern"] == "rising"
 
 

@@ -270,7 +270,7 @@ _TABLE_COLS = ["metric_label", "group", "subgroup", "wave_from", "wave_to", "val
                "change_low", "change_high", "base_from", "base_to", "effective_base_from", "effective_base_to",
                "p_raw", "p_adjusted", "min_detectable_change", "verdict", "flags"]
 _TREND_COLS = ["metric_label", "group", "subgroup", "first_wave", "last_wave", "waves", "latest_value",
-               "slope_per_year", "slope_low", "slope_high", "between_wave_sd", "q_p", "pattern",
+               "slope_per_year", "slope_low", "slope_high", "wave_to_wave_sd", "excess_variation_p", "pattern",
                "pattern_p_adjusted", "shift_wave", "level_before", "level_after", "blip_wave", "note"]
 
 
@@ -506,12 +506,12 @@ def _xlsx_value(v):
 
 
 def _number_format(col: str) -> str | None:
-    if col.startswith(("p_", "pattern_p", "q_p", "slope_p")):
+    if col.startswith(("p_", "pattern_p", "slope_p")) or col == "excess_variation_p":
         return "0.0000"
     if "base" in col or col in ("waves", "df"):
         return "#,##0"
     if col in ("value", "value_from", "value_to", "change", "change_low", "change_high", "ci_low", "ci_high",
                "min_detectable_change", "latest_value", "slope_per_year", "slope_low", "slope_high",
-               "between_wave_sd", "level_before", "level_after", "se"):
+               "wave_to_wave_sd", "level_before", "level_after", "se"):
         return "0.000"
     return None

@@ -111,7 +111,10 @@ def year_ago(labels: list[str], dates: dict[str, str], wave: str, tolerance_days
     if best is None or gap > tolerance_days:
         return None, (f"no stored wave lies within {tolerance_days // 7} weeks of {target.isoformat()} "
                       f"(12 months before {wave})")
-    return best, f"year-ago wave: {best} (fieldwork {dates[best]}, {gap} days from 12 months before {wave})"
+    off = (dt.date.fromisoformat(dates[best]) - target).days
+    when = ("12 months before" if off == 0 else
+            f"{abs(off)} day{'s' if abs(off) != 1 else ''} {'after' if off > 0 else 'before'} 12 months before")
+    return best, f"year-ago wave: {best} (fieldwork {dates[best]}, {when} {wave}'s {dates[wave]})"
 
 
 def resolve_against(labels: list[str], dates: dict[str, str], wave: str, against: str) -> tuple[list[str], str]:
@@ -193,7 +196,7 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
         pd.factorize(m["metric"])[0]] if len(m) else np.array([], dtype=object)
     empty_to, empty_from = m["base_to"].to_numpy() == 0, m["base_from"].to_numpy() == 0
     unreliable = ~(m["reliable_to"].to_numpy(bool) & m["reliable_from"].to_numpy(bool))
-    cell_flags = _join(m["flags_from"].to_numpy(object), m["flags_to"].to_numpy(object), "; ")
+    cell_flags = _wave_flags(m["flags_from"], m["flags_to"], m["wave_from"], m["wave_to"])
     empty_text = np.where(empty_to, "no respondents in " + m["wave_to"].astype(str),
                           "no respondents in " + m["wave_from"].astype(str))
     detail = np.where(empty_to | empty_from, empty_text,
@@ -219,6 +222,16 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
         "se": se, "df": df, "covariance": cov,
     })
     return out
+
+
+def _wave_flags(f_from, f_to, w_from, w_to) -> np.ndarray:
+    """The two cells' flags, each named by its wave; one flag shared by both said once."""
+    a = pd.Series(f_from, dtype=object).fillna("").astype(str).reset_index(drop=True)
+    b = pd.Series(f_to, dtype=object).fillna("").astype(str).reset_index(drop=True)
+    wa = pd.Series(w_from, dtype=object).astype(str).reset_index(drop=True)
+    wb = pd.Series(w_to, dtype=object).astype(str).reset_index(drop=True)
+    named = _join(np.where(a != "", wa + ": " + a, ""), np.where(b != "", wb + ": " + b, ""), "; ")
+    return np.where((a == b) & (a != ""), "both waves: " + a, named).astype(object)
 
 
 def _join(a: np.ndarray, b: np.ndarray, sep: str) -> np.ndarray:

@@ -20,7 +20,7 @@ MIN_WAVES = 4
 COLUMNS = [
     "metric", "metric_label", "kind", "group", "subgroup", "first_wave", "last_wave", "waves",
     "latest_value", "slope_per_year", "slope_low", "slope_high", "slope_p",
-    "between_wave_sd", "q_statistic", "q_p", "pattern", "pattern_p_adjusted",
+    "wave_to_wave_sd", "excess_variation_chi2", "excess_variation_p", "pattern", "pattern_p_adjusted",
     "shift_wave", "level_before", "level_before_low", "level_before_high",
     "level_after", "level_after_low", "level_after_high", "blip_wave", "blip_size", "note",
 ]
@@ -154,9 +154,9 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
         "slope_low": np.where(fit_ok, slope - tq * slope_se, np.nan),
         "slope_high": np.where(fit_ok, slope + tq * slope_se, np.nan),
         "slope_p": np.where(fit_ok, slope_p, np.nan),
-        "between_wave_sd": np.where(fit_ok, np.sqrt(trend["tau2"]), np.nan),
-        "q_statistic": np.where(fit_ok, trend["q"], np.nan),
-        "q_p": np.where(fit_ok, q_p, np.nan),
+        "wave_to_wave_sd": np.where(fit_ok, np.sqrt(trend["tau2"]), np.nan),
+        "excess_variation_chi2": np.where(fit_ok, trend["q"], np.nan),
+        "excess_variation_p": np.where(fit_ok, q_p, np.nan),
         "pattern": pattern, "pattern_p_adjusted": np.where(fit_ok, pattern_p, np.nan),
         "shift_wave": np.where(is_shift, wv[np.maximum(j, 0)], None),
         "level_before": np.where(is_shift, shift["before"], np.nan),

@@ -57,7 +57,7 @@ VIEWS: dict[str, list[Col]] = {
         Col("slope_per_year", "per year", "change", 1), Col(("slope_low", "slope_high"), "interval", "span_change", 2),
         Col("latest_value", "latest", "value", 2), Col("waves", "waves", "int", 3),
         Col("shift_wave", "shift at", keep=1), Col("blip_wave", "blip at", keep=1),
-        Col("between_wave_sd", "wave-to-wave SD", "size", 4), Col("pattern_p_adjusted", "p adj.", "p", 3),
+        Col("wave_to_wave_sd", "wave-to-wave SD", "size", 4), Col("pattern_p_adjusted", "p adj.", "p", 3),
         Col("note", "note", keep=4), Col("group", "split", keep=6),
     ],
 }
