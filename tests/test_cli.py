@@ -294,3 +294,20 @@ def test_docs_columns_lists_exactly_the_columns_each_command_writes(demo_study):
     comp = demo_study.composition(wave="2025-Q4").table()
     comp_text = doc.split("## composition\n")[1].split("\n## ")[0]
     assert set(comp.columns) <= set(re.findall(r"`([a-z0-9_]+)`", comp_text))
+
+
+def test_the_view_takes_units_from_the_kinds_registry(demo_study):
+    # common practice, no source: a balance (share of plus minus share of minus) reads in
+    # points, never as a percent; a share in percent; a mean in its own units
+    root, latest = demo_study.root, demo_study.labels[-1]
+    est = demo_study.estimates(metrics=["recommend_balance", "satisfied", "satisfaction_mean"], by=["total"],
+                               waves=[latest]).set_index("metric")["value"]
+    out = _run("estimates", root, "--metric", "recommend_balance", "--metric", "satisfied", "--metric",
+               "satisfaction_mean", "--by", "total", "--wide").output.splitlines()
+    row = {m: next(line for line in out if line.startswith(latest) and lab in line)
+           for m, lab in (("recommend_balance", "Recommend balance"), ("satisfied", "Satisfied overall"),
+                          ("satisfaction_mean", "Mean overall satisfaction"))}
+    assert f" {est['recommend_balance'] * 100:.1f} " in row["recommend_balance"] + " "
+    assert f"{est['recommend_balance'] * 100:.1f}%" not in row["recommend_balance"]
+    assert f"{est['satisfied'] * 100:.1f}%" in row["satisfied"]
+    assert f" {est['satisfaction_mean']:.2f} " in row["satisfaction_mean"] + " "

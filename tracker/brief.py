@@ -237,8 +237,6 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     if charts:
         from .charts import change_overview, chart_spec, trend_chart
 
-        from .progress import step
-
         chart_list.append(("Every tested change in total", chart_spec(change_overview(result, totals_only=True))))
         shown_sub = {(r.metric, g) for r, g in zip(sub.itertuples(), sub["group"])}
         drawn = [m for m in study.codebook.metrics if m in set(t["metric"])]
@@ -261,7 +259,8 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     return Brief(
         title=study.codebook.title, wave=wave, against=result.against, headline=headline,
         subgroup_moves=subgroup_moves, steady=steady, trends=tuple(trend_items), sample_notes=tuple(sample),
-        method=method, tables=tables, charts=tuple(chart_list), compact_charts=tuple(compact), mix_moves=mix_moves, unclear=unclear,
+        method=method, tables=tables, charts=tuple(chart_list), compact_charts=tuple(compact),
+        mix_moves=mix_moves, unclear=unclear,
         data=analysis.to_dict(),
     )
 

@@ -128,16 +128,13 @@ def emit(frame, fmt: str, view: str | None, wide: bool = False, output: str | No
         say(f"wrote {len(frame):,} rows to {path}")
         return
     if fmt == "table" and view:
-        from .view import human_table
-
         import textwrap
 
-        from .view import terminal_width
+        from .view import human_table, terminal_width
 
         text, notes = human_table(frame, view, wide=wide)
         click.echo(text, nl=False)
-        width = terminal_width()
-        footer = [textwrap.fill(line, width) for line in [*notes, *footer]]
+        footer = [textwrap.fill(line, terminal_width()) for line in [*notes, *footer]]
     else:
         click.echo(render(frame, fmt), nl=False)
     if fmt in ("table", "md"):

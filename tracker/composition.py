@@ -21,6 +21,7 @@ from .estimates import cell_stats, design_labels, weights_of
 from .methods.raoscott import rao_scott_table
 from .methods.tests import ADJUST_METHODS, adjust_pvalues
 from .methods.variance import taylor_covariance
+from .view import p_text
 
 
 def stacked_shares(labels: list[np.ndarray], levels: list[str], weights: list[np.ndarray], strata: list, psus: list,
@@ -61,10 +62,6 @@ def stacked_shares(labels: list[np.ndarray], levels: list[str], weights: list[np
     return pi, V, n, df, shares
 
 
-def _p(p: float) -> str:
-    return "<0.001" if p < 0.001 else f"{p:.3f}"
-
-
 @dataclass(frozen=True)
 class CompositionResult:
     """The make-up of two waves on the profile groups, with one test per group."""
@@ -90,7 +87,7 @@ class CompositionResult:
         for r in self.tests.itertuples():
             verdict = "shifted" if r.shifted else "no clear shift"
             out.append(f"{r.group}: {verdict} (weighted mix, Rao-Scott F {r.f:.2f} on {r.f_df_num:.1f} and "
-                       f"{r.f_df_den:.1f} df, adjusted p {_p(r.p_adjusted)}); largest move: {r.largest_move}")
+                       f"{r.f_df_den:.1f} df, adjusted p {p_text([r.p_adjusted])[0]}); largest move: {r.largest_move}")
         out.append(f"{len(self.tests)} profile groups tested, {int(self.tests['shifted'].sum())} shifted, after "
                    f"{ADJUST_METHODS[self.adjust]} adjustment at the {1 - self.level:g} level.")
         return out

@@ -9,6 +9,7 @@ from .names import FORMATS  # noqa: E402
 
 
 from .plain import FORMULA_START, safe_cell  # noqa: F401 - re-exported for older imports
+from .plain import md_cell as _md
 
 
 def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
@@ -37,12 +38,6 @@ def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
     if shown.empty:
         return "(no rows)\n"
     return shown.to_string(index=False) + "\n"
-
-
-def _md(v) -> str:
-    from .plain import md_cell
-
-    return md_cell(v)
 
 
 def write_table(frame: pd.DataFrame, path) -> "Path":

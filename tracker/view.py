@@ -2,8 +2,9 @@
 terminal's width. Machine formats (csv, json, md) are rendered by tracker.formatting with
 every column at full precision; this module is for people at a terminal only.
 
-Shares and balances show in percent and their changes in percentage points; means keep
-their own units to two decimals; p-values to three decimals (below 0.001 as "<0.001");
+Units, scale and decimals are the metric kinds' (tracker.kinds), as in the brief: shares in
+percent, balances and the changes of both in points, means in their own units to two
+decimals; p-values to three decimals (below 0.001 as "<0.001");
 bases with thousands separators; degrees of freedom as whole numbers.
 """
 
@@ -13,7 +14,10 @@ import math
 import shutil
 from dataclasses import dataclass
 
+import numpy as np
 import pandas as pd
+
+from .kinds import KINDS
 
 #: Width used when the terminal's cannot be measured (a pipe, a file).
 DEFAULT_WIDTH = 100
@@ -26,7 +30,7 @@ class Col:
 
     source: str | tuple[str, str]
     title: str
-    how: str = "text"   # text | value | change | span | p | count | int | sd | slope
+    how: str = "text"   # text | value | change | size | sd | span | span_change | p | count | int | deff
     keep: int = 5
 
 
@@ -63,45 +67,55 @@ VIEWS: dict[str, list[Col]] = {
 }
 
 
-def _is_mean(kind) -> bool:
-    return str(kind) == "mean"
+def _num(x: np.ndarray, digits: int, signed: bool = False) -> np.ndarray:
+    """Numbers as text, column at once; a value that rounds to zero gets no sign (no "-0.0")."""
+    r = np.round(x, digits) + 0.0  # + 0.0 turns -0.0 into 0.0
+    text = np.char.mod(f"%{'+' if signed else ''}.{digits}f", r).astype(object)
+    if signed:
+        text = np.where(r == 0, np.char.mod(f"%.{digits}f", np.abs(r)).astype(object), text)
+    return text
 
 
-def _cell(how: str, v, kind, v2=None) -> str:
+def _column(how: str, a, kinds: np.ndarray, b=None) -> list[str]:
+    """One shown column as text. Units, scale and decimals come from the metric kinds'
+    registry (tracker.kinds), the same as the brief's; blanks stay blank."""
     if how == "text":
-        return "" if v is None or (isinstance(v, float) and math.isnan(v)) else str(v)
+        return ["" if v is None or (isinstance(v, float) and math.isnan(v)) else str(v) for v in a]
+    x = pd.to_numeric(pd.Series(a), errors="coerce").to_numpy(float)
+    y = None if b is None else pd.to_numeric(pd.Series(b), errors="coerce").to_numpy(float)
+    blank = np.isnan(x) if y is None else np.isnan(x) | np.isnan(y)
+    out = np.full(len(x), "", dtype=object)
     if how == "count":
-        return "" if pd.isna(v) else f"{float(v):,.0f}"
-    if how == "int":
-        return "" if pd.isna(v) else f"{int(v)}"
-    if how == "deff":
-        return "" if pd.isna(v) else f"{float(v):.2f}"
-    if how == "p":
-        return "" if pd.isna(v) else ("<0.001" if v < 0.001 else f"{float(v):.3f}")
-    if pd.isna(v) or (v2 is not None and pd.isna(v2)):
-        return ""
-    if how in ("change", "span_change"):  # no "-0.0": a change that rounds to nothing reads as none
-        v = 0.0 if abs(v) < (0.005 if _is_mean(kind) else 0.0005) else v
-        v2 = v2 if v2 is None or abs(v2) >= (0.005 if _is_mean(kind) else 0.0005) else 0.0
-    mean = _is_mean(kind)
-    f = 1.0 if mean else 100.0
-    if how == "value":
-        return f"{v:.2f}" if mean else f"{v * f:.1f}%"
-    if how == "change":
-        return _signed(v, 2) if mean else f"{_signed(v * f, 1)} pts"
-    if how in ("size", "sd"):
-        return f"{v:.2f}" if mean else f"{v * f:.1f} pts"
-    if how == "span":
-        return f"{v:.2f} to {v2:.2f}" if mean else f"{v * f:.1f} to {v2 * f:.1f}"
-    if how == "span_change":
-        return f"{_signed(v, 2)} to {_signed(v2, 2)}" if mean else f"{_signed(v * f, 1)} to {_signed(v2 * f, 1)}"
-    raise ValueError(how)
+        out[~blank] = [f"{v:,.0f}" for v in x[~blank]]  # thousands separators: no vectorised form
+        return list(out)
+    if how in ("int", "deff", "p"):
+        text = {"int": lambda v: _num(v, 0), "deff": lambda v: _num(v, 2), "p": p_text}[how](x)
+        return list(np.where(blank, "", text))
+    for name in np.unique(kinds):
+        k = KINDS.get(str(name), KINDS["share"])
+        m = (kinds == name) & ~blank
+        if not m.any():
+            continue
+        d, v = k.decimals, x[m] * k.scale
+        pts = " pts" if k.change_unit else ""
+        if how == "value":
+            out[m] = _num(v, d) + k.unit
+        elif how == "change":
+            out[m] = _num(v, d, signed=True) + pts
+        elif how in ("size", "sd"):
+            out[m] = _num(v, d) + pts
+        elif how in ("span", "span_change"):
+            signed = how == "span_change"
+            out[m] = _num(v, d, signed) + " to " + _num(y[m] * k.scale, d, signed)
+        else:
+            raise ValueError(how)
+    return list(out)
 
 
-def _signed(v: float, digits: int) -> str:
-    """A signed number, with no sign on a value that rounds to zero."""
-    text = f"{v:+.{digits}f}"
-    return text[1:] if float(text) == 0 else text
+def p_text(p: np.ndarray) -> np.ndarray:
+    """p-values to three decimals, below 0.001 as "<0.001"."""
+    p = np.asarray(p, float)
+    return np.where(p < 0.001, "<0.001", np.char.mod("%.3f", p).astype(object))
 
 
 def terminal_width() -> int:
@@ -120,13 +134,13 @@ def human_table(frame: pd.DataFrame, view: str, width: int | None = None, wide: 
     cols = [c for c in VIEWS[view] if all(s in frame for s in ((c.source,) if isinstance(c.source, str) else c.source))]
     if "group" in frame and frame["group"].nunique() <= 1:
         cols = [c for c in cols if c.source != "group"]
+    kinds = kinds.astype(str).to_numpy()
     cells = {}
     for c in cols:
         if isinstance(c.source, tuple):
-            a, b = frame[c.source[0]].to_numpy(), frame[c.source[1]].to_numpy()
-            cells[c.title] = [_cell(c.how, x, k, y) for x, y, k in zip(a, b, kinds)]
+            cells[c.title] = _column(c.how, frame[c.source[0]].to_numpy(), kinds, frame[c.source[1]].to_numpy())
         else:
-            cells[c.title] = [_cell(c.how, x, k) for x, k in zip(frame[c.source].to_numpy(object), kinds)]
+            cells[c.title] = _column(c.how, frame[c.source].to_numpy(object), kinds)
     right = {c.title for c in cols if c.how not in ("text",)}
     widths = {t: max(len(t), *(len(x) for x in v)) for t, v in cells.items()}
     shown = [c.title for c in cols]
