@@ -1,26 +1,54 @@
-"""Benchmark: all estimates plus latest-vs-previous changes on a large synthetic study.
+"""Benchmark: the tool side by side with a plain numpy floor on a realistic clustered study.
 
-24 waves x 2,000 respondents x 100 metrics x 5 subgroup variables (4 levels each), weights,
-no clusters. Run:  python scripts/benchmark.py [--waves 24] [--n 2000] [--metrics 100]
+The study (synthetic, seeded): 24 waves x 2,000 respondents, 100 share metrics, 5 subgroup
+splits of 4 levels (21 levels with the total), 10 strata of 20 clusters each (200 cluster
+labels, the same in every wave), lognormal weights: 50,400 cells. Measured in one run:
+
+* the floor: one pass per wave of weighted sums and cluster totals per cell (np.bincount
+  and one sparse product), the least work any tool must do; kept here, and checked
+  against the tool's values and standard errors to 1e-12;
+* the tool's Python API (``Study.estimates``), without and with the per-wave cache;
+* a samplics per-split loop (one ``TaylorEstimator`` call per wave x metric x split, the
+  usual way to use that library) on a sample of calls, extrapolated and labelled so;
+* the command line end to end, each command a fresh process, with its peak memory;
+* one wave of 1,000,000 respondents (20 metrics, 3 splits): add, estimates, the floor;
+* the time of ``add`` with 4, 24 and 60 waves stored.
+
+Run:  python scripts/benchmark.py            (everything; about 15 minutes on 2 cores)
+      python scripts/benchmark.py --quick    (the clustered study only)
 The figures go in docs/performance.md; no test enforces them.
 """
 
 from __future__ import annotations
 
 import argparse
+import json
 import os
+import platform
+import statistics
+import subprocess
+import sys
 import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import scipy.sparse as sp
 
-from tracker import Study
+SHARE_CODES = (4, 5)
+MISSING = 9
 
 
-def build(root: Path, waves: int, n: int, metrics: int, groups: int) -> Study:
-    lines = ["title: benchmark", "id: rid", "weight: w", "variables:"]
+# -- the synthetic study ---------------------------------------------------------------------
+
+def codebook_text(metrics: int, groups: int, design: bool = True) -> str:
+    lines = ["title: benchmark", "id: rid", "weight: w"]
+    if design:
+        lines += ["strata: s", "clusters: c"]
+    lines.append("variables:")
+    if design:
+        lines += ["  s: {type: text}", "  c: {type: text}"]
     for g in range(groups):
         lines += [f"  g{g}:", "    type: category", "    codes: {1: a, 2: b, 3: c, 4: d}"]
     for m in range(metrics):
@@ -29,73 +57,320 @@ def build(root: Path, waves: int, n: int, metrics: int, groups: int) -> Study:
     lines += [f"  g{g}: {{variable: g{g}}}" for g in range(groups)]
     lines.append("metrics:")
     for m in range(metrics):
-        kind = ("share: [4, 5]", "mean: true", "balance: {plus: [4, 5], minus: [1, 2]}")[m % 3]
-        lines += [f"  m{m}:", f"    variable: q{m}", f"    {kind}"]
+        lines += [f"  m{m}:", f"    variable: q{m}", "    share: [4, 5]"]
+    return "\n".join(lines) + "\n"
+
+
+def make_wave(rng: np.random.Generator, k: int, n: int, metrics: int, groups: int, strata: int,
+              clusters: int) -> pd.DataFrame:
+    """One wave's respondents: clusters drawn at random, each with its own level per metric."""
+    frame: dict[str, object] = {"rid": [f"{k}-{i}" for i in range(n)], "w": rng.lognormal(0, 0.4, n)}
+    if clusters:
+        c = rng.integers(0, clusters, n)
+        frame["s"] = [f"s{v}" for v in c * strata // clusters]
+        frame["c"] = [f"c{v}" for v in c]
+        shift = rng.normal(0, 0.4, (clusters, metrics))[c]
+    else:
+        shift = np.zeros((n, metrics))
+    for g in range(groups):
+        frame[f"g{g}"] = rng.integers(1, 5, n)
+    answers = np.clip(np.rint(3 + shift + rng.normal(0, 1.2, (n, metrics))), 1, 5).astype(int)
+    answers[rng.random((n, metrics)) < 0.05] = MISSING
+    for m in range(metrics):
+        frame[f"q{m}"] = answers[:, m]
+    return pd.DataFrame(frame)
+
+
+def build(root: Path, waves: int = 24, n: int = 2000, metrics: int = 100, groups: int = 5, strata: int = 10,
+          clusters: int = 200, seed: int = 1, quiet: bool = True) -> Path:
+    """Make the study under ``root`` (study folder ``root/study``) by ``tracker add`` of each wave."""
+    from tracker import Study
+
     book = root / "codebook.yaml"
-    book.write_text("\n".join(lines) + "\n")
+    book.write_text(codebook_text(metrics, groups, design=bool(clusters)))
     study = Study.create(root / "study", book)
-    rng = np.random.default_rng(1)
+    rng = np.random.default_rng(seed)
     for k in range(waves):
-        frame = {"rid": [f"{k}-{i}" for i in range(n)], "w": rng.lognormal(0, 0.4, n)}
-        for g in range(groups):
-            frame[f"g{g}"] = rng.integers(1, 5, n)
-        for m in range(metrics):
-            frame[f"q{m}"] = rng.choice([1, 2, 3, 4, 5, 9], n)
-        path = root / f"w{k}.parquet"
-        pd.DataFrame(frame).to_parquet(path)
-        year, month = 2020 + k // 12, k % 12 + 1
-        study.add(path, f"W{k:02d}", f"{year}-{month:02d}-15")
-    return Study(root / "study")
+        path = root / f"w{k:03d}.parquet"
+        make_wave(rng, k, n, metrics, groups, strata, clusters).to_parquet(path)
+        study.add(path, label(k), date(k))
+        path.unlink()
+    return root / "study"
 
 
-def startup(study: Path, runs: int = 7) -> dict[str, float]:
-    """Median wall time of `tracker --help` and `tracker waves STUDY` as fresh processes."""
-    import statistics
-    import subprocess
-    import sys
+def label(k: int) -> str:
+    return f"W{k:03d}"
 
+
+def date(k: int) -> str:
+    return f"{2000 + k // 12}-{k % 12 + 1:02d}-15"
+
+
+# -- the floor ----------------------------------------------------------------------------------
+
+def floor_wave(table: pd.DataFrame, metrics: list[str], groups: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Values and Taylor standard errors (levels x metrics) of one wave's share cells.
+
+    The least work: the answers as one integer matrix, subgroup membership as a 0/1 matrix,
+    weighted sums by matrix products and each cell's cluster totals of the linearized
+    values by one sparse (cluster x level) product; the with-replacement estimator within
+    strata (Wolter 2007, ch. 6)."""
+    X = table[metrics].to_numpy()
+    w = table["w"].to_numpy(float)
+    e = X != MISSING
+    y = (X >= SHARE_CODES[0]) & (X <= SHARE_CODES[1])
+    G = table[groups].to_numpy()
+    N = len(table)
+    D = np.concatenate([np.ones((N, 1)), (G[:, :, None] == np.arange(1, 5)).reshape(N, -1)], axis=1)
+    we = e * w[:, None]
+    wey = we * y
+    sw = D.T @ we
+    value = (D.T @ wey) / sw
+    L = D.shape[1]
+    if "c" in table.columns:
+        s_code, s_names = pd.factorize(table["s"])
+        c_code = pd.factorize(table["s"].astype(str) + "|" + table["c"].astype(str))[0]
+        P = c_code.max() + 1
+        psu_stratum = np.zeros(P, dtype=np.int64)
+        psu_stratum[c_code] = s_code
+        H = len(s_names)
+    else:
+        c_code = np.arange(N)
+        P = N
+        psu_stratum = np.zeros(N, dtype=np.int64)
+        H = 1
+    rows, lev = np.nonzero(D)
+    CD = sp.csr_matrix((np.ones(rows.size), (c_code[rows] * L + lev, rows)), shape=(P * L, N))
+    t = ((CD @ wey).reshape(P, L, -1) - value[None] * (CD @ we).reshape(P, L, -1)) / sw[None]
+    t = t.reshape(P, -1)
+    S = sp.csr_matrix((np.ones(P), (psu_stratum, np.arange(P))), shape=(H, P))
+    s1, s2 = S @ t, S @ (t * t)
+    n_h = np.bincount(psu_stratum, minlength=H)[:, None].astype(float)
+    var = (n_h / (n_h - 1) * (s2 - s1 * s1 / n_h)).sum(axis=0).reshape(L, -1)
+    return value, np.sqrt(var)
+
+
+def floor_study(study: Path, waves: list[str]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    ledger = json.loads((study / "ledger.json").read_text())
+    files = {w["label"]: w["file"] for w in ledger["waves"]}
     out = {}
-    for name, args in (("tracker --help", ["--help"]), ("tracker waves", ["waves", str(study)])):
-        times = []
-        for _ in range(runs):
-            t = time.perf_counter()
-            subprocess.run([sys.executable, "-m", "tracker", *args], check=True, capture_output=True)
-            times.append(time.perf_counter() - t)
-        out[name] = statistics.median(times)
+    for lab in waves:
+        table = pd.read_parquet(study / files[lab])
+        metrics = [c for c in table.columns if c.startswith("q")]
+        groups = [c for c in table.columns if c.startswith("g")]
+        out[lab] = floor_wave(table, metrics, groups)
     return out
 
 
-def main() -> None:
-    ap = argparse.ArgumentParser()
-    ap.add_argument("--waves", type=int, default=24)
-    ap.add_argument("--n", type=int, default=2000)
-    ap.add_argument("--metrics", type=int, default=100)
-    ap.add_argument("--groups", type=int, default=5)
-    args = ap.parse_args()
-    with tempfile.TemporaryDirectory() as tmp:
+def agreement(est: pd.DataFrame, floor: dict[str, tuple[np.ndarray, np.ndarray]]) -> float:
+    """Largest absolute difference between the tool's values/SEs and the floor's."""
+    worst = 0.0
+    for lab, (value, se) in floor.items():
+        part = est[est["wave"] == lab]
+        v = part["value"].to_numpy().reshape(value.shape)
+        s = part["se"].to_numpy().reshape(se.shape)
+        worst = max(worst, float(np.nanmax(np.abs(v - value))), float(np.nanmax(np.abs(s - se))))
+    return worst
+
+
+# -- samplics -----------------------------------------------------------------------------------
+
+def samplics_loop(study: Path, calls: int = 60, seed: int = 2) -> tuple[float, int, float]:
+    """Median seconds per samplics call (one wave x metric x split, domain estimation), the
+    number of calls the whole study needs, and the largest difference from the tool on the
+    sampled calls."""
+    import warnings
+
+    warnings.simplefilter("ignore")
+    from samplics.estimation import TaylorEstimator
+
+    from tracker import Study
+
+    s = Study(study)
+    waves = s.labels
+    metrics = list(s.codebook.metrics)
+    groups = list(s.codebook.groups)
+    est = s.estimates()
+    rng = np.random.default_rng(seed)
+    times, worst = [], 0.0
+    for _ in range(calls):
+        lab, m, g = waves[rng.integers(len(waves))], rng.integers(len(metrics)), groups[rng.integers(len(groups))]
+        t = s.load(lab)
+        x = t[f"q{m}"].to_numpy()
+        keep = x != MISSING
+        y = ((x >= 4) & (x <= 5)).astype(float)[keep]
         t0 = time.perf_counter()
-        build(Path(tmp), args.waves, args.n, args.metrics, args.groups)
-        t1 = time.perf_counter()
-        study = Study(Path(tmp) / "study")
-        est = study.estimates()
-        t2 = time.perf_counter()
-        ch = study.changes()
-        t3 = time.perf_counter()
-        tr = None
-        if hasattr(study, "trends"):
-            tr = study.trends()
-        t4 = time.perf_counter()
-        starts = startup(Path(tmp) / "study")
-    print(f"cores: {os.cpu_count()}")
-    print(f"study: {args.waves} waves x {args.n} respondents x {args.metrics} metrics x {args.groups} splits")
-    print(f"building (intake of every wave): {t1 - t0:.2f} s")
-    print(f"all estimates ({len(est):,} rows): {t2 - t1:.2f} s")
-    print(f"latest vs previous changes ({len(ch.table):,} tests): {t3 - t2:.2f} s")
-    if tr is not None:
-        print(f"trends ({len(tr):,} series): {t4 - t3:.2f} s")
-    print(f"estimates + changes: {t3 - t1:.2f} s")
-    for name, sec in starts.items():
-        print(f"start-up, {name} (median of 7 fresh processes): {sec:.2f} s")
+        te = TaylorEstimator("proportion")
+        te.estimate(y=y, samp_weight=t["w"].to_numpy()[keep], stratum=t["s"].to_numpy()[keep],
+                    psu=t["c"].to_numpy()[keep], domain=t[g].to_numpy()[keep], remove_nan=True)
+        times.append(time.perf_counter() - t0)
+        mine = est[(est["wave"] == lab) & (est["metric"] == f"m{m}") & (est["group"] == g)]
+        for _, r in mine.iterrows():
+            code = "abcd".index(r["subgroup"]) + 1
+            se = te.stderror[code][1.0] if 1.0 in te.stderror[code] else te.stderror[code][1]
+            worst = max(worst, abs(se - r["se"]))
+    total_calls = len(waves) * len(metrics) * (len(groups) + 1)
+    return statistics.median(times), total_calls, worst
+
+
+# -- processes --------------------------------------------------------------------------------------
+
+def run_cli(args: list[str], env: dict | None = None) -> tuple[float, float]:
+    """(wall seconds, peak memory in MB) of one fresh ``tracker`` process."""
+    probe = ("import resource, subprocess, sys, time; t = time.perf_counter(); "
+             "subprocess.run(sys.argv[1:], check=True, stdout=subprocess.DEVNULL); "
+             "print(time.perf_counter() - t, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)")
+    out = subprocess.run([sys.executable, "-c", probe, sys.executable, "-m", "tracker", *args],
+                         check=True, capture_output=True, text=True, env=env).stdout.split()
+    return float(out[0]), float(out[1]) / 1024
+
+
+def median_cli(args: list[str], runs: int = 3) -> tuple[float, float]:
+    got = [run_cli(args) for _ in range(runs)]
+    return statistics.median(g[0] for g in got), max(g[1] for g in got)
+
+
+def clear_cache(study: Path) -> None:
+    import shutil
+
+    shutil.rmtree(study / "cache", ignore_errors=True)
+
+
+# -- the parts ---------------------------------------------------------------------------------------
+
+def part_clustered(tmp: Path, rows: list, quick: bool) -> None:
+    from tracker import Study
+
+    t = time.perf_counter()
+    study = build(tmp / "clustered")
+    built = time.perf_counter() - t
+    rows.append(("clustered study: add of each of 24 waves (mean)", f"{built / 24:.2f} s", ""))
+    labels = Study(study).labels
+
+    floor_times = []
+    for _ in range(3):
+        t = time.perf_counter()
+        floor = floor_study(study, labels)
+        floor_times.append(time.perf_counter() - t)
+    floor_t = statistics.median(floor_times)
+    rows.append(("floor: values and SEs of all 50,400 cells (numpy, read included)", f"{floor_t:.2f} s", ""))
+
+    api = []
+    for _ in range(3):
+        clear_cache(study)
+        t = time.perf_counter()
+        est = Study(study).estimates()
+        api.append(time.perf_counter() - t)
+    api_t = statistics.median(api)
+    gap = agreement(est, floor)
+    rows.append(("tool API, Study(...).estimates(), no cache", f"{api_t:.2f} s",
+                 f"{api_t / floor_t:.1f}x the floor; largest difference {gap:.1e}"))
+    if gap > 1e-12:
+        raise SystemExit(f"the tool and the floor differ by {gap:g}")
+    t = time.perf_counter()
+    Study(study).estimates()
+    rows.append(("tool API, estimates() from the per-wave cache", f"{time.perf_counter() - t:.2f} s", ""))
+
+    per_call, calls, worst = samplics_loop(study, calls=20 if quick else 60)
+    rows.append(("samplics per-split loop (EXTRAPOLATED from sampled calls)", f"{per_call * calls:.0f} s",
+                 f"{calls:,} calls x {per_call * 1000:.0f} ms; SE agrees to {worst:.1e}"))
+
+    clear_cache(study)
+    for name, args in [
+        ("cli: estimates (first run, builds the cache)", ["estimates", str(study), "--format", "csv"]),
+        ("cli: estimates (all cells, csv)", ["estimates", str(study), "--format", "csv"]),
+        ("cli: estimates (terminal view)", ["estimates", str(study)]),
+        ("cli: changes", ["changes", str(study)]),
+        ("cli: trends", ["trends", str(study), "--format", "csv"]),
+        ("cli: brief -o x.html", ["brief", str(study), "-o", str(tmp / "x.html")]),
+    ]:
+        sec, mb = run_cli(args) if "first" in name else median_cli(args, 1 if quick else 3)
+        rows.append((name, f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
+
+    n0 = len(labels)
+    rng = np.random.default_rng(99)
+    path = tmp / "extra.parquet"
+    make_wave(rng, 99, 2000, 100, 5, 10, 200).to_parquet(path)
+    sec, mb = run_cli(["add", str(study), str(path), "--wave", "X1", "--date", "2030-01-15", "-q"])
+    rows.append((f"cli: add a 2,000-row wave to {n0} stored", f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
+
+
+def part_million(tmp: Path, rows: list) -> None:
+    from tracker import Study
+
+    root = tmp / "million"
+    root.mkdir()
+    book = root / "codebook.yaml"
+    book.write_text(codebook_text(20, 3))
+    study = Study.create(root / "study", book)
+    path = root / "big.parquet"
+    make_wave(np.random.default_rng(5), 0, 1_000_000, 20, 3, 10, 200).to_parquet(path)
+    del study
+    sec, mb = run_cli(["add", str(root / "study"), str(path), "--wave", "W000", "--date", "2000-01-15", "-q"])
+    rows.append(("1,000,000 respondents: cli add", f"{sec:.1f} s", f"peak {mb:,.0f} MB"))
+    import resource
+
+    t = time.perf_counter()
+    floor = floor_study(root / "study", ["W000"])
+    floor_t = time.perf_counter() - t
+    rows.append(("1,000,000 respondents: floor", f"{floor_t:.1f} s", ""))
+    t = time.perf_counter()
+    est = Study(root / "study").estimates()
+    api_t = time.perf_counter() - t
+    rows.append(("1,000,000 respondents: tool API, no cache", f"{api_t:.1f} s",
+                 f"{api_t / floor_t:.1f}x the floor; largest difference {agreement(est, floor):.1e}"))
+    clear_cache(root / "study")
+    for name in ("first run", "from the cache"):
+        sec, mb = run_cli(["estimates", str(root / "study"), "--format", "csv"])
+        rows.append((f"1,000,000 respondents: cli estimates ({name})", f"{sec:.1f} s", f"peak {mb:,.0f} MB"))
+    del resource
+
+
+def part_growth(tmp: Path, rows: list) -> None:
+    root = tmp / "growth"
+    root.mkdir()
+    from tracker import Study
+
+    book = root / "codebook.yaml"
+    book.write_text(codebook_text(100, 5))
+    study = Study.create(root / "study", book)
+    rng = np.random.default_rng(7)
+    for k in range(61):
+        path = root / "w.parquet"
+        make_wave(rng, k, 2000, 100, 5, 10, 200).to_parquet(path)
+        if k in (4, 24, 60):
+            sec, mb = run_cli(["add", str(root / "study"), str(path), "--wave", label(k), "--date", date(k), "-q"])
+            rows.append((f"cli add with {k} waves stored", f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
+        else:
+            study.add(path, label(k), date(k))
+
+
+def machine() -> str:
+    try:
+        import threadpoolctl
+
+        blas = ", ".join(sorted({f"{p['internal_api']} {p['num_threads']} threads"
+                                 for p in threadpoolctl.threadpool_info()}))
+    except ImportError:
+        blas = "BLAS not reported"
+    return (f"{os.cpu_count()} cores, {platform.machine()}, Python {platform.python_version()}, "
+            f"numpy {np.__version__}, {blas}")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--quick", action="store_true", help="the clustered study only")
+    args = ap.parse_args()
+    rows: list[tuple[str, str, str]] = []
+    with tempfile.TemporaryDirectory() as tmp:
+        part_clustered(Path(tmp), rows, args.quick)
+        if not args.quick:
+            part_million(Path(tmp), rows)
+            part_growth(Path(tmp), rows)
+    print(f"machine: {machine()}; {time.strftime('%Y-%m-%d')}")
+    print("| measurement | time | note |\n|---|---|---|")
+    for r in rows:
+        print(f"| {r[0]} | {r[1]} | {r[2]} |")
 
 
 if __name__ == "__main__":

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from .methods.distributions import norm_ppf, norm_sf
 
 from .cells import group_labels
 from .codebook import Codebook
@@ -175,7 +175,7 @@ def mix_table(book: Codebook, a: pd.DataFrame, b: pd.DataFrame, metrics: list, v
     ca = cell_stats(book, a, metrics, [var], residual=True)
     cb = cell_stats(book, b, metrics, [var], residual=True)
     rows = []
-    z = stats.norm.ppf(0.5 + level / 2)
+    z = norm_ppf(0.5 + level / 2)
     for m in metrics:  # a loop over metrics; levels are arrays
         ta = ca[(ca["metric"] == m.name) & (ca["group"] == var)]
         tb = cb[(cb["metric"] == m.name) & (cb["group"] == var)]
@@ -191,7 +191,7 @@ def mix_table(book: Codebook, a: pd.DataFrame, b: pd.DataFrame, metrics: list, v
         std_change = float((s_a * np.where(usable, p_b - p_a, 0.0)).sum())
         std_var = float((s_a**2 * np.where(usable, ta["variance"].to_numpy() + tb["variance"].to_numpy(), 0.0)).sum())
         se = np.sqrt(std_var)
-        p = float(2 * stats.norm.sf(abs(std_change) / se)) if se > 0 else np.nan
+        p = float(2 * norm_sf(abs(std_change) / se)) if se > 0 else np.nan
         lost = float(s_a[~usable].sum())
         rows.append({"metric": m.name, "metric_label": m.label, "kind": m.kind, "mix_variable": var,
                      "change": float(tot_b["value"] - tot_a["value"]), "mix_part": mix, "within_part": within,

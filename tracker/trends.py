@@ -10,7 +10,7 @@ import datetime as dt
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from .methods.distributions import chi2_sf, norm_ppf, t_ppf, t_sf
 from scipy.special import logsumexp
 
 from .methods.tests import ADJUST_METHODS, adjust_pvalues
@@ -106,7 +106,7 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
             ok[(series["metric"] == metric).to_numpy(), : widx[start]] = False
     k = ok.sum(axis=1)
     fit_ok = k >= min_waves
-    z = stats.norm.ppf(0.5 + level / 2)
+    z = norm_ppf(0.5 + level / 2)
 
     # slope per year, centred time for stability
     tbar = (ok * years[None, :]).sum(axis=1) / np.maximum(k, 1)
@@ -116,9 +116,9 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
     slope_se = np.sqrt(trend["cov"][:, 1, 1])
     # t on k - 2 df rather than z: few waves and an estimated tau^2 make z too narrow
     df = np.maximum(trend["df"], 1)
-    slope_p = 2 * stats.t.sf(np.abs(slope / slope_se), df)
-    tq = stats.t.ppf(0.5 + level / 2, df)
-    q_p = stats.chi2.sf(trend["q"], df)
+    slope_p = 2 * t_sf(np.abs(slope / slope_se), df)
+    tq = t_ppf(0.5 + level / 2, df)
+    q_p = chi2_sf(trend["q"], df)
 
     tests = _pattern_tests(y, np.where(ok, v, 1.0), ok, X)
     p_any = np.where(fit_ok, tests["p"], np.nan)
@@ -266,7 +266,7 @@ def _pattern_tests(y, v, ok, X_trend):
         R = np.where(both, G / d[:, :, None] / d[:, None, :], 0.0) + np.eye(m)[None] * (~valid)[:, :, None]
         meff = np.maximum(effective_tests(R) - (~valid).sum(axis=1), 1.0)
         best = t.argmax(axis=1)
-        p_one = 2 * stats.t.sf(t[rows, best], df)
+        p_one = 2 * t_sf(t[rows, best], df)
         with np.errstate(divide="ignore"):
             p = np.where(valid.any(axis=1), -np.expm1(meff * np.log1p(-p_one)), np.nan)
         res[name] = {"t": t[rows, best], "p": p, "at": np.where(valid.any(axis=1), at[best], -1),

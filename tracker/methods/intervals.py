@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy import stats
+from .distributions import beta_ppf, norm_ppf, t_ppf
 
 __all__ = ["critical", "korn_graubard_interval", "newcombe_interval", "t_interval", "wilson_interval"]
 
@@ -11,9 +11,9 @@ __all__ = ["critical", "korn_graubard_interval", "newcombe_interval", "t_interva
 def critical(level: float, df=None):
     """The two-sided critical value: normal when ``df`` is None or infinite, else Student's t."""
     if df is None:
-        return stats.norm.ppf(0.5 + level / 2)
+        return norm_ppf(0.5 + level / 2)
     df = np.maximum(np.asarray(df, float), 1.0)  # fewer than one degree of freedom is read as one
-    return stats.t.ppf(0.5 + level / 2, df)
+    return t_ppf(0.5 + level / 2, df)
 
 
 def wilson_interval(p, n, level: float = 0.95, df=None):
@@ -52,11 +52,11 @@ def korn_graubard_interval(p, n_eff, n, df, level: float = 0.95):
     p, n_eff, n = (np.asarray(x, float) for x in (p, n_eff, n))
     alpha = 1 - level
     with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = (stats.t.ppf(1 - alpha / 2, np.maximum(n - 1, 1)) / critical(level, df)) ** 2
+        ratio = (t_ppf(1 - alpha / 2, np.maximum(n - 1, 1)) / critical(level, df)) ** 2
         n_star = np.minimum(n_eff, n) * np.minimum(ratio, 1.0)
         x = p * n_star
-        lo = np.where(x > 0, stats.beta.ppf(alpha / 2, np.where(x > 0, x, 1), n_star - x + 1), 0.0)
-        hi = np.where(x < n_star, stats.beta.ppf(1 - alpha / 2, x + 1, np.where(x < n_star, n_star - x, 1)), 1.0)
+        lo = np.where(x > 0, beta_ppf(alpha / 2, np.where(x > 0, x, 1), n_star - x + 1), 0.0)
+        hi = np.where(x < n_star, beta_ppf(1 - alpha / 2, x + 1, np.where(x < n_star, n_star - x, 1)), 1.0)
     bad = ~(n_star > 0)
     return np.where(bad, np.nan, lo), np.where(bad, np.nan, hi)
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy import stats
+from .distributions import norm_ppf, t_ppf
 
 __all__ = ["min_detectable_change", "min_detectable_share_change", "power_factor"]
 
@@ -11,9 +11,9 @@ __all__ = ["min_detectable_change", "min_detectable_share_change", "power_factor
 def power_factor(level: float = 0.95, power: float = 0.80, df=None):
     """t_{1-alpha/2} + t_{power} (normal quantiles when df is None or infinite)."""
     if df is None:
-        return stats.norm.ppf(0.5 + level / 2) + stats.norm.ppf(power)
+        return norm_ppf(0.5 + level / 2) + norm_ppf(power)
     df = np.maximum(np.asarray(df, float), 1.0)
-    return stats.t.ppf(0.5 + level / 2, df) + stats.t.ppf(power, df)
+    return t_ppf(0.5 + level / 2, df) + t_ppf(power, df)
 
 
 def min_detectable_change(se_diff, level: float = 0.95, power: float = 0.80, df=None):

@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from .distributions import chi2_sf, f_sf
 
 __all__ = ["RaoScott", "rao_scott_table"]
 
@@ -65,5 +65,5 @@ def rao_scott_table(cell_shares: np.ndarray, cov: np.ndarray, n: int, design_df:
     mean_deff = tr / d
     d0 = tr * tr / tr2
     f = x2 / tr
-    return RaoScott(x2, mean_deff, x2 / mean_deff, d, float(stats.chi2.sf(x2 / mean_deff, d)),
-                    f, d0, d0 * design_df, float(stats.f.sf(f, d0, d0 * design_df)))
+    return RaoScott(x2, mean_deff, x2 / mean_deff, d, float(chi2_sf(x2 / mean_deff, d)),
+                    f, d0, d0 * design_df, float(f_sf(f, d0, d0 * design_df)))

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy import stats
+from .distributions import t_sf
 
 __all__ = ["ADJUST_METHODS", "adjust_pvalues", "difference_test", "satterthwaite_df"]
 
@@ -64,5 +64,5 @@ def difference_test(d, var, df):
     d, var = np.asarray(d, float), np.asarray(var, float)
     with np.errstate(divide="ignore", invalid="ignore"):
         stat = np.where(var > 0, d / np.sqrt(np.where(var > 0, var, 1.0)), np.nan)
-        p = 2 * stats.t.sf(np.abs(stat), np.maximum(np.asarray(df, float), 1.0))
+        p = 2 * t_sf(np.abs(stat), np.maximum(np.asarray(df, float), 1.0))
     return stat, p
