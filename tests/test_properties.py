@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from tracker.estimates import _unclustered_variance
+from tracker.estimates import _clustered_variance, _unclustered_variance
 from tracker.methods import adjust_pvalues, taylor_variance, wilson_interval
 
 pvalues = arrays(float, st.integers(1, 60), elements=st.floats(0, 1, allow_nan=False))
@@ -40,12 +40,46 @@ def test_fast_unclustered_variance_equals_the_generic_estimator(n, n_strata, see
     sw = Df.T @ we
     with np.errstate(invalid="ignore", divide="ignore"):
         value = (Df.T @ wey) / sw
-    fast, _, _ = _unclustered_variance(Df, E.astype(float), we, wey, value, sw, strata, rule)
+    EY = np.where(E, Y, 0.0)
+    fast, _, _ = _unclustered_variance(D, E.astype(float), EY, w, value, sw, Df.T @ E.astype(float), strata, rule)
     for level in range(D.shape[1]):
         with np.errstate(invalid="ignore", divide="ignore"):
             z = np.nan_to_num(Df[:, level][:, None] * (wey - we * value[level]) / sw[level])
         slow = taylor_variance(z, strata, None, rule)
         assert np.allclose(np.nan_to_num(fast[level]), slow, rtol=1e-9, atol=1e-15)
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(6, 90), st.integers(1, 4), st.integers(2, 12), st.integers(0, 2**31 - 1),
+       st.sampled_from(["centre", "average", "certainty"]), st.booleans())
+def test_fast_clustered_variance_equals_the_generic_estimator(n, n_strata, n_psu, seed, rule, zero_weights):
+    # the one-product cluster path against the plain definition: linearized values per
+    # respondent, totalled by taylor_variance (itself checked against samplics)
+    rng = np.random.default_rng(seed)
+    w = rng.uniform(0.2, 3.0, n)
+    if zero_weights:
+        w[rng.random(n) < 0.2] = 0.0
+    Y = rng.integers(0, 2, (n, 3)).astype(float)
+    E = rng.random((n, 3)) < 0.8
+    D = np.column_stack([np.ones(n, bool), rng.random(n) < 0.5])
+    strata = rng.integers(0, n_strata, n)
+    psu = rng.integers(0, n_psu, n)
+    Df = D.astype(float)
+    EY = np.where(E, Y, 0.0)
+    sw = (Df * w[:, None]).T @ E
+    with np.errstate(invalid="ignore", divide="ignore"):
+        value = ((Df * w[:, None]).T @ EY) / sw
+    fast, n_psu_cell, df, _, _ = _clustered_variance(D, E.astype(float), EY, w, value, sw, strata, psu, rule)
+    key = strata * 1000 + psu
+    for level in range(D.shape[1]):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            z = np.nan_to_num(Df[:, level][:, None] * w[:, None] * E * (Y - value[level]) / sw[level])
+        slow = taylor_variance(z, strata, psu, rule)
+        assert np.allclose(fast[level], slow, rtol=1e-9, atol=1e-15, equal_nan=True)
+        for j in range(3):
+            inside = D[:, level] & E[:, j]
+            assert n_psu_cell[level, j] == np.unique(key[inside]).size
+            assert df[level, j] == np.unique(key[inside]).size - np.unique(strata[inside]).size
 
 
 @settings(max_examples=100, deadline=None)

@@ -225,7 +225,7 @@ def test_an_output_that_cannot_be_written_ends_in_one_line(demo_study, tmp_path,
         raise PermissionError(errno.EACCES, "Permission denied")
         yield
 
-    monkeypatch.setattr(store, "_incoming", refused)
+    monkeypatch.setattr(store, "incoming", refused)
     result = run("brief", demo_study.root, "-o", tmp_path / "b.md")
     assert result.exit_code == 1 and "Traceback" not in result.output
     assert f"{tmp_path / 'b.md'}: cannot write the file (permission denied); check the folder's permissions" \

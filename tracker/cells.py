@@ -26,22 +26,58 @@ class Levels:
     level: tuple[str, ...]
 
 
-def _codes_mask(codebook: Codebook, table: pd.DataFrame, variable: str, codes: tuple) -> tuple[np.ndarray, np.ndarray]:
+def _isin(x: np.ndarray, codes) -> np.ndarray:
+    """np.isin for a short list of codes, by comparisons (much faster for a few codes)."""
+    codes = list(codes)
+    if len(codes) > 8:
+        return np.isin(x, codes)
+    out = np.zeros(x.shape, bool)
+    for c in codes:
+        out |= x == c
+    return out
+
+
+class _Columns:
+    """A wave's columns as float arrays, each read from the table once."""
+
+    def __init__(self, table: pd.DataFrame):
+        self.table = table
+        self.n = len(table)
+        self._got: dict[str, np.ndarray] = {}
+
+    def __contains__(self, name: str) -> bool:
+        return name in self.table.columns
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        if name not in self._got:
+            self._got[name] = self.table[name].to_numpy(dtype=float)
+        return self._got[name]
+
+    def prefetch(self, names: list[str]) -> None:
+        want = [c for c in dict.fromkeys(names) if c in self.table.columns and c not in self._got]
+        if want:
+            block = self.table[want].to_numpy(dtype=float)
+            for j, c in enumerate(want):
+                self._got[c] = block[:, j]
+
+
+def _codes_mask(codebook: Codebook, table, variable: str, codes: tuple) -> tuple[np.ndarray, np.ndarray]:
     """(holds one of codes, has an answer) for a coded or multi variable."""
+    cols = table if isinstance(table, _Columns) else _Columns(table)
     var = codebook.variables[variable]
-    n = len(table)
+    n = cols.n
     if var.type == "multi":
-        if not all(o in table.columns for o in var.options):
+        if not all(o in cols for o in var.options):
             return np.zeros(n, bool), np.zeros(n, bool)
-        opts = table[list(var.options)].to_numpy(dtype=float)
+        opts = np.column_stack([cols[o] for o in var.options])
         answered = ~np.isnan(opts).all(axis=1)
-        chosen = table[list(codes)].to_numpy(dtype=float)
+        chosen = np.column_stack([cols[c] for c in codes])
         return np.nan_to_num(chosen, nan=0.0).max(axis=1) == 1, answered
-    if variable not in table.columns:
+    if variable not in cols:
         return np.zeros(n, bool), np.zeros(n, bool)
-    x = table[variable].to_numpy(dtype=float)
-    answered = ~np.isnan(x) & ~np.isin(x, list(var.missing))
-    return np.isin(x, list(codes)) & answered, answered
+    x = cols[variable]
+    answered = ~np.isnan(x) & ~_isin(x, var.missing)
+    return _isin(x, codes) & answered, answered
 
 
 def metric_matrix(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric]) -> tuple[np.ndarray, np.ndarray]:
@@ -55,21 +91,28 @@ def metric_matrix(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric]
     from .kinds import KINDS
 
     n = len(table)
+    cols = _Columns(table)
+    needed = []
+    for m in metrics:
+        for vname in filter(None, (m.variable, m.base_variable)):
+            v = codebook.variables[vname]
+            needed += list(v.options) if v.type == "multi" else [vname]
+    cols.prefetch(needed)  # one conversion of every column the metrics read
     Y = np.zeros((n, len(metrics)))
     E = np.zeros((n, len(metrics)), dtype=bool)
     for j, m in enumerate(metrics):  # a loop over metric definitions, not cells
         var = codebook.variables[m.variable]
 
         def numeric(m=m, var=var):
-            if m.variable not in table.columns:
+            if m.variable not in cols:
                 return np.zeros(n), np.zeros(n, bool)
-            x = table[m.variable].to_numpy(dtype=float)
-            return x, ~np.isnan(x) & ~np.isin(x, list(var.missing))
+            x = cols[m.variable]
+            return x, ~np.isnan(x) & ~_isin(x, var.missing)
 
         Y[:, j], answered = KINDS[m.kind].values(
-            lambda codes, m=m: _codes_mask(codebook, table, m.variable, codes), numeric, m)
+            lambda codes, m=m: _codes_mask(codebook, cols, m.variable, codes), numeric, m)
         if m.base_variable:
-            inbase, _ = _codes_mask(codebook, table, m.base_variable, m.base_codes)
+            inbase, _ = _codes_mask(codebook, cols, m.base_variable, m.base_codes)
             answered = answered & inbase
         E[:, j] = answered
     return Y, E
@@ -115,7 +158,7 @@ def group_matrix(codebook: Codebook, table: pd.DataFrame, groups: list[str],
                 lo, hi = g.bands[label]
                 cols.append((x >= lo) & (x <= hi))
             else:
-                cols.append(np.isin(x, codes))
+                cols.append(_isin(x, codes))
             gnames.append(gname)
             lnames.append(label)
         if residual:

@@ -10,6 +10,8 @@ respondent rows into the arrays they take. Work is vectorised over all cells of 
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
@@ -23,7 +25,7 @@ from .methods.variance import (
     PsuTotals, SingleClusterError, combine_strata, cross_wave_covariance, psu_index, single_cluster_strata,
 )
 
-__all__ = ["COLUMNS", "cell_stats", "design_of", "finish", "single_cluster_lines", "wave_covariance",
+__all__ = ["COLUMNS", "STATS", "STATS_VERSION", "CellArrays", "cell_arrays", "cell_stats", "cells_frame", "design_of", "finish", "single_cluster_lines", "wave_covariance",
            "wave_estimates", "weights_of"]
 
 # Columns of the estimates table, in order.
@@ -68,15 +70,57 @@ def _refuse(codebook: Codebook, table: pd.DataFrame, exc: SingleClusterError) ->
                         f"single_cluster_strata: refuse (see docs/codebook.md for the other rules)")
 
 
-def cell_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], groups: list[str],
-               sample: np.ndarray | None = None, residual: bool = False) -> pd.DataFrame:
-    """Sufficient statistics of every cell of one wave (or of pooled waves).
+#: Bump when the per-cell statistics change meaning or computation: every cached copy
+#: (tracker.cache) is then rebuilt.
+STATS_VERSION = 2
 
-    Returns one row per subgroup level x metric with: base n, sum of weights, sum of
-    squared weights, the weighted value, its Taylor variance, the unit variance
-    sum w (y - value)^2 / sum w, and the design degrees of freedom of the cell (PSUs
-    holding respondents of the cell minus strata holding them). ``sample`` labels
-    independent samples pooled in one table (one per wave): they act as extra strata.
+#: The per-cell sufficient statistics, each a (levels x metrics) array in CellArrays.
+STATS = ("base", "weighted_base", "sum_w2", "value", "variance", "unit_variance", "n_psu", "design_df")
+
+
+@dataclass(frozen=True)
+class CellArrays:
+    """One wave's per-cell statistics as arrays: ``stats[name]`` is (levels x metrics), the
+    levels named by ``group`` and ``level`` (the total first), the columns by ``metrics``.
+    With clusters declared, ``psu`` holds each cluster's totals of every cell's linearized
+    values (clusters x cells, for the covariance of two waves sharing clusters) and
+    ``psu_names`` names the clusters (stratum and cluster label)."""
+
+    metrics: tuple[str, ...]
+    group: tuple[str, ...]
+    level: tuple[str, ...]
+    stats: dict[str, np.ndarray]
+    psu: PsuTotals | None = None
+    psu_names: np.ndarray | None = None
+
+    def select(self, metrics: list[str], groups: list[str]) -> "CellArrays":
+        """The cells of some metrics and subgroup splits, in the order a fresh computation
+        for them would give (the total, then each split's levels in the order asked)."""
+        col = {m: j for j, m in enumerate(self.metrics)}
+        cols = np.array([col[m] for m in metrics], dtype=np.int64)
+        rows = [0] + [i for g in groups for i, gi in enumerate(self.group) if gi == g]
+        rows = np.array(rows, dtype=np.int64)
+        if len(cols) == len(self.metrics) and np.array_equal(cols, np.arange(len(cols))) \
+                and np.array_equal(rows, np.arange(len(self.group))):
+            return self
+        psu = None
+        if self.psu is not None:
+            flat = (rows[:, None] * len(self.metrics) + cols[None, :]).ravel()
+            psu = PsuTotals(self.psu.totals[:, flat], self.psu.stratum, self.psu.n_strata)
+        return CellArrays(tuple(metrics), tuple(self.group[i] for i in rows), tuple(self.level[i] for i in rows),
+                          {k: v[np.ix_(rows, cols)] for k, v in self.stats.items()}, psu, self.psu_names)
+
+
+def cell_arrays(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], groups: list[str],
+                sample: np.ndarray | None = None, residual: bool = False, keep_psu: bool = False) -> CellArrays:
+    """Sufficient statistics of every cell of one wave (or of pooled waves), as arrays.
+
+    Per cell: base n, sum of weights, sum of squared weights, the weighted value, its
+    Taylor variance, the unit variance sum w (y - value)^2 / sum w, the PSUs holding
+    respondents of the cell and the design degrees of freedom (those PSUs minus the
+    strata holding them). ``sample`` labels independent samples pooled in one table (one
+    per wave): they act as extra strata. ``keep_psu`` keeps the clusters' totals of the
+    linearized values (when clusters are declared).
     """
     Y, E = metric_matrix(codebook, table, metrics)
     D, levels = group_matrix(codebook, table, groups, residual)
@@ -84,98 +128,134 @@ def cell_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], g
     strata, psu = design_of(codebook, table)
     if sample is not None:
         strata = _codes(pd.Series(sample).astype(str) + "|" + ("" if strata is None else pd.Series(strata).astype(str)))
-    Df = D.astype(float)
     Ef = E.astype(float)
-    we = Ef * w[:, None]
-    wey = we * Y
-    n = Df.T @ Ef
-    sw = Df.T @ we
-    sw2 = Df.T @ (we * w[:, None])
-    swy = Df.T @ wey
-    swy2 = Df.T @ (wey * Y)
+    EY = np.where(E, Y, 0.0)  # a respondent outside the base contributes nothing
+    Df = D.astype(float)
+    # weights go on the narrow membership side, so no respondent x metric array is weighted
+    Dw = Df * w[:, None]
+    first = np.concatenate([Df, Dw, Dw * w[:, None]], axis=1).T @ Ef
+    L = Df.shape[1]
+    n, sw, sw2 = first[:L], first[L:2 * L], first[2 * L:]
+    swy = Dw.T @ EY
+    swy2 = Dw.T @ (EY * EY)
     with np.errstate(divide="ignore", invalid="ignore"):
         value = swy / sw
         unit_var = np.maximum(swy2 / sw - value**2, 0.0)
+    psu_totals = names = None
     try:
         if psu is None:
-            var, n_psu, df = _unclustered_variance(Df, Ef, we, wey, value, sw, strata, codebook.single_cluster_rule)
+            var, n_psu, df = _unclustered_variance(D, Ef, EY, w, value, sw, n, strata, codebook.single_cluster_rule)
         else:
-            var, n_psu, df = _clustered_variance(D, Ef, we, wey, value, sw, strata, psu, codebook.single_cluster_rule)
+            var, n_psu, df, psu_totals, first_row = _clustered_variance(D, Ef, EY, w, value, sw, strata, psu,
+                                                                         codebook.single_cluster_rule)
+            if keep_psu:
+                s_lab, c_lab = design_labels(codebook, table)
+                names = c_lab[first_row].astype(str)
+                if s_lab is not None:
+                    names = np.char.add(np.char.add(s_lab[first_row].astype(str), SEP), names)
     except SingleClusterError as exc:
         raise _refuse(codebook, table, exc) from None
-    L, M = value.shape
-    return pd.DataFrame({
-        "metric": np.tile([m.name for m in metrics], L),
-        "group": np.repeat(levels.group, M),
-        "subgroup": np.repeat(levels.level, M),
-        "base": n.ravel().astype(int),
-        "weighted_base": sw.ravel(),
-        "sum_w2": sw2.ravel(),
-        "value": value.ravel(),
-        "variance": var.ravel(),
-        "unit_variance": unit_var.ravel(),
-        "n_psu": n_psu.ravel().astype(int),
-        "design_df": df.ravel(),
-    })
+    stats = {"base": n, "weighted_base": sw, "sum_w2": sw2, "value": value, "variance": var,
+             "unit_variance": unit_var, "n_psu": n_psu.astype(float), "design_df": df.astype(float)}
+    return CellArrays(tuple(m.name for m in metrics), levels.group, levels.level, stats,
+                      psu_totals if keep_psu else None, names)
 
 
-def _unclustered_variance(Df, Ef, we, wey, value, sw, strata, rule):
-    """Taylor variance when each respondent is a PSU, by matrix products per stratum.
+def cells_frame(cells: CellArrays) -> pd.DataFrame:
+    """One row per subgroup level x metric (metrics vary fastest) with the statistics."""
+    L, M = len(cells.group), len(cells.metrics)
+    out = {"metric": np.tile(np.asarray(cells.metrics, dtype=object), L),
+           "group": np.repeat(np.asarray(cells.group, dtype=object), M),
+           "subgroup": np.repeat(np.asarray(cells.level, dtype=object), M)}
+    for k in STATS:
+        v = cells.stats[k].ravel()
+        out[k] = v.astype(int) if k in ("base", "n_psu") else v
+    return pd.DataFrame(out)
 
-    Within stratum h, with z_i = d_i (wey_i - value * we_i) / sw: sum z and sum z^2 expand
-    into sums of wey, we and their products, so no respondent x cell array is built. The
-    per-stratum moments then go to :func:`tracker.methods.variance.combine_strata`. Degrees
-    of freedom: respondents in the cell minus strata holding them.
+
+def cell_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], groups: list[str],
+               sample: np.ndarray | None = None, residual: bool = False) -> pd.DataFrame:
+    """:func:`cell_arrays` as a table: one row per subgroup level x metric with base,
+    weighted_base, sum_w2, value, variance, unit_variance, n_psu and design_df."""
+    return cells_frame(cell_arrays(codebook, table, metrics, groups, sample, residual))
+
+
+def _level_sums(D: np.ndarray, unit: np.ndarray, n_units: int, weights: list[np.ndarray],
+                *mats: list[np.ndarray]) -> list[list[np.ndarray]]:
+    """For the k-th weight vector u and each respondent x metric matrix X of the k-th list,
+    the (units, levels, metrics) sums of u X over the respondents of each unit (a stratum
+    or a PSU) and subgroup level: one sparse (unit x level) by respondent product per
+    pair, or dense when there is one unit."""
+    N, L = D.shape
+    if n_units == 1:
+        return [[((D * u[:, None]).T @ X)[None] for X in xs] for u, xs in zip(weights, mats)]
+    rows, lev = np.nonzero(D)
+    out = []
+    for u, xs in zip(weights, mats):
+        S = sp.csr_matrix((u[rows], (unit[rows] * L + lev, rows)), shape=(n_units * L, N))
+        out.append([np.asarray(S @ X).reshape(n_units, L, -1) for X in xs])
+    return out
+
+
+def _unclustered_variance(D, Ef, EY, w, value, sw, members, strata, rule):
+    """Taylor variance when each respondent is a PSU.
+
+    Within stratum h, with z_i = d_i w_i (y_i - value) e_i / sw: sum z and sum z^2 expand
+    into stratum x level sums of w e y, w e, w^2 e y^2, w^2 e y and w^2 e, so no respondent
+    x cell array is built. The per-stratum moments then go to
+    :func:`tracker.methods.variance.combine_strata`. Degrees of freedom: respondents in the
+    cell minus strata holding them.
     """
-    n = Df.shape[0]
+    n = D.shape[0]
     h = np.zeros(n, dtype=np.int64) if strata is None else np.unique(strata, return_inverse=True)[1].ravel()
-    n_strata = int(h.max()) + 1
+    n_strata = int(h.max()) + 1 if n else 1
     L, M = value.shape
-    s1 = np.zeros((n_strata, L, M))
-    s2 = np.zeros((n_strata, L, M))
-    present = np.zeros((L, M))
+    (a, b), (a2, ab, b2) = _level_sums(D, h, n_strata, [w, w * w], [EY, Ef], [EY * EY, EY, Ef])
     with np.errstate(divide="ignore", invalid="ignore"):
-        for k in range(n_strata):  # a loop over strata, not cells
-            rows = h == k
-            Dh = Df[rows].T
-            a, b = Dh @ wey[rows], Dh @ we[rows]
-            a2, ab, b2 = Dh @ wey[rows] ** 2, Dh @ (wey[rows] * we[rows]), Dh @ we[rows] ** 2
-            s1[k] = np.nan_to_num((a - value * b) / sw)
-            s2[k] = np.nan_to_num((a2 - 2 * value * ab + value**2 * b2) / sw**2)
-            present += (Dh @ Ef[rows]) > 0
+        s1 = np.nan_to_num((a - value * b) / sw)
+        s2 = np.nan_to_num((a2 - 2 * value * ab + value**2 * b2) / sw**2)
+    if n_strata == 1:
+        present = members > 0
+    else:
+        present = (_level_sums(D, h, n_strata, [np.ones(n)], [Ef])[0][0] > 0).sum(axis=0)
     n_h = np.bincount(h, minlength=n_strata)
     var = combine_strata(s1.reshape(n_strata, -1), s2.reshape(n_strata, -1), n_h, rule).reshape(L, M)
-    members = Df.T @ Ef
     return var, members, members - present
 
 
-def _clustered_variance(D, Ef, we, wey, value, sw, strata, psu, rule):
+def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule):
     """Taylor variance with declared clusters: one sparse (PSU x level) by respondent
     product per wave gives every cell's PSU totals of the linearized values
-    z = d (wey - value we) / sw at once; per-stratum moments then go to
+    z = d w e (y - value) / sw at once; per-stratum moments then go to
     :func:`tracker.methods.variance.combine_strata`. Degrees of freedom per cell: PSUs
-    holding respondents of the cell minus strata holding them."""
+    holding respondents of the cell minus strata holding them. Also returns the PSU
+    totals and a respondent of each PSU (to name it)."""
     N, L = D.shape
     M = value.shape[1]
     psu_id, psu_stratum, n_strata = psu_index(strata, psu, N)
     P = psu_stratum.size
-    rows, levels = np.nonzero(D)
-    CD = sp.csr_matrix((np.ones(rows.size), (psu_id[rows] * L + levels, rows)), shape=(P * L, N))
-    A = (CD @ wey).reshape(P, L, M)
-    B = (CD @ we).reshape(P, L, M)
-    counts = (CD @ Ef).reshape(P, L * M) > 0
+    positive = bool((w > 0).all())
+    (A, B), = _level_sums(D, psu_id, P, [w], [EY, Ef])
+    # with every weight positive a PSU holds a cell's respondents exactly when its weight total is positive
+    counts = (B > 0) if positive else (_level_sums(D, psu_id, P, [np.ones(N)], [Ef])[0][0] > 0)
+    counts = counts.reshape(P, L * M)
     with np.errstate(divide="ignore", invalid="ignore"):
-        t = np.nan_to_num((A - value[None] * B) / sw[None], nan=0.0, posinf=0.0, neginf=0.0).reshape(P, L * M)
+        t = (A - value[None] * B) / sw[None]
+    t = np.where(np.isfinite(t), t, 0.0).reshape(P, L * M)
     H = sp.csr_matrix((np.ones(P), (psu_stratum, np.arange(P))), shape=(n_strata, P))
     n_h = np.bincount(psu_stratum, minlength=n_strata)
     var = combine_strata(np.asarray(H @ t), np.asarray(H @ t**2), n_h, rule).reshape(L, M)
     n_psu = counts.sum(axis=0).reshape(L, M)
     n_str = (np.asarray(H @ counts.astype(float)) > 0).sum(axis=0).reshape(L, M)
-    return var, n_psu, n_psu - n_str
+    first = np.zeros(P, dtype=np.int64)
+    first[psu_id[::-1]] = np.arange(N)[::-1]
+    return var, n_psu, n_psu - n_str, PsuTotals(t, psu_stratum, n_strata), first
 
 
-def finish(cells: pd.DataFrame, kinds: dict[str, str], level: float = 0.95, interval: str = "wilson") -> pd.DataFrame:
-    """Derived columns from sufficient statistics: bases, design effect, SE, interval, flags.
+def derived(stats: dict[str, np.ndarray], kind: np.ndarray, level: float = 0.95,
+            interval: str = "wilson") -> dict[str, np.ndarray]:
+    """Derived columns from sufficient statistics (flat arrays): bases, design effect, SE,
+    interval, flags.
 
     Kish effective base (sum w)^2 / sum w^2; Kish design effect V / (sigma^2 / n) and
     design base sigma^2 / V (tracker.methods.bases); SE = sqrt(V); the interval and the
@@ -183,18 +263,16 @@ def finish(cells: pd.DataFrame, kinds: dict[str, str], level: float = 0.95, inte
     """
     if interval not in INTERVALS:
         raise TrackerError(f"--interval {interval}: use one of {', '.join(INTERVALS)}")
-    c = cells.copy()
-    n = c["base"].to_numpy(float)
-    var = c["variance"].to_numpy(float)
-    unit = c["unit_variance"].to_numpy(float)
+    n = np.asarray(stats["base"], float)
+    var = np.asarray(stats["variance"], float)
+    unit = np.asarray(stats["unit_variance"], float)
     dbase = design_base(var, unit, n)
-    df = c["design_df"].to_numpy(float)
+    df = np.asarray(stats["design_df"], float)
     se = np.sqrt(var)
-    p = c["value"].to_numpy(float)
-    kind = c["metric"].map(kinds).to_numpy()
-    lo, hi = np.full(len(c), np.nan), np.full(len(c), np.nan)
-    reliable = np.zeros(len(c), bool)
-    flags = np.full(len(c), "", dtype=object)
+    p = np.asarray(stats["value"], float)
+    lo, hi = np.full(len(n), np.nan), np.full(len(n), np.nan)
+    reliable = np.zeros(len(n), bool)
+    flags = np.full(len(n), "", dtype=object)
     for name, k in KINDS.items():  # a loop over the kinds, every cell of a kind at once
         m = kind == name
         if not m.any():
@@ -204,29 +282,62 @@ def finish(cells: pd.DataFrame, kinds: dict[str, str], level: float = 0.95, inte
         reliable[m] = ok
         flags[m] = flag_text(pairs, int(m.sum()))
     empty = n == 0
-    c["effective_base"] = kish_base(c["weighted_base"].to_numpy(float), c["sum_w2"].to_numpy(float))
-    c["design_effect"] = design_effect(var, unit, n)
-    c["design_base"] = dbase
-    c["se"] = se
-    c["ci_low"] = lo
-    c["ci_high"] = hi
-    c["df"] = df
-    c["kind"] = kind
-    c["reliable"] = reliable & ~empty
-    c["flags"] = np.where(empty, "no respondents", flags)
+    return {
+        "effective_base": kish_base(np.asarray(stats["weighted_base"], float), np.asarray(stats["sum_w2"], float)),
+        "design_effect": design_effect(var, unit, n), "design_base": dbase, "se": se, "ci_low": lo, "ci_high": hi,
+        "df": df, "kind": kind, "reliable": reliable & ~empty, "flags": np.where(empty, "no respondents", flags),
+    }
+
+
+def finish(cells: pd.DataFrame, kinds: dict[str, str], level: float = 0.95, interval: str = "wilson") -> pd.DataFrame:
+    """:func:`derived` added to a table of sufficient statistics (one row per cell)."""
+    c = cells.copy()
+    kind = c["metric"].map(kinds).to_numpy()
+    for k, v in derived({k: c[k].to_numpy() for k in STATS}, kind, level, interval).items():
+        c[k] = v
     return c
+
+
+def estimates_frame(parts: list[tuple[str, str, CellArrays]], metrics: list[Metric], level: float = 0.95,
+                    interval: str = "wilson") -> pd.DataFrame:
+    """The full estimates rows (sufficient statistics kept) of several waves at once, from
+    each wave's (label, fieldwork date, cell arrays): one table built once, the derived
+    columns computed over every cell together."""
+    kinds = {m.name: m.kind for m in metrics}
+    labels = {m.name: m.label for m in metrics}
+    cols: dict[str, list] = {k: [] for k in ("wave", "fieldwork_date", "metric", "group", "subgroup", *STATS)}
+    for label, date, cells in parts:
+        L, M = len(cells.group), len(cells.metrics)
+        cols["wave"].append(np.full(L * M, label, dtype=object))
+        cols["fieldwork_date"].append(np.full(L * M, date, dtype=object))
+        cols["metric"].append(np.tile(np.asarray(cells.metrics, dtype=object), L))
+        cols["group"].append(np.repeat(np.asarray(cells.group, dtype=object), M))
+        cols["subgroup"].append(np.repeat(np.asarray(cells.level, dtype=object), M))
+        for k in STATS:
+            cols[k].append(cells.stats[k].ravel())
+    if not parts:
+        out = {k: np.array([], dtype=object if k in ("wave", "fieldwork_date", "metric", "group", "subgroup") else float)
+               for k in cols}
+    else:
+        out = {k: np.concatenate(v) for k, v in cols.items()}
+    metric = out["metric"]
+    # the kind and label of each row by one lookup per distinct metric, not per row
+    u, inv = np.unique(metric.astype(str), return_inverse=True) if metric.size else (np.array([]), np.array([], int))
+    kind = np.array([kinds[m] for m in u], dtype=object)[inv] if metric.size else np.array([], dtype=object)
+    label_col = np.array([labels[m] for m in u], dtype=object)[inv] if metric.size else np.array([], dtype=object)
+    for k in ("base", "n_psu"):
+        out[k] = out[k].astype(int)
+    out.update(derived(out, kind, level, interval))
+    out["metric_label"] = label_col
+    return pd.DataFrame(out)
 
 
 def wave_estimates(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], groups: list[str],
                    label: str, date: str, level: float = 0.95, sample: np.ndarray | None = None,
                    interval: str = "wilson") -> pd.DataFrame:
     """The full estimates rows of one wave (with the sufficient statistics kept)."""
-    cells = cell_stats(codebook, table, metrics, groups, sample)
-    out = finish(cells, {m.name: m.kind for m in metrics}, level, interval)
-    out.insert(0, "wave", label)
-    out.insert(1, "fieldwork_date", date)
-    out["metric_label"] = out["metric"].map({m.name: m.label for m in metrics})
-    return out
+    cells = cell_arrays(codebook, table, metrics, groups, sample)
+    return estimates_frame([(label, date, cells)], metrics, level, interval)
 
 
 # -- covariance between two waves --------------------------------------------------------------
@@ -260,21 +371,23 @@ def _cell_psu_totals(codebook: Codebook, table: pd.DataFrame, metrics: list[Metr
 
 
 def wave_covariance(codebook: Codebook, a: pd.DataFrame, b: pd.DataFrame, metrics: list[Metric],
-                    groups: list[str], est_a: pd.DataFrame, est_b: pd.DataFrame) -> tuple[np.ndarray, int, str]:
+                    groups: list[str], est_a: pd.DataFrame, est_b: pd.DataFrame,
+                    by_cluster: bool | None = None) -> tuple[np.ndarray, int, str]:
     """Covariance of two waves' estimates, one per cell in the order of ``cell_stats``.
 
     From the clusters both waves share (same stratum and cluster label) when the study
     declares clusters and ``waves_share_clusters`` holds; otherwise from the respondents
     both share (same id), each its own PSU (then clustering is not used). See
-    :func:`tracker.methods.variance.cross_wave_covariance`. Returns (covariance, shared
-    units, 'clusters' or 'respondents').
+    :func:`tracker.methods.variance.cross_wave_covariance`. ``by_cluster`` True or False
+    tries only the clusters or only the respondents. Returns (covariance, shared units,
+    'clusters' or 'respondents').
     """
     L = 1 + sum(len(codebook.groups[g].levels) for g in groups)
     none = (np.zeros(L * len(metrics)), 0, "")
     tries = []
-    if codebook.clusters and codebook.waves_share_clusters:
+    if codebook.clusters and codebook.waves_share_clusters and by_cluster is not False:
         tries.append(True)
-    if codebook.id in a.columns and codebook.id in b.columns:
+    if codebook.id in a.columns and codebook.id in b.columns and by_cluster is not True:
         ids_shared = np.intersect1d(a[codebook.id].astype(str).to_numpy(), b[codebook.id].astype(str).to_numpy())
         if ids_shared.size:
             tries.append(False)

@@ -12,16 +12,33 @@ from .plain import FORMULA_START, safe_cell  # noqa: F401 - re-exported for olde
 from .plain import md_cell as _md
 
 
+def safe_text(frame: pd.DataFrame) -> pd.DataFrame:
+    """The frame with every text cell a spreadsheet would run as a formula made plain
+    (``safe_cell``); only the cells concerned are touched."""
+    out = frame
+    for col in frame.columns:
+        s = frame[col]
+        if pd.api.types.is_numeric_dtype(s) or pd.api.types.is_bool_dtype(s):
+            continue
+        if s.dtype == object:  # mixed cells: only the text ones can be formulas
+            fixed = s.map(safe_cell)
+            if not fixed.equals(s):
+                out = frame.copy() if out is frame else out
+                out[col] = fixed
+            continue
+        risky = s.str[:1].isin(FORMULA_START).fillna(False).to_numpy(dtype=bool)
+        if risky.any():
+            out = frame.copy() if out is frame else out
+            out[col] = s.astype(object).where(~risky, "'" + s.astype(str))
+    return out
+
+
 def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
     """Render a DataFrame; numbers are rounded for the table and md forms only. CSV text
     cells that a spreadsheet would run as formulas are neutralised (``safe_cell``); the md
     form escapes HTML, so a label cannot inject markup into a rendered page."""
     if fmt == "csv":
-        out = frame.copy()
-        for col in out.columns:
-            if not pd.api.types.is_numeric_dtype(out[col]) and not pd.api.types.is_bool_dtype(out[col]):
-                out[col] = out[col].astype(object).map(safe_cell)
-        return out.to_csv(index=False)
+        return safe_text(frame).to_csv(index=False)
     if fmt == "json":
         return frame.to_json(orient="records", indent=1, double_precision=10)
     shown = frame.copy()
@@ -56,12 +73,8 @@ def write_table(frame: pd.DataFrame, path) -> "Path":
     if suffix in (".csv", ".json", ".md"):
         data = render(frame, suffix[1:]).encode("utf-8")
     elif suffix == ".xlsx":
-        out = frame.copy()
-        for col in out.columns:
-            if not pd.api.types.is_numeric_dtype(out[col]) and not pd.api.types.is_bool_dtype(out[col]):
-                out[col] = out[col].astype(object).map(safe_cell)
         buf = io.BytesIO()
-        out.to_excel(buf, index=False)
+        safe_text(frame).to_excel(buf, index=False)
         data = buf.getvalue()
     else:
         raise TrackerError(f"{path}: give a file ending in .csv, .json, .md or .xlsx")

@@ -24,6 +24,7 @@ LEDGER = "ledger.json"
 CODEBOOK = "codebook.yaml"
 WAVES = "waves"
 LOCK = ".lock"
+CACHE = "cache"  # derived per-wave statistics (tracker.cache)
 #: How long a writer waits for another one to finish before refusing (seconds).
 LOCK_WAIT = 60.0
 #: The keys every wave entry of the ledger must have.
@@ -84,7 +85,7 @@ def _umask_mode() -> int:
 
 
 @contextmanager
-def _incoming(path: Path):
+def incoming(path: Path):
     """A temporary file in ``path``'s folder, renamed over ``path`` when the block ends
     without error and removed otherwise (an interrupt included)."""
     # the writer's pid in the name: a sweep removes only the leftovers of dead processes
@@ -106,14 +107,14 @@ def write_atomic(path: Path, data: bytes) -> None:
     """Write bytes to ``path`` via a temporary file in the same folder, fsync, then rename.
     A file-system failure ends in one TrackerError naming the path (nothing left behind)."""
     try:
-        with _incoming(path) as tmp:
+        with incoming(path) as tmp:
             Path(tmp).write_bytes(data)
     except OSError as exc:
         raise fs_problem(exc, path, "write the file") from None
 
 
 def write_parquet_atomic(path: Path, table) -> None:
-    with _incoming(path) as tmp:
+    with incoming(path) as tmp:
         table.to_parquet(tmp, index=False)
 
 
@@ -211,7 +212,7 @@ def _writer_alive(tmp: Path) -> bool:
 def leftovers(root: Path) -> list[Path]:
     """Temporary files a killed write left behind (never part of the study); a temporary
     file of a process still running is its own business and is not listed."""
-    return sorted(p for folder in (root, root / WAVES) if folder.is_dir() for p in folder.glob(".incoming-*.tmp")
+    return sorted(p for folder in (root, root / WAVES, root / CACHE) if folder.is_dir() for p in folder.glob(".incoming-*.tmp")
                   if not _writer_alive(p))
 
 

@@ -386,14 +386,81 @@ class Study:
             self._entry(lab)
         return [lab for lab in self.labels if lab in labels]
 
+    # -- per-wave statistics (tracker.cache keeps them on disk) ----------------------------
+    def _cache_key(self, label: str) -> str:
+        from .cache import cache_key
+
+        return cache_key(self.root, self._entry(label), self.codebook.sha256)
+
+    def _compute_cells(self, label: str, table: pd.DataFrame | None = None, locked: bool = False):
+        """Every cell's statistics of a wave (all metrics, every split), computed from its
+        respondents and saved in the study's cache."""
+        from .cache import write_cells
+        from .estimates import cell_arrays
+
+        book = self.codebook
+        table = self.load(label) if table is None else table
+        cells = cell_arrays(book, table, list(book.metrics.values()), list(book.groups),
+                            keep_psu=bool(book.clusters and book.waves_share_clusters))
+        ids = None
+        if book.id and book.id in table.columns:
+            ids = pd.util.hash_array(table[book.id].astype(str).to_numpy(dtype=object))
+        write_cells(self.root, label, self._cache_key(label), cells, ids, locked=locked)
+        return cells, ids
+
+    def _cells(self, label: str):
+        """Every cell's statistics of a wave: from memory, the study's cache, or computed."""
+        key = ("cells", label)
+        if key not in self._cache:
+            from .cache import read_cells
+
+            cells = read_cells(self.root, label, self._cache_key(label))
+            if cells is None or cells.metrics != tuple(self.codebook.metrics):
+                cells, ids = self._compute_cells(label)
+                if cells.psu is not None:
+                    self._cache[("psu", label)] = (cells.psu, cells.psu_names)
+                self._cache[("ids", label)] = ids
+                from dataclasses import replace
+
+                cells = replace(cells, psu=None, psu_names=None)
+            self._cache[key] = cells
+        return self._cache[key]
+
+    def _psu(self, label: str):
+        """(cluster totals of every cell's linearized values, cluster names) of a wave."""
+        key = ("psu", label)
+        if key not in self._cache:
+            from .cache import read_psu
+
+            got = read_psu(self.root, label, self._cache_key(label))
+            if got is None:
+                cells, _ = self._compute_cells(label)
+                got = (cells.psu, cells.psu_names)
+            self._cache[key] = got
+        return self._cache[key]
+
+    def _id_hashes(self, label: str):
+        """Sorted 64-bit hashes of a wave's respondent ids (None when the study has no ids)."""
+        key = ("ids", label)
+        if key not in self._cache:
+            from .cache import read_ids
+
+            got = read_ids(self.root, label, self._cache_key(label)) if self.codebook.id else None
+            if got is None and self.codebook.id:
+                table = self.load(label)
+                if self.codebook.id in table.columns:
+                    got = np.sort(pd.util.hash_array(table[self.codebook.id].astype(str).to_numpy(dtype=object)))
+            self._cache[key] = got
+        return self._cache[key]
+
     def _wave_rows(self, label: str, metrics: list, groups: list[str], level: float,
                    interval: str = "wilson") -> pd.DataFrame:
-        from .estimates import wave_estimates
+        from .estimates import estimates_frame
 
         key = ("est", label, tuple(m.name for m in metrics), tuple(groups), level, interval)
         if key not in self._cache:
-            self._cache[key] = wave_estimates(self.codebook, self.load(label), metrics, groups, label,
-                                              self.dates()[label], level, interval=interval)
+            cells = self._cells(label).select([m.name for m in metrics], groups)
+            self._cache[key] = estimates_frame([(label, self.dates()[label], cells)], metrics, level, interval)
         return self._cache[key]
 
     def _pooled_rows(self, labels: list[str], metrics: list, groups: list[str], level: float) -> pd.DataFrame:
@@ -417,8 +484,11 @@ class Study:
         from .estimates import COLUMNS
 
         check_level(level)
+        from .estimates import estimates_frame
+
         ms, gs, ws = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
-        out = pd.concat([self._wave_rows(w, ms, gs, level, interval) for w in ws], ignore_index=True)
+        dates, names = self.dates(), [m.name for m in ms]
+        out = estimates_frame([(w, dates[w], self._cells(w).select(names, gs)) for w in ws], ms, level, interval)
         out = out[out["base"] > 0].reset_index(drop=True)
         return out if detail else out[COLUMNS]
 
@@ -502,7 +572,7 @@ class Study:
         notes: list[str] = []
         cov = None
         if len(others) == 1:
-            c, shared, unit = wave_covariance(self.codebook, self.load(wave), self.load(others[0]), ms, gs, now, then)
+            c, shared, unit = self._covariance(wave, others[0], ms, gs, now, then)
             if shared and unit == "respondents":
                 cov = c
                 notes.append(f"{shared:,} respondents answered both waves: their covariance is taken into account")
@@ -515,6 +585,30 @@ class Study:
         size = int(table["p_adjusted"].notna().sum())
         self._cache[key] = (table, tuple(notes), size)
         return table, list(notes), size
+
+    def _covariance(self, wave: str, other: str, ms: list, gs: list[str], now: pd.DataFrame, then: pd.DataFrame):
+        """Covariance of two waves' estimates (tracker.estimates.wave_covariance): from the
+        cached cluster totals when the waves share clusters, from the respondents when they
+        share respondents (found by the cached id hashes before any wave is read)."""
+        from .estimates import wave_covariance
+        from .methods.variance import PsuTotals, cross_wave_covariance
+
+        book = self.codebook
+        names = [m.name for m in ms]
+        if book.clusters and book.waves_share_clusters:
+            (ta, ka), (tb, kb) = self._psu(wave), self._psu(other)
+            if ta is not None and tb is not None:
+                pick = self._cells(wave).select(names, gs)
+                cols = _cell_columns(self._cells(wave), pick)
+                cov, shared = cross_wave_covariance(PsuTotals(ta.totals[:, cols], ta.stratum, ta.n_strata), ka,
+                                                    PsuTotals(tb.totals[:, cols], tb.stratum, tb.n_strata), kb,
+                                                    book.single_cluster_rule)
+                if shared:
+                    return cov, shared, "clusters"
+        ha, hb = self._id_hashes(wave), self._id_hashes(other)
+        if ha is None or hb is None or not np.intersect1d(ha, hb).size:
+            return np.zeros(len(now)), 0, ""
+        return wave_covariance(book, self.load(wave), self.load(other), ms, gs, now, then, by_cluster=False)
 
     def _mix(self, ms, others, wave, var, adjust, level) -> pd.DataFrame:
         from .composition import mix_table
@@ -645,3 +739,14 @@ class Study:
         out = pd.concat(parts, ignore_index=True)
         keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
         return out[keep].reset_index(drop=True)
+
+
+def _cell_columns(full, part) -> np.ndarray:
+    """Positions (in the full level x metric order) of the cells of a selection."""
+    row = {}
+    for i, (g, lev) in enumerate(zip(full.group, full.level)):
+        row.setdefault((g, lev), i)
+    col = {m: j for j, m in enumerate(full.metrics)}
+    rows = np.array([row[(g, lev)] for g, lev in zip(part.group, part.level)], dtype=np.int64)
+    cols = np.array([col[m] for m in part.metrics], dtype=np.int64)
+    return (rows[:, None] * len(full.metrics) + cols[None, :]).ravel()

@@ -46,34 +46,56 @@ def meta_regression(y: np.ndarray, v: np.ndarray, X: np.ndarray, mask: np.ndarra
     m = mask.astype(float)
     yz = np.where(mask, y, 0.0)
     w0 = np.where(mask, 1.0 / np.where(mask, v, 1.0), 0.0)
-    Xw = X * w0[:, :, None]
-    A = np.einsum("skp,skq->spq", Xw, X)
-    Ainv = np.linalg.pinv(A)
-    b0 = np.einsum("spq,sq->sp", Ainv, np.einsum("skp,sk->sp", Xw, yz))
-    resid = yz - np.einsum("skp,sp->sk", X, b0)
+    Xt = X.transpose(0, 2, 1)
+    Xw = Xt * w0[:, None, :]  # (S, p, K): batched small products by matmul, not einsum
+    Ainv = _small_pinv(Xw @ X)
+    b0 = (Ainv @ (Xw @ yz[:, :, None]))[:, :, 0]
+    resid = yz - (X @ b0[:, :, None])[:, :, 0]
     q = (w0 * resid**2).sum(axis=1)
     k = m.sum(axis=1)
     df = k - p
     if tau2 is None:
-        B = np.einsum("skp,skq->spq", X * (w0**2)[:, :, None], X)
-        c = w0.sum(axis=1) - np.einsum("spq,sqp->s", Ainv, B)
+        B = (Xt * (w0**2)[:, None, :]) @ X
+        c = w0.sum(axis=1) - (Ainv * B.transpose(0, 2, 1)).sum(axis=(1, 2))
         with np.errstate(divide="ignore", invalid="ignore"):
             tau2 = np.where(c > 0, np.maximum(0.0, (q - df) / c), 0.0)
     w = np.where(mask, 1.0 / (np.where(mask, v, 1.0) + tau2[:, None]), 0.0)
-    Xw = X * w[:, :, None]
-    cov = np.linalg.pinv(np.einsum("skp,skq->spq", Xw, X))
-    beta = np.einsum("spq,sq->sp", cov, np.einsum("skp,sk->sp", Xw, yz))
+    Xw = Xt * w[:, None, :]
+    cov = _small_pinv(Xw @ X)
+    beta = (cov @ (Xw @ yz[:, :, None]))[:, :, 0]
     return {"beta": beta, "cov": cov, "tau2": tau2, "q": q, "df": df}
+
+
+def _small_pinv(A: np.ndarray) -> np.ndarray:
+    """Pseudo-inverses of a stack of small symmetric positive semi-definite matrices: the
+    plain inverse (batched LU) where the matrix is well conditioned, where the two agree
+    to rounding, and the SVD pseudo-inverse (np.linalg.pinv) only for the rest."""
+    d = np.diagonal(A, axis1=1, axis2=2)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        # det / prod(diag) lies in (0, 1] for a positive definite matrix; near 0 it is near singular
+        ratio = np.linalg.det(A) / np.prod(np.where(d > 0, d, np.nan), axis=1)
+    good = np.isfinite(ratio) & (ratio > 1e-6)
+    out = np.empty_like(A)
+    if good.any():
+        out[good] = np.linalg.inv(A[good])
+    if (~good).any():
+        out[~good] = np.linalg.pinv(A[~good])
+    return out
 
 
 def _series_arrays(est: pd.DataFrame):
     """Pad the estimates into (series x waves) arrays, in fieldwork order."""
     keys = ["metric", "group", "subgroup"]
     est = est.sort_values("fieldwork_date", kind="mergesort")
-    series = est[keys].drop_duplicates().reset_index(drop=True)
-    waves = list(dict.fromkeys(est["wave"]))
-    si = est[keys].merge(series.reset_index(), on=keys, how="left")["index"].to_numpy()
-    wi = pd.Categorical(est["wave"], categories=waves).codes
+    # one integer per (metric, group, subgroup), numbered in order of first appearance
+    codes = [pd.factorize(est[k])[0].astype(np.int64) for k in keys]
+    combined = (codes[0] * (codes[1].max(initial=0) + 1) + codes[1]) * (codes[2].max(initial=0) + 1) + codes[2]
+    si, firsts = pd.factorize(combined)
+    first_row = np.zeros(len(firsts), dtype=np.int64)
+    first_row[si[::-1]] = np.arange(len(si))[::-1]
+    series = est[keys].iloc[first_row].reset_index(drop=True)
+    wi, wave_names = pd.factorize(est["wave"])
+    waves = list(wave_names)
     S, K = len(series), len(waves)
     y = np.full((S, K), np.nan)
     v = np.full((S, K), np.nan)
@@ -81,7 +103,8 @@ def _series_arrays(est: pd.DataFrame):
     v[si, wi] = est["se"].to_numpy(float) ** 2
     ok = np.zeros((S, K), bool)
     ok[si, wi] = est["reliable"].to_numpy(bool) & (est["se"].to_numpy(float) > 0)
-    dates = dict(zip(est["wave"], est["fieldwork_date"]))
+    firsts = est.drop_duplicates("wave")
+    dates = dict(zip(firsts["wave"], firsts["fieldwork_date"]))
     t0 = dt.date.fromisoformat(dates[waves[0]])
     years = np.array([(dt.date.fromisoformat(dates[w]) - t0).days / 365.25 for w in waves])
     return series, waves, y, v, ok, years

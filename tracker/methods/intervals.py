@@ -13,7 +13,16 @@ def critical(level: float, df=None):
     if df is None:
         return norm_ppf(0.5 + level / 2)
     df = np.maximum(np.asarray(df, float), 1.0)  # fewer than one degree of freedom is read as one
-    return t_ppf(0.5 + level / 2, df)
+    return by_unique(lambda d: t_ppf(0.5 + level / 2, d), df)
+
+
+def by_unique(f, x):
+    """f(x) computed once per distinct value of x (cells share a few degrees of freedom)."""
+    x = np.asarray(x, float)
+    if x.ndim == 0 or x.size < 64:
+        return f(x)
+    u, inv = np.unique(x, return_inverse=True)
+    return np.asarray(f(u))[inv.reshape(x.shape)]
 
 
 def wilson_interval(p, n, level: float = 0.95, df=None):
@@ -52,7 +61,7 @@ def korn_graubard_interval(p, n_eff, n, df, level: float = 0.95):
     p, n_eff, n = (np.asarray(x, float) for x in (p, n_eff, n))
     alpha = 1 - level
     with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = (t_ppf(1 - alpha / 2, np.maximum(n - 1, 1)) / critical(level, df)) ** 2
+        ratio = (by_unique(lambda d: t_ppf(1 - alpha / 2, d), np.maximum(n - 1, 1)) / critical(level, df)) ** 2
         n_star = np.minimum(n_eff, n) * np.minimum(ratio, 1.0)
         x = p * n_star
         lo = np.where(x > 0, beta_ppf(alpha / 2, np.where(x > 0, x, 1), n_star - x + 1), 0.0)

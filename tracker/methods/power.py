@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 from .distributions import norm_ppf, t_ppf
+from .intervals import by_unique
 
 __all__ = ["min_detectable_change", "min_detectable_share_change", "power_factor"]
 
@@ -13,7 +14,7 @@ def power_factor(level: float = 0.95, power: float = 0.80, df=None):
     if df is None:
         return norm_ppf(0.5 + level / 2) + norm_ppf(power)
     df = np.maximum(np.asarray(df, float), 1.0)
-    return t_ppf(0.5 + level / 2, df) + t_ppf(power, df)
+    return by_unique(lambda d: t_ppf(0.5 + level / 2, d) + t_ppf(power, d), df)
 
 
 def min_detectable_change(se_diff, level: float = 0.95, power: float = 0.80, df=None):

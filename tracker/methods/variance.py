@@ -42,8 +42,9 @@ def psu_index(strata: np.ndarray | None, psu: np.ndarray | None, n: int) -> tupl
     strata = np.zeros(n, dtype=np.int64) if strata is None else np.unique(strata, return_inverse=True)[1].ravel()
     if psu is None:
         return np.arange(n), strata, int(strata.max()) + 1 if n else 0
-    _, psu_id = np.unique(np.stack([strata, np.unique(psu, return_inverse=True)[1].ravel()]), axis=1,
-                          return_inverse=True)
+    psu_code = np.unique(psu, return_inverse=True)[1].ravel().astype(np.int64)
+    # one integer key per (stratum, PSU): sorting it sorts the pairs as np.unique(axis=1) would
+    _, psu_id = np.unique(strata.astype(np.int64) * (int(psu_code.max()) + 1) + psu_code, return_inverse=True)
     psu_id = psu_id.ravel()
     psu_stratum = np.zeros(int(psu_id.max()) + 1, dtype=np.int64)
     psu_stratum[psu_id] = strata

@@ -1,0 +1,136 @@
+"""Per-wave sufficient statistics kept in the study folder, so that estimates, changes,
+trends and the brief read small per-cell tables instead of every wave's respondents.
+
+Derived data, never the source of truth: a wave's entry is used only when its key (the
+stored wave file's SHA-256, size and modification time, the codebook's SHA-256 and
+:data:`tracker.estimates.STATS_VERSION`) matches; otherwise the statistics are computed
+again from the wave and the entry rewritten. Entries are written atomically (a temporary
+file renamed into place) under the study's write lock; a reader that cannot have the lock
+at once, or cannot write the folder, simply computes and goes on. ``tracker verify
+--repair`` may delete the whole folder at any time.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+
+from . import store
+from .errors import TrackerError
+from .estimates import STATS, STATS_VERSION, CellArrays
+from .methods.variance import PsuTotals
+
+__all__ = ["CACHE", "cache_key", "read_cells", "read_ids", "read_psu", "write_cells"]
+
+CACHE = store.CACHE
+FORMAT = 1
+
+
+def cache_key(root: Path, entry: dict, codebook_sha256: str) -> str:
+    """The key of a wave's entry: what the statistics were computed from."""
+    path = root / entry["file"]
+    try:
+        st = path.stat()
+        where = [st.st_size, st.st_mtime_ns]
+    except OSError:
+        where = [None, None]
+    text = json.dumps([FORMAT, STATS_VERSION, entry["file"], entry.get("sha256"), *where, codebook_sha256])
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def _path(root: Path, label: str) -> Path:
+    return root / CACHE / f"{label}.npz"
+
+
+def _open(root: Path, label: str, key: str):
+    path = _path(root, label)
+    try:
+        data = np.load(path, allow_pickle=False)
+    except (OSError, ValueError, EOFError):
+        return None
+    try:
+        if str(data["key"]) != key:
+            data.close()
+            return None
+    except (KeyError, ValueError, OSError):
+        data.close()
+        return None
+    return data
+
+
+def read_cells(root: Path, label: str, key: str) -> CellArrays | None:
+    """The cached statistics of a wave (without the cluster totals), or None."""
+    data = _open(root, label, key)
+    if data is None:
+        return None
+    try:
+        with data:
+            return CellArrays(tuple(data["metrics"].tolist()), tuple(data["group"].tolist()),
+                              tuple(data["level"].tolist()), {k: data[k] for k in STATS})
+    except (KeyError, ValueError, OSError):
+        return None
+
+
+def read_psu(root: Path, label: str, key: str) -> tuple[PsuTotals, np.ndarray] | None:
+    """The cached cluster totals of every cell's linearized values and the clusters' names."""
+    data = _open(root, label, key)
+    if data is None:
+        return None
+    try:
+        with data:
+            if "psu_totals" not in data.files:
+                return None
+            return (PsuTotals(data["psu_totals"], data["psu_stratum"], int(data["psu_n_strata"])),
+                    data["psu_names"])
+    except (KeyError, ValueError, OSError):
+        return None
+
+
+def read_ids(root: Path, label: str, key: str) -> np.ndarray | None:
+    """The cached 64-bit hashes of the wave's respondent ids (sorted), or None."""
+    data = _open(root, label, key)
+    if data is None:
+        return None
+    try:
+        with data:
+            return data["id_hashes"] if "id_hashes" in data.files else None
+    except (KeyError, ValueError, OSError):
+        return None
+
+
+def write_cells(root: Path, label: str, key: str, cells: CellArrays, id_hashes: np.ndarray | None = None,
+                locked: bool = False) -> bool:
+    """Store a wave's statistics (and cluster totals, ids when given); True when written.
+
+    ``locked`` says the caller already holds the study's write lock (an ``add``)."""
+    arrays = {"key": np.array(key), "metrics": np.array(cells.metrics, dtype=str),
+              "group": np.array(cells.group, dtype=str), "level": np.array(cells.level, dtype=str),
+              **{k: np.asarray(cells.stats[k], float) for k in STATS}}
+    if cells.psu is not None and cells.psu_names is not None:
+        arrays.update(psu_totals=cells.psu.totals, psu_stratum=cells.psu.stratum,
+                      psu_n_strata=np.array(cells.psu.n_strata), psu_names=np.asarray(cells.psu_names, dtype=str))
+    if id_hashes is not None:
+        arrays["id_hashes"] = np.sort(np.asarray(id_hashes, np.uint64))
+    folder = root / CACHE
+    try:
+        folder.mkdir(exist_ok=True)
+        if locked:
+            _write(folder, label, arrays)
+        else:
+            with store.study_lock(root, wait=0):
+                _write(folder, label, arrays)
+    except (OSError, TrackerError):
+        return False  # busy or read-only: the statistics were computed; only the saving is skipped
+    return True
+
+
+def _write(folder: Path, label: str, arrays: dict) -> None:
+    with store.incoming(folder / f"{label}.npz") as tmp:
+        with open(tmp, "wb") as fh:
+            np.savez(fh, **arrays)
+            fh.flush()
+            os.fsync(fh.fileno())
