@@ -19,7 +19,7 @@ from openpyxl import load_workbook
 
 from tracker import Study
 from tracker.brief import build_brief, render_markdown, write_brief
-from tracker.charts import OKABE_ITO, change_overview, save_chart, trend_chart
+from tracker.charts import OKABE_ITO, change_overview, chart_spec, save_chart, trend_chart
 from tracker.cli import main
 
 CHROME_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
@@ -158,7 +158,7 @@ def test_labels_are_escaped_and_cells_cannot_run_as_formulas(tmp_path):
 
 
 def test_charts_use_the_palette_and_tell_rise_from_fall_by_shape(demo_study, tmp_path):
-    spec = json.dumps(trend_chart(demo_study, "on_time_good").to_dict())
+    spec = json.dumps(chart_spec(trend_chart(demo_study, "on_time_good")))
     # this series only falls, and the legend names only what is drawn; the mapping itself
     # gives a rise blue triangles up and a fall vermillion triangles down
     from tracker.charts import STATUS_COLOUR, STATUS_ORDER, STATUS_SHAPE

@@ -247,7 +247,7 @@ def test_trend_charts_name_waves_by_label_and_the_legend_only_what_is_drawn(demo
     assert xs[0]["sort"] == demo_study.labels
     points = [p for p in layer if p["mark"]["type"] == "point"][0]
     domain = points["encoding"]["color"]["scale"]["domain"]
-    data = spec["datasets"][spec["data"]["name"]]
+    data = spec["data"]["values"]
     assert set(domain) == {d["verdict"] for d in data}  # no unused legend entries
     assert spec["columns"] == 3  # three areas: one full row
     assert FIT_COLOUR != OKABE_ITO["orange"] and OKABE_ITO["orange"] not in text

@@ -1,4 +1,9 @@
-"""Charts (Altair): the trend chart and the change overview, in our own visual language.
+"""Charts: the trend chart and the change overview, in our own visual language.
+
+Each chart is a Vega-Lite specification built as a plain dict (JSON), drawn by the
+Vega-Lite library inlined in the HTML page or converted by vl-convert; the specifications
+are checked against the Vega-Lite JSON schema in the tests (tests/test_charts.py), not on
+every render.
 
 Colours are the Okabe-Ito palette (Okabe & Ito 2008, *Color Universal Design*), safe for
 the common colour-vision deficiencies. A significant rise and a significant fall differ by
@@ -11,7 +16,6 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-import altair as alt
 import numpy as np
 import pandas as pd
 
@@ -28,9 +32,10 @@ STATUS_SHAPE = ["triangle-up", "triangle-down", "circle", "diamond", "cross", "s
 FONT = "Helvetica, Arial, sans-serif"
 
 
-def _config(chart: alt.TopLevelMixin) -> alt.TopLevelMixin:
-    return chart.configure(font=FONT).configure_axis(labelFontSize=11, titleFontSize=12, grid=True,
-                                                      gridColor="#eeeeee").configure_view(stroke=None)
+#: The Vega-Lite version the specifications are written for (the page inlines its library).
+SCHEMA = "https://vega.github.io/schema/vega-lite/v6.4.1.json"
+CONFIG = {"axis": {"grid": True, "gridColor": "#eeeeee", "labelFontSize": 11, "titleFontSize": 12},
+          "font": FONT, "view": {"continuousHeight": 300, "continuousWidth": 300, "stroke": None}}
 
 
 def _scale_factor(kind: str) -> float:
@@ -41,36 +46,43 @@ def _unit(kind: str) -> str:
     return {"share": "%", "balance": "points", "mean": "mean"}.get(kind, "")
 
 
+def _chart_table(study, labels: list[str], adjust: str, level: float) -> pd.DataFrame:
+    """Every estimate of the waves ``labels`` (all metrics, total and subgroups) with what a
+    trend chart adds: the fitted line or levels and the pattern of the analysis of the last
+    wave, and each step's verdict against the wave before. Made once per study object and
+    shared by every chart of a brief."""
+    from .trends import fitted_values
+
+    est = study.estimates(waves=labels, level=level)
+    every = study.trends(adjust=adjust, level=level, until=labels[-1])
+    est["fitted"] = fitted_values(every, est, study.dates()[labels[0]]).to_numpy() if len(est) else np.nan
+    keys = ["metric", "group", "subgroup"]
+    est = est.merge(every[[*keys, "pattern"]], on=keys, how="left")
+    steps = study.wave_steps(waves=labels, adjust=adjust, level=level)
+    if len(steps):
+        steps = steps.rename(columns={"wave_to": "wave", "flags": "change_flags"})[
+            [*keys, "wave", "verdict", "change", "p_adjusted", "change_flags"]]
+        est = est.merge(steps, on=[*keys, "wave"], how="left")
+    else:
+        est["verdict"], est["change"], est["p_adjusted"], est["change_flags"] = np.nan, np.nan, np.nan, ""
+    est["verdict"] = est["verdict"].fillna("first wave")
+    return est
+
+
 def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95,
                 until: str | None = None) -> pd.DataFrame:
     """Everything the trend chart draws, one row per wave x subgroup (a plain DataFrame).
     ``until`` ends the series at that wave (a brief of an earlier wave sees no later one)."""
-    from .trends import fitted_values
-
-    groups = [by] if by else []
     labels = study.labels
     if until is not None:
         labels = labels[:labels.index(until) + 1]
-    full = study.estimates(by=groups, waves=labels, level=level)  # all metrics: cached across charts
-    full = full[full["metric"] == metric].reset_index(drop=True)
-    est = full[full["group"] == by].reset_index(drop=True) if by else full
-    steps = study.wave_steps(metrics=[metric], by=groups, waves=labels, adjust=adjust, level=level)
+    base = study.memo(("chart table", tuple(labels), adjust, level),
+                      lambda: _chart_table(study, labels, adjust, level))
     m = study.codebook.metrics[metric]
+    if by is not None and by not in study.codebook.groups:
+        study._pick_groups([by])  # the usual message for an unknown split
+    out = base[(base["metric"] == metric) & (base["group"] == (by or "total"))].reset_index(drop=True)
     starts = study.segment_starts([m], labels)
-    # the patterns of the analysis of the last wave drawn: one family for every series
-    every = study.trends(adjust=adjust, level=level, until=labels[-1])
-    trends = every[(every["metric"] == metric) & every["group"].isin(["total", *groups])]
-    t0 = study.dates()[labels[0]]
-    out = est.copy()
-    out["fitted"] = fitted_values(trends, est, t0).to_numpy() if len(est) else np.nan
-    if len(steps):
-        steps = steps.rename(columns={"wave_to": "wave"})[
-            ["metric", "group", "subgroup", "wave", "verdict", "change", "p_adjusted", "flags"]]
-        out = out.merge(steps.rename(columns={"flags": "change_flags"}), on=["metric", "group", "subgroup", "wave"],
-                        how="left")
-    else:
-        out["verdict"], out["change"], out["p_adjusted"], out["change_flags"] = np.nan, np.nan, np.nan, ""
-    out["verdict"] = out["verdict"].fillna("first wave")
     out["segment"] = "series"
     if metric in starts:
         start_rank = labels.index(starts[metric])
@@ -82,11 +94,9 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
     out["change_shown"] = out["change"] * f
     out["panel"] = np.where(out["group"] == "total", "Total", out["subgroup"])
     out["date"] = pd.to_datetime(out["fieldwork_date"])
-    trend_by = trends.set_index("subgroup")["pattern"].to_dict() if by else \
-        trends[trends["group"] == "total"].set_index("subgroup")["pattern"].to_dict()
-    out["pattern"] = out["subgroup"].map(trend_by)
+    tested = base["p_adjusted"].notna() & (base["metric"] == metric) & base["group"].isin(["total", by or "total"])
     out.attrs.update(metric=metric, label=m.label, kind=m.kind, break_wave=starts.get(metric),
-                     n_steps=int(steps["p_adjusted"].notna().sum()) if len(steps) else 0, adjust=adjust, level=level)
+                     n_steps=int(tested.sum()), adjust=adjust, level=level)
     return out
 
 
@@ -97,12 +107,33 @@ def _columns(n: int) -> int:
     return min((4, 3, 2), key=lambda c: (-(-n // c) * c - n, -c))
 
 
-def _wave_axis(labels: list[str], width: int) -> alt.X:
+def _values(frame: pd.DataFrame, columns: list[str]) -> list[dict]:
+    """The rows a chart draws as JSON records (missing values as null), only the columns used."""
+    names = [c for c in columns if c in frame.columns]
+    cols = []
+    for c in names:  # a column at a time: exact Python values, missing ones None
+        s = frame[c]
+        values = s.to_numpy(dtype=object) if not pd.api.types.is_numeric_dtype(s) else s.to_numpy()
+        missing = s.isna().to_numpy()
+        listed = values.tolist()
+        cols.append([None if gone else v for v, gone in zip(listed, missing)] if missing.any() else listed)
+    return [dict(zip(names, row)) for row in zip(*cols)]
+
+
+def _field(name: str, kind: str, **more) -> dict:
+    return {"field": name, "type": kind, **more}
+
+
+def _tip(name: str, kind: str, title: str, fmt: str | None = None) -> dict:
+    return {"field": name, "type": kind, "title": title, **({"format": fmt} if fmt else {})}
+
+
+def _wave_axis(labels: list[str], width: int) -> dict:
     # waves are placed and named by their labels, in fieldwork order (a date axis would put
     # a quarter's point under the next period's tick)
     crowded = len(labels) * 7 * max(map(len, labels)) > width
-    return alt.X("wave:O", sort=labels, title=None,
-                 axis=alt.Axis(labelAngle=-45 if crowded else 0, labelAlign="right" if crowded else "center"))
+    return {"field": "wave", "type": "ordinal", "sort": labels, "title": None,
+            "axis": {"labelAngle": -45 if crowded else 0, "labelAlign": "right" if crowded else "center"}}
 
 
 def _legend_domain(verdicts) -> tuple[list[str], list[str], list[str]]:
@@ -117,19 +148,28 @@ def _legend_domain(verdicts) -> tuple[list[str], list[str], list[str]]:
 #: the fall vermillion.
 FIT_COLOUR = OKABE_ITO["bluish green"]
 
+#: The columns of trend_frame a trend chart draws or shows in its tooltip.
+TREND_FIELDS = ["wave", "panel", "segment", "value_shown", "ci_low_shown", "ci_high_shown", "fitted_shown",
+                "pattern", "verdict", "change_shown", "base", "effective_base", "flags"]
+
 
 def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95,
                 width: int | None = None, height: int = 200, until: str | None = None,
-                compact: bool = False) -> alt.FacetChart | alt.LayerChart:
+                compact: bool = False) -> dict:
     """The metric wave by wave: interval band, line, marked significant steps, fitted trend
     or shift levels, a wording break as a gap with a note, bases under the axis.
 
     ``compact``: a small chart for a grid (no subtitle, no bases), for series that held."""
-    from .methods.tests import ADJUST_METHODS
-
     if metric not in study.codebook.metrics:
         raise TrackerError(f"--metric {metric}: not a metric of this study ({', '.join(study.codebook.metrics)})")
-    data = trend_frame(study, metric, by, adjust, level, until)
+    return trend_spec(trend_frame(study, metric, by, adjust, level, until), by, adjust, level, width, height, compact)
+
+
+def trend_spec(data: pd.DataFrame, by: str | None, adjust: str = "bh", level: float = 0.95,
+               width: int | None = None, height: int = 200, compact: bool = False) -> dict:
+    """The trend chart's Vega-Lite specification from its :func:`trend_frame`."""
+    from .methods.tests import ADJUST_METHODS
+
     a = data.attrs
     panels = list(dict.fromkeys(data["panel"]))
     columns = _columns(len(panels)) if by else 1
@@ -139,40 +179,42 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
     unit = _unit(a["kind"])
     labels = list(dict.fromkeys(data.sort_values("date")["wave"]))
     x = _wave_axis(labels, width)
+    f1 = ".1f" if unit != "mean" else ".2f"
     tooltip = [
-        alt.Tooltip("wave:N", title="wave"), alt.Tooltip("panel:N", title="who"),
-        alt.Tooltip("value_shown:Q", title="value", format=".1f" if unit != "mean" else ".2f"),
-        alt.Tooltip("ci_low_shown:Q", title="interval from", format=".1f" if unit != "mean" else ".2f"),
-        alt.Tooltip("ci_high_shown:Q", title="interval to", format=".1f" if unit != "mean" else ".2f"),
-        alt.Tooltip("verdict:N", title="change from wave before"),
-        alt.Tooltip("change_shown:Q", title="change", format="+.1f" if unit != "mean" else "+.2f"),
-        alt.Tooltip("base:Q", title="base", format=","),
-        alt.Tooltip("effective_base:Q", title="effective base", format=",.0f"),
-        alt.Tooltip("flags:N", title="flags"),
+        _tip("wave", "nominal", "wave"), _tip("panel", "nominal", "who"),
+        _tip("value_shown", "quantitative", "value", f1),
+        _tip("ci_low_shown", "quantitative", "interval from", f1),
+        _tip("ci_high_shown", "quantitative", "interval to", f1),
+        _tip("verdict", "nominal", "change from wave before"),
+        _tip("change_shown", "quantitative", "change", "+.1f" if unit != "mean" else "+.2f"),
+        _tip("base", "quantitative", "base", ","), _tip("effective_base", "quantitative", "effective base", ",.0f"),
+        _tip("flags", "nominal", "flags"),
     ]
     # the metric's label is the chart's title; the axis names only the unit, so it is never cut
-    y = alt.Y("value_shown:Q", title=unit or None, scale=alt.Scale(zero=False))
-    band = alt.Chart().mark_area(opacity=0.18, color=OKABE_ITO["sky blue"]).encode(
-        x=x, y=alt.Y("ci_low_shown:Q", title=unit or None), y2="ci_high_shown:Q", detail="segment:N")
-    line = alt.Chart().mark_line(color=OKABE_ITO["black"], strokeWidth=1.5).encode(x=x, y=y, detail="segment:N")
-    fitted = alt.Chart().mark_line(color=FIT_COLOUR, strokeDash=[6, 3], strokeWidth=2).encode(
-        x=x, y="fitted_shown:Q", detail="segment:N").transform_filter(
-        "isValid(datum.fitted_shown) && (datum.pattern == 'rising' || datum.pattern == 'falling')")
-    levels = alt.Chart().mark_line(color=FIT_COLOUR, strokeDash=[6, 3], strokeWidth=2,
-                                   interpolate="step-after").encode(
-        x=x, y="fitted_shown:Q", detail="segment:N").transform_filter(
-        "isValid(datum.fitted_shown) && indexof(datum.pattern, 'shifted') == 0")
+    y = _field("value_shown", "quantitative", scale={"zero": False}, title=unit or None)
+    detail = _field("segment", "nominal")
+    band = {"mark": {"type": "area", "color": OKABE_ITO["sky blue"], "opacity": 0.18},
+            "encoding": {"x": x, "y": _field("ci_low_shown", "quantitative", title=unit or None),
+                         "y2": {"field": "ci_high_shown"}, "detail": detail}}
+    line = {"mark": {"type": "line", "color": OKABE_ITO["black"], "strokeWidth": 1.5},
+            "encoding": {"x": x, "y": y, "detail": detail}}
+    fit_mark = {"type": "line", "color": FIT_COLOUR, "strokeDash": [6, 3], "strokeWidth": 2}
+    fit_enc = {"x": x, "y": _field("fitted_shown", "quantitative"), "detail": detail}
+    fitted = {"mark": fit_mark, "encoding": fit_enc, "transform": [
+        {"filter": "isValid(datum.fitted_shown) && (datum.pattern == 'rising' || datum.pattern == 'falling')"}]}
+    levels = {"mark": {**fit_mark, "interpolate": "step-after"}, "encoding": fit_enc, "transform": [
+        {"filter": "isValid(datum.fitted_shown) && indexof(datum.pattern, 'shifted') == 0"}]}
     domain, colours, shapes = _legend_domain(data["verdict"])
-    legend = None if compact else alt.Legend(title="change from the wave before", orient="bottom")
-    points = alt.Chart().mark_point(filled=True, size=40 if compact else 70).encode(
-        x=x, y=y,
-        color=alt.Color("verdict:N", scale=alt.Scale(domain=domain, range=colours), legend=legend),
-        shape=alt.Shape("verdict:N", scale=alt.Scale(domain=domain, range=shapes), legend=legend),
-        opacity=alt.condition("datum.verdict == 'rise' || datum.verdict == 'fall'", alt.value(1.0),
-                              alt.value(0.55)),
-        tooltip=tooltip)
-    bases = alt.Chart().mark_text(fontSize=8, color="#555555", angle=0, baseline="bottom").encode(
-        x=x, y=alt.value(height - 2), text=alt.Text("base:Q", format=","))
+    legend = None if compact else {"title": "change from the wave before", "orient": "bottom"}
+    points = {"mark": {"type": "point", "filled": True, "size": 40 if compact else 70}, "encoding": {
+        "x": x, "y": y,
+        "color": _field("verdict", "nominal", scale={"domain": domain, "range": colours}, legend=legend),
+        "shape": _field("verdict", "nominal", scale={"domain": domain, "range": shapes}, legend=legend),
+        "opacity": {"condition": {"test": "datum.verdict == 'rise' || datum.verdict == 'fall'", "value": 1.0},
+                    "value": 0.55},
+        "tooltip": tooltip}}
+    bases = {"mark": {"type": "text", "fontSize": 8, "color": "#555555", "angle": 0, "baseline": "bottom"},
+             "encoding": {"x": x, "y": {"value": height - 2}, "text": _field("base", "quantitative", format=",")}}
     layers = [band, line]
     has_fit = data["fitted"].notna()
     if (has_fit & data["pattern"].isin(["rising", "falling"])).any():
@@ -181,39 +223,43 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
         layers.append(levels)  # only layers with data: an empty layer makes the renderer warn
     layers += [points] if compact else [points, bases]
     if a["break_wave"]:
-        rule = alt.Chart().mark_rule(color=OKABE_ITO["reddish purple"], strokeDash=[2, 2]).encode(x=x).transform_filter(
-            alt.datum.wave == a["break_wave"])
-        note = alt.Chart().mark_text(align="left", dx=3, dy=-4, fontSize=9, color=OKABE_ITO["reddish purple"]).encode(
-            x=x, y=alt.value(10), text=alt.value("wording changed")).transform_filter(
-            alt.datum.wave == a["break_wave"])
-        layers += [rule, note]
-    chart = alt.layer(*layers, data=data).properties(width=width, height=height)
+        at = {"filter": {"field": "wave", "equal": a["break_wave"]}}
+        layers.append({"mark": {"type": "rule", "color": OKABE_ITO["reddish purple"], "strokeDash": [2, 2]},
+                       "encoding": {"x": x}, "transform": [at]})
+        layers.append({"mark": {"type": "text", "align": "left", "dx": 3, "dy": -4, "fontSize": 9,
+                                "color": OKABE_ITO["reddish purple"]},
+                       "encoding": {"x": x, "y": {"value": 10}, "text": {"value": "wording changed"}},
+                       "transform": [at]})
     if compact:
-        title = alt.TitleParams(a["label"], anchor="start", fontSize=11, limit=width)
+        title = {"text": a["label"], "anchor": "start", "fontSize": 11, "limit": width}
     else:
-        subtitle = [
+        title = {"text": a["label"], "anchor": "start", "fontSize": 14, "subtitleFontSize": 10, "subtitle": [
             f"Band: {level:.0%} interval (sampling error only). Numbers along the foot: base.",
             f"Triangles: change from the wave before significant at {1 - level:g}, after {ADJUST_METHODS[adjust]}",
             "adjustment across every metric and subgroup of that wave (as in its brief). Dashed green: the fitted "
             "trend or shift.",
-        ]
-        title = alt.TitleParams(a["label"], subtitle=subtitle, anchor="start", fontSize=14, subtitleFontSize=10)
+        ]}
+    values = {"values": _values(data, TREND_FIELDS)}
+    inner = {"layer": layers, "width": width, "height": height}
     if by:
-        chart = chart.facet(facet=alt.Facet("panel:N", title=None, sort=panels), columns=columns, title=title)
-    else:
-        chart = chart.properties(title=title)
-    return chart
+        return {"data": values, "facet": {"field": "panel", "type": "nominal", "title": None, "sort": panels},
+                "columns": columns, "spec": inner, "title": title}
+    return {"data": values, **inner, "title": title}
 
 
 def trend_charts(study, metric: str, by: list[str] | tuple[str, ...] = (), adjust: str = "bh",
-                 level: float = 0.95, until: str | None = None):
+                 level: float = 0.95, until: str | None = None) -> dict:
     """The trend chart of ``metric``: in total, by one split, or one block of panels per split."""
     if len(by) <= 1:
         return trend_chart(study, metric, by=by[0] if by else None, adjust=adjust, level=level, until=until)
-    return alt.vconcat(*(trend_chart(study, metric, by=g, adjust=adjust, level=level, until=until) for g in by))
+    return {"vconcat": [trend_chart(study, metric, by=g, adjust=adjust, level=level, until=until) for g in by]}
 
 
-def change_overview(result, totals_only: bool = False, width: int = 520) -> alt.VConcatChart | alt.Chart:
+OVERVIEW_FIELDS = ["row", "verdict", "significant", "change_shown", "change_low_shown", "change_high_shown",
+                   "min_detectable_change_shown", "mde_low", "p_adjusted", "base_from", "base_to"]
+
+
+def change_overview(result, totals_only: bool = False, width: int = 520) -> dict:
     """Every tested change of one comparison as a dot with its interval, sorted by size;
     significant ones emphasised; a zero line; the minimum detectable change as a shaded band."""
     from .methods.tests import ADJUST_METHODS
@@ -229,47 +275,49 @@ def change_overview(result, totals_only: bool = False, width: int = 520) -> alt.
         t[col + "_shown"] = t[col] * f
     t["mde_low"] = -t["min_detectable_change_shown"]
     t["unit"] = np.where(t["kind"] == "mean", "means (scale points)", "shares and balances (percentage points)")
+    domain, colours, shapes = _legend_domain(t["verdict"])
+    legend = {"title": "change", "orient": "bottom"}
+    colour = _field("verdict", "nominal", scale={"domain": domain, "range": colours}, legend=legend)
     charts = []
     for unit, part in t.groupby("unit", sort=False):
         part = part.sort_values("change_shown")
-        order = list(part["row"])
-        y = alt.Y("row:N", sort=order, title=None, axis=alt.Axis(labelLimit=260))
-        base = alt.Chart(part)
-        mde = base.mark_bar(color="#e8e8e8", height=10).encode(
-            x=alt.X("mde_low:Q", title=f"change, {unit}"), x2="min_detectable_change_shown:Q", y=y)
-        zero = alt.Chart(pd.DataFrame({"zero": [0]})).mark_rule(color=OKABE_ITO["black"]).encode(x="zero:Q")
-        legend = alt.Legend(title="change", orient="bottom")
-        domain, colours, shapes = _legend_domain(t["verdict"])
-        colour = alt.Color("verdict:N", scale=alt.Scale(domain=domain, range=colours), legend=legend)
-        bars = base.mark_rule(strokeWidth=1.5).encode(
-            x="change_low_shown:Q", x2="change_high_shown:Q", y=y, color=colour)
-        dots = base.mark_point(filled=True, size=70).encode(
-            x="change_shown:Q", y=y, color=colour,
-            shape=alt.Shape("verdict:N", scale=alt.Scale(domain=domain, range=shapes), legend=legend),
-            opacity=alt.condition("datum.significant", alt.value(1.0), alt.value(0.5)),
-            tooltip=[alt.Tooltip("row:N", title="measure"), alt.Tooltip("verdict:N", title="verdict"),
-                     alt.Tooltip("change_shown:Q", title="change", format="+.1f"),
-                     alt.Tooltip("change_low_shown:Q", title="interval from", format="+.1f"),
-                     alt.Tooltip("change_high_shown:Q", title="interval to", format="+.1f"),
-                     alt.Tooltip("min_detectable_change_shown:Q", title="min detectable change", format=".1f"),
-                     alt.Tooltip("p_adjusted:Q", title="adjusted p", format=".4f"),
-                     alt.Tooltip("base_from:Q", title="base before", format=","),
-                     alt.Tooltip("base_to:Q", title="base now", format=",")])
-        charts.append(alt.layer(mde, zero, bars, dots).properties(width=width, height=max(60, 16 * len(part))))
-    chart = alt.vconcat(*charts).resolve_scale(x="independent", y="independent")
+        y = _field("row", "nominal", sort=list(part["row"]), title=None, axis={"labelLimit": 260})
+        mde = {"mark": {"type": "bar", "color": "#e8e8e8", "height": 10}, "encoding": {
+            "x": _field("mde_low", "quantitative", title=f"change, {unit}"),
+            "x2": {"field": "min_detectable_change_shown"}, "y": y}}
+        zero = {"data": {"values": [{"zero": 0}]}, "mark": {"type": "rule", "color": OKABE_ITO["black"]},
+                "encoding": {"x": _field("zero", "quantitative")}}
+        bars = {"mark": {"type": "rule", "strokeWidth": 1.5}, "encoding": {
+            "x": _field("change_low_shown", "quantitative"), "x2": {"field": "change_high_shown"}, "y": y,
+            "color": colour}}
+        dots = {"mark": {"type": "point", "filled": True, "size": 70}, "encoding": {
+            "x": _field("change_shown", "quantitative"), "y": y, "color": colour,
+            "shape": _field("verdict", "nominal", scale={"domain": domain, "range": shapes}, legend=legend),
+            "opacity": {"condition": {"test": "datum.significant", "value": 1.0}, "value": 0.5},
+            "tooltip": [_tip("row", "nominal", "measure"), _tip("verdict", "nominal", "verdict"),
+                        _tip("change_shown", "quantitative", "change", "+.1f"),
+                        _tip("change_low_shown", "quantitative", "interval from", "+.1f"),
+                        _tip("change_high_shown", "quantitative", "interval to", "+.1f"),
+                        _tip("min_detectable_change_shown", "quantitative", "min detectable change", ".1f"),
+                        _tip("p_adjusted", "quantitative", "adjusted p", ".4f"),
+                        _tip("base_from", "quantitative", "base before", ","),
+                        _tip("base_to", "quantitative", "base now", ",")]}}
+        charts.append({"data": {"values": _values(part, OVERVIEW_FIELDS)}, "layer": [mde, zero, bars, dots],
+                       "width": width, "height": max(60, 16 * len(part))})
     family = result.family_size if getattr(result, "family_size", None) is not None else result.n_tests
-    return chart.properties(title=alt.TitleParams(
-        f"{result.wave} against {result.against}: every tested change", anchor="start", fontSize=14,
-        subtitle=[f"Line: {result.level:.0%} interval. Grey band: the minimum detectable change (80 % power).",
-                  f"Drawn: {len(t)} changes, {int(t['significant'].sum())} significant at {1 - result.level:g} after "
-                  f"{ADJUST_METHODS[result.adjust]} adjustment",
-                  f"across the {family} tests of the comparison" + (
-                      "." if len(t) == family else f" ({result.n_significant} significant in all).")],
-        subtitleFontSize=10))
+    return {"vconcat": charts, "resolve": {"scale": {"x": "independent", "y": "independent"}}, "title": {
+        "text": f"{result.wave} against {result.against}: every tested change", "anchor": "start", "fontSize": 14,
+        "subtitle": [f"Line: {result.level:.0%} interval. Grey band: the minimum detectable change (80 % power).",
+                     f"Drawn: {len(t)} changes, {int(t['significant'].sum())} significant at {1 - result.level:g} "
+                     f"after {ADJUST_METHODS[result.adjust]} adjustment",
+                     f"across the {family} tests of the comparison" + (
+                         "." if len(t) == family else f" ({result.n_significant} significant in all).")],
+        "subtitleFontSize": 10}}
 
 
-def chart_spec(chart) -> dict:
-    return _config(chart).to_dict()
+def chart_spec(chart: dict) -> dict:
+    """A whole Vega-Lite document: the chart with the schema and the shared look."""
+    return {"$schema": SCHEMA, "config": CONFIG, **{k: v for k, v in chart.items() if k not in ("$schema", "config")}}
 
 
 def save_chart(chart, path: str | Path) -> Path:

@@ -347,7 +347,11 @@ class Study:
                 raise store.fs_problem(exc, self.root / store.LEDGER, "record the wave in the ledger") from None
             raise
         self._ledger = ledger
-        self._cache.pop(wave, None)
+        self._cache = {}  # a replaced wave changes what was derived from it
+        try:  # the new wave's cell statistics, ready for the next command (derived; may fail quietly)
+            self._compute_cells(wave, table, locked=True)
+        except TrackerError:
+            pass
         warnings = tuple(p.describe(Path(file).name) for p in report.problems) + tuple(extra_lines)
         return AddReport(
             label=wave, date=iso, rows=len(table), weighted_base=sw, effective_base=neff,
@@ -690,6 +694,14 @@ class Study:
             self._cache[key] = fit_trends(est, self.segment_starts(ms, labels), adjust, level)
         return self._cache[key].copy()
 
+    def memo(self, key: tuple, make):
+        """``make()`` computed once per Study object (for values derived from the stored
+        waves, such as the table every trend chart of a brief draws from)."""
+        key = ("memo", *key)
+        if key not in self._cache:
+            self._cache[key] = make()
+        return self._cache[key]
+
     def analysis(self, wave: str | None = None, against: str = "previous", adjust: str = "bh",
                  level: float = 0.95):
         """The one analysis of ``wave`` (tracker.analysis.Analysis) that the brief, the charts and
@@ -730,13 +742,16 @@ class Study:
         total and in every subgroup, as ``changes`` and the brief of that wave report them)."""
         ms, gs, labels = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
         every, groups = self._pick_metrics(), self._pick_groups()
-        parts = []
-        for before, after in zip(labels, labels[1:]):
-            table, _, _ = self._compare(after, [before], every, groups, adjust, level)
-            parts.append(table)
-        if not parts:
+        key = ("steps", tuple(labels), adjust, level)
+        if key not in self._cache:
+            parts = []
+            for before, after in zip(labels, labels[1:]):
+                table, _, _ = self._compare(after, [before], every, groups, adjust, level)
+                parts.append(table)
+            self._cache[key] = pd.concat(parts, ignore_index=True) if parts else None
+        out = self._cache[key]
+        if out is None:
             return pd.DataFrame()
-        out = pd.concat(parts, ignore_index=True)
         keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
         return out[keep].reset_index(drop=True)
 
