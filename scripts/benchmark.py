@@ -32,9 +32,13 @@ import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
-import pandas as pd
-import scipy.sparse as sp
+# one BLAS thread, as the command line sets it (docs/performance.md: two fight on two cores)
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+import scipy.sparse as sp  # noqa: E402
 
 SHARE_CODES = (4, 5)
 MISSING = 9
@@ -225,6 +229,21 @@ def run_cli(args: list[str], env: dict | None = None) -> tuple[float, float]:
     return float(out[0]), float(out[1]) / 1024
 
 
+def run_python(code: str) -> tuple[float, float, str]:
+    """(wall seconds, peak memory in MB, printed text) of a fresh Python process running ``code``
+    (the script's folder importable)."""
+    probe = ("import resource, subprocess, sys, time; t = time.perf_counter(); "
+             "r = subprocess.run(sys.argv[1:], check=True, capture_output=True, text=True); "
+             "print(time.perf_counter() - t, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss); print(r.stdout)")
+    here = str(Path(__file__).resolve().parent)
+    out = subprocess.run([sys.executable, "-c", probe, sys.executable, "-c",
+                          f"import sys; sys.path.insert(0, {here!r}); " + code],
+                         check=True, capture_output=True, text=True).stdout
+    first, _, rest = out.partition("\n")
+    sec, kb = first.split()
+    return float(sec), float(kb) / 1024, rest.strip()
+
+
 def median_cli(args: list[str], runs: int = 3) -> tuple[float, float]:
     got = [run_cli(args) for _ in range(runs)]
     return statistics.median(g[0] for g in got), max(g[1] for g in got)
@@ -308,22 +327,78 @@ def part_million(tmp: Path, rows: list) -> None:
     del study
     sec, mb = run_cli(["add", str(root / "study"), str(path), "--wave", "W000", "--date", "2000-01-15", "-q"])
     rows.append(("1,000,000 respondents: cli add", f"{sec:.1f} s", f"peak {mb:,.0f} MB"))
-    import resource
-
-    t = time.perf_counter()
+    st = str(root / "study")
+    f_sec, f_mb, _ = run_python(f"import benchmark as b; b.floor_study(__import__('pathlib').Path({st!r}), ['W000'])")
+    rows.append(("1,000,000 respondents: floor (fresh process)", f"{f_sec:.1f} s", f"peak {f_mb:,.0f} MB"))
+    clear_cache(root / "study")
+    a_sec, a_mb, _ = run_python(f"from tracker import Study; Study({st!r}).estimates()")
+    rows.append(("1,000,000 respondents: tool API, no cache (fresh process)", f"{a_sec:.1f} s",
+                 f"{a_sec / f_sec:.1f}x the floor's time, {a_mb / f_mb:.1f}x its peak memory ({a_mb:,.0f} MB)"))
     floor = floor_study(root / "study", ["W000"])
-    floor_t = time.perf_counter() - t
-    rows.append(("1,000,000 respondents: floor", f"{floor_t:.1f} s", ""))
-    t = time.perf_counter()
     est = Study(root / "study").estimates()
-    api_t = time.perf_counter() - t
-    rows.append(("1,000,000 respondents: tool API, no cache", f"{api_t:.1f} s",
-                 f"{api_t / floor_t:.1f}x the floor; largest difference {agreement(est, floor):.1e}"))
+    rows.append(("1,000,000 respondents: tool against the floor", f"{agreement(est, floor):.1e}", "largest difference"))
     clear_cache(root / "study")
     for name in ("first run", "from the cache"):
-        sec, mb = run_cli(["estimates", str(root / "study"), "--format", "csv"])
+        sec, mb = run_cli(["estimates", st, "--format", "csv"])
         rows.append((f"1,000,000 respondents: cli estimates ({name})", f"{sec:.1f} s", f"peak {mb:,.0f} MB"))
-    del resource
+    clear_cache(root / "study")
+    sec, mb = run_cli(["prepare", st, "--engine", "duckdb", "-q"])
+    rows.append(("1,000,000 respondents: prepare --engine duckdb", f"{sec:.1f} s", f"peak {mb:,.0f} MB"))
+
+
+def part_cost(rows: list) -> None:
+    """How one wave's statistics cost grows with respondents, metrics and splits (the
+    computation alone, on tables in memory); waves add their costs one by one."""
+    from tracker.codebook import parse_codebook
+    from tracker.estimates import cell_arrays
+
+    def timed(n, metrics, groups):
+        book = parse_codebook(codebook_text(metrics, groups))
+        table = make_wave(np.random.default_rng(3), 0, n, metrics, groups, 10, 200)
+        for col in ("w", *[f"g{g}" for g in range(groups)], *[f"q{m}" for m in range(metrics)]):
+            table[col] = table[col].astype(float)
+        best = []
+        for _ in range(3):
+            t = time.perf_counter()
+            cell_arrays(book, table, list(book.metrics.values()), list(book.groups), keep_psu=True)
+            best.append(time.perf_counter() - t)
+        return min(best)
+
+    base = timed(2000, 100, 5)
+    rows.append(("one wave's statistics, 2,000 x 100 metrics x 5 splits (in memory)", f"{base * 1000:.0f} ms", "1.0x"))
+    for label, args in [("respondents 8,000", (8000, 100, 5)), ("respondents 32,000", (32000, 100, 5)),
+                        ("metrics 400", (2000, 400, 5)), ("splits 20 (81 levels)", (2000, 100, 20))]:
+        sec = timed(*args)
+        rows.append((f"  same with {label}", f"{sec * 1000:.0f} ms", f"{sec / base:.1f}x"))
+
+
+def part_ten_million(tmp: Path, rows: list) -> None:
+    """A continuous tracker: 10 waves of 1,000,000 respondents (20 metrics, 3 splits, 10
+    strata, 200 clusters): its statistics by DuckDB in this process and on 2 local
+    workers, then the everyday commands from the cache."""
+    from tracker import Study
+
+    root = tmp / "ten"
+    root.mkdir()
+    book = root / "codebook.yaml"
+    book.write_text(codebook_text(20, 3))
+    Study.create(root / "study", book)
+    rng = np.random.default_rng(11)
+    for k in range(10):
+        path = root / "w.parquet"
+        make_wave(rng, k, 1_000_000, 20, 3, 10, 200).to_parquet(path)
+        run_cli(["add", str(root / "study"), str(path), "--wave", label(k), "--date", date(k), "-q"])
+    study = str(root / "study")
+    for name, args in [("pandas engine, in this process", ["--engine", "pandas"]),
+                       ("DuckDB engine, in this process", ["--engine", "duckdb"]),
+                       ("DuckDB engine, 2 local Dask workers", ["--engine", "duckdb", "--workers", "2"])]:
+        clear_cache(root / "study")
+        sec, mb = run_cli(["prepare", study, "-q", *args])
+        rows.append((f"10,000,000 respondents: prepare, {name}", f"{sec:.1f} s", f"peak {mb:,.0f} MB (this process)"))
+    for name, args in [("estimates", ["estimates", study, "--format", "csv"]), ("changes", ["changes", study]),
+                       ("trends", ["trends", study])]:
+        sec, mb = run_cli(args)
+        rows.append((f"10,000,000 respondents: {name} from the cache", f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
 
 
 def part_growth(tmp: Path, rows: list) -> None:
@@ -360,13 +435,17 @@ def machine() -> str:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help="the clustered study only")
+    ap.add_argument("--ten-million", action="store_true", help="also the 10,000,000-respondent study (scale extra)")
     args = ap.parse_args()
     rows: list[tuple[str, str, str]] = []
     with tempfile.TemporaryDirectory() as tmp:
         part_clustered(Path(tmp), rows, args.quick)
         if not args.quick:
+            part_cost(rows)
             part_million(Path(tmp), rows)
             part_growth(Path(tmp), rows)
+            if args.ten_million:
+                part_ten_million(Path(tmp), rows)
     print(f"machine: {machine()}; {time.strftime('%Y-%m-%d')}")
     print("| measurement | time | note |\n|---|---|---|")
     for r in rows:

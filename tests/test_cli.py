@@ -142,7 +142,7 @@ def test_nothing_moved_says_so_instead_of_an_empty_table(demo_study):
 
 # -- shared options, formats of the quick commands, help, quiet, progress --------------------
 
-COMMANDS = ["new", "check", "add", "waves", "verify", "estimates", "changes", "trends", "composition", "chart",
+COMMANDS = ["new", "check", "add", "waves", "verify", "prepare", "estimates", "changes", "trends", "composition", "chart",
             "brief", "demo"]
 
 

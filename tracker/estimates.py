@@ -202,42 +202,59 @@ def _unclustered_variance(D, Ef, EY, w, value, sw, members, strata, rule):
 
     Within stratum h, with z_i = d_i w_i (y_i - value) e_i / sw: sum z and sum z^2 expand
     into stratum x level sums of w e y, w e, w^2 e y^2, w^2 e y and w^2 e, so no respondent
-    x cell array is built. The per-stratum moments then go to
-    :func:`tracker.methods.variance.combine_strata`. Degrees of freedom: respondents in the
-    cell minus strata holding them.
+    x cell array is built; :func:`unclustered_from_sums` finishes. Degrees of freedom:
+    respondents in the cell minus strata holding them.
     """
     n = D.shape[0]
     h = np.zeros(n, dtype=np.int64) if strata is None else np.unique(strata, return_inverse=True)[1].ravel()
     n_strata = int(h.max()) + 1 if n else 1
-    L, M = value.shape
     (a, b), (a2, ab, b2) = _level_sums(D, h, n_strata, [w, w * w], [EY, Ef], [EY * EY, EY, Ef])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        s1 = np.nan_to_num((a - value * b) / sw)
-        s2 = np.nan_to_num((a2 - 2 * value * ab + value**2 * b2) / sw**2)
     if n_strata == 1:
-        present = members > 0
+        present = (members > 0).astype(float)
     else:
         present = (_level_sums(D, h, n_strata, [np.ones(n)], [Ef])[0][0] > 0).sum(axis=0)
     n_h = np.bincount(h, minlength=n_strata)
+    return unclustered_from_sums(a, b, a2, ab, b2, present, members, value, sw, n_h, rule)
+
+
+def unclustered_from_sums(a, b, a2, ab, b2, present, members, value, sw, n_h, rule):
+    """The variance of every cell from per-stratum sums (strata x levels x metrics) of
+    w e y (a), w e (b), w^2 e y^2 (a2), w^2 e y (ab) and w^2 e (b2); ``present`` counts the
+    strata holding each cell's respondents, ``n_h`` the respondents of each stratum. The
+    per-stratum moments go to :func:`tracker.methods.variance.combine_strata`."""
+    n_strata = a.shape[0]
+    L, M = value.shape
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s1 = np.nan_to_num((a - value * b) / sw)
+        s2 = np.nan_to_num((a2 - 2 * value * ab + value**2 * b2) / sw**2)
     var = combine_strata(s1.reshape(n_strata, -1), s2.reshape(n_strata, -1), n_h, rule).reshape(L, M)
     return var, members, members - present
 
 
 def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule):
     """Taylor variance with declared clusters: one sparse (PSU x level) by respondent
-    product per wave gives every cell's PSU totals of the linearized values
-    z = d w e (y - value) / sw at once; per-stratum moments then go to
-    :func:`tracker.methods.variance.combine_strata`. Degrees of freedom per cell: PSUs
-    holding respondents of the cell minus strata holding them. Also returns the PSU
-    totals and a respondent of each PSU (to name it)."""
+    product per wave gives every cell's PSU totals of w e y and w e at once, and
+    :func:`clustered_from_totals` finishes. Also returns a respondent of each PSU (to name it)."""
     N, L = D.shape
-    M = value.shape[1]
     psu_id, psu_stratum, n_strata = psu_index(strata, psu, N)
     P = psu_stratum.size
-    positive = bool((w > 0).all())
     (A, B), = _level_sums(D, psu_id, P, [w], [EY, Ef])
     # with every weight positive a PSU holds a cell's respondents exactly when its weight total is positive
-    counts = (B > 0) if positive else (_level_sums(D, psu_id, P, [np.ones(N)], [Ef])[0][0] > 0)
+    counts = (B > 0) if bool((w > 0).all()) else (_level_sums(D, psu_id, P, [np.ones(N)], [Ef])[0][0] > 0)
+    var, n_psu, df, totals = clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule)
+    first = np.zeros(P, dtype=np.int64)
+    first[psu_id[::-1]] = np.arange(N)[::-1]
+    return var, n_psu, df, totals, first
+
+
+def clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule):
+    """The variance of every cell from its PSU totals (PSUs x levels x metrics) of w e y (A)
+    and w e (B): the linearized totals t = (A - value B) / sw, compared within strata by
+    :func:`tracker.methods.variance.combine_strata`. ``counts`` says which PSUs hold
+    respondents of each cell. Degrees of freedom per cell: those PSUs minus the strata
+    holding them. Returns (variance, PSUs per cell, df, the PSU totals t)."""
+    P = A.shape[0]
+    L, M = value.shape
     counts = counts.reshape(P, L * M)
     with np.errstate(divide="ignore", invalid="ignore"):
         t = (A - value[None] * B) / sw[None]
@@ -247,9 +264,7 @@ def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule):
     var = combine_strata(np.asarray(H @ t), np.asarray(H @ t**2), n_h, rule).reshape(L, M)
     n_psu = counts.sum(axis=0).reshape(L, M)
     n_str = (np.asarray(H @ counts.astype(float)) > 0).sum(axis=0).reshape(L, M)
-    first = np.zeros(P, dtype=np.int64)
-    first[psu_id[::-1]] = np.arange(N)[::-1]
-    return var, n_psu, n_psu - n_str, PsuTotals(t, psu_stratum, n_strata), first
+    return var, n_psu, n_psu - n_str, PsuTotals(t, psu_stratum, n_strata)
 
 
 def derived(stats: dict[str, np.ndarray], kind: np.ndarray, level: float = 0.95,

@@ -49,6 +49,12 @@ class Kind:
         """(what each respondent contributes, who has an answer)."""
         raise NotImplementedError
 
+    def sql(self, codes_mask: Callable[[tuple], tuple[str, str]], numeric: Callable[[], tuple[str, str]],
+            metric) -> tuple[str, str]:
+        """The same as :meth:`values` as SQL expressions (the DuckDB engine, tracker.scale):
+        (what each respondent contributes, as DOUBLE; who has an answer, as BOOLEAN)."""
+        raise NotImplementedError
+
     def interval(self, value, se, design_base, n, df, level, method="wilson"):
         return t_interval(value, se, df, level)
 
@@ -84,6 +90,10 @@ class Share(Kind):
     def values(self, codes_mask, numeric, metric):
         y, answered = codes_mask(metric.codes)
         return y.astype(float), answered
+
+    def sql(self, codes_mask, numeric, metric):
+        y, answered = codes_mask(metric.codes)
+        return f"CAST({y} AS DOUBLE)", answered
 
     def interval(self, value, se, design_base, n, df, level, method="wilson"):
         if method == "korn-graubard":
@@ -131,6 +141,10 @@ class Mean(Kind):
         x, answered = numeric()
         return np.where(answered, x, 0.0), answered
 
+    def sql(self, codes_mask, numeric, metric):
+        x, answered = numeric()
+        return f"(CASE WHEN {answered} THEN {x} ELSE 0.0 END)", answered
+
 
 class Balance(Kind):
     name = "balance"
@@ -141,6 +155,11 @@ class Balance(Kind):
         plus, answered = codes_mask(metric.plus)
         minus, _ = codes_mask(metric.minus)
         return plus.astype(float) - minus, answered
+
+    def sql(self, codes_mask, numeric, metric):
+        plus, answered = codes_mask(metric.plus)
+        minus, _ = codes_mask(metric.minus)
+        return f"(CAST({plus} AS DOUBLE) - CAST({minus} AS DOUBLE))", answered
 
     def fmt_value(self, v: float) -> str:
         return f"{v * 100:+.0f}"

@@ -1,0 +1,328 @@
+"""Past one machine: per-wave statistics by DuckDB straight from the stored Parquet, and the
+per-wave work spread over a Dask cluster (the optional extra ``pip install '.[scale]'``).
+
+A wave's sufficient statistics reduce its rows to sums per cluster (or per stratum when
+each respondent is its own cluster), subgroup level and metric; every wave is independent
+of the others. :func:`duckdb_cells` computes those sums with one SQL query per wave over
+the Parquet file (DuckDB streams it, so a wave larger than memory is no problem) and
+finishes them with the same functions as the in-process path
+(:func:`tracker.estimates.clustered_from_totals`, :func:`tracker.estimates.unclustered_from_sums`);
+the metric kinds say how a respondent contributes in SQL (:meth:`tracker.kinds.Kind.sql`).
+:func:`prepare` fills the study's cache (tracker.cache) for every wave, in this process,
+on local worker processes or on a Dask scheduler. Results equal the in-process path to
+1e-12 (tests/test_scale.py).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .codebook import Codebook
+from .errors import TrackerError
+from .estimates import SEP, CellArrays, clustered_from_totals, unclustered_from_sums
+from .kinds import KINDS
+from .methods.variance import SingleClusterError
+
+__all__ = ["ENGINES", "PrepareReport", "duckdb_cells", "prepare", "wave_task"]
+
+#: How the per-wave statistics are computed: in this process from the wave loaded into
+#: pandas (the default), or by DuckDB from the Parquet file.
+ENGINES = ("pandas", "duckdb")
+
+
+def _need(module: str):
+    from importlib import import_module
+
+    try:
+        return import_module(module)
+    except ImportError:
+        raise TrackerError(f"this needs the optional extra: pip install 'wavetell[scale]' ({module} is not "
+                           f"installed)") from None
+
+
+# -- SQL --------------------------------------------------------------------------------------
+
+def _q(name: str) -> str:
+    return '"' + str(name).replace('"', '""') + '"'
+
+
+def _num(col: str) -> str:
+    return f"CAST({_q(col)} AS DOUBLE)"
+
+
+def _lit(values) -> str:
+    return ", ".join(repr(float(v)) for v in values)
+
+
+def _valid(x: str, missing) -> str:
+    # DuckDB orders NaN above every number and calls NaN = NaN true: NaN is ruled out first
+    out = f"({x} IS NOT NULL AND NOT isnan({x})"
+    return out + (f" AND {x} NOT IN ({_lit(missing)}))" if missing else ")")
+
+
+def _codes_mask(book: Codebook, columns: set[str], variable: str, codes) -> tuple[str, str]:
+    """SQL for (holds one of codes, has an answer), as tracker.cells._codes_mask."""
+    var = book.variables[variable]
+    if var.type == "multi":
+        if not all(o in columns for o in var.options):
+            return "FALSE", "FALSE"
+        answered = "NOT (" + " AND ".join(f"({_num(o)} IS NULL OR isnan({_num(o)}))" for o in var.options) + ")"
+        chosen = [f"COALESCE(CASE WHEN isnan({_num(c)}) THEN NULL ELSE {_num(c)} END, 0.0)" for c in codes]
+        held = f"(GREATEST({', '.join(chosen)}) = 1)" if chosen else "FALSE"
+        return held, answered
+    if variable not in columns:
+        return "FALSE", "FALSE"
+    x = _num(variable)
+    answered = _valid(x, var.missing)
+    return (f"({x} IN ({_lit(codes)}) AND {answered})" if codes else "FALSE"), answered
+
+
+def _metric_sql(book: Codebook, columns: set[str], metric) -> tuple[str, str]:
+    """(value contributed, in the base) of one metric, as tracker.cells.metric_matrix."""
+    var = book.variables[metric.variable]
+
+    def numeric():
+        if metric.variable not in columns:
+            return "0.0", "FALSE"
+        x = _num(metric.variable)
+        return x, _valid(x, var.missing)
+
+    y, answered = KINDS[metric.kind].sql(lambda codes: _codes_mask(book, columns, metric.variable, codes),
+                                         numeric, metric)
+    if metric.base_variable:
+        inbase, _ = _codes_mask(book, columns, metric.base_variable, metric.base_codes)
+        answered = f"({answered} AND {inbase})"
+    return y, answered
+
+
+def _levels_sql(book: Codebook, columns: set[str], groups: list[str]) -> tuple[list[str], list[str], list[str]]:
+    """(group, level, membership condition) of every subgroup level, total excluded."""
+    gnames, lnames, conds = [], [], []
+    for gname in groups:
+        g = book.groups[gname]
+        x = _num(g.variable)
+        for label, codes in g.levels.items():
+            if g.variable not in columns:
+                cond = "FALSE"
+            elif g.bands is not None:
+                lo, hi = g.bands[label]
+                cond = f"COALESCE(NOT isnan({x}) AND {x} >= {float(lo)!r} AND {x} <= {float(hi)!r}, FALSE)"
+            else:
+                cond = f"COALESCE({x} IN ({_lit(codes)}), FALSE)" if codes else "FALSE"
+            gnames.append(gname)
+            lnames.append(label)
+            conds.append(cond)
+    return gnames, lnames, conds
+
+
+def duckdb_cells(book: Codebook, path: str | Path, keep_psu: bool = False, threads: int | None = None) -> CellArrays:
+    """Every cell's statistics of one stored wave (all metrics, every split) by DuckDB,
+    without loading the wave: one query sums, per cluster (or stratum) and subgroup level,
+    each metric's base, weights, weighted values and the squares the variance needs;
+    the small result is finished in numpy. The same numbers as
+    :func:`tracker.estimates.cell_arrays` up to rounding."""
+    duckdb = _need("duckdb")
+    import pyarrow.parquet as pq
+
+    path = Path(path)
+    columns = set(pq.read_schema(path).names)
+    metrics = list(book.metrics.values())
+    groups = list(book.groups)
+    gnames, lnames, conds = _levels_sql(book, columns, groups)
+    strata = book.strata if book.strata and book.strata in columns else None
+    clusters = book.clusters if book.clusters and book.clusters in columns else None
+    w = _num(book.weight) if book.weight and book.weight in columns else "1.0"
+    inner = [f"{'CAST(' + _q(strata) + ' AS VARCHAR)' if strata else chr(39) * 2} AS s_",
+             f"{'CAST(' + _q(clusters) + ' AS VARCHAR)' if clusters else 'NULL'} AS c_", f"{w} AS w_"]
+    inner += [f"{c} AS l{j}" for j, c in enumerate(conds)]
+    for j, m in enumerate(metrics):
+        y, e = _metric_sql(book, columns, m)
+        inner += [f"CAST({e} AS DOUBLE) AS e{j}", f"(CASE WHEN {e} THEN {y} ELSE 0.0 END) AS y{j}"]
+    sums = ["COUNT(*) AS n_rows"]
+    for j in range(len(metrics)):
+        sums += [f"SUM(e{j}) AS cnt_{j}", f"SUM(w_ * e{j}) AS we_{j}", f"SUM(w_ * y{j}) AS wey_{j}",
+                 f"SUM(w_ * w_ * e{j}) AS w2e_{j}", f"SUM(w_ * y{j} * y{j}) AS wey2_{j}"]
+        if not clusters:
+            sums += [f"SUM(w_ * w_ * y{j}) AS w2ey_{j}", f"SUM(w_ * w_ * y{j} * y{j}) AS w2ey2_{j}"]
+    unit = "s_, c_" if clusters else "s_"
+    sets = [f"({unit})"] + [f"({unit}, l{j})" for j in range(len(conds))]
+    levels_out = ", ".join(f"l{j}" for j in range(len(conds)))
+    sql = (f"SELECT {unit}{', ' + levels_out if conds else ''}, {', '.join(sums)} FROM "
+           f"(SELECT {', '.join(inner)} FROM read_parquet(?)) GROUP BY GROUPING SETS ({', '.join(sets)})")
+    con = duckdb.connect(config={"threads": threads} if threads else {})
+    try:
+        got = con.execute(sql, [str(path)]).fetchnumpy()
+    finally:
+        con.close()
+    got = {k: (v.filled(np.nan) if np.ma.isMaskedArray(v) and v.dtype.kind == "f" else v) for k, v in got.items()}
+    return _finish(book, metrics, gnames, lnames, got, len(conds), strata, clusters, keep_psu)
+
+
+def _finish(book, metrics, gnames, lnames, got, n_levels, strata, clusters, keep_psu) -> CellArrays:
+    L, M = 1 + n_levels, len(metrics)
+    rows = len(got["n_rows"])
+    level = np.full(rows, -1)
+    grouped = np.zeros(rows, bool)
+    for j in range(n_levels):  # in level j's grouping set its flag is true or false; elsewhere NULL
+        col = got[f"l{j}"]
+        present = ~np.ma.getmaskarray(col) if np.ma.isMaskedArray(col) else np.ones(rows, bool)
+        member = present & np.asarray(np.ma.getdata(col), bool)
+        level[member] = j + 1
+        grouped |= present
+    level[~grouped] = 0
+    keep = level >= 0
+    s_lab = np.asarray(np.ma.getdata(got["s_"]), dtype=object).astype(str)
+    if clusters:
+        c_lab = np.asarray(np.ma.getdata(got["c_"]), dtype=object).astype(str)
+        names = np.char.add(np.char.add(s_lab, SEP), c_lab) if strata else c_lab.astype(str)
+    else:
+        names = s_lab
+    unit_codes, unit_names = pd.factorize(pd.Series(names[keep]))
+    U = len(unit_names)
+    idx = np.flatnonzero(keep)
+    lev = level[keep]
+
+    def cube(prefix):
+        out = np.zeros((U, L, M))
+        for j in range(M):
+            out[unit_codes, lev, j] = np.nan_to_num(np.asarray(got[f"{prefix}_{j}"], float)[idx])
+        return out
+
+    cnt, we, wey, w2e, wey2 = (cube(p) for p in ("cnt", "we", "wey", "w2e", "wey2"))
+    n, sw, sw2, swy, swy2 = (a.sum(axis=0) for a in (cnt, we, w2e, wey, wey2))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        value = swy / sw
+        unit_var = np.maximum(swy2 / sw - value**2, 0.0)
+    unit_stratum = pd.factorize(pd.Series(s_lab[keep][np.unique(unit_codes, return_index=True)[1]]))[0] \
+        if U else np.zeros(0, dtype=np.int64)
+    n_strata = int(unit_stratum.max()) + 1 if U else 1
+    rule = book.single_cluster_rule
+    psu = psu_names = None
+    try:
+        if clusters:
+            var, n_psu, df, totals = clustered_from_totals(wey, we, cnt > 0, value, sw, unit_stratum, n_strata, rule)
+            if keep_psu:
+                psu, psu_names = totals, np.asarray(unit_names, dtype=str)
+        else:
+            n_h = np.zeros(U)
+            total_rows = lev == 0
+            n_h[unit_codes[total_rows]] = np.asarray(got["n_rows"], float)[idx][total_rows]
+            present = (cnt > 0).sum(axis=0).astype(float)
+            w2ey, w2ey2 = cube("w2ey"), cube("w2ey2")
+            var, n_psu, df = unclustered_from_sums(wey, we, w2ey2, w2ey, w2e, present, n, value, sw,
+                                                   n_h.astype(np.int64), rule)
+    except SingleClusterError as exc:
+        where = np.asarray(unit_names if not clusters else pd.unique(s_lab[keep]), dtype=str)
+        raise TrackerError(f"strata {', '.join(map(str, where[exc.strata][:10]))} hold a single cluster, and the "
+                           f"codebook says single_cluster_strata: refuse (see docs/codebook.md for the other "
+                           f"rules)") from None
+    stats = {"base": n, "weighted_base": sw, "sum_w2": sw2, "value": value, "variance": var,
+             "unit_variance": unit_var, "n_psu": np.asarray(n_psu, float), "design_df": np.asarray(df, float)}
+    return CellArrays(tuple(m.name for m in metrics), ("total", *gnames), ("Total", *lnames), stats, psu, psu_names)
+
+
+def id_hashes(book: Codebook, path: str | Path, batch: int = 1_000_000) -> np.ndarray | None:
+    """The 64-bit hashes of a stored wave's respondent ids (as tracker.study hashes them),
+    read one column in batches."""
+    import pyarrow.parquet as pq
+
+    f = pq.ParquetFile(path)
+    if not book.id or book.id not in f.schema_arrow.names:
+        return None
+    parts = [pd.util.hash_array(b.column(0).to_pandas().astype(str).to_numpy(dtype=object))
+             for b in f.iter_batches(columns=[book.id], batch_size=batch)]
+    return np.concatenate(parts) if parts else np.zeros(0, np.uint64)
+
+
+# -- spreading the waves ----------------------------------------------------------------------
+
+def wave_task(root: str, label: str, engine: str = "pandas"):
+    """One wave's (label, cache key, cell arrays, id hashes), computed where this runs (a
+    worker needs the study folder at the same path)."""
+    from .study import Study
+
+    study = Study(root)
+    book = study.codebook
+    key = study._cache_key(label)
+    keep = bool(book.clusters and book.waves_share_clusters)
+    if engine == "duckdb":
+        path = study.root / study._entry(label)["file"]
+        return label, key, duckdb_cells(book, path, keep_psu=keep, threads=1), id_hashes(book, path)
+    from .estimates import cell_arrays
+
+    table = study.load(label)
+    cells = cell_arrays(book, table, list(book.metrics.values()), list(book.groups), keep_psu=keep)
+    ids = pd.util.hash_array(table[book.id].astype(str).to_numpy(dtype=object)) if book.id in table.columns else None
+    return label, key, cells, ids
+
+
+@dataclass(frozen=True)
+class PrepareReport:
+    """What ``prepare`` did: the waves computed, the waves already up to date, and where."""
+
+    computed: tuple[str, ...]
+    current: tuple[str, ...]
+    engine: str
+    where: str
+
+    def lines(self) -> list[str]:
+        return [f"computed the statistics of {len(self.computed)} wave(s) ({self.engine}, {self.where}); "
+                f"{len(self.current)} already up to date"]
+
+
+def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler: str | None = None,
+            rebuild: bool = False, waves: list[str] | None = None) -> PrepareReport:
+    """Fill the study's cache (tracker.cache) with every wave's statistics: in this process,
+    on ``workers`` local processes, or on the Dask cluster at ``scheduler``. The results are
+    written here, under the study's lock."""
+    from .cache import read_cells, write_cells
+
+    if engine not in ENGINES:
+        raise TrackerError(f"--engine {engine}: use one of {', '.join(ENGINES)}")
+    if engine == "duckdb":
+        _need("duckdb")
+    if workers is not None and scheduler is not None:
+        raise TrackerError("give --workers or --scheduler, not both")
+    if workers is not None and workers < 1:
+        raise TrackerError(f"--workers {workers}: give 1 or more")
+    labels = study._pick_waves(waves)
+    todo = [w for w in labels if rebuild or read_cells(study.root, w, study._cache_key(w)) is None]
+    current = tuple(w for w in labels if w not in todo)
+    root = str(study.root.resolve())
+    if not todo:
+        return PrepareReport((), current, engine, "nothing to do")
+    if workers is None and scheduler is None:
+        results = [wave_task(root, w, engine) for w in todo]
+        where = "in this process"
+    else:
+        _need("distributed")
+        from distributed import Client, LocalCluster
+
+        if scheduler:
+            try:
+                client = Client(scheduler, timeout="20s")
+            except (OSError, TimeoutError) as exc:
+                raise TrackerError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc})") from None
+            cluster = None
+            where = f"on the Dask cluster at {scheduler}"
+        else:
+            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None)
+            client = Client(cluster)
+            where = f"on {workers} local worker process(es)"
+        try:
+            futures = client.map(wave_task, [root] * len(todo), todo, [engine] * len(todo), pure=False)
+            results = client.gather(futures)
+        finally:
+            client.close()
+            if cluster is not None:
+                cluster.close()
+    for label, key, cells, ids in results:
+        if key != study._cache_key(label):
+            continue  # the wave changed while it was being computed: leave it to the next reader
+        write_cells(study.root, label, key, cells, ids)
+    study._cache = {}
+    return PrepareReport(tuple(todo), current, engine, where)
