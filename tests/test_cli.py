@@ -142,8 +142,8 @@ def test_nothing_moved_says_so_instead_of_an_empty_table(demo_study):
 
 # -- shared options, formats of the quick commands, help, quiet, progress --------------------
 
-COMMANDS = ["new", "check", "add", "waves", "verify", "prepare", "estimates", "changes", "trends", "composition", "chart",
-            "brief", "demo"]
+COMMANDS = ["new", "check", "add", "waves", "verify", "prepare", "estimates", "changes", "trends", "expect", "surprises",
+            "composition", "chart", "brief", "demo"]
 
 
 def test_top_level_help_lists_the_work_in_order_untruncated_and_every_command_has_an_example():

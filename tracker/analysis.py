@@ -45,6 +45,7 @@ class Analysis:
     trends: pd.DataFrame           # one row per metric x subgroup series, up to this wave
     composition: object | None     # CompositionResult, when one wave is compared and a profile is declared
     mix: dict[str, tuple[str, bool]] = field(default_factory=dict)  # metric -> (note, mostly make-up)
+    surprises: pd.DataFrame | None = None  # every cell against its expected range (tracker.expected)
 
     @property
     def table(self) -> pd.DataFrame:
@@ -72,6 +73,8 @@ class Analysis:
             "family_size": self.changes.family_size, "verdicts": VERDICTS,
             "comparisons": self.comparisons(), "patterns": self.patterns(),
             "make_up": [] if self.composition is None else _records(self.composition.tests),
+            "surprises": [] if self.surprises is None else _records(self.surprises[self.surprises["surprise"]]),
+            "surprises_tested": 0 if self.surprises is None else int(self.surprises["p_raw"].notna().sum()),
             "notes": list(self.changes.notes),
         }
 
@@ -112,7 +115,9 @@ def analyse(study, wave: str | None = None, against: str = "previous", adjust: s
     t = result.table
     moved = t[(t["group"] == "total") & t["significant"]]["metric"].tolist()
     mix = _mix_notes(study, result, comp, moved)
-    return Analysis(study.codebook.title, wave, result.against, adjust, level, result, trends, comp, mix)
+    surprises = study.surprises(wave=wave, adjust=adjust, level=level)
+    return Analysis(study.codebook.title, wave, result.against, adjust, level, result, trends, comp, mix,
+                    surprises if len(surprises) else None)
 
 
 def _mix_notes(study, result, comp, metrics: list[str]) -> dict[str, tuple[str, bool]]:

@@ -56,6 +56,7 @@ class Brief:
     method: tuple[str, ...]
     mix_moves: tuple[Item, ...] = ()
     unclear: tuple[Item, ...] = ()
+    surprises: tuple[Item, ...] = ()
     data: dict = field(default_factory=dict)  # the analysis as plain data (Analysis.to_dict)
     cautions: tuple[str, ...] = CAUTIONS
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
@@ -234,11 +235,23 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     }
     chart_list: list[tuple[str, dict]] = []
     compact: list[tuple[str, dict]] = []
+    thin = _thin_subgroups(study, wave, level)
+    thin_groups = {g for g, _ in thin}
+    smoothed_drawn = any(g in thin_groups for _, g in shown_sub_pairs(sub))  # the same words in every form
+    if thin:
+        where = ("In this brief's subgroup charts (HTML) they also get a smoothed line" if smoothed_drawn else
+                 "'tracker estimates --smooth' and 'tracker chart --smooth' give them a smoothed series")
+        sample.append(Item(
+            f"Thin subgroups (effective base under {SMOOTH_BELOW} in {wave}): "
+            f"{', '.join(f'{lev} ({g})' for g, lev in thin[:8])}{' and more' if len(thin) > 8 else ''}; their "
+            f"estimates swing with sampling noise alone. {where}: a local-level model with each wave's known "
+            f"sampling error (signal extraction, as for repeated surveys since Scott and Smith 1974) damps that "
+            f"noise. The direct estimates stay the figures reported.", "note"))
     if charts:
         from .charts import change_overview, chart_spec, trend_chart
 
         chart_list.append(("Every tested change in total", chart_spec(change_overview(result, totals_only=True))))
-        shown_sub = {(r.metric, g) for r, g in zip(sub.itertuples(), sub["group"])}
+        shown_sub = shown_sub_pairs(sub)
         drawn = [m for m in study.codebook.metrics if m in set(t["metric"])]
         # a metric that neither moved this wave nor follows a pattern gets a small chart in a grid
         moved = headline_metrics | {i.metric for i in subgroup_moves} | {i.metric for i in mix_moves} \
@@ -255,14 +268,55 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
             for m, g in sorted(shown_sub):
                 if m == metric:
                     chart_list.append((f"{label} by {g}", chart_spec(trend_chart(
-                        study, metric, by=g, adjust=adjust, level=level, until=wave))))
+                        study, metric, by=g, adjust=adjust, level=level, until=wave, smooth=g in thin_groups))))
     return Brief(
         title=study.codebook.title, wave=wave, against=result.against, headline=headline,
         subgroup_moves=subgroup_moves, steady=steady, trends=tuple(trend_items), sample_notes=tuple(sample),
         method=method, tables=tables, charts=tuple(chart_list), compact_charts=tuple(compact),
-        mix_moves=mix_moves, unclear=unclear,
+        mix_moves=mix_moves, unclear=unclear, surprises=_surprise_items(analysis),
         data=analysis.to_dict(),
     )
+
+
+#: Subgroups under this effective base in the briefed wave get a smoothed line in their charts.
+SMOOTH_BELOW = 300
+
+
+def shown_sub_pairs(sub: pd.DataFrame) -> set[tuple[str, str]]:
+    """(metric, group) of the subgroup moves that get their own chart."""
+    return {(r.metric, g) for r, g in zip(sub.itertuples(), sub["group"])}
+
+
+def _thin_subgroups(study, wave: str, level: float) -> list[tuple[str, str]]:
+    """(group, level) of the subgroups whose median effective base over the metrics in
+    ``wave`` is under SMOOTH_BELOW."""
+    est = study.estimates(waves=[wave], level=level)
+    sub = est[est["group"] != "total"]
+    if sub.empty:
+        return []
+    med = sub.groupby(["group", "subgroup"], sort=False)["effective_base"].median()
+    return [k for k, v in med.items() if v < SMOOTH_BELOW]
+
+
+def _surprise_items(analysis) -> tuple[Item, ...]:
+    """The cells outside the range the earlier waves predicted, as sentences."""
+    from .expected import shown
+
+    t = analysis.surprises
+    if t is None or not t["surprise"].any():
+        return ()
+    tested = int(t["p_raw"].notna().sum())
+    out = []
+    for r in t[t["surprise"]].sort_values("p_adjusted").itertuples():
+        who = "in total" if r.group == "total" else f"among {r.subgroup} ({r.group})"
+        side = "above" if r.value > r.high else "below"
+        out.append(Item(f"{r.metric_label} {who}: {shown(r.kind, r.value)}, {side} the range of "
+                        f"{shown(r.kind, r.low)} to {shown(r.kind, r.high)} that the earlier waves predicted "
+                        f"(base {int(r.base):,}).", "note", r.metric, r.subgroup))
+    out.append(Item(f"Judged against each series' own pattern and variation, with the false discovery rate held "
+                    f"at {1 - analysis.level:.0%} across all {tested:,} cells: out of line asks for a second look "
+                    f"(fieldwork, the make-up, an event), not a headline by itself.", "note"))
+    return tuple(out)
 
 
 _TABLE_COLS = ["metric_label", "group", "subgroup", "wave_from", "wave_to", "value_from", "value_to", "change",
@@ -358,6 +412,7 @@ SECTIONS = [
     ("subgroup_moves", "Moves in one subgroup only", "No subgroup moved on its own."),
     ("steady", "Held steady", "No measure can be called steady: see the next section."),
     ("unclear", "Not clear either way", ""),
+    ("surprises", "Out of line with the series", ""),
     ("trends", "Trends", "No series has enough waves for a trend."),
     ("sample_notes", "Sample notes", ""),
 ]

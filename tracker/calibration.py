@@ -31,7 +31,7 @@ from .composition import compare_composition
 from .estimates import finish, wave_covariance, wave_estimates
 from .methods.tests import adjust_pvalues
 
-__all__ = ["DESIGNS", "TIERS", "Design", "Rate", "run"]
+__all__ = ["DESIGNS", "FORECAST_DESIGN", "TIERS", "Design", "Rate", "run"]
 
 RATING = np.array([0.10, 0.15, 0.25, 0.30, 0.20])     # category shares of the 1-5 rating
 TRUTH = {"p50": 0.5, "p30": 0.3, "p10": 0.1, "p03": 0.03,
@@ -365,6 +365,106 @@ def _trend_patterns(rng, reps: int, out: list[Rate]) -> None:
             out.append(Rate(TREND_DESIGN, "95% slope interval coverage", name, rate, mc, k, (0.94, 0.96), 0.95))
 
 
+FORECAST_DESIGN = "next wave, surprises and smoothing"
+FORECAST_REPS = {"full": 20000, "quick": 4000, "test": 1500}   # series per setting
+FAMILY = 100  # cells judged together at intake (one wave's family of surprises)
+
+
+def _history(rng, reps: int, K: int, se: float, tau: float, rho: float = 0.0, slope: float = 0.0):
+    """reps series of K + 1 quarterly waves: level 0.6 (plus a slope per year), between-wave
+    deviations N(0, tau^2) (AR(1) with ``rho`` for the misspecified setting) and sampling error."""
+    u = rng.normal(0, tau, (reps, K + 1))
+    if rho:
+        for t in range(1, K + 1):  # AR(1) deviations with the same marginal SD
+            u[:, t] = rho * u[:, t - 1] + np.sqrt(1 - rho**2) * u[:, t]
+    years = np.arange(K + 1) / 4
+    return 0.6 + slope * years[None, :] + u + rng.normal(0, se, (reps, K + 1))
+
+
+def _rows(y: np.ndarray, se: float) -> pd.DataFrame:
+    reps, K = y.shape
+    dates = [f"{2010 + q // 4}-{3 * (q % 4) + 2:02d}-15" for q in range(K)]
+    return pd.DataFrame({"metric": np.repeat([f"m{i}" for i in range(reps)], K), "metric_label": "m",
+                         "kind": "share", "group": "total", "subgroup": "Total",
+                         "wave": np.tile([f"W{i:02d}" for i in range(K)], reps),
+                         "fieldwork_date": np.tile(dates, reps), "value": y.ravel(), "se": se, "reliable": True,
+                         "base": 1000, "effective_base": 900.0})
+
+
+def _judge(y: np.ndarray, se: float, adjust: str = "bh"):
+    """The tool's prediction of each series' last wave from the waves before it, and the
+    surprise table of that wave (one family per call)."""
+    from .expected import predict, surprise_table
+    from .trends import fit_trends
+
+    hist = _rows(y[:, :-1], se)
+    pats = fit_trends(hist, adjust="bh")
+    K = y.shape[1]
+    date = f"{2010 + (K - 1) // 4}-{3 * ((K - 1) % 4) + 2:02d}-15"
+    pred = predict(hist, pats, date)
+    new = _rows(y[:, -1:], se).assign(wave="NEW", fieldwork_date=date)
+    return pred, surprise_table(pred, new, adjust)
+
+
+def _forecasts(rng, reps: int, out: list[Rate]) -> None:
+    """Expected ranges, surprises and smoothing through tracker.expected and tracker.smoothing:
+    14 quarterly waves before the predicted one, sampling SE 1.6 points, between-wave SD 1.5
+    points (the trend setting)."""
+    from .smoothing import smooth_over_q
+
+    K, se, tau = 14, 0.016, 0.015
+    for name, kw in [("level, as the model assumes", {}),
+                     ("a slope of 3 points a year", {"slope": 0.03}),
+                     ("misspecified: deviations AR(1) with rho 0.4", {"rho": 0.4})]:
+        y = _history(rng, reps, K, se, tau, **kw)
+        pred, _ = _judge(y, se)
+        inside = (pred["low"].to_numpy() <= y[:, -1]) & (y[:, -1] <= pred["high"].to_numpy())
+        rate, mc, k = _prop(inside[pred["expected"].notna().to_numpy()])
+        out.append(Rate(FORECAST_DESIGN, "95% expected-range coverage of the next wave", name, rate, mc, k,
+                        (0.93, 0.97), 0.95))
+    families = max(reps // FAMILY, 20)
+    any_false, found, found_se = [], [], []
+    # the SE of a surprise test is the prediction's SD: sampling, wave-to-wave variation and the fit
+    pred_sd = np.sqrt(se**2 + tau**2 + (se**2 + tau**2) / K)
+    for f in range(families):  # families of 100 cells, one wave each: a loop over families
+        y = _history(rng, FAMILY, K, se, tau)
+        _, table = _judge(y, se)
+        any_false.append(bool(table["surprise"].any()))
+        for shift, into in ((5 * pred_sd, found), (5 * se, found_se)):
+            y = _history(rng, FAMILY, K, se, tau)
+            y[:10, -1] += shift  # ten planted one-wave moves
+            _, table = _judge(y, se)
+            into.extend(table["surprise"].to_numpy()[:10].tolist())
+    rate, mc, k = _prop(np.array(any_false))
+    out.append(Rate(FORECAST_DESIGN, "surprise false discovery rate", f"no change, families of {FAMILY} cells",
+                    rate, mc, k, (0.0, 0.05), 0.05))
+    rate, mc, k = _prop(np.array(found))
+    out.append(Rate(FORECAST_DESIGN, "surprise power", f"10 of {FAMILY} cells move 5 prediction SDs "
+                    f"({5 * pred_sd * 100:.1f} points) in one wave", rate, mc, k, (0.70, 1.0)))
+    rate, mc, k = _prop(np.array(found_se))
+    out.append(Rate(FORECAST_DESIGN, "surprise power", f"10 of {FAMILY} cells move 5 sampling SEs "
+                    f"({5 * se * 100:.1f} points) in one wave", rate, mc, k))
+    # a thin subgroup: 150 respondents, a share near 0.6 (SE 4 points); the truth a slow random walk
+    n = 150
+    for walk, promised in ((0.01, True), (0.02, False)):  # slow (the promise) and twice as fast (reported)
+        truth = 0.6 + np.cumsum(rng.normal(0, walk, (reps, K)), axis=1)
+        v = truth * (1 - truth) / n
+        direct = truth + rng.normal(0, 1, (reps, K)) * np.sqrt(v)
+        fit = smooth_over_q(direct, v, np.ones((reps, K), bool))
+        err, base = (fit["mean"] - truth) ** 2, (direct - truth) ** 2
+        ratio = float(err.mean() / base.mean())
+        # MC SE of a ratio of means by the delta method over series
+        a, b = err.mean(axis=1), base.mean(axis=1)
+        mc = float(np.std(a - ratio * b) / (b.mean() * np.sqrt(reps)))
+        setting = f"subgroup of {n}, truth a random walk of {walk * 100:.0f} point(s) a wave"
+        out.append(Rate(FORECAST_DESIGN, "smoothed MSE / direct MSE", setting, ratio, mc, reps,
+                        (0.0, 0.70) if promised else None))
+        half = 1.959963984540054 * np.sqrt(fit["var"])
+        rate, mc, k = _prop((np.abs(fit["mean"] - truth) <= half).ravel())
+        out.append(Rate(FORECAST_DESIGN, "95% smoothed-interval coverage", setting + f", every wave", rate, mc,
+                        reps * K, (0.93, 0.97) if promised else None, 0.95))
+
+
 @dataclass
 class Report:
     rates: list[Rate]
@@ -412,4 +512,7 @@ def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DES
         print(f"{TREND_DESIGN}", file=sys.stderr, flush=True)
     _trend_patterns(np.random.default_rng(np.random.SeedSequence(seed).spawn(len(designs) + 1)[-1]),
                     TREND_REPS[tier], rates)
+    if verbose:
+        print(f"{FORECAST_DESIGN}", file=sys.stderr, flush=True)
+    _forecasts(np.random.default_rng(np.random.SeedSequence([seed, 14])), FORECAST_REPS[tier], rates)
     return Report(rates, tier, seed, time.perf_counter() - start, deff)

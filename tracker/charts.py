@@ -70,7 +70,7 @@ def _chart_table(study, labels: list[str], adjust: str, level: float) -> pd.Data
 
 
 def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95,
-                until: str | None = None) -> pd.DataFrame:
+                until: str | None = None, smooth: bool = False) -> pd.DataFrame:
     """Everything the trend chart draws, one row per wave x subgroup (a plain DataFrame).
     ``until`` ends the series at that wave (a brief of an earlier wave sees no later one)."""
     labels = study.labels
@@ -92,6 +92,11 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
     for col in ("value", "ci_low", "ci_high", "fitted"):
         out[col + "_shown"] = out[col] * f
     out["change_shown"] = out["change"] * f
+    if smooth:  # the smoothed series beside the direct one (tracker.smoothing), never instead of it
+        sm = study.smoothed(metrics=[metric], by=[by] if by else [], waves=labels, level=level, until=labels[-1])
+        out = out.merge(sm[["metric", "group", "subgroup", "wave", "smoothed"]], how="left",
+                        on=["metric", "group", "subgroup", "wave"])
+        out["smoothed_shown"] = out["smoothed"] * f
     out["panel"] = np.where(out["group"] == "total", "Total", out["subgroup"])
     out["date"] = pd.to_datetime(out["fieldwork_date"])
     tested = base["p_adjusted"].notna() & (base["metric"] == metric) & base["group"].isin(["total", by or "total"])
@@ -150,19 +155,23 @@ FIT_COLOUR = OKABE_ITO["bluish green"]
 
 #: The columns of trend_frame a trend chart draws or shows in its tooltip.
 TREND_FIELDS = ["wave", "panel", "segment", "value_shown", "ci_low_shown", "ci_high_shown", "fitted_shown",
-                "pattern", "verdict", "change_shown", "base", "effective_base", "flags"]
+                "pattern", "verdict", "change_shown", "base", "effective_base", "flags", "smoothed_shown"]
+#: The smoothed series: dotted reddish purple, labelled, apart from the black estimates line.
+SMOOTH_COLOUR = OKABE_ITO["reddish purple"]
 
 
 def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", level: float = 0.95,
                 width: int | None = None, height: int = 200, until: str | None = None,
-                compact: bool = False) -> dict:
+                compact: bool = False, smooth: bool = False) -> dict:
     """The metric wave by wave: interval band, line, marked significant steps, fitted trend
     or shift levels, a wording break as a gap with a note, bases under the axis.
 
-    ``compact``: a small chart for a grid (no subtitle, no bases), for series that held."""
+    ``compact``: a small chart for a grid (no subtitle, no bases), for series that held.
+    ``smooth``: also the smoothed series (tracker.smoothing), dotted and labelled "smoothed"."""
     if metric not in study.codebook.metrics:
         raise TrackerError(f"--metric {metric}: not a metric of this study ({', '.join(study.codebook.metrics)})")
-    return trend_spec(trend_frame(study, metric, by, adjust, level, until), by, adjust, level, width, height, compact)
+    return trend_spec(trend_frame(study, metric, by, adjust, level, until, smooth), by, adjust, level, width, height,
+                      compact)
 
 
 def trend_spec(data: pd.DataFrame, by: str | None, adjust: str = "bh", level: float = 0.95,
@@ -221,6 +230,15 @@ def trend_spec(data: pd.DataFrame, by: str | None, adjust: str = "bh", level: fl
         layers.append(fitted)
     if (has_fit & data["pattern"].astype(str).str.startswith("shifted")).any():
         layers.append(levels)  # only layers with data: an empty layer makes the renderer warn
+    if "smoothed_shown" in data.columns and data["smoothed_shown"].notna().any():
+        smooth_mark = {"type": "line", "color": SMOOTH_COLOUR, "strokeDash": [2, 2], "strokeWidth": 2}
+        layers.append({"mark": smooth_mark, "encoding": {"x": x, "y": _field("smoothed_shown", "quantitative"),
+                                                         "detail": detail},
+                       "transform": [{"filter": "isValid(datum.smoothed_shown)"}]})
+        layers.append({"mark": {"type": "text", "align": "left", "dx": 4, "fontSize": 9, "color": SMOOTH_COLOUR},
+                       "encoding": {"x": x, "y": _field("smoothed_shown", "quantitative"), "text": {"value": "smoothed"}},
+                       "transform": [{"filter": {"field": "wave", "equal": labels[-1]}},
+                                     {"filter": "isValid(datum.smoothed_shown)"}]})
     layers += [points] if compact else [points, bases]
     if a["break_wave"]:
         at = {"filter": {"field": "wave", "equal": a["break_wave"]}}
@@ -238,6 +256,8 @@ def trend_spec(data: pd.DataFrame, by: str | None, adjust: str = "bh", level: fl
             f"Triangles: change from the wave before significant at {1 - level:g}, after {ADJUST_METHODS[adjust]}",
             "adjustment across every metric and subgroup of that wave (as in its brief). Dashed green: the fitted "
             "trend or shift.",
+            *(["Dotted purple: smoothed (a local-level model damps the sampling noise; the dots stay the estimates)."]
+              if "smoothed_shown" in data.columns else []),
         ]}
     values = {"values": _values(data, TREND_FIELDS)}
     inner = {"layer": layers, "width": width, "height": height}
@@ -248,11 +268,13 @@ def trend_spec(data: pd.DataFrame, by: str | None, adjust: str = "bh", level: fl
 
 
 def trend_charts(study, metric: str, by: list[str] | tuple[str, ...] = (), adjust: str = "bh",
-                 level: float = 0.95, until: str | None = None) -> dict:
+                 level: float = 0.95, until: str | None = None, smooth: bool = False) -> dict:
     """The trend chart of ``metric``: in total, by one split, or one block of panels per split."""
     if len(by) <= 1:
-        return trend_chart(study, metric, by=by[0] if by else None, adjust=adjust, level=level, until=until)
-    return {"vconcat": [trend_chart(study, metric, by=g, adjust=adjust, level=level, until=until) for g in by]}
+        return trend_chart(study, metric, by=by[0] if by else None, adjust=adjust, level=level, until=until,
+                           smooth=smooth)
+    return {"vconcat": [trend_chart(study, metric, by=g, adjust=adjust, level=level, until=until, smooth=smooth)
+                        for g in by]}
 
 
 OVERVIEW_FIELDS = ["row", "verdict", "significant", "change_shown", "change_low_shown", "change_high_shown",

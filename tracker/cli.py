@@ -343,9 +343,11 @@ def prepare_cmd(study, engine, workers, scheduler, rebuild):
 @level_option
 @click.option("--interval", type=click.Choice(["wilson", "korn-graubard"]), default="wilson", show_default=True,
               help="Interval for shares (means and balances use t).")
+@click.option("--smooth", is_flag=True,
+              help="Add a smoothed value and interval beside each estimate (signal extraction; for thin subgroups).")
 @_fmt_option
 @user_errors
-def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, fmt, wide, output):
+def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, smooth, fmt, wide, output):
     """Every metric by wave and subgroup: value, bases, standard error, interval, flags.
 
     \b
@@ -353,10 +355,21 @@ def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, fmt, wi
     """
     s = Study(study)
     latest_only = fmt == "table" and not output and not waves and not all_waves
-    table = s.estimates(metrics=list(metrics) or None, by=list(by) if by else None,
-                        waves=[s.labels[-1]] if latest_only and s.labels else (list(waves) or None),
-                        level=level, interval=interval)
+    pick = dict(metrics=list(metrics) or None, by=list(by) if by else None,
+                waves=[s.labels[-1]] if latest_only and s.labels else (list(waves) or None), level=level)
+    if smooth:
+        from .estimates import COLUMNS
+
+        if interval != "wilson":
+            raise TrackerError("--smooth works with the default interval; leave out --interval")
+        table = s.smoothed(**pick)[[*COLUMNS, "smoothed", "smoothed_low", "smoothed_high", "signal_sd"]]
+    else:
+        table = s.estimates(**pick, interval=interval)
     note = [f"Wave {s.labels[-1]} only; --all-waves or --wave LABEL for others."] if latest_only and s.labels else []
+    if smooth:
+        note.append("Smoothed: a local-level model with each wave's known sampling error, fitted per series over "
+                    "every wave; it damps sampling noise in thin subgroups. The direct estimate stays the figure "
+                    "reported.")
     emit(table, fmt, "estimates", wide, output, note)
 
 
@@ -441,6 +454,64 @@ def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_o
         "Sampling error and the between-wave variation are both in the intervals; significance is not importance."])
 
 
+@main.command("expect", short_help="The expected range of every metric in the next wave.")
+@click.argument("study", type=click.Path(file_okay=False))
+@metric_option
+@by_option
+@click.option("--base", type=float, default=None, metavar="N",
+              help="The next wave's expected respondents in total (default: the mean of the last three waves).")
+@click.option("--date", default=None, metavar="YYYY-MM-DD",
+              help="The next wave's fieldwork date (default: the latest plus the usual gap).")
+@adjust_option
+@level_option
+@_fmt_option
+@user_errors
+def expect_cmd(study, metrics, by, base, date, adjust, level, fmt, wide, output):
+    """Where every metric x subgroup should land in the next wave, from its pattern so far.
+
+    Anything outside these ranges deserves a second look: it is out of line with the
+    series (its trend or level, its wave-to-wave variation and sampling at the expected base).
+
+    \b
+    Example:  tracker expect demo-study --by total --base 1200
+    """
+    s = Study(study)
+    table = s.expected(base=base, metrics=list(metrics) or None, by=list(by) if by else None, date=date,
+                       adjust=adjust, level=level)
+    emit(table, fmt, "expect", wide, output, [
+        f"Expected ranges ({level:.0%} prediction intervals) for a wave fielded on {table.attrs['date']}, after "
+        f"{table.attrs['after']}.",
+        "Each range holds the series' pattern, its wave-to-wave variation and the sampling error at the expected "
+        "base; a value outside it is worth a second look, not a finding by itself."])
+
+
+@main.command("surprises", short_help="The cells of a wave out of line with their series.")
+@click.argument("study", type=click.Path(file_okay=False))
+@wave_option("The wave to judge against the waves before it (default: the latest).")
+@click.option("--all", "show_all", is_flag=True, help="List every tested cell, not only the surprises.")
+@adjust_option
+@level_option
+@_fmt_option
+@user_errors
+def surprises_cmd(study, wave, show_all, adjust, level, fmt, wide, output):
+    """Every cell of a wave against the range the waves before it predicted, with false
+    discovery control across all cells of the wave.
+
+    \b
+    Example:  tracker surprises demo-study --wave 2024-Q3
+    """
+    from .expected import surprise_lines
+
+    s = Study(study)
+    table = s.surprises(wave=wave, adjust=adjust, level=level)
+    shown = table if show_all else table[table["surprise"]]
+    lines = surprise_lines(table, level)
+    emit(shown.reset_index(drop=True), fmt, "surprises", wide, output, [
+        *(lines[:1] or ["too few earlier waves to predict this one (at least 4 are needed)"]),
+        "A surprise is out of line with its series' pattern and variation: it asks for a second look (fieldwork, "
+        "the sample's make-up, an event), not for a headline by itself."])
+
+
 @main.command("composition", short_help="Compare the sample's make-up with another wave.")
 @click.argument("study", type=click.Path(file_okay=False))
 @wave_option("The wave whose make-up is checked (default: the latest).")
@@ -480,9 +551,10 @@ def composition_cmd(study, wave, against, adjust, level, fmt, wide, output):
 @against_option()
 @adjust_option
 @level_option
+@click.option("--smooth", is_flag=True, help="Also draw the smoothed series (dotted, labelled; for thin subgroups).")
 @click.option("-o", "--output", required=True, type=click.Path(dir_okay=False), help="FILE.html, .png, .svg or .json")
 @user_errors
-def chart_cmd(study, metric, by, overview, wave, against, adjust, level, output):
+def chart_cmd(study, metric, by, overview, wave, against, adjust, level, smooth, output):
     """Draw a metric's trend chart, or the overview of every tested change.
 
     \b
@@ -499,7 +571,7 @@ def chart_cmd(study, metric, by, overview, wave, against, adjust, level, output)
         for g in by:
             if g not in s.codebook.groups:
                 raise TrackerError(f"--by {g}: not a group of this study ({', '.join(s.codebook.groups)})")
-        chart = trend_charts(s, metric, by=list(by), adjust=adjust, level=level)
+        chart = trend_charts(s, metric, by=list(by), adjust=adjust, level=level, smooth=smooth)
     say(f"wrote {save_chart(chart, output)}")
 
 

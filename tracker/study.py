@@ -22,6 +22,7 @@ class CheckReport:
     file: str
     rows: int
     problems: tuple[Problem, ...]
+    surprises: tuple[str, ...] = ()
 
     @property
     def errors(self) -> list[Problem]:
@@ -32,7 +33,7 @@ class CheckReport:
         return not self.errors
 
     def lines(self) -> list[str]:
-        return [p.describe(self.file) for p in self.problems]
+        return [p.describe(self.file) for p in self.problems] + list(self.surprises)
 
 
 @dataclass(frozen=True)
@@ -53,6 +54,7 @@ class AddReport:
     replaced: bool = False
     weighting: dict = field(default_factory=dict)
     make_up: tuple[str, ...] = ()
+    surprises: tuple[str, ...] = ()
 
     def lines(self) -> list[str]:
         out = [
@@ -72,6 +74,7 @@ class AddReport:
                 out.append(f"  left out of {metric}: {parts}")
         out.extend(f"  {w}" for w in self.warnings)
         out.extend(f"  {line}" for line in self.make_up)
+        out.extend(f"  {line}" for line in self.surprises)
         return out
 
 
@@ -187,10 +190,23 @@ class Study:
     def check(self, file: str | Path, wave: str | None = None, date: str | None = None,
               encoding: str | None = None, replace: bool = False, allow_duplicate: bool = False,
               sheet: str | None = None, header_row: int | None = None) -> CheckReport:
-        """Check a wave file against the codebook without changing anything."""
-        report, _, _ = self._check(file, wave, date, encoding, replace, allow_duplicate=allow_duplicate,
-                                   sheet=sheet, header_row=header_row)
+        """Check a wave file against the codebook without changing anything. With the wave's
+        date, its cells are also judged against the ranges the stored waves predict."""
+        report, table, _ = self._check(file, wave, date, encoding, replace, allow_duplicate=allow_duplicate,
+                                       sheet=sheet, header_row=header_row)
+        if report.ok and date and len(table):
+            from dataclasses import replace as _replace
+
+            report = _replace(report, surprises=tuple(self._surprise_lines(table, wave, parse_date(date))))
         return report
+
+    def _surprise_lines(self, table, wave, date) -> list[str]:
+        from .expected import surprise_lines
+
+        try:
+            return surprise_lines(self.surprises(wave=wave, table=table, date=date))
+        except (TrackerError, ValueError):  # judging is a courtesy: it never stops a wave
+            return []
 
     def _check(self, file, wave, date, encoding, replace, rake=False, allow_duplicate=False, sheet=None,
                header_row=None):
@@ -353,11 +369,18 @@ class Study:
         except TrackerError:
             pass
         warnings = tuple(p.describe(Path(file).name) for p in report.problems) + tuple(extra_lines)
+        step(f"adding {wave}", 3, 4, "judging against the earlier waves")
+        try:
+            from .expected import surprise_lines
+
+            judged = tuple(surprise_lines(self.surprises(wave=wave)))
+        except (TrackerError, ValueError):
+            judged = ()
         return AddReport(
             label=wave, date=iso, rows=len(table), weighted_base=sw, effective_base=neff,
             efficiency=neff / len(table), metrics_present=present, metrics_absent=absent,
             variables_missing=missing_vars, warnings=warnings, exclusions=excl,
-            replaced=bool(old), weighting=weighting, make_up=make_up,
+            replaced=bool(old), weighting=weighting, make_up=make_up, surprises=judged,
         )
 
 
@@ -693,6 +716,145 @@ class Study:
             est = self.estimates(metrics=[m.name for m in ms], by=by, waves=labels, level=level)
             self._cache[key] = fit_trends(est, self.segment_starts(ms, labels), adjust, level)
         return self._cache[key].copy()
+
+    # -- before and after a wave (tracker.expected) -----------------------------------------
+    def next_date(self) -> str:
+        """The expected fieldwork date of the next wave: the latest plus the median gap."""
+        dates = [dt.date.fromisoformat(d) for d in self.dates().values()]
+        days = [(b - a).days for a, b in zip(sorted(dates), sorted(dates)[1:])]
+        gap = int(np.median(days)) if days else 91
+        return (max(dates) + dt.timedelta(days=max(gap, 1))).isoformat()
+
+    def expected(self, base: float | None = None, metrics=None, by=None, date: str | None = None,
+                 adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+        """The expected range of the next wave for every metric x subgroup series: the
+        prediction interval from the series' pattern, its wave-to-wave variation and the
+        sampling variance at the expected base (tracker.expected). ``base``: the next
+        wave's expected respondents in total (default: the mean of the last three waves);
+        subgroups get their recent share of it."""
+        from .expected import RANGE_COLUMNS, basis_text, predict, recent_mask
+        from .trends import _series_arrays
+
+        check_level(level)
+        if base is not None and not base > 0:
+            raise TrackerError(f"--base {base}: give the expected number of respondents, above 0")
+        labels = self._pick_waves()
+        date = parse_date(date) if date else self.next_date()
+        if date <= self.dates()[labels[-1]]:
+            raise TrackerError(f"--date {date}: the next wave must come after the latest, {labels[-1]} "
+                               f"({self.dates()[labels[-1]]})")
+        hist = self.estimates(level=level, detail=True)
+        patterns = self.trends(adjust=adjust, level=level)
+        series, _, _, v, ok, _ = _series_arrays(hist)
+        # recent bases and variance x base (unit variance x design effect) per series
+        wide = hist.pivot_table(index=["metric", "group", "subgroup"], columns="wave", values="base", aggfunc="first")
+        wide = wide.reindex(pd.MultiIndex.from_frame(series))[[w for w in labels if w in wide.columns]]
+        bases = wide.to_numpy(float)
+        last3 = recent_mask(ok)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            n_recent = np.where(last3, bases, 0.0).sum(axis=1) / last3.sum(axis=1)
+            vb = np.where(last3, v * bases, 0.0).sum(axis=1) / last3.sum(axis=1)
+        n_new = n_recent
+        if base is not None:  # each series keeps its recent share of the respondents
+            rows = np.mean([self._entry(w)["rows"] for w in labels[-3:]])
+            n_new = base * n_recent / rows
+        with np.errstate(invalid="ignore", divide="ignore"):
+            v_new = pd.Series(vb / n_new, index=pd.MultiIndex.from_frame(series))
+        pred = predict(hist, patterns, date, v_new, self.segment_starts(self._pick_metrics(), labels), level)
+        pred["expected_base"] = n_new
+        book = self.codebook
+        pred["metric_label"] = pred["metric"].map({m.name: m.label for m in book.metrics.values()})
+        pred["kind"] = pred["metric"].map({m.name: m.kind for m in book.metrics.values()})
+        for col in ("expected", "low", "high"):  # shares and balances cannot leave their range
+            lo_edge = np.where(pred["kind"] == "balance", -1.0, 0.0)
+            pred[col] = np.where(pred["kind"] == "mean", pred[col], np.clip(pred[col], lo_edge, 1.0))
+        pred["basis"] = [basis_text(r) for r in pred.itertuples()]
+        ms, gs = self._pick_metrics(metrics), self._pick_groups(by)
+        keep = pred["metric"].isin([m.name for m in ms]) & pred["group"].isin(["total", *gs])
+        out = pred[keep][RANGE_COLUMNS].reset_index(drop=True)
+        out.attrs.update(date=date, after=labels[-1], level=level)
+        return out
+
+    def surprises(self, wave: str | None = None, adjust: str = "bh", level: float = 0.95,
+                  table: pd.DataFrame | None = None, date: str | None = None) -> pd.DataFrame:
+        """Every cell of ``wave`` (default: the latest) against the range the waves before it
+        predict, with the surprises marked under false discovery control across all cells
+        (tracker.expected). With ``table`` and ``date``, a wave not yet stored is judged
+        against every stored wave fielded before it (``check`` and ``add`` do this)."""
+        from .estimates import cell_arrays, estimates_frame
+        from .expected import SURPRISE_COLUMNS, predict, surprise_table
+        from .trends import MIN_WAVES
+
+        check_level(level)
+        labels = self._pick_waves()
+        ms = self._pick_metrics()
+        order = self.dates()
+        if table is None:
+            wave = wave or labels[-1]
+            self._entry(wave)
+            date = order[wave]
+            new = self.estimates(waves=[wave], level=level)
+        else:
+            wave = wave or "new"
+            cells = cell_arrays(self.codebook, table, ms, list(self.codebook.groups))
+            new = estimates_frame([(wave, date, cells)], ms, level)
+            new = new[new["base"] > 0].reset_index(drop=True)
+            order = {**order, wave: date}
+        before = [w for w in labels if order[w] < date and w != wave]
+        if len(before) < MIN_WAVES:
+            return pd.DataFrame(columns=SURPRISE_COLUMNS)
+        key = ("surprise history", tuple(before), adjust, level)
+        if key not in self._cache:
+            self._cache[key] = (self.estimates(waves=before, level=level),
+                                self.trends(adjust=adjust, level=level, until=before[-1]))
+        hist, patterns = self._cache[key]
+        pred = predict(hist, patterns, date, None, self.segment_starts(ms, before), level)
+        # a wording break between the last wave fitted and this one restarts the series: no prediction
+        for m in ms:
+            for vname, b in self._breaks(m):
+                if wave_in_span(wave, b, None, order) and not wave_in_span(before[-1], b, None, order):
+                    pred.loc[pred["metric"] == m.name, ["expected", "prediction_sd", "fit_sd"]] = np.nan
+        return surprise_table(pred, new, adjust, level)
+
+    def smoothed(self, metrics=None, by=None, waves=None, level: float = 0.95, until: str | None = None) -> pd.DataFrame:
+        """The estimates with a smoothed value beside each direct one: signal extraction in a
+        local-level model with each wave's known sampling variance, fitted per series over
+        every stored wave (tracker.smoothing). Adds ``smoothed``, ``smoothed_low``,
+        ``smoothed_high`` and ``signal_sd`` (the random walk's SD per wave); a wording break
+        restarts the series, and cells before the current segment get no smoothed value.
+        ``until`` fits only the waves up to that one (as a brief of that wave sees them)."""
+        from .methods.distributions import norm_ppf
+        from .smoothing import smooth_over_q
+        from .trends import _series_arrays
+
+        check_level(level)
+        upto = self._window(None, None, until)
+        key = ("smoothed", level, tuple(upto))
+        if key not in self._cache:
+            est = self.estimates(level=level, waves=upto)
+            series, labels, y, v, ok, _ = _series_arrays(est)
+            ok = ok & np.isfinite(y) & (v > 0)
+            widx = {w: i for i, w in enumerate(labels)}
+            for metric, start in self.segment_starts(self._pick_metrics(), labels).items():
+                if start in widx:
+                    ok[(series["metric"] == metric).to_numpy(), : widx[start]] = False
+            fit = smooth_over_q(y, v, ok)
+            q = fit["q_ml"]
+            z = norm_ppf(0.5 + level / 2)
+            sd = np.sqrt(fit["var"])
+            frame = pd.DataFrame({
+                "metric": np.repeat(series["metric"].to_numpy(), len(labels)),
+                "group": np.repeat(series["group"].to_numpy(), len(labels)),
+                "subgroup": np.repeat(series["subgroup"].to_numpy(), len(labels)),
+                "wave": np.tile(labels, len(series)),
+                "smoothed": fit["mean"].ravel(), "smoothed_low": (fit["mean"] - z * sd).ravel(),
+                "smoothed_high": (fit["mean"] + z * sd).ravel(), "signal_sd": np.repeat(np.sqrt(q), len(labels)),
+            })
+            self._cache[key] = est.merge(frame, on=["metric", "group", "subgroup", "wave"], how="left")
+        out = self._cache[key]
+        ms, gs, ws = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
+        keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs]) & out["wave"].isin(ws)
+        return out[keep].reset_index(drop=True)
 
     def memo(self, key: tuple, make):
         """``make()`` computed once per Study object (for values derived from the stored

@@ -40,7 +40,8 @@ VIEWS: dict[str, list[Col]] = {
         Col("value", "value", "value", 0), Col(("ci_low", "ci_high"), "interval", "span", 1),
         Col("base", "base", "count", 1), Col("effective_base", "eff. base", "count", 2),
         Col("design_effect", "deff", "deff", 4), Col("se", "SE", "sd", 3), Col("flags", "flags", keep=2),
-        Col("pooled_waves", "pooled", keep=1), Col("group", "split", keep=6),
+        Col("pooled_waves", "pooled", keep=1), Col("smoothed", "smoothed", "value", 1),
+        Col(("smoothed_low", "smoothed_high"), "smoothed interval", "span", 2), Col("group", "split", keep=6),
     ],
     "composition": [
         Col("group", "group", keep=0), Col("level", "level", keep=0),
@@ -55,6 +56,16 @@ VIEWS: dict[str, list[Col]] = {
         Col("p_adjusted", "p adj.", "p", 1), Col("verdict", "verdict", keep=0),
         Col("min_detectable_change", "detectable", "size", 3), Col("base_to", "base", "count", 2),
         Col("flags", "flags", keep=2), Col("group", "split", keep=6), Col("p_raw", "p raw", "p", 7),
+    ],
+    "expect": [
+        Col("metric_label", "metric", keep=0), Col("subgroup", "subgroup", keep=0),
+        Col("expected", "expected", "value", 0), Col(("low", "high"), "range", "span", 0),
+        Col("expected_base", "base", "count", 2), Col("basis", "from", keep=1), Col("group", "split", keep=6),
+    ],
+    "surprises": [
+        Col("metric_label", "metric", keep=0), Col("subgroup", "subgroup", keep=0),
+        Col("value", "value", "value", 0), Col(("low", "high"), "expected range", "span", 0),
+        Col("p_adjusted", "p adj.", "p", 1), Col("base", "base", "count", 2), Col("group", "split", keep=6),
     ],
     "trends": [
         Col("metric_label", "metric", keep=0), Col("subgroup", "subgroup", keep=0), Col("pattern", "pattern", keep=0),

@@ -1,0 +1,145 @@
+"""Expected ranges of the next wave and surprises at intake (tracker.expected)."""
+
+from __future__ import annotations
+
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+
+from tracker import Study
+from tracker.cli import main
+from tracker.expected import predict, surprise_table
+from tracker.methods.distributions import t_ppf
+
+
+def series_rows(values, ses, dates=None, metric="m", kind="share"):
+    k = len(values)
+    dates = dates or [f"{2020 + i // 4}-{3 * (i % 4) + 2:02d}-15" for i in range(k)]
+    return pd.DataFrame({"metric": metric, "metric_label": metric, "kind": kind, "group": "total",
+                         "subgroup": "Total", "wave": [f"W{i:02d}" for i in range(k)], "fieldwork_date": dates,
+                         "value": values, "se": ses, "reliable": True, "base": 1000, "effective_base": 900.0})
+
+
+def test_with_no_between_wave_variation_the_range_is_the_closed_form():
+    # reference: statsmodels WLS with weights 1/v and the scale fixed at 1 (known variances):
+    # its prediction and standard error at the new wave's time, plus the new wave's own v;
+    # the t quantile's df is Satterthwaite's, here (k - 2) sd^4 / mean(v)^2
+    import statsmodels.api as sm
+
+    y = np.array([0.50, 0.51, 0.49, 0.50, 0.51, 0.50, 0.49, 0.50])
+    se = np.array([0.02, 0.025, 0.02, 0.03, 0.02, 0.02, 0.025, 0.02])
+    hist = series_rows(y, se)
+    pats = pd.DataFrame({"metric": ["m"], "group": ["total"], "subgroup": ["Total"], "pattern": ["steady"],
+                         "shift_wave": [None], "blip_wave": [None]})
+    v_new = pd.Series([0.02**2], index=pd.MultiIndex.from_tuples([("m", "total", "Total")]))
+    got = predict(hist, pats, "2022-05-15", v_new).iloc[0]
+    assert got["between_wave_sd"] == 0.0  # these waves vary less than their sampling error
+    years = np.array([(pd.Timestamp(d) - pd.Timestamp(hist["fieldwork_date"][0])).days / 365.25
+                      for d in [*hist["fieldwork_date"], "2022-05-15"]])
+    X = sm.add_constant(years[:-1])
+    fit = sm.WLS(y, X, weights=1 / se**2).fit(cov_type="fixed scale")
+    ref = fit.get_prediction(np.array([[1.0, years[-1]]]))
+    sd = np.sqrt(ref.se_mean[0] ** 2 + 0.02**2)
+    df = (len(y) - 2) * sd**4 / np.mean(se**2) ** 2
+    assert got["expected"] == pytest.approx(ref.predicted_mean[0], abs=1e-10)
+    assert got["prediction_sd"] == pytest.approx(sd, abs=1e-10)
+    assert got["df"] == pytest.approx(df, rel=1e-9)
+    half = t_ppf(0.975, df) * sd
+    assert (got["low"], got["high"]) == pytest.approx((got["expected"] - half, got["expected"] + half), abs=1e-12)
+
+
+def test_a_wave_that_continues_its_trend_is_not_a_surprise_and_a_jump_is():
+    years = np.arange(12) / 4
+    y = 0.40 + 0.04 * years + np.array([0.004, -0.006, 0.003, 0.0, -0.004, 0.005, -0.002, 0.001, 0.003, -0.005,
+                                        0.002, 0.0])
+    hist = series_rows(y, np.full(12, 0.01))
+    pats = pd.DataFrame({"metric": ["m"], "group": ["total"], "subgroup": ["Total"], "pattern": ["rising"],
+                         "shift_wave": [None], "blip_wave": [None]})
+    pred = predict(hist, pats, "2023-02-15")
+    on_trend = 0.40 + 0.04 * 3.0
+    assert pred["expected"].iloc[0] == pytest.approx(on_trend, abs=0.01)
+    for value, expect in ((on_trend, False), (on_trend + 0.08, True)):
+        new = series_rows([value], [0.01], ["2023-02-15"]).assign(wave="NEW")
+        assert bool(surprise_table(pred, new)["surprise"].iloc[0]) is expect
+
+
+def test_the_demo_expected_ranges(demo_study):
+    t = demo_study.expected()
+    for col in ("metric", "group", "subgroup", "low", "high", "expected", "basis"):
+        assert col in t.columns
+    assert len(t) == len(demo_study.trends())  # every series
+    shares = t[t["kind"] == "share"]
+    assert ((shares["low"] >= 0) & (shares["high"] <= 1) & (shares["low"] < shares["expected"])
+            & (shares["expected"] < shares["high"])).all()
+    assert t.attrs["date"] > demo_study.dates()[demo_study.labels[-1]]
+    # a sample twice the size: the sampling part shrinks by sqrt(2), the rest stays
+    rows = np.mean([demo_study._entry(w)["rows"] for w in demo_study.labels[-3:]])
+    big = demo_study.expected(base=2 * rows)
+    a = t.set_index(["metric", "group", "subgroup"])
+    b = big.set_index(["metric", "group", "subgroup"])
+    assert np.allclose(b["sampling_sd"], a["sampling_sd"] / np.sqrt(2), rtol=1e-9, equal_nan=True)
+    assert np.allclose(b["between_wave_sd"], a["between_wave_sd"], equal_nan=True)
+
+
+def test_the_demo_blip_is_a_surprise_when_its_wave_arrives(demo_study):
+    # the demo plants a one-wave dip in clean_good at 2024-Q3 (tracker/demo.py docstring)
+    t = demo_study.surprises("2024-Q3")
+    hits = t[t["surprise"]]
+    assert ("clean_good", "total") in set(zip(hits["metric"], hits["group"]))
+    assert t["p_raw"].notna().sum() == 90  # one family: every reliable cell with a prediction
+    # and the latest wave, which only continues its series, holds none
+    assert not demo_study.surprises()["surprise"].any()
+
+
+def test_a_wording_break_restarts_the_series(demo_study):
+    # the demo's 'safe' question changed wording at 2024-Q1: that wave cannot be judged against the old wording
+    t = demo_study.surprises("2024-Q1")
+    safe = t[t["metric"] == "safe"]
+    assert len(safe) and safe["p_raw"].isna().all()
+
+
+def test_check_and_add_report_the_surprises_of_an_incoming_wave(demo_study, tmp_path):
+    # replay: the study up to 2024-Q2, then the 2024-Q3 file arrives
+    root = tmp_path / "study"
+    shutil.copytree(demo_study.root, root)
+    s = Study(root)
+    source = tmp_path / "q3.parquet"
+    s.load("2024-Q3").to_parquet(source)
+    ledger = s._ledger
+    keep = [w for w in ledger["waves"] if w["date"] < s.dates()["2024-Q3"]]
+    from tracker import store
+
+    store.write_ledger(root, {**ledger, "waves": keep})
+    shutil.rmtree(root / "cache", ignore_errors=True)
+    out = CliRunner().invoke(main, ["check", str(root), str(source), "--wave", "2024-Q3", "--date",
+                                    demo_study.dates()["2024-Q3"]])
+    assert out.exit_code == 0, out.output
+    assert "cells lie outside their expected range" in out.output
+    assert "Cleanliness good or very good, in total:" in out.output
+    report = Study(root).add(source, "2024-Q3", demo_study.dates()["2024-Q3"], allow_duplicate=True)
+    assert any("Cleanliness good or very good, in total:" in line for line in report.lines())
+
+
+def test_the_commands(demo_study, tmp_path):
+    out = CliRunner().invoke(main, ["expect", str(demo_study.root), "--format", "csv", "--by", "total"])
+    assert out.exit_code == 0, out.output
+    head = out.output.splitlines()[0].split(",")
+    assert head[:8] == ["metric", "metric_label", "kind", "group", "subgroup", "expected", "low", "high"]
+    assert len(out.output.strip().splitlines()) == 1 + len(demo_study.codebook.metrics)
+    bad = CliRunner().invoke(main, ["expect", str(demo_study.root), "--date", "2020-01-01"])
+    assert bad.exit_code == 1 and "must come after the latest" in bad.output
+    sur = CliRunner().invoke(main, ["surprises", str(demo_study.root), "--wave", "2024-Q3", "--format", "json"])
+    assert sur.exit_code == 0
+    import json
+
+    rows = json.loads(sur.output)
+    assert rows and all(r["surprise"] for r in rows)
+
+
+def test_the_analysis_and_the_brief_json_carry_the_surprises(demo_study):
+    doc = demo_study.analysis(wave="2024-Q3").to_dict()
+    assert doc["surprises_tested"] == 90
+    assert any(r["metric"] == "clean_good" and r["group"] == "total" for r in doc["surprises"])
