@@ -22,7 +22,7 @@ sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
 
-from tracker.calibration import DESIGNS, TIERS, TREND_DESIGN, TREND_REPS, Report, run  # noqa: E402
+from tracker.calibration import FORECAST_DESIGN, FORECAST_REPS, DESIGNS, TIERS, TREND_DESIGN, TREND_REPS, Report, run  # noqa: E402
 
 
 def _limits() -> str:
@@ -90,7 +90,18 @@ def render(report: Report) -> str:
             "Change tests: t on V_to + V_from - 2 Cov with Satterthwaite degrees of freedom. Sharing scenarios keep "
             "the cluster labels, with cluster effects correlated 0.8 between waves, and bring back 30 % or 70 % of "
             "each cluster's respondents with latents correlated 0.6.", ""]
-    sections = [(d.name, "") for d in DESIGNS] + [(TREND_DESIGN, (
+    sections = [(d.name, "") for d in DESIGNS] + [(FORECAST_DESIGN, (
+        f"{FORECAST_REPS[report.tier]:,} series per setting of 14 quarterly waves and the one after, sampling SE "
+        "1.6 points, between-wave SD 1.5 points, through tracker/expected.py: the pattern classifier, then a "
+        "line through each series' waves (through the waves since a step; without a blip's wave) as a "
+        "random-effects meta-regression, and the prediction interval of the next wave with its sampling "
+        "variance (Satterthwaite df). Surprises: families of 100 cells judged at once with Benjamini-Hochberg "
+        "at 5 %; with no change anywhere a family's false discovery rate is the chance of any surprise. The "
+        "SE of a surprise test is the prediction's SD (about 2.3 points here: sampling, wave-to-wave variation "
+        "and the fit), so a move of 5 sampling SEs is only about 3.5 of them; both are shown. Smoothing: a "
+        "subgroup of 150 respondents (a share near 0.6, SE about 4 points) whose true value walks at random, "
+        "through tracker/smoothing.py (the local-level smoother averaged over the signal variance); the "
+        "coverage counts every wave of every series against its true value."))] + [(TREND_DESIGN, (
         f"One series of 14 quarterly waves at a time ({TREND_REPS[report.tier]:,} per setting), sampling SE 1.6 "
         "points and between-wave SD 1.5 points, through the pattern classifier of tracker/trends.py: one test per "
         "series of 'not steady' against a straight line, a step at any wave and a one-wave blip at any wave "
@@ -129,8 +140,9 @@ def render(report: Report) -> str:
             "that pass are a biased selection and their intervals cover less often (for a share of 0.1 in a subgroup "
             "of about 80, the rule passes only a few percent of the cells). The rule protects against reading such "
             "cells; pooled waves or the total are the better source for them.",
-            "", "Not covered here yet: the expected range of the next wave and smoothed series for thin subgroups; "
-            "their rates will be added with those methods.", ""]
+            "", "Smoothing is promised for a slowly moving series (1 point a wave); at twice that speed (reported) "
+            "the smoother still halves the error but its interval covers less than promised, since the signal "
+            "variance is then harder to learn from 14 waves of a thin subgroup.", ""]
     return "\n".join(out)
 
 

@@ -291,6 +291,12 @@ def test_docs_columns_lists_exactly_the_columns_each_command_writes(demo_study):
     mix = demo_study.changes(wave="2025-Q4", by=[], mix="frequency").mix
     mix_text = doc.split("With `--mix GROUP`")[1].split("## trends")[0]
     assert set(re.findall(r"`([a-z0-9_]+)`", mix_text)) >= set(mix.columns)
+    from tracker.expected import RANGE_COLUMNS, SURPRISE_COLUMNS
+
+    assert named("expect") == RANGE_COLUMNS
+    assert named("surprises") == SURPRISE_COLUMNS
+    smooth_text = doc.split("With `estimates --smooth`")[1].split("## changes")[0]
+    assert set(re.findall(r"`([a-z_]+)`", smooth_text)) >= {"smoothed", "smoothed_low", "smoothed_high", "signal_sd"}
     comp = demo_study.composition(wave="2025-Q4").table()
     comp_text = doc.split("## composition\n")[1].split("\n## ")[0]
     assert set(comp.columns) <= set(re.findall(r"`([a-z0-9_]+)`", comp_text))

@@ -143,3 +143,12 @@ def test_the_analysis_and_the_brief_json_carry_the_surprises(demo_study):
     doc = demo_study.analysis(wave="2024-Q3").to_dict()
     assert doc["surprises_tested"] == 90
     assert any(r["metric"] == "clean_good" and r["group"] == "total" for r in doc["surprises"])
+
+
+def test_the_readme_shows_what_the_command_prints(demo_study):
+    from pathlib import Path
+
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
+    block = readme.split("on the demo it finds the planted one-wave dip")[1].split("```")[1].strip().splitlines()
+    out = CliRunner().invoke(main, ["surprises", str(demo_study.root), "--wave", "2024-Q3"]).output.splitlines()
+    assert block[:4] == out[:4]
