@@ -306,7 +306,7 @@ class Study:
             table, result = rake_table(book, table, cap=cap)
             weighting = result.ledger_entry()
             extra_lines = result.lines()
-        from .cells import exclusions, metric_matrix
+        from .cells import exclusions
         from .estimates import weights_of
 
         step(f"adding {wave}", 1, 4, "summarising")
@@ -314,9 +314,10 @@ class Study:
         sw, sw2 = float(weights.sum()), float((weights**2).sum())
         neff = sw * sw / sw2
         metrics = list(book.metrics.values())
-        _, E = metric_matrix(book, table, metrics)
-        present = tuple(m.name for j, m in enumerate(metrics) if E[:, j].any())
-        absent = tuple(m.name for j, m in enumerate(metrics) if not E[:, j].any())
+        cells, ids = self._wave_cells(table)  # computed once: the presence of each metric and the cache
+        answered = cells.stats["base"][0] > 0  # the total's base of each metric
+        present = tuple(m.name for j, m in enumerate(metrics) if answered[j])
+        absent = tuple(m.name for j, m in enumerate(metrics) if not answered[j])
         missing_vars = tuple(v for v in book.variables if not set(book.column_for(v)) <= set(table.columns))
         excl = {m.name: exclusions(book, table, m) for m in metrics if m.name in present}
         earlier = [w for w in self.wave_entries if w["date"] < iso and w["label"] != wave]
@@ -364,10 +365,10 @@ class Study:
             raise
         self._ledger = ledger
         self._cache = {}  # a replaced wave changes what was derived from it
-        try:  # the new wave's cell statistics, ready for the next command (derived; may fail quietly)
-            self._compute_cells(wave, table, locked=True)
-        except TrackerError:
-            pass
+        if cells is not None:  # the new wave's cell statistics, ready for the next command (derived)
+            from .cache import write_cells
+
+            write_cells(self.root, wave, self._cache_key(wave), cells, ids, locked=True)
         warnings = tuple(p.describe(Path(file).name) for p in report.problems) + tuple(extra_lines)
         step(f"adding {wave}", 3, 4, "judging against the earlier waves")
         try:
@@ -419,19 +420,25 @@ class Study:
 
         return cache_key(self.root, self._entry(label), self.codebook.sha256)
 
-    def _compute_cells(self, label: str, table: pd.DataFrame | None = None, locked: bool = False):
-        """Every cell's statistics of a wave (all metrics, every split), computed from its
-        respondents and saved in the study's cache."""
-        from .cache import write_cells
+    def _wave_cells(self, table: pd.DataFrame):
+        """Every cell's statistics of a wave table (all metrics, every split) and the hashes
+        of its respondent ids."""
         from .estimates import cell_arrays
 
         book = self.codebook
-        table = self.load(label) if table is None else table
         cells = cell_arrays(book, table, list(book.metrics.values()), list(book.groups),
                             keep_psu=bool(book.clusters and book.waves_share_clusters))
         ids = None
         if book.id and book.id in table.columns:
             ids = pd.util.hash_array(table[book.id].astype(str).to_numpy(dtype=object))
+        return cells, ids
+
+    def _compute_cells(self, label: str, table: pd.DataFrame | None = None, locked: bool = False):
+        """Every cell's statistics of a stored wave, computed from its respondents and saved
+        in the study's cache."""
+        from .cache import write_cells
+
+        cells, ids = self._wave_cells(self.load(label) if table is None else table)
         write_cells(self.root, label, self._cache_key(label), cells, ids, locked=locked)
         return cells, ids
 
