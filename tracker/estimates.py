@@ -422,7 +422,9 @@ def single_cluster_lines(codebook: Codebook, table: pd.DataFrame, groups: list[s
     strata, clusters = design_labels(codebook, table)
     if strata is None or clusters is None:
         return []
-    names = np.unique(strata)
+    # integer codes once (strata numbered as np.unique orders them): each level's check is then cheap
+    names, strata = np.unique(strata, return_inverse=True)
+    clusters = np.unique(clusters, return_inverse=True)[1]
     rule = codebook.single_cluster_rule
     out = []
     lone = single_cluster_strata(strata, clusters)

@@ -135,8 +135,7 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
         if table.columns.duplicated().any():
             raise TrackerError(f"{path}, column {table.columns[table.columns.duplicated()][0]}: the column name "
                                f"appears more than once")
-        table = table.astype(object).where(table.notna(), "")
-        table = table.map(lambda v: v if isinstance(v, str) else _plain(v))
+        table = pd.DataFrame({c: _plain_column(table[c]) for c in table.columns}, columns=table.columns)
         first_row = 1
     elif suffix in (".xlsx", ".xlsm"):
         table, first_row, problems = _read_xlsx(path, sheet, header_row)
@@ -203,6 +202,29 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     problems = [Problem("warning", "", f"sheet {sheet}: column names read from row {header_row}; rows above it "
                                        f"left out")] if header_row > 1 else []
     return table, header_row + 1, problems
+
+
+def _plain_column(col: pd.Series) -> pd.Series:
+    """:func:`_plain` of every cell of a typed column, a column at once where its type allows
+    (numbers, booleans, text); other cells one by one. Missing cells become ''."""
+    values = col.to_numpy()
+    missing = col.isna().to_numpy()
+    if pd.api.types.is_bool_dtype(col) and not missing.any():
+        return pd.Series(values.astype(np.int64).astype(str).astype(object), index=col.index)
+    if pd.api.types.is_integer_dtype(col) and not missing.any():
+        return pd.Series(values.astype(np.int64).astype(str).astype(object), index=col.index)
+    if pd.api.types.is_float_dtype(col):
+        x = col.to_numpy(dtype=float)
+        whole = np.isfinite(x) & (x == np.round(x)) & (np.abs(x) < 2.0**53)
+        out = np.where(whole, np.where(whole, x, 0).astype(np.int64).astype(str), x.astype(str)).astype(object)
+        out[np.isnan(x)] = ""
+        big = np.isfinite(x) & (x == np.round(x)) & ~whole  # whole numbers past 2^53: exact digits
+        out[big] = [str(int(v)) for v in x[big]]
+        return pd.Series(out, index=col.index)
+    obj = col.astype(object)
+    if pd.api.types.is_string_dtype(col) and col.dtype != object:
+        return obj.where(~missing, "")
+    return obj.where(~missing, "").map(lambda v: v if isinstance(v, str) else _plain(v))
 
 
 def _plain(v) -> str:
