@@ -420,14 +420,21 @@ def part_growth(tmp: Path, rows: list) -> None:
             study.add(path, label(k), date(k))
 
 
+class Rows(list):
+    """The result rows, each printed as it comes (the whole run takes a while)."""
+
+    def append(self, row) -> None:
+        super().append(row)
+        print(f"| {row[0]} | {row[1]} | {row[2]} |", flush=True)
+
+
 def machine() -> str:
     try:
-        import threadpoolctl
-
-        blas = ", ".join(sorted({f"{p['internal_api']} {p['num_threads']} threads"
-                                 for p in threadpoolctl.threadpool_info()}))
-    except ImportError:
+        info = np.show_config(mode="dicts")["Build Dependencies"]["blas"]
+        blas = f"{info['name']} {info.get('version', '')}".strip()
+    except Exception:  # older numpy: no dict form
         blas = "BLAS not reported"
+    blas += f", {os.environ.get('OPENBLAS_NUM_THREADS', 'default')} BLAS thread(s)"
     return (f"{os.cpu_count()} cores, {platform.machine()}, Python {platform.python_version()}, "
             f"numpy {np.__version__}, {blas}")
 
@@ -437,7 +444,9 @@ def main() -> None:
     ap.add_argument("--quick", action="store_true", help="the clustered study only")
     ap.add_argument("--ten-million", action="store_true", help="also the 10,000,000-respondent study (scale extra)")
     args = ap.parse_args()
-    rows: list[tuple[str, str, str]] = []
+    print(f"machine: {machine()}; {time.strftime('%Y-%m-%d')}")
+    print("| measurement | time | note |\n|---|---|---|", flush=True)
+    rows = Rows()
     with tempfile.TemporaryDirectory() as tmp:
         part_clustered(Path(tmp), rows, args.quick)
         if not args.quick:
@@ -446,10 +455,6 @@ def main() -> None:
             part_growth(Path(tmp), rows)
             if args.ten_million:
                 part_ten_million(Path(tmp), rows)
-    print(f"machine: {machine()}; {time.strftime('%Y-%m-%d')}")
-    print("| measurement | time | note |\n|---|---|---|")
-    for r in rows:
-        print(f"| {r[0]} | {r[1]} | {r[2]} |")
 
 
 if __name__ == "__main__":

@@ -35,19 +35,20 @@ def test_cached_estimates_equal_the_computed_ones_exactly(demo_copy):
     pd.testing.assert_frame_equal(first, again)
 
 
-def test_a_changed_wave_file_or_codebook_rebuilds_the_entry(demo_copy):
+def test_a_replaced_wave_or_a_changed_codebook_rebuilds_the_entry(demo_copy):
     s = Study(demo_copy)
     s.estimates()
     label = s.labels[-1]
     key = s._cache_key(label)
     assert read_cells(demo_copy, label, key) is not None
-    wave_file = demo_copy / s._entry(label)["file"]
-    st = wave_file.stat()
-    os.utime(wave_file, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))  # the file touched: the key moves
+    table = s.load(label)
+    path = demo_copy.parent / "again.parquet"
+    table.iloc[:-5].to_parquet(path)  # the wave replaced by a different file: a new file, a new key
+    s.add(path, label, s.dates()[label], replace=True)
     s2 = Study(demo_copy)
-    assert s2._cache_key(label) != key and read_cells(demo_copy, label, s2._cache_key(label)) is None
-    s2.estimates()
-    assert read_cells(demo_copy, label, s2._cache_key(label)) is not None
+    assert s2._cache_key(label) != key and read_cells(demo_copy, label, key) is None  # the old entry is gone
+    got = read_cells(demo_copy, label, s2._cache_key(label))  # add stored the new wave's
+    assert got is not None and got.stats["base"][0].max() <= len(table) - 5
     text = (demo_copy / "codebook.yaml").read_text()
     (demo_copy / "codebook.yaml").write_text(text + "\n# a comment changes the codebook's SHA-256\n")
     s3 = Study(demo_copy)
@@ -79,7 +80,7 @@ def test_a_study_that_cannot_be_written_still_answers(demo_copy, monkeypatch):
     import errno
 
     @contextlib.contextmanager
-    def refused(path):  # a read-only folder (the test may run as root, who could write anyway)
+    def refused(path, durable=True):  # a read-only folder (the test may run as root, who could write anyway)
         raise PermissionError(errno.EACCES, "Permission denied")
         yield
 

@@ -221,7 +221,7 @@ def test_an_output_that_cannot_be_written_ends_in_one_line(demo_study, tmp_path,
     import contextlib
 
     @contextlib.contextmanager
-    def refused(path):
+    def refused(path, durable=True):
         raise PermissionError(errno.EACCES, "Permission denied")
         yield
 

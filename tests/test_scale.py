@@ -95,3 +95,20 @@ def test_prepare_at_the_command_line(clustered_study, tmp_path):
     assert sorted(p.name for p in (copy / "cache").glob("*.npz")) == [f"{w}.npz" for w in clustered_study.labels]
     again = CliRunner().invoke(main, ["prepare", str(copy), "--workers", "0"])
     assert again.exit_code == 1 and "--workers 0: give 1 or more" in again.output
+
+
+def test_a_scheduler_address_is_used_as_given(clustered_study, tmp_path):
+    import shutil
+
+    distributed = pytest.importorskip("distributed")
+    from tracker import Study, TrackerError
+    from tracker.scale import prepare
+
+    copy = tmp_path / "copy"
+    shutil.copytree(clustered_study.root, copy)
+    shutil.rmtree(copy / "cache", ignore_errors=True)
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as c:
+        report = prepare(Study(copy), scheduler=c.scheduler_address)
+    assert report.computed == tuple(clustered_study.labels) and c.scheduler_address in report.where
+    with pytest.raises(TrackerError, match="give --workers or --scheduler, not both"):
+        prepare(Study(copy), workers=2, scheduler="tcp://127.0.0.1:1", rebuild=True)

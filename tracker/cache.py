@@ -2,7 +2,7 @@
 trends and the brief read small per-cell tables instead of every wave's respondents.
 
 Derived data, never the source of truth: a wave's entry is used only when its key (the
-stored wave file's SHA-256, size and modification time, the codebook's SHA-256 and
+stored wave file's SHA-256 in the ledger and its size, the codebook's SHA-256 and
 :data:`tracker.estimates.STATS_VERSION`) matches; otherwise the statistics are computed
 again from the wave and the entry rewritten. Entries are written atomically (a temporary
 file renamed into place) under the study's write lock; a reader that cannot have the lock
@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 from pathlib import Path
 
 import numpy as np
@@ -31,14 +30,16 @@ FORMAT = 1
 
 
 def cache_key(root: Path, entry: dict, codebook_sha256: str) -> str:
-    """The key of a wave's entry: what the statistics were computed from."""
+    """The key of a wave's entry: what the statistics were computed from. A stored wave file
+    is never rewritten (a replaced wave gets a new file and SHA-256 in the ledger), so the
+    ledger's SHA-256 and the file's size name its content; a copied study keeps its cache.
+    A file changed behind the ledger's back is damage, which ``tracker verify`` finds."""
     path = root / entry["file"]
     try:
-        st = path.stat()
-        where = [st.st_size, st.st_mtime_ns]
+        size = path.stat().st_size
     except OSError:
-        where = [None, None]
-    text = json.dumps([FORMAT, STATS_VERSION, entry["file"], entry.get("sha256"), *where, codebook_sha256])
+        size = None
+    text = json.dumps([FORMAT, STATS_VERSION, entry["file"], entry.get("sha256"), size, codebook_sha256])
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
@@ -129,8 +130,8 @@ def write_cells(root: Path, label: str, key: str, cells: CellArrays, id_hashes: 
 
 
 def _write(folder: Path, label: str, arrays: dict) -> None:
-    with store.incoming(folder / f"{label}.npz") as tmp:
+    # no fsync: after a crash an entry may be cut short, and then it fails to load or its key
+    # to match, and is computed again; the cost of syncing 80 MB of cache is not worth it
+    with store.incoming(folder / f"{label}.npz", durable=False) as tmp:
         with open(tmp, "wb") as fh:
             np.savez(fh, **arrays)
-            fh.flush()
-            os.fsync(fh.fileno())

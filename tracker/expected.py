@@ -31,7 +31,7 @@ from .methods.distributions import t_ppf, t_sf
 from .methods.tests import adjust_pvalues
 from .trends import MIN_WAVES, _series_arrays, meta_regression
 
-__all__ = ["MODELS", "RANGE_COLUMNS", "SURPRISE_COLUMNS", "basis_text", "predict", "recent_mask", "shown",
+__all__ = ["MODELS", "RANGE_COLUMNS", "SURPRISE_COLUMNS", "WINDOW", "basis_text", "predict", "recent_mask", "shown",
            "surprise_lines", "surprise_table"]
 
 KEYS = ["metric", "group", "subgroup"]
@@ -41,6 +41,11 @@ KEYS = ["metric", "group", "subgroup"]
 #: flat level after a step too narrow when a slow slope was read as steady or as a step.
 MODELS = {"rising": "line", "falling": "line", "moved up": "line", "moved down": "line",
           "shifted up": "step", "shifted down": "step", "steady": "line", "one-wave blip": "line"}
+
+#: Predictions use the latest this many waves (six years of quarters, two of months): the
+#: recent series is what a new wave should follow, and judging a wave at intake then costs
+#: the same however long the study has run.
+WINDOW = 24
 
 #: Columns of the expected-range table (docs/columns.md).
 RANGE_COLUMNS = ["metric", "metric_label", "kind", "group", "subgroup", "expected", "low", "high", "basis",

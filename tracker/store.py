@@ -85,22 +85,25 @@ def _umask_mode() -> int:
 
 
 @contextmanager
-def incoming(path: Path):
+def incoming(path: Path, durable: bool = True):
     """A temporary file in ``path``'s folder, renamed over ``path`` when the block ends
-    without error and removed otherwise (an interrupt included)."""
+    without error and removed otherwise (an interrupt included). ``durable`` syncs the file
+    and the folder to disk (derived data, such as the cache, can skip it)."""
     # the writer's pid in the name: a sweep removes only the leftovers of dead processes
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".incoming-{os.getpid()}-", suffix=".tmp")
     os.close(fd)
     os.chmod(tmp, _umask_mode())  # mkstemp makes 0600; a finished file gets the usual mode
     try:
         yield tmp
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
+        if durable:
+            with open(tmp, "rb+") as fh:
+                os.fsync(fh.fileno())
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise
-    _fsync_dir(path.parent)
+    if durable:
+        _fsync_dir(path.parent)
 
 
 def write_atomic(path: Path, data: bytes) -> None:

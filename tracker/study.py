@@ -297,6 +297,7 @@ class Study:
         report, table, wf = self._check(file, wave, iso, encoding, replace, rake, allow_duplicate, sheet, header_row)
         if not report.ok:
             raise TrackerError("\n".join(["cannot add " + str(file) + ":"] + report.lines()))
+        wf.table = None  # the file's cells as text are no longer needed (the largest object of a big wave)
         book = self.codebook
         weighting: dict = {"kind": "file", "column": book.weight} if book.weight else {"kind": "none"}
         extra_lines: list[str] = []
@@ -522,9 +523,12 @@ class Study:
 
         ms, gs, ws = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
         dates, names = self.dates(), [m.name for m in ms]
-        out = estimates_frame([(w, dates[w], self._cells(w).select(names, gs)) for w in ws], ms, level, interval)
-        out = out[out["base"] > 0].reset_index(drop=True)
-        return out if detail else out[COLUMNS]
+        key = ("estimates", tuple(ws), tuple(names), tuple(gs), level, interval)
+        if key not in self._cache:  # trends, surprises and charts ask for the same table again
+            out = estimates_frame([(w, dates[w], self._cells(w).select(names, gs)) for w in ws], ms, level, interval)
+            self._cache[key] = out[out["base"] > 0].reset_index(drop=True)
+        out = self._cache[key]
+        return out.copy() if detail else out[COLUMNS]
 
     def matters(self) -> dict[str, float]:
         """The smallest change that matters per metric (codebook ``smallest_change``), in value units."""
@@ -745,13 +749,16 @@ class Study:
         check_level(level)
         if base is not None and not base > 0:
             raise TrackerError(f"--base {base}: give the expected number of respondents, above 0")
+        from .expected import WINDOW
+
         labels = self._pick_waves()
         date = parse_date(date) if date else self.next_date()
         if date <= self.dates()[labels[-1]]:
             raise TrackerError(f"--date {date}: the next wave must come after the latest, {labels[-1]} "
                                f"({self.dates()[labels[-1]]})")
-        hist = self.estimates(level=level, detail=True)
-        patterns = self.trends(adjust=adjust, level=level)
+        labels = labels[-WINDOW:]
+        hist = self.estimates(level=level, detail=True, waves=labels)
+        patterns = self.trends(adjust=adjust, level=level, last=len(labels))
         series, _, _, v, ok, _ = _series_arrays(hist)
         # recent bases and variance x base (unit variance x design effect) per series
         wide = hist.pivot_table(index=["metric", "group", "subgroup"], columns="wave", values="base", aggfunc="first")
@@ -789,7 +796,7 @@ class Study:
         (tracker.expected). With ``table`` and ``date``, a wave not yet stored is judged
         against every stored wave fielded before it (``check`` and ``add`` do this)."""
         from .estimates import cell_arrays, estimates_frame
-        from .expected import SURPRISE_COLUMNS, predict, surprise_table
+        from .expected import SURPRISE_COLUMNS, WINDOW, predict, surprise_table
         from .trends import MIN_WAVES
 
         check_level(level)
@@ -807,13 +814,13 @@ class Study:
             new = estimates_frame([(wave, date, cells)], ms, level)
             new = new[new["base"] > 0].reset_index(drop=True)
             order = {**order, wave: date}
-        before = [w for w in labels if order[w] < date and w != wave]
+        before = [w for w in labels if order[w] < date and w != wave][-WINDOW:]
         if len(before) < MIN_WAVES:
             return pd.DataFrame(columns=SURPRISE_COLUMNS)
         key = ("surprise history", tuple(before), adjust, level)
         if key not in self._cache:
             self._cache[key] = (self.estimates(waves=before, level=level),
-                                self.trends(adjust=adjust, level=level, until=before[-1]))
+                                self.trends(adjust=adjust, level=level, until=before[-1], last=len(before)))
         hist, patterns = self._cache[key]
         pred = predict(hist, patterns, date, None, self.segment_starts(ms, before), level)
         # a wording break between the last wave fitted and this one restarts the series: no prediction
