@@ -240,9 +240,10 @@ def id_hashes(book: Codebook, path: str | Path, batch: int = 1_000_000) -> np.nd
 
 # -- spreading the waves ----------------------------------------------------------------------
 
-def wave_task(root: str, label: str, engine: str = "pandas"):
+def wave_task(root: str, label: str, engine: str = "pandas", threads: int | None = 1):
     """One wave's (label, cache key, cell arrays, id hashes), computed where this runs (a
-    worker needs the study folder at the same path)."""
+    worker needs the study folder at the same path; ``threads`` for DuckDB: one per worker
+    process, all cores in this one)."""
     from .study import Study
 
     study = Study(root)
@@ -251,7 +252,7 @@ def wave_task(root: str, label: str, engine: str = "pandas"):
     keep = bool(book.clusters and book.waves_share_clusters)
     if engine == "duckdb":
         path = study.root / study._entry(label)["file"]
-        return label, key, duckdb_cells(book, path, keep_psu=keep, threads=1), id_hashes(book, path)
+        return label, key, duckdb_cells(book, path, keep_psu=keep, threads=threads), id_hashes(book, path)
     from .estimates import cell_arrays
 
     table = study.load(label)
@@ -296,7 +297,7 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
     if not todo:
         return PrepareReport((), current, engine, "nothing to do")
     if workers is None and scheduler is None:
-        results = [wave_task(root, w, engine) for w in todo]
+        results = [wave_task(root, w, engine, threads=None) for w in todo]
         where = "in this process"
     else:
         _need("distributed")
