@@ -92,7 +92,8 @@ def test_prepare_at_the_command_line(clustered_study, tmp_path):
     assert out.exit_code == 0, out.output
     assert out.output.strip() == ("computed the statistics of 3 wave(s) (pandas, in this process); "
                                   "0 already up to date")
-    assert sorted(p.name for p in (copy / "cache").glob("*.npz")) == [f"{w}.npz" for w in clustered_study.labels]
+    names = sorted(p.name for p in (copy / "cache").glob("*.npz"))
+    assert names == sorted([f"{w}.npz" for w in clustered_study.labels] + [f"{w}.psu.npz" for w in clustered_study.labels])
     again = CliRunner().invoke(main, ["prepare", str(copy), "--workers", "0"])
     assert again.exit_code == 1 and "--workers 0: give 1 or more" in again.output
 
@@ -112,3 +113,20 @@ def test_a_scheduler_address_is_used_as_given(clustered_study, tmp_path):
     assert report.computed == tuple(clustered_study.labels) and c.scheduler_address in report.where
     with pytest.raises(TrackerError, match="give --workers or --scheduler, not both"):
         prepare(Study(copy), workers=2, scheduler="tcp://127.0.0.1:1", rebuild=True)
+
+
+def test_cluster_totals_are_kept_only_when_a_comparison_needs_them(clustered_study, tmp_path):
+    import shutil
+
+    from tracker import Study
+
+    copy = tmp_path / "copy"
+    shutil.copytree(clustered_study.root, copy)
+    shutil.rmtree(copy / "cache", ignore_errors=True)
+    Study(copy).estimates()
+    assert not list((copy / "cache").glob("*.psu.npz"))  # estimates need no cluster totals
+    first = Study(copy).changes().table
+    assert sorted(p.name for p in (copy / "cache").glob("*.psu.npz")) == \
+        [f"{w}.psu.npz" for w in clustered_study.labels[-2:]]  # the two waves compared
+    again = Study(copy).changes().table  # now from the kept totals
+    assert np.allclose(first["se"], again["se"], rtol=0, atol=0, equal_nan=True)

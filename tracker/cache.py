@@ -23,7 +23,7 @@ from .errors import TrackerError
 from .estimates import STATS, STATS_VERSION, CellArrays
 from .methods.variance import PsuTotals
 
-__all__ = ["CACHE", "cache_key", "read_cells", "read_ids", "read_psu", "write_cells"]
+__all__ = ["CACHE", "cache_key", "read_cells", "read_ids", "read_psu", "write_cells", "write_psu"]
 
 CACHE = store.CACHE
 FORMAT = 1
@@ -43,12 +43,12 @@ def cache_key(root: Path, entry: dict, codebook_sha256: str) -> str:
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
-def _path(root: Path, label: str) -> Path:
-    return root / CACHE / f"{label}.npz"
+def _path(root: Path, label: str, part: str = "") -> Path:
+    return root / CACHE / f"{label}{part}.npz"
 
 
-def _open(root: Path, label: str, key: str):
-    path = _path(root, label)
+def _open(root: Path, label: str, key: str, part: str = ""):
+    path = _path(root, label, part)
     try:
         data = np.load(path, allow_pickle=False)
     except (OSError, ValueError, EOFError):
@@ -77,8 +77,9 @@ def read_cells(root: Path, label: str, key: str) -> CellArrays | None:
 
 
 def read_psu(root: Path, label: str, key: str) -> tuple[PsuTotals, np.ndarray] | None:
-    """The cached cluster totals of every cell's linearized values and the clusters' names."""
-    data = _open(root, label, key)
+    """The cached cluster totals of every cell's linearized values and the clusters' names
+    (kept apart, in <label>.psu.npz: only comparisons of waves sharing clusters read them)."""
+    data = _open(root, label, key, ".psu")
     if data is None:
         return None
     try:
@@ -103,35 +104,60 @@ def read_ids(root: Path, label: str, key: str) -> np.ndarray | None:
         return None
 
 
-def write_cells(root: Path, label: str, key: str, cells: CellArrays, id_hashes: np.ndarray | None = None,
-                locked: bool = False) -> bool:
-    """Store a wave's statistics (and cluster totals, ids when given); True when written.
+def write_cells(root: Path, label: str, key: str, cells: CellArrays | None, id_hashes: np.ndarray | None = None,
+                locked: bool = False, psu: bool = True) -> bool:
+    """Store a wave's statistics and ids (``cells`` None: only its cluster totals), and with
+    ``psu`` its cluster totals when it has them; True when written.
 
     ``locked`` says the caller already holds the study's write lock (an ``add``)."""
-    arrays = {"key": np.array(key), "metrics": np.array(cells.metrics, dtype=str),
-              "group": np.array(cells.group, dtype=str), "level": np.array(cells.level, dtype=str),
-              **{k: np.asarray(cells.stats[k], float) for k in STATS}}
-    if cells.psu is not None and cells.psu_names is not None:
-        arrays.update(psu_totals=cells.psu.totals, psu_stratum=cells.psu.stratum,
-                      psu_n_strata=np.array(cells.psu.n_strata), psu_names=np.asarray(cells.psu_names, dtype=str))
-    if id_hashes is not None:
-        arrays["id_hashes"] = np.sort(np.asarray(id_hashes, np.uint64))
+    parts = {}
+    if cells is not None:
+        main = {"key": np.array(key), "metrics": np.array(cells.metrics, dtype=str),
+                "group": np.array(cells.group, dtype=str), "level": np.array(cells.level, dtype=str),
+                **{k: np.asarray(cells.stats[k], float) for k in STATS}}
+        if id_hashes is not None:
+            main["id_hashes"] = np.sort(np.asarray(id_hashes, np.uint64))
+        parts[""] = main
+    if psu and cells is not None and cells.psu is not None and cells.psu_names is not None:
+        parts[".psu"] = {"key": np.array(key), "psu_totals": cells.psu.totals, "psu_stratum": cells.psu.stratum,
+                         "psu_n_strata": np.array(cells.psu.n_strata),
+                         "psu_names": np.asarray(cells.psu_names, dtype=str)}
+    if not parts:
+        return False
     folder = root / CACHE
     try:
         folder.mkdir(exist_ok=True)
         if locked:
-            _write(folder, label, arrays)
+            _write(folder, label, parts)
         else:
             with store.study_lock(root, wait=0):
-                _write(folder, label, arrays)
+                _write(folder, label, parts)
     except (OSError, TrackerError):
         return False  # busy or read-only: the statistics were computed; only the saving is skipped
     return True
 
 
-def _write(folder: Path, label: str, arrays: dict) -> None:
+def write_psu(root: Path, label: str, key: str, cells: CellArrays) -> bool:
+    """Store only a wave's cluster totals (computed when a comparison first needs them)."""
+    if cells.psu is None or cells.psu_names is None:
+        return False
+    folder = root / CACHE
+    try:
+        folder.mkdir(exist_ok=True)
+        with store.study_lock(root, wait=0):
+            _write(folder, label, {".psu": {"key": np.array(key), "psu_totals": cells.psu.totals,
+                                            "psu_stratum": cells.psu.stratum,
+                                            "psu_n_strata": np.array(cells.psu.n_strata),
+                                            "psu_names": np.asarray(cells.psu_names, dtype=str)}})
+    except (OSError, TrackerError):
+        return False
+    return True
+
+
+def _write(folder: Path, label: str, parts: dict[str, dict]) -> None:
     # no fsync: after a crash an entry may be cut short, and then it fails to load or its key
-    # to match, and is computed again; the cost of syncing 80 MB of cache is not worth it
-    with store.incoming(folder / f"{label}.npz", durable=False) as tmp:
-        with open(tmp, "wb") as fh:
-            np.savez(fh, **arrays)
+    # to match, and is computed again; the cost of syncing the cache is not worth it
+    for part, arrays in parts.items():
+        with store.incoming(folder / f"{label}{part}.npz", durable=False) as tmp:
+            with open(tmp, "wb") as fh:
+                np.savez(fh, **arrays)

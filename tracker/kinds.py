@@ -26,12 +26,15 @@ Mask = Callable[[tuple], tuple[np.ndarray, np.ndarray]]
 
 
 def flag_text(pairs: list[tuple[np.ndarray, str]], n: int) -> np.ndarray:
-    """Join the texts of the masks that hold, per cell ('; ' between), without repeats."""
-    out = np.full(n, "", dtype=object)
-    for mask, text in pairs:
-        mask = np.asarray(mask, bool)
-        out = np.where(mask, np.where(out == "", text, out + "; " + text), out)
-    return out
+    """Join the texts of the masks that hold, per cell ('; ' between), without repeats: each
+    cell's set of flags as one integer, and the text made once per distinct set."""
+    code = np.zeros(n, dtype=np.int64)
+    for i, (mask, _) in enumerate(pairs):
+        code |= np.asarray(mask, bool).astype(np.int64) << i
+    sets, inverse = np.unique(code, return_inverse=True)
+    texts = np.array(["; ".join(dict.fromkeys(t for i, (_, t) in enumerate(pairs) if c >> i & 1)) for c in sets],
+                     dtype=object)
+    return texts[inverse.ravel()] if n else np.full(0, "", dtype=object)
 
 
 class Kind:

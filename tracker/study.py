@@ -440,7 +440,8 @@ class Study:
         from .cache import write_cells
 
         cells, ids = self._wave_cells(self.load(label) if table is None else table)
-        write_cells(self.root, label, self._cache_key(label), cells, ids, locked=locked)
+        # the cluster totals are written when a comparison first needs them (Study._psu)
+        write_cells(self.root, label, self._cache_key(label), cells, ids, locked=locked, psu=False)
         return cells, ids
 
     def _cells(self, label: str):
@@ -452,8 +453,8 @@ class Study:
             cells = read_cells(self.root, label, self._cache_key(label))
             if cells is None or cells.metrics != tuple(self.codebook.metrics):
                 cells, ids = self._compute_cells(label)
-                if cells.psu is not None:
-                    self._cache[("psu", label)] = (cells.psu, cells.psu_names)
+                if cells.psu is not None:  # saved if a comparison asks for them (Study._psu)
+                    self._cache[("psu fresh", label)] = cells
                 self._cache[("ids", label)] = ids
                 from dataclasses import replace
 
@@ -469,7 +470,10 @@ class Study:
 
             got = read_psu(self.root, label, self._cache_key(label))
             if got is None:
-                cells, _ = self._compute_cells(label)
+                from .cache import write_psu
+
+                cells = self._cache.pop(("psu fresh", label), None) or self._wave_cells(self.load(label))[0]
+                write_psu(self.root, label, self._cache_key(label), cells)
                 got = (cells.psu, cells.psu_names)
             self._cache[key] = got
         return self._cache[key]
