@@ -141,8 +141,8 @@ def render(report: Report) -> str:
             "of about 80, the rule passes only a few percent of the cells). The rule protects against reading such "
             "cells; pooled waves or the total are the better source for them.",
             "", "Smoothing is promised for a slowly moving series (1 point a wave); at twice that speed (reported) "
-            "the smoother still halves the error but its interval covers less than promised, since the signal "
-            "variance is then harder to learn from 14 waves of a thin subgroup.", ""]
+            "the smoother still cuts the squared error by about two thirds, but its interval covers less than "
+            "promised, since the signal variance is then harder to learn from 14 waves of a thin subgroup.", ""]
     return "\n".join(out)
 
 
