@@ -423,8 +423,8 @@ def single_cluster_lines(codebook: Codebook, table: pd.DataFrame, groups: list[s
     if strata is None or clusters is None:
         return []
     # integer codes once (strata numbered as np.unique orders them): each level's check is then cheap
-    names, strata = np.unique(strata, return_inverse=True)
-    clusters = np.unique(clusters, return_inverse=True)[1]
+    names, strata = _sorted_codes(strata)
+    clusters = _sorted_codes(clusters)[1]
     rule = codebook.single_cluster_rule
     out = []
     lone = single_cluster_strata(strata, clusters)
@@ -442,6 +442,16 @@ def single_cluster_lines(codebook: Codebook, table: pd.DataFrame, groups: list[s
                        f"{sub.size} stratum(s): {_names(names[sub])} (estimable: the stratum's other clusters count "
                        f"as zero for it, but its degrees of freedom are fewer)")
     return out
+
+
+def _sorted_codes(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """np.unique(values, return_inverse=True) by hashing: the labels are sorted, not the rows."""
+    codes, uniques = pd.factorize(pd.Series(values))
+    uniques = np.asarray(uniques)
+    order = np.argsort(uniques, kind="stable")
+    rank = np.empty(len(order), dtype=np.int64)
+    rank[order] = np.arange(len(order))
+    return uniques[order], rank[codes]
 
 
 def _names(values, most: int = 8) -> str:
