@@ -100,7 +100,7 @@ def render(report: Report) -> str:
         "SE of a surprise test is the prediction's SD (about 2.3 points here: sampling, wave-to-wave variation "
         "and the fit), so a move of 5 sampling SEs is only about 3.5 of them; both are shown. Smoothing: a "
         "subgroup of 150 respondents (a share near 0.6, SE about 4 points) whose true value walks at random, "
-        "through tracker/smoothing.py (the local-level smoother averaged over the signal variance); the "
+        "through tracker/methods/statespace.py (the local-level smoother averaged over the signal variance); the "
         "coverage counts every wave of every series against its true value."))] + [(TREND_DESIGN, (
         f"One series of 14 quarterly waves at a time ({TREND_REPS[report.tier]:,} per setting), sampling SE 1.6 "
         "points and between-wave SD 1.5 points, through the pattern classifier of tracker/trends.py: one test per "

@@ -1,4 +1,4 @@
-"""Signal extraction for thin subgroups (tracker.smoothing) against statsmodels' state-space
+"""Signal extraction for thin subgroups (tracker.methods.statespace) against statsmodels' state-space
 tools (reference library) and closed forms."""
 
 from __future__ import annotations
@@ -8,7 +8,7 @@ import warnings
 import numpy as np
 import pytest
 
-from tracker.smoothing import fit_local_level, local_level
+from tracker.methods.statespace import fit_local_level, local_level
 
 # a small series of shares (invented for the check; the values are statsmodels' to match)
 Y = np.array([0.52, 0.55, 0.49, 0.58, 0.61, 0.57, 0.63, 0.66, 0.60, 0.64, 0.69, 0.67])

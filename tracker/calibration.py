@@ -407,10 +407,10 @@ def _judge(y: np.ndarray, se: float, adjust: str = "bh"):
 
 
 def _forecasts(rng, reps: int, out: list[Rate]) -> None:
-    """Expected ranges, surprises and smoothing through tracker.expected and tracker.smoothing:
+    """Expected ranges, surprises and smoothing through tracker.expected and tracker.methods.statespace:
     14 quarterly waves before the predicted one, sampling SE 1.6 points, between-wave SD 1.5
     points (the trend setting)."""
-    from .smoothing import smooth_over_q
+    from .methods.statespace import smooth_over_q
 
     K, se, tau = 14, 0.016, 0.015
     for name, kw in [("level, as the model assumes", {}),

@@ -92,7 +92,7 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
     for col in ("value", "ci_low", "ci_high", "fitted"):
         out[col + "_shown"] = out[col] * f
     out["change_shown"] = out["change"] * f
-    if smooth:  # the smoothed series beside the direct one (tracker.smoothing), never instead of it
+    if smooth:  # the smoothed series beside the direct one (tracker.methods.statespace), never instead of it
         sm = study.smoothed(metrics=[metric], by=[by] if by else [], waves=labels, level=level, until=labels[-1])
         out = out.merge(sm[["metric", "group", "subgroup", "wave", "smoothed"]], how="left",
                         on=["metric", "group", "subgroup", "wave"])
@@ -167,7 +167,7 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
     or shift levels, a wording break as a gap with a note, bases under the axis.
 
     ``compact``: a small chart for a grid (no subtitle, no bases), for series that held.
-    ``smooth``: also the smoothed series (tracker.smoothing), dotted and labelled "smoothed"."""
+    ``smooth``: also the smoothed series (tracker.methods.statespace), dotted and labelled "smoothed"."""
     if metric not in study.codebook.metrics:
         raise TrackerError(f"--metric {metric}: not a metric of this study ({', '.join(study.codebook.metrics)})")
     return trend_spec(trend_frame(study, metric, by, adjust, level, until, smooth), by, adjust, level, width, height,

@@ -837,12 +837,12 @@ class Study:
     def smoothed(self, metrics=None, by=None, waves=None, level: float = 0.95, until: str | None = None) -> pd.DataFrame:
         """The estimates with a smoothed value beside each direct one: signal extraction in a
         local-level model with each wave's known sampling variance, fitted per series over
-        every stored wave (tracker.smoothing). Adds ``smoothed``, ``smoothed_low``,
+        every stored wave (tracker.methods.statespace). Adds ``smoothed``, ``smoothed_low``,
         ``smoothed_high`` and ``signal_sd`` (the random walk's SD per wave); a wording break
         restarts the series, and cells before the current segment get no smoothed value.
         ``until`` fits only the waves up to that one (as a brief of that wave sees them)."""
         from .methods.distributions import norm_ppf
-        from .smoothing import smooth_over_q
+        from .methods.statespace import smooth_over_q
         from .trends import _series_arrays
 
         check_level(level)
