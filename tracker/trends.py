@@ -139,7 +139,8 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
     slope_se = np.sqrt(trend["cov"][:, 1, 1])
     # t on k - 2 df rather than z: few waves and an estimated tau^2 make z too narrow
     df = np.maximum(trend["df"], 1)
-    slope_p = 2 * t_sf(np.abs(slope / slope_se), df)
+    with np.errstate(divide="ignore", invalid="ignore"):  # a series too short to fit has no SE: NaN
+        slope_p = 2 * t_sf(np.abs(slope / slope_se), df)
     tq = t_ppf(0.5 + level / 2, df)
     q_p = chi2_sf(trend["q"], df)
 
