@@ -55,6 +55,18 @@ def test_duckdb_gives_the_in_process_statistics(clustered_study, demo_study):
                 assert np.allclose(mine.psu.totals[order_a], other.psu.totals[order_b], rtol=0, atol=1e-12)
 
 
+def test_the_grouping_sets_query_for_overlapping_levels_gives_the_same(clustered_study, monkeypatch):
+    # a split whose levels overlap (a respondent in two levels) cannot use one column per
+    # split; the query then groups each level on its own
+    import tracker.scale as scale
+
+    monkeypatch.setattr(scale, "_exclusive", lambda book, groups: False)
+    book = clustered_study.codebook
+    label = clustered_study.labels[0]
+    mine = cell_arrays(book, clustered_study.load(label), list(book.metrics.values()), list(book.groups))
+    same(mine, scale.duckdb_cells(book, clustered_study.root / clustered_study._entry(label)["file"]))
+
+
 def test_a_local_dask_cluster_of_two_workers_fills_the_cache_alike(clustered_study, tmp_path):
     import shutil
 

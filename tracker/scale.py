@@ -119,11 +119,27 @@ def _levels_sql(book: Codebook, columns: set[str], groups: list[str]) -> tuple[l
     return gnames, lnames, conds
 
 
+def _exclusive(book: Codebook, groups: list[str]) -> bool:
+    """Whether no respondent can sit in two levels of one split (codes disjoint, bands apart)."""
+    for gname in groups:
+        g = book.groups[gname]
+        if g.bands is not None:
+            spans = sorted(g.bands.values())
+            if any(lo2 <= hi1 for (_, hi1), (lo2, _) in zip(spans, spans[1:])):
+                return False
+        else:
+            codes = [c for cs in g.levels.values() for c in cs]
+            if len(codes) != len(set(codes)):
+                return False
+    return True
+
+
 def duckdb_cells(book: Codebook, path: str | Path, keep_psu: bool = False, threads: int | None = None) -> CellArrays:
     """Every cell's statistics of one stored wave (all metrics, every split) by DuckDB,
-    without loading the wave: one query sums, per cluster (or stratum) and subgroup level,
-    each metric's base, weights, weighted values and the squares the variance needs;
-    the small result is finished in numpy. The same numbers as
+    without loading the wave: one query sums each metric's base, weights, weighted values
+    and the squares the variance needs, per cluster (or stratum) and combination of the
+    splits' levels (or, when a split's levels overlap, per grouping set of each level);
+    the small result is added up to every cell and finished in numpy. The same numbers as
     :func:`tracker.estimates.cell_arrays` up to rounding."""
     duckdb = _need("duckdb")
     import pyarrow.parquet as pq
@@ -138,7 +154,17 @@ def duckdb_cells(book: Codebook, path: str | Path, keep_psu: bool = False, threa
     w = _num(book.weight) if book.weight and book.weight in columns else "1.0"
     inner = [f"{'CAST(' + _q(strata) + ' AS VARCHAR)' if strata else chr(39) * 2} AS s_",
              f"{'CAST(' + _q(clusters) + ' AS VARCHAR)' if clusters else 'NULL'} AS c_", f"{w} AS w_"]
-    inner += [f"{c} AS l{j}" for j, c in enumerate(conds)]
+    exclusive = _exclusive(book, groups)
+    if exclusive:  # one column per split: the position of the respondent's level in it (0: none)
+        starts = {}
+        for j, g in enumerate(gnames):
+            starts.setdefault(g, j)
+        for k, g in enumerate(groups):
+            whens = " ".join(f"WHEN {conds[j]} THEN {j - starts[g] + 1}" for j in range(len(conds))
+                             if gnames[j] == g)
+            inner.append(f"(CASE {whens} ELSE 0 END) AS k{k}" if whens else f"0 AS k{k}")
+    else:
+        inner += [f"{c} AS l{j}" for j, c in enumerate(conds)]
     for j, m in enumerate(metrics):
         y, e = _metric_sql(book, columns, m)
         inner += [f"CAST({e} AS DOUBLE) AS e{j}", f"(CASE WHEN {e} THEN {y} ELSE 0.0 END) AS y{j}"]
@@ -149,47 +175,71 @@ def duckdb_cells(book: Codebook, path: str | Path, keep_psu: bool = False, threa
         if not clusters:
             sums += [f"SUM(w_ * w_ * y{j}) AS w2ey_{j}", f"SUM(w_ * w_ * y{j} * y{j}) AS w2ey2_{j}"]
     unit = "s_, c_" if clusters else "s_"
-    sets = [f"({unit})"] + [f"({unit}, l{j})" for j in range(len(conds))]
-    levels_out = ", ".join(f"l{j}" for j in range(len(conds)))
-    sql = (f"SELECT {unit}{', ' + levels_out if conds else ''}, {', '.join(sums)} FROM "
-           f"(SELECT {', '.join(inner)} FROM read_parquet(?)) GROUP BY GROUPING SETS ({', '.join(sets)})")
+    source = f"(SELECT {', '.join(inner)} FROM read_parquet(?))"
+    if exclusive:
+        keys = ", ".join([unit] + [f"k{k}" for k in range(len(groups))])
+        sql = f"SELECT {keys}, {', '.join(sums)} FROM {source} GROUP BY {keys}"
+    else:
+        sets = [f"({unit})"] + [f"({unit}, l{j})" for j in range(len(conds))]
+        levels_out = ", ".join(f"l{j}" for j in range(len(conds)))
+        sql = (f"SELECT {unit}{', ' + levels_out if conds else ''}, {', '.join(sums)} FROM {source} "
+               f"GROUP BY GROUPING SETS ({', '.join(sets)})")
     con = duckdb.connect(config={"threads": threads} if threads else {})
     try:
         got = con.execute(sql, [str(path)]).fetchnumpy()
     finally:
         con.close()
     got = {k: (v.filled(np.nan) if np.ma.isMaskedArray(v) and v.dtype.kind == "f" else v) for k, v in got.items()}
-    return _finish(book, metrics, gnames, lnames, got, len(conds), strata, clusters, keep_psu)
-
-
-def _finish(book, metrics, gnames, lnames, got, n_levels, strata, clusters, keep_psu) -> CellArrays:
-    L, M = 1 + n_levels, len(metrics)
     rows = len(got["n_rows"])
+    if exclusive:  # every row counts in the total and in its level of each split
+        pairs = [(np.arange(rows), np.zeros(rows, dtype=np.int64))]
+        for k, g in enumerate(groups):
+            pos = np.asarray(np.ma.getdata(got[f"k{k}"]), dtype=np.int64)
+            inside = np.flatnonzero(pos > 0)
+            pairs.append((inside, starts.get(g, 0) + pos[inside]))  # level j sits at j + 1 (the total first)
+    else:
+        pairs = _set_pairs(got, rows, len(conds))
+    return _finish(book, metrics, gnames, lnames, got, pairs, len(conds), strata, clusters, keep_psu)
+
+
+def _set_pairs(got, rows: int, n_levels: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """(rows, level) of a GROUPING SETS result: in level j's set its flag is true or false,
+    elsewhere NULL; the total's set has every flag NULL."""
     level = np.full(rows, -1)
     grouped = np.zeros(rows, bool)
-    for j in range(n_levels):  # in level j's grouping set its flag is true or false; elsewhere NULL
+    for j in range(n_levels):
         col = got[f"l{j}"]
         present = ~np.ma.getmaskarray(col) if np.ma.isMaskedArray(col) else np.ones(rows, bool)
         member = present & np.asarray(np.ma.getdata(col), bool)
         level[member] = j + 1
         grouped |= present
     level[~grouped] = 0
-    keep = level >= 0
+    keep = np.flatnonzero(level >= 0)
+    return [(keep, level[keep])]
+
+
+def _finish(book, metrics, gnames, lnames, got, pairs, n_levels, strata, clusters, keep_psu) -> CellArrays:
+    L, M = 1 + n_levels, len(metrics)
     s_lab = np.asarray(np.ma.getdata(got["s_"]), dtype=object).astype(str)
     if clusters:
         c_lab = np.asarray(np.ma.getdata(got["c_"]), dtype=object).astype(str)
         names = np.char.add(np.char.add(s_lab, SEP), c_lab) if strata else c_lab.astype(str)
     else:
         names = s_lab
-    unit_codes, unit_names = pd.factorize(pd.Series(names[keep]))
+    rows_all = np.concatenate([r for r, _ in pairs])
+    lev_all = np.concatenate([lv for _, lv in pairs])
+    used = np.unique(rows_all)
+    unit_of_row = np.full(len(names), -1, dtype=np.int64)
+    unit_codes, unit_names = pd.factorize(pd.Series(names[used]))
+    unit_of_row[used] = unit_codes
     U = len(unit_names)
-    idx = np.flatnonzero(keep)
-    lev = level[keep]
+    flat = unit_of_row[rows_all] * L + lev_all
 
-    def cube(prefix):
+    def cube(prefix):  # every cell's sums per unit: the result's rows added up by (unit, level)
         out = np.zeros((U, L, M))
         for j in range(M):
-            out[unit_codes, lev, j] = np.nan_to_num(np.asarray(got[f"{prefix}_{j}"], float)[idx])
+            vals = np.nan_to_num(np.asarray(got[f"{prefix}_{j}"], float))[rows_all]
+            out[:, :, j] = np.bincount(flat, weights=vals, minlength=U * L).reshape(U, L)
         return out
 
     cnt, we, wey, w2e, wey2 = (cube(p) for p in ("cnt", "we", "wey", "w2e", "wey2"))
@@ -197,8 +247,9 @@ def _finish(book, metrics, gnames, lnames, got, n_levels, strata, clusters, keep
     with np.errstate(divide="ignore", invalid="ignore"):
         value = swy / sw
         unit_var = np.maximum(swy2 / sw - value**2, 0.0)
-    unit_stratum = pd.factorize(pd.Series(s_lab[keep][np.unique(unit_codes, return_index=True)[1]]))[0] \
-        if U else np.zeros(0, dtype=np.int64)
+    first = np.zeros(U, dtype=np.int64)
+    first[unit_codes[::-1]] = used[::-1]
+    unit_stratum = pd.factorize(pd.Series(s_lab[first]))[0] if U else np.zeros(0, dtype=np.int64)
     n_strata = int(unit_stratum.max()) + 1 if U else 1
     rule = book.single_cluster_rule
     psu = psu_names = None
@@ -208,15 +259,15 @@ def _finish(book, metrics, gnames, lnames, got, n_levels, strata, clusters, keep
             if keep_psu:
                 psu, psu_names = totals, np.asarray(unit_names, dtype=str)
         else:
-            n_h = np.zeros(U)
-            total_rows = lev == 0
-            n_h[unit_codes[total_rows]] = np.asarray(got["n_rows"], float)[idx][total_rows]
+            total_rows = lev_all == 0
+            n_h = np.bincount(unit_of_row[rows_all[total_rows]],
+                              weights=np.asarray(got["n_rows"], float)[rows_all[total_rows]], minlength=U)
             present = (cnt > 0).sum(axis=0).astype(float)
             w2ey, w2ey2 = cube("w2ey"), cube("w2ey2")
             var, n_psu, df = unclustered_from_sums(wey, we, w2ey2, w2ey, w2e, present, n, value, sw,
                                                    n_h.astype(np.int64), rule)
     except SingleClusterError as exc:
-        where = np.asarray(unit_names if not clusters else pd.unique(s_lab[keep]), dtype=str)
+        where = np.asarray(unit_names if not clusters else pd.unique(s_lab[first]), dtype=str)
         raise TrackerError(f"strata {', '.join(map(str, where[exc.strata][:10]))} hold a single cluster, and the "
                            f"codebook says single_cluster_strata: refuse (see docs/codebook.md for the other "
                            f"rules)") from None
