@@ -142,3 +142,16 @@ def test_cluster_totals_are_kept_only_when_a_comparison_needs_them(clustered_stu
         [f"{w}.psu.npz" for w in clustered_study.labels[-2:]]  # the two waves compared
     again = Study(copy).changes().table  # now from the kept totals
     assert np.allclose(first["se"], again["se"], rtol=0, atol=0, equal_nan=True)
+
+
+def test_without_the_extra_the_message_says_how_to_get_it(clustered_study, monkeypatch):
+    import sys
+
+    from click.testing import CliRunner
+
+    from tracker.cli import main
+
+    monkeypatch.setitem(sys.modules, "duckdb", None)  # as if not installed
+    out = CliRunner().invoke(main, ["prepare", str(clustered_study.root), "--engine", "duckdb", "--rebuild"])
+    assert out.exit_code == 1 and "Traceback" not in out.output
+    assert "pip install 'wavetell[scale]'" in out.output
