@@ -204,19 +204,44 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     return table, header_row + 1, problems
 
 
+def _int_text(x: np.ndarray) -> np.ndarray:
+    """Whole numbers (int64) as their decimal text, an object array of str (Arrow's cast: one
+    C pass, four times numpy's)."""
+    import pyarrow as pa
+
+    return pa.array(x.astype(np.int64)).cast(pa.string()).to_numpy(zero_copy_only=False)
+
+
+def _numbers(values: pd.Series) -> np.ndarray:
+    """``pd.to_numeric(values, errors="coerce")`` as floats. Arrow's parser first: it takes a
+    subset of what pandas takes (no surrounding spaces, for one) with the same values, and
+    on any other cell the whole column goes to pandas."""
+    try:
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        arr = pa.array(values.to_numpy(dtype=object), type=pa.string())
+        arr = pc.if_else(pc.equal(arr, ""), pa.scalar(None, pa.string()), arr)
+        return pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False).astype(float)
+    except Exception:  # pyarrow raises several types; pandas then decides cell by cell
+        return pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
+
+
 def _plain_column(col: pd.Series) -> pd.Series:
     """:func:`_plain` of every cell of a typed column, a column at once where its type allows
     (numbers, booleans, text); other cells one by one. Missing cells become ''."""
     values = col.to_numpy()
     missing = col.isna().to_numpy()
     if pd.api.types.is_bool_dtype(col) and not missing.any():
-        return pd.Series(values.astype(np.int64).astype(str).astype(object), index=col.index)
+        return pd.Series(_int_text(values), index=col.index)
     if pd.api.types.is_integer_dtype(col) and not missing.any():
-        return pd.Series(values.astype(np.int64).astype(str).astype(object), index=col.index)
+        return pd.Series(_int_text(values), index=col.index)
     if pd.api.types.is_float_dtype(col):
         x = col.to_numpy(dtype=float)
         whole = np.isfinite(x) & (x == np.round(x)) & (np.abs(x) < 2.0**53)
-        out = np.where(whole, np.where(whole, x, 0).astype(np.int64).astype(str), x.astype(str)).astype(object)
+        out = _int_text(np.where(whole, x, 0))
+        if not whole.all():
+            out[~whole] = x[~whole].astype(str)
         out[np.isnan(x)] = ""
         big = np.isfinite(x) & (x == np.round(x)) & ~whole  # whole numbers past 2^53: exact digits
         out[big] = [str(int(v)) for v in x[big]]
@@ -438,7 +463,7 @@ def _check_column(v: Variable, col: str, values: pd.Series, label: str, add) -> 
         add("error", col, "the column is blank in every row (a lost export or a wrong sheet?)")
     if v.type == "text":
         return values
-    num = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
+    num = _numbers(values)
     text = np.isnan(num) & ~blank
     if text.any():
         add("error", col, f"text where a number belongs (e.g. {values[text].iloc[0]!r})", text)
