@@ -93,3 +93,30 @@ def test_the_study_shows_smoothed_values_beside_the_direct_ones(demo_study):
     assert ((sb["smoothed_high"] - sb["smoothed_low"]) < (sb["ci_high"] - sb["ci_low"])).mean() > 0.9
     # the planted shift in Southbank (demo docstring: staff_good steps down there at 2025-Q3) is followed
     assert sb["smoothed"].iloc[-2] < sb["smoothed"].iloc[0] - 0.1
+
+
+def test_the_commands_and_the_chart_show_the_smoothed_series_labelled(demo_study, tmp_path):
+    import json
+
+    from click.testing import CliRunner
+
+    from tests.test_charts import errors
+    from tracker.charts import SMOOTH_COLOUR, chart_spec, trend_chart
+    from tracker.cli import main
+
+    out = CliRunner().invoke(main, ["estimates", str(demo_study.root), "--smooth", "--by", "area", "--format", "csv"])
+    assert out.exit_code == 0, out.output
+    head = out.output.splitlines()[0].split(",")
+    assert head[-4:] == ["smoothed", "smoothed_low", "smoothed_high", "signal_sd"]
+    spec = chart_spec(trend_chart(demo_study, "staff_good", by="area", smooth=True))
+    layers = spec["spec"]["layer"]
+    lines = [la for la in layers if la["encoding"].get("y", {}).get("field") == "smoothed_shown"]
+    assert {la["mark"]["type"] for la in lines} == {"line", "text"}  # the dotted line and its label
+    assert all(la["mark"]["color"] == SMOOTH_COLOUR for la in lines)
+    assert any(la["encoding"].get("text") == {"value": "smoothed"} for la in lines)
+    assert errors(spec) == []
+    plain = json.dumps(chart_spec(trend_chart(demo_study, "staff_good", by="area")))
+    assert "smoothed_shown" not in plain  # only when asked
+    png = CliRunner().invoke(main, ["chart", str(demo_study.root), "--metric", "staff_good", "--by", "area",
+                                    "--smooth", "-o", str(tmp_path / "s.svg")])
+    assert png.exit_code == 0 and (tmp_path / "s.svg").read_text().count("smoothed") >= 3
