@@ -100,8 +100,6 @@ def test_verify_leaves_the_cache_alone_and_sweeps_its_leftovers(demo_copy):
 
 
 def test_add_stores_the_new_waves_statistics(demo_copy, tmp_path):
-    from tracker.demo import build_demo  # noqa: F401 - the demo's own files are the input
-
     s = Study(demo_copy)
     label = s.labels[-1]
     assert read_cells(demo_copy, label, s._cache_key(label)) is None

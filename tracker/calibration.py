@@ -461,7 +461,7 @@ def _forecasts(rng, reps: int, out: list[Rate]) -> None:
                         (0.0, 0.70) if promised else None))
         half = 1.959963984540054 * np.sqrt(fit["var"])
         rate, mc, k = _prop((np.abs(fit["mean"] - truth) <= half).ravel())
-        out.append(Rate(FORECAST_DESIGN, "95% smoothed-interval coverage", setting + f", every wave", rate, mc,
+        out.append(Rate(FORECAST_DESIGN, "95% smoothed-interval coverage", setting + ", every wave", rate, mc,
                         reps * K, (0.93, 0.97) if promised else None, 0.95))
 
 

@@ -602,7 +602,6 @@ class Study:
     def _compare(self, wave: str, others: list[str], ms: list, gs: list[str], adjust: str, level: float):
         """One family of comparisons: (table, notes, number of comparisons tested), cached."""
         from .changes import compare
-        from .estimates import wave_covariance
 
         key = ("compare", wave, tuple(others), tuple(m.name for m in ms), tuple(gs), adjust, level)
         if key in self._cache:
