@@ -85,15 +85,20 @@ def make_wave(rng: np.random.Generator, k: int, n: int, metrics: int, groups: in
     return pd.DataFrame(frame)
 
 
-def build(root: Path, waves: int = 24, n: int = 2000, metrics: int = 100, groups: int = 5, strata: int = 10,
-          clusters: int = 200, seed: int = 1, quiet: bool = True) -> Path:
-    """Make the study under ``root`` (study folder ``root/study``) by ``tracker add`` of each wave."""
+def empty_study(root: Path, metrics: int, groups: int, design: bool = True):
+    """A new study folder ``root/study`` with the synthetic codebook (and ``root/codebook.yaml``)."""
     from tracker import Study
 
     root.mkdir(parents=True, exist_ok=True)
     book = root / "codebook.yaml"
-    book.write_text(codebook_text(metrics, groups, design=bool(clusters)))
-    study = Study.create(root / "study", book)
+    book.write_text(codebook_text(metrics, groups, design=design))
+    return Study.create(root / "study", book)
+
+
+def build(root: Path, waves: int = 24, n: int = 2000, metrics: int = 100, groups: int = 5, strata: int = 10,
+          clusters: int = 200, seed: int = 1) -> Path:
+    """Make the study under ``root`` (study folder ``root/study``) by ``tracker add`` of each wave."""
+    study = empty_study(root, metrics, groups, design=bool(clusters))
     rng = np.random.default_rng(seed)
     for k in range(waves):
         path = root / f"w{k:03d}.parquet"
@@ -318,13 +323,9 @@ def part_million(tmp: Path, rows: list) -> None:
     from tracker import Study
 
     root = tmp / "million"
-    root.mkdir()
-    book = root / "codebook.yaml"
-    book.write_text(codebook_text(20, 3))
-    study = Study.create(root / "study", book)
+    empty_study(root, 20, 3)
     path = root / "big.parquet"
     make_wave(np.random.default_rng(5), 0, 1_000_000, 20, 3, 10, 200).to_parquet(path)
-    del study
     sec, mb = run_cli(["add", str(root / "study"), str(path), "--wave", "W000", "--date", "2000-01-15", "-q"])
     rows.append(("1,000,000 respondents: cli add", f"{sec:.1f} s", f"peak {mb:,.0f} MB"))
     st = str(root / "study")
@@ -376,13 +377,8 @@ def part_ten_million(tmp: Path, rows: list) -> None:
     """A continuous tracker: 10 waves of 1,000,000 respondents (20 metrics, 3 splits, 10
     strata, 200 clusters): its statistics by DuckDB in this process and on 2 local
     workers, then the everyday commands from the cache."""
-    from tracker import Study
-
     root = tmp / "ten"
-    root.mkdir()
-    book = root / "codebook.yaml"
-    book.write_text(codebook_text(20, 3))
-    Study.create(root / "study", book)
+    empty_study(root, 20, 3)
     rng = np.random.default_rng(11)
     for k in range(10):
         path = root / "w.parquet"
@@ -403,12 +399,7 @@ def part_ten_million(tmp: Path, rows: list) -> None:
 
 def part_growth(tmp: Path, rows: list) -> None:
     root = tmp / "growth"
-    root.mkdir()
-    from tracker import Study
-
-    book = root / "codebook.yaml"
-    book.write_text(codebook_text(100, 5))
-    study = Study.create(root / "study", book)
+    study = empty_study(root, 100, 5)
     rng = np.random.default_rng(7)
     for k in range(61):
         path = root / "w.parquet"

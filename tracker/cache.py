@@ -23,7 +23,7 @@ from .errors import TrackerError
 from .estimates import STATS, STATS_VERSION, CellArrays
 from .methods.variance import PsuTotals
 
-__all__ = ["CACHE", "cache_key", "read_cells", "read_ids", "read_psu", "write_cells", "write_psu"]
+__all__ = ["CACHE", "cache_key", "hash_ids", "read_cells", "read_entry", "read_psu", "write_cells", "write_psu"]
 
 CACHE = store.CACHE
 FORMAT = 1
@@ -41,6 +41,14 @@ def cache_key(root: Path, entry: dict, codebook_sha256: str) -> str:
         size = None
     text = json.dumps([FORMAT, STATS_VERSION, entry["file"], entry.get("sha256"), size, codebook_sha256])
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def hash_ids(ids) -> np.ndarray:
+    """64-bit hashes of respondent ids as text (pandas' hash): the same id hashes alike in
+    every wave and by every engine, so shared respondents are found without reading waves."""
+    import pandas as pd
+
+    return pd.util.hash_array(pd.Series(ids).astype(str).to_numpy(dtype=object))
 
 
 def _path(root: Path, label: str, part: str = "") -> Path:
@@ -63,17 +71,25 @@ def _open(root: Path, label: str, key: str, part: str = ""):
     return data
 
 
-def read_cells(root: Path, label: str, key: str) -> CellArrays | None:
-    """The cached statistics of a wave (without the cluster totals), or None."""
+def read_entry(root: Path, label: str, key: str) -> tuple[CellArrays, np.ndarray | None] | None:
+    """The cached statistics of a wave (without the cluster totals) and the sorted hashes of
+    its respondent ids (None when it has no id column), from one read of its entry; or None."""
     data = _open(root, label, key)
     if data is None:
         return None
     try:
         with data:
-            return CellArrays(tuple(data["metrics"].tolist()), tuple(data["group"].tolist()),
-                              tuple(data["level"].tolist()), {k: data[k] for k in STATS})
+            cells = CellArrays(tuple(data["metrics"].tolist()), tuple(data["group"].tolist()),
+                               tuple(data["level"].tolist()), {k: data[k] for k in STATS})
+            return cells, (data["id_hashes"] if "id_hashes" in data.files else None)
     except (KeyError, ValueError, OSError):
         return None
+
+
+def read_cells(root: Path, label: str, key: str) -> CellArrays | None:
+    """The cached statistics of a wave (without the cluster totals), or None."""
+    got = read_entry(root, label, key)
+    return None if got is None else got[0]
 
 
 def read_psu(root: Path, label: str, key: str) -> tuple[PsuTotals, np.ndarray] | None:
@@ -88,18 +104,6 @@ def read_psu(root: Path, label: str, key: str) -> tuple[PsuTotals, np.ndarray] |
                 return None
             return (PsuTotals(data["psu_totals"], data["psu_stratum"], int(data["psu_n_strata"])),
                     data["psu_names"])
-    except (KeyError, ValueError, OSError):
-        return None
-
-
-def read_ids(root: Path, label: str, key: str) -> np.ndarray | None:
-    """The cached 64-bit hashes of the wave's respondent ids (sorted), or None."""
-    data = _open(root, label, key)
-    if data is None:
-        return None
-    try:
-        with data:
-            return data["id_hashes"] if "id_hashes" in data.files else None
     except (KeyError, ValueError, OSError):
         return None
 

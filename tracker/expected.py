@@ -72,12 +72,9 @@ def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.
     parts and the degrees of freedom; a series with fewer than MIN_WAVES usable waves, or
     not fitted, gets NaN and its reason in ``basis``.
     """
-    series, waves, y, v, ok, years = _series_arrays(hist)
+    series, waves, y, v, ok, years = _series_arrays(hist, segment_start)
     S, K = y.shape
     widx = {w: i for i, w in enumerate(waves)}
-    for metric, start in (segment_start or {}).items():
-        if start in widx:
-            ok[(series["metric"] == metric).to_numpy(), : widx[start]] = False
     pat = series.merge(patterns[[*KEYS, "pattern", "shift_wave", "blip_wave"]], on=KEYS, how="left")
     model = pat["pattern"].map(MODELS).fillna("none").to_numpy()
     blip = pat["blip_wave"].map(widx).to_numpy(dtype=float)

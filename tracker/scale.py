@@ -284,8 +284,9 @@ def id_hashes(book: Codebook, path: str | Path, batch: int = 1_000_000) -> np.nd
     f = pq.ParquetFile(path)
     if not book.id or book.id not in f.schema_arrow.names:
         return None
-    parts = [pd.util.hash_array(b.column(0).to_pandas().astype(str).to_numpy(dtype=object))
-             for b in f.iter_batches(columns=[book.id], batch_size=batch)]
+    from .cache import hash_ids
+
+    parts = [hash_ids(b.column(0).to_pandas()) for b in f.iter_batches(columns=[book.id], batch_size=batch)]
     return np.concatenate(parts) if parts else np.zeros(0, np.uint64)
 
 
@@ -300,16 +301,11 @@ def wave_task(root: str, label: str, engine: str = "pandas", threads: int | None
     study = Study(root)
     book = study.codebook
     key = study._cache_key(label)
-    keep = bool(book.clusters and book.waves_share_clusters)
     if engine == "duckdb":
         path = study.root / study._entry(label)["file"]
+        keep = bool(book.clusters and book.waves_share_clusters)
         return label, key, duckdb_cells(book, path, keep_psu=keep, threads=threads), id_hashes(book, path)
-    from .estimates import cell_arrays
-
-    table = study.load(label)
-    cells = cell_arrays(book, table, list(book.metrics.values()), list(book.groups), keep_psu=keep)
-    ids = pd.util.hash_array(table[book.id].astype(str).to_numpy(dtype=object)) if book.id in table.columns else None
-    return label, key, cells, ids
+    return (label, key, *study._wave_cells(study.load(label)))
 
 
 @dataclass(frozen=True)

@@ -429,9 +429,9 @@ class Study:
         book = self.codebook
         cells = cell_arrays(book, table, list(book.metrics.values()), list(book.groups),
                             keep_psu=bool(book.clusters and book.waves_share_clusters))
-        ids = None
-        if book.id and book.id in table.columns:
-            ids = pd.util.hash_array(table[book.id].astype(str).to_numpy(dtype=object))
+        from .cache import hash_ids
+
+        ids = hash_ids(table[book.id]) if book.id and book.id in table.columns else None
         return cells, ids
 
     def _compute_cells(self, label: str, table: pd.DataFrame | None = None, locked: bool = False):
@@ -448,9 +448,12 @@ class Study:
         """Every cell's statistics of a wave: from memory, the study's cache, or computed."""
         key = ("cells", label)
         if key not in self._cache:
-            from .cache import read_cells
+            from .cache import read_entry
 
-            cells = read_cells(self.root, label, self._cache_key(label))
+            got = read_entry(self.root, label, self._cache_key(label))
+            cells = None if got is None else got[0]
+            if cells is not None:
+                self._cache[("ids", label)] = got[1]
             if cells is None or cells.metrics != tuple(self.codebook.metrics):
                 cells, ids = self._compute_cells(label)
                 if cells.psu is not None:  # saved if a comparison asks for them (Study._psu)
@@ -480,17 +483,10 @@ class Study:
 
     def _id_hashes(self, label: str):
         """Sorted 64-bit hashes of a wave's respondent ids (None when the study has no ids)."""
-        key = ("ids", label)
-        if key not in self._cache:
-            from .cache import read_ids
-
-            got = read_ids(self.root, label, self._cache_key(label)) if self.codebook.id else None
-            if got is None and self.codebook.id:
-                table = self.load(label)
-                if self.codebook.id in table.columns:
-                    got = np.sort(pd.util.hash_array(table[self.codebook.id].astype(str).to_numpy(dtype=object)))
-            self._cache[key] = got
-        return self._cache[key]
+        if not self.codebook.id:
+            return None
+        self._cells(label)  # the ids come with the cells, read or computed
+        return self._cache.get(("ids", label))
 
     def _wave_rows(self, label: str, metrics: list, groups: list[str], level: float,
                    interval: str = "wilson") -> pd.DataFrame:
@@ -849,12 +845,8 @@ class Study:
         key = ("smoothed", level, tuple(upto))
         if key not in self._cache:
             est = self.estimates(level=level, waves=upto)
-            series, labels, y, v, ok, _ = _series_arrays(est)
+            series, labels, y, v, ok, _ = _series_arrays(est, self.segment_starts(self._pick_metrics(), upto))
             ok = ok & np.isfinite(y) & (v > 0)
-            widx = {w: i for i, w in enumerate(labels)}
-            for metric, start in self.segment_starts(self._pick_metrics(), labels).items():
-                if start in widx:
-                    ok[(series["metric"] == metric).to_numpy(), : widx[start]] = False
             fit = smooth_over_q(y, v, ok)
             q = fit["q_ml"]
             z = norm_ppf(0.5 + level / 2)

@@ -83,8 +83,10 @@ def _small_pinv(A: np.ndarray) -> np.ndarray:
     return out
 
 
-def _series_arrays(est: pd.DataFrame):
-    """Pad the estimates into (series x waves) arrays, in fieldwork order."""
+def _series_arrays(est: pd.DataFrame, segment_start: dict[str, str] | None = None):
+    """Pad the estimates into (series x waves) arrays, in fieldwork order. ``segment_start``
+    maps a metric to the wave its current series starts at (a wording break): its earlier
+    waves are marked unusable."""
     keys = ["metric", "group", "subgroup"]
     est = est.sort_values("fieldwork_date", kind="mergesort")
     # one integer per (metric, group, subgroup), numbered in order of first appearance
@@ -107,6 +109,10 @@ def _series_arrays(est: pd.DataFrame):
     dates = dict(zip(firsts["wave"], firsts["fieldwork_date"]))
     t0 = dt.date.fromisoformat(dates[waves[0]])
     years = np.array([(dt.date.fromisoformat(dates[w]) - t0).days / 365.25 for w in waves])
+    widx = {w: i for i, w in enumerate(waves)}
+    for metric, start in (segment_start or {}).items():
+        if start in widx:
+            ok[(series["metric"] == metric).to_numpy(), : widx[start]] = False
     return series, waves, y, v, ok, years
 
 
@@ -121,12 +127,8 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
     that fits it best: rising/falling, shifted up/down, a one-wave blip, or moved up/down
     when the waves cannot tell a trend from a step.
     """
-    series, waves, y, v, ok, years = _series_arrays(est)
+    series, waves, y, v, ok, years = _series_arrays(est, segment_start)
     S, K = y.shape
-    widx = {w: i for i, w in enumerate(waves)}
-    for metric, start in (segment_start or {}).items():
-        if start in widx:
-            ok[(series["metric"] == metric).to_numpy(), : widx[start]] = False
     k = ok.sum(axis=1)
     fit_ok = k >= min_waves
     z = norm_ppf(0.5 + level / 2)
