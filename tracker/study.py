@@ -367,9 +367,14 @@ class Study:
         self._ledger = ledger
         self._cache = {}  # a replaced wave changes what was derived from it
         if cells is not None:  # the new wave's cell statistics, ready for the next command (derived)
+            from dataclasses import replace as _replace
+
             from .cache import write_cells
 
             write_cells(self.root, wave, self._cache_key(wave), cells, ids, locked=True)
+            # and for the judging below, without reading back what was just written
+            self._cache[("cells", wave)] = _replace(cells, psu=None, psu_names=None)
+            self._cache[("ids", wave)] = ids
         warnings = tuple(p.describe(Path(file).name) for p in report.problems) + tuple(extra_lines)
         step(f"adding {wave}", 3, 4, "judging against the earlier waves")
         try:
