@@ -123,6 +123,8 @@ def test_a_scheduler_address_is_used_as_given(clustered_study, tmp_path):
     with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as c:
         report = prepare(Study(copy), scheduler=c.scheduler_address)
     assert report.computed == tuple(clustered_study.labels) and c.scheduler_address in report.where
+    with pytest.raises(TrackerError, match="cannot reach the Dask scheduler .* give its address as tcp://HOST:PORT"):
+        prepare(Study(copy), scheduler="not an address", rebuild=True)
     with pytest.raises(TrackerError, match="give --workers or --scheduler, not both"):
         prepare(Study(copy), workers=2, scheduler="tcp://127.0.0.1:1", rebuild=True)
 

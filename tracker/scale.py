@@ -353,8 +353,9 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
         if scheduler:
             try:
                 client = Client(scheduler, timeout="20s")
-            except (OSError, TimeoutError) as exc:
-                raise TrackerError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc})") from None
+            except (OSError, TimeoutError, ValueError) as exc:  # unreachable, or not an address at all
+                raise TrackerError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); give its "
+                                   f"address as tcp://HOST:PORT") from None
             cluster = None
             where = f"on the Dask cluster at {scheduler}"
         else:
