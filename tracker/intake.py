@@ -10,6 +10,7 @@ import csv
 import difflib
 import hashlib
 import io
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -115,27 +116,7 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
         _sniff(path, suffix)
     problems: list[Problem] = []
     if suffix == ".parquet":
-        try:
-            import pyarrow.parquet as pq
-
-            names = pq.read_schema(path).names
-        except Exception:  # pyarrow raises many types for a broken file; read_parquet says which
-            names = []
-        twice = sorted({n for n in names if names.count(n) > 1})
-        if twice:
-            raise TrackerError(f"{path}, column {twice[0]}: the column name appears more than once")
-        try:
-            table = pd.read_parquet(path)
-        except Exception as exc:  # pyarrow raises many types for a broken file
-            text = str(exc)
-            if "duplicate" in text.lower():
-                raise TrackerError(f"{path}: a column name appears more than once; every column needs its own "
-                                   f"name") from None
-            raise TrackerError(f"{path}: cannot be read as Parquet ({text.splitlines()[0][:200]})") from None
-        if table.columns.duplicated().any():
-            raise TrackerError(f"{path}, column {table.columns[table.columns.duplicated()][0]}: the column name "
-                               f"appears more than once")
-        table = pd.DataFrame({c: _plain_column(table[c]) for c in table.columns}, columns=table.columns)
+        table, problems = _read_parquet(path)
         first_row = 1
     elif suffix in (".xlsx", ".xlsm"):
         table, first_row, problems = _read_xlsx(path, sheet, header_row)
@@ -143,11 +124,59 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
         table = _read_csv(path, encoding)
         first_row = 2
     table.columns = [str(c).strip() for c in table.columns]
+    table = _by_position(table)
     if table.shape[1] == 0:
         raise TrackerError(f"{path}: the file has no columns")
     if len(table) == 0:
         raise TrackerError(f"{path}: the file has a header but no respondents")
     return WaveFile(path, table, first_row, sha, problems)
+
+
+#: The names pandas gives a stored index that has no name of its own (row numbers, not answers).
+_UNNAMED_INDEX = re.compile(r"__index_level_\d+__")
+
+
+def _read_parquet(path: Path) -> tuple[pd.DataFrame, list[Problem]]:
+    """A Parquet file's columns by their names, every cell as text. Whatever pandas stored as
+    the index is never used to place rows: an unnamed index (the row numbers of a filtered
+    frame) is dropped, a named one is read as the ordinary column it is, and the rows keep
+    the order in which they are stored."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    try:
+        names = pq.read_schema(path).names
+    except Exception:  # pyarrow raises many types for a broken file; reading says which
+        names = []
+    twice = sorted({n for n in names if names.count(n) > 1})
+    if twice:
+        raise TrackerError(f"{path}, column {twice[0]}: the column name appears more than once")
+    try:
+        arrow = pq.read_table(path)
+    except Exception as exc:  # pyarrow raises many types for a broken file
+        text = str(exc)
+        if "duplicate" in text.lower():
+            raise TrackerError(f"{path}: a column name appears more than once; every column needs its own "
+                               f"name") from None
+        raise TrackerError(f"{path}: cannot be read as Parquet ({text.splitlines()[0][:200]})") from None
+    meta = arrow.schema.pandas_metadata or {}
+    stored_index = [c for c in meta.get("index_columns", []) if isinstance(c, str)]
+    dropped = [c for c in stored_index if _UNNAMED_INDEX.fullmatch(c)]
+    problems = [Problem("warning", c, "stored as the file's index (pandas' to_parquet): read as an ordinary "
+                                      "column") for c in stored_index if c not in dropped]
+    arrow = arrow.drop_columns(dropped) if dropped else arrow
+    for name, kind in zip(arrow.column_names, arrow.schema.types):
+        if pa.types.is_binary(kind) or pa.types.is_large_binary(kind) or pa.types.is_fixed_size_binary(kind):
+            try:
+                pc.cast(arrow[name], pa.string())
+            except Exception:  # noqa: BLE001 - pyarrow says ArrowInvalid for bytes that are not UTF-8
+                raise TrackerError(f"{path}, column {name}: binary data that is not UTF-8 text; store the "
+                                   f"column as text (string) or numbers") from None
+    # by name and position only: ignore_metadata keeps pandas from restoring the stored index
+    table = arrow.to_pandas(ignore_metadata=True)
+    table = pd.DataFrame({c: _plain_column(table[c]) for c in table.columns}, columns=table.columns)
+    return table, problems
 
 
 def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
@@ -204,6 +233,14 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     return table, header_row + 1, problems
 
 
+def _by_position(table: pd.DataFrame) -> pd.DataFrame:
+    """The table with rows numbered 0..n-1: every check and the harmonized table line rows up
+    by position, so no index carried from a reader can move an answer to another row."""
+    if table.index.equals(pd.RangeIndex(len(table))):
+        return table
+    return table.reset_index(drop=True)
+
+
 def _int_text(x: np.ndarray) -> np.ndarray:
     """Whole numbers (int64) as their decimal text, an object array of str (Arrow's cast: one
     C pass, four times numpy's)."""
@@ -254,6 +291,8 @@ def _plain_column(col: pd.Series) -> pd.Series:
 
 def _plain(v) -> str:
     """Text of a cell read from a typed file: 3.0 -> '3', so codes compare as written."""
+    if isinstance(v, bytes):
+        return v.decode("utf-8")  # binary Parquet columns were checked to be UTF-8 on reading
     if isinstance(v, (bool, np.bool_)):
         return str(int(v))
     if isinstance(v, (int, np.integer)):
@@ -336,7 +375,7 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
     strata and clusters columns.
     """
     problems: list[Problem] = []
-    table = wf.table
+    table = _by_position(wf.table)
     fr = wf.first_row
     cols = list(table.columns)
 
