@@ -198,5 +198,5 @@ def test_chart_and_brief_commands(demo_study, tmp_path):
 def test_demo_command_ends_with_the_brief(tmp_path):
     result = CliRunner().invoke(main, ["demo", str(tmp_path / "d")])
     assert result.exit_code == 0, result.output
-    assert f"briefing for 2026-Q1 written to {tmp_path / 'd' / 'brief.html'}" in result.output
-    assert (tmp_path / "d" / "brief.html").stat().st_size > 500_000
+    assert f"briefing for 2026-Q1 written to {tmp_path / 'd-brief.html'}" in result.output
+    assert (tmp_path / "d-brief.html").stat().st_size > 500_000  # beside the study, not in it

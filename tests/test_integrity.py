@@ -112,3 +112,80 @@ def test_binary_ids_are_read_as_their_text_and_non_text_bytes_are_refused(tmp_pa
     result = run("add", tmp_path / "s", tmp_path / "bad.parquet", "--wave", "2025-Q2", "--date", "2025-06-30")
     assert result.exit_code == 1 and "column member_id: binary data that is not UTF-8 text" in result.output
     assert snapshot(tmp_path / "s") == before
+
+
+# -- the study folder is the tool's alone ---------------------------------------------------
+
+@pytest.fixture
+def small_study(tmp_path):
+    study = Study.create(tmp_path / "s", EXAMPLE_CODEBOOK)
+    example_wave(n=120, seed=1).to_csv(tmp_path / "a.csv", index=False)
+    example_wave(n=120, seed=2).to_csv(tmp_path / "b.csv", index=False)
+    study.add(tmp_path / "a.csv", "2025-Q1", "2025-03-31")
+    study.add(tmp_path / "b.csv", "2025-Q2", "2025-06-30")
+    return tmp_path
+
+
+OUTPUT_CASES = [
+    ("waves", ["waves", "{s}", "-o", "{s}/ledger.json"]),
+    ("waves md", ["waves", "{s}", "-o", "{s}/waves.md"]),
+    ("estimates", ["estimates", "{s}", "-o", "{s}/ledger.json"]),
+    ("estimates into waves/", ["estimates", "{s}", "-o", "{s}/waves/x.csv"]),
+    ("changes over the codebook", ["changes", "{s}", "-o", "{s}/codebook.yaml"]),
+    ("brief", ["brief", "{s}", "-o", "{s}/brief.html"]),
+    ("brief json", ["brief", "{s}", "-o", "{s}/ledger.json"]),
+    ("chart", ["chart", "{s}", "--metric", "satisfied", "-o", "{s}/ledger.json"]),
+    ("check json", ["check", "{s}", "{t}/b.csv", "--format", "json", "-o", "{s}/ledger.json"]),
+    ("check over its input", ["check", "{s}", "{t}/b.csv", "--format", "csv", "-o", "{t}/b.csv"]),
+    ("a folder", ["estimates", "{s}", "-o", "{t}"]),
+    ("a missing folder", ["estimates", "{s}", "-o", "{t}/nowhere/x.csv"]),
+    ("a link into the study", ["estimates", "{s}", "-o", "{t}/link.json"]),
+]
+
+
+@pytest.mark.parametrize("name, args", OUTPUT_CASES, ids=[c[0] for c in OUTPUT_CASES])
+def test_an_output_never_lands_on_the_study_or_an_input(small_study, name, args):
+    t = small_study
+    (t / "link.json").symlink_to(t / "s" / "ledger.json")
+    before, wave_b = snapshot(t / "s"), (t / "b.csv").read_bytes()
+    result = run(*[a.format(s=t / "s", t=t) for a in args])
+    assert result.exit_code == 1, result.output
+    message = result.output.strip().splitlines()
+    assert len(message) == 1 and message[0].startswith("error: "), result.output
+    assert any(w in message[0] for w in ("inside the study folder", "is an input", "is a folder",
+                                         "does not exist")), message[0]
+    assert snapshot(t / "s") == before and (t / "b.csv").read_bytes() == wave_b
+    assert not list(t.glob(".incoming-*"))
+
+
+def test_an_output_is_written_whole_or_not_at_all(small_study, monkeypatch):
+    # the renaming write: a failure after the data is made leaves neither a partial file nor a temporary one
+    import tracker.store as store
+
+    t = small_study
+    (t / "out.csv").write_text("earlier contents\n")
+
+    def broken_replace(src, dst):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(store.os, "replace", broken_replace)
+    result = run("estimates", t / "s", "-o", t / "out.csv")
+    assert result.exit_code == 1 and "no space left on device" in result.output
+    assert (t / "out.csv").read_text() == "earlier contents\n"
+    assert not list(t.glob(".incoming-*"))
+
+
+def test_standard_output_failures_end_in_one_line(small_study):
+    import subprocess
+    import sys
+
+    cmd = [sys.executable, "-m", "tracker", "estimates", str(small_study / "s"), "--format", "csv"]
+    with open("/dev/full", "w") as full:
+        done = subprocess.run(cmd, stdout=full, stderr=subprocess.PIPE, text=True, timeout=120)
+    assert done.returncode == 1
+    assert done.stderr.strip().splitlines() == ["error: cannot write to standard output (no space left on device)"]
+    reader = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    reader.stdout.close()  # the reading program stops at once, as `| head -0` would
+    err = reader.stderr.read()
+    assert reader.wait(timeout=120) == 1
+    assert err.strip().splitlines() == ["error: cannot write to standard output (the program reading it stopped)"]

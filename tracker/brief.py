@@ -386,11 +386,9 @@ def _span(kind: str, lo: float, hi: float) -> str:
 
 def write_brief(brief: Brief, path: str | Path) -> Path:
     """Write the brief as .html (one self-contained page), .md or .xlsx, atomically."""
-    from .store import write_atomic
+    from .outputs import check_output, write_output
 
-    path = Path(path)
-    if not path.parent.is_dir():
-        raise TrackerError(f"{path}: the folder {path.parent} does not exist")
+    path = check_output(path)  # before the rendering: a refused path costs nothing
     suffix = path.suffix.lower()
     if suffix in (".html", ".htm"):
         data = render_html(brief).encode("utf-8")
@@ -402,8 +400,7 @@ def write_brief(brief: Brief, path: str | Path) -> Path:
         data = render_json(brief).encode("utf-8")
     else:
         raise TrackerError(f"{path}: give a file ending in .html, .md, .xlsx or .json")
-    write_atomic(path, data)
-    return path
+    return write_output(path, data)
 
 
 SECTIONS = [

@@ -346,9 +346,9 @@ def save_chart(chart, path: str | Path) -> Path:
     """Write a chart as .html (offline: libraries inlined), .png, .svg or .json."""
     import vl_convert as vlc
 
-    path = Path(path)
-    if not path.parent.is_dir():
-        raise TrackerError(f"{path}: the folder {path.parent} does not exist")
+    from .outputs import check_output, write_output
+
+    path = check_output(path)
     spec = chart_spec(chart)
     suffix = path.suffix.lower()
     if suffix == ".json":
@@ -364,7 +364,4 @@ def save_chart(chart, path: str | Path) -> Path:
             spec.get("title"), dict) else "chart").encode()
     else:
         raise TrackerError(f"{path}: give a file ending in .html, .png, .svg or .json")
-    from .store import write_atomic
-
-    write_atomic(path, data)
-    return path
+    return write_output(path, data)

@@ -44,16 +44,37 @@ def user_errors(fn):
         _quiet["on"] = quiet
         try:
             with reporting(quiet):
-                return fn(*args, **kwargs)
+                out = fn(*args, **kwargs)
+            sys.stdout.flush()  # a full disk or a closed pipe shows here, not at exit
+            return out
         except TrackerError as exc:
             click.echo(f"error: {exc}", err=True)
             sys.exit(1)
+        except OSError as exc:
+            _stdout_failed(exc)
         except KeyboardInterrupt:
             # stores commit with one rename: a wave is either wholly added or not at all
             click.echo("interrupted: the study holds either all of the change or none of it", err=True)
             sys.exit(130)
     return click.option("-q", "--quiet", is_flag=True,
                         help="No progress bar and no 'wrote ...' lines; results and errors still print.")(wrapper)
+
+
+def _stdout_failed(exc: OSError) -> None:
+    """One line for a failed write to standard output (a full disk, a closed pipe), then exit 1.
+    Every other file-system failure is a TrackerError by the time it reaches here."""
+    import errno
+
+    try:  # nothing more can reach the broken stream, and nothing must be tried at exit
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+    except OSError:
+        pass
+    if exc.errno == errno.EPIPE:
+        why = "the program reading it stopped"
+    else:
+        why = (exc.strerror or exc.__class__.__name__).lower()
+    click.echo(f"error: cannot write to standard output ({why})", err=True)
+    sys.exit(1)
 
 
 class _InOrder(click.Group):
@@ -113,7 +134,7 @@ def adjust_option(fn):
 
 def _fmt_option(fn):
     """--format, --wide and -o/--output, the same on every command that prints a table."""
-    fn = click.option("-o", "--output", type=click.Path(dir_okay=False),
+    fn = click.option("-o", "--output", type=click.Path(),
                       help="Write the table to FILE (.csv, .json, .md or .xlsx: every column, full precision).")(fn)
     fn = click.option("--wide", is_flag=True, help="At the terminal: every column, not only those that fit.")(fn)
     return click.option("--format", "fmt", type=click.Choice(FORMATS), default="table", show_default=True,
@@ -150,25 +171,23 @@ def emit(frame, fmt: str, view: str | None, wide: bool = False, output: str | No
 
 def _plain_fmt_option(fn):
     """--format and -o/--output for the quick commands (standard library only)."""
-    fn = click.option("-o", "--output", type=click.Path(dir_okay=False),
+    fn = click.option("-o", "--output", type=click.Path(),
                       help="Write the table to FILE (.csv, .json or .md).")(fn)
     return click.option("--format", "fmt", type=click.Choice(FORMATS), default="table", show_default=True,
                         help="table, csv, json or md.")(fn)
 
 
-def emit_rows(rows: list[dict], columns: list[str], fmt: str, output: str | None, right=()) -> None:
+def emit_rows(rows: list[dict], columns: list[str], fmt: str, output: str | None, right=(), inputs=()) -> None:
     """Print (or write) plain rows without pandas."""
     from .plain import render_rows
 
     if output:
-        from .store import write_atomic
+        from .outputs import write_output
 
         suffix = Path(output).suffix.lower()
         if suffix not in (".csv", ".json", ".md"):
             raise TrackerError(f"{output}: give a file ending in .csv, .json or .md")
-        if not Path(output).parent.is_dir():
-            raise TrackerError(f"{output}: the folder {Path(output).parent} does not exist")
-        write_atomic(Path(output), render_rows(rows, columns, suffix[1:]).encode("utf-8"))
+        write_output(output, render_rows(rows, columns, suffix[1:]).encode("utf-8"), inputs)
         say(f"wrote {len(rows):,} rows to {output}")
         return
     click.echo(render_rows(rows, columns, fmt, right), nl=False)
@@ -212,6 +231,10 @@ def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output)
     \b
     Example:  tracker check demo-study new-wave.csv --wave 2026-Q1
     """
+    if output:
+        from .outputs import check_output
+
+        check_output(output, inputs=[file])
     report = Study(study).check(file, wave=wave, date=date, encoding=encoding, sheet=sheet, header_row=header_row)
     n_err = len(report.errors)
     n_warn = len(report.problems) - n_err
@@ -223,7 +246,7 @@ def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output)
     else:
         rows = [{"file": report.file, "severity": p.severity, "column": p.column, "message": p.message,
                  "rows": " ".join(map(str, p.rows)), "count": p.count} for p in report.problems]
-        emit_rows(rows, CHECK_COLUMNS, fmt, output)
+        emit_rows(rows, CHECK_COLUMNS, fmt, output, inputs=[file])
     sys.exit(0 if report.ok else 1)
 
 
@@ -552,7 +575,7 @@ def composition_cmd(study, wave, against, adjust, level, fmt, wide, output):
 @adjust_option
 @level_option
 @click.option("--smooth", is_flag=True, help="Also draw the smoothed series (dotted, labelled; for thin subgroups).")
-@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False), help="FILE.html, .png, .svg or .json")
+@click.option("-o", "--output", required=True, type=click.Path(), help="FILE.html, .png, .svg or .json")
 @user_errors
 def chart_cmd(study, metric, by, overview, wave, against, adjust, level, smooth, output):
     """Draw a metric's trend chart, or the overview of every tested change.
@@ -561,7 +584,9 @@ def chart_cmd(study, metric, by, overview, wave, against, adjust, level, smooth,
     Example:  tracker chart demo-study --metric satisfied --by area -o satisfied.html
     """
     from .charts import change_overview, save_chart, trend_charts
+    from .outputs import check_output
 
+    check_output(output)
     s = Study(study)
     if overview:
         chart = change_overview(s.changes(wave=wave, against=against, adjust=adjust, level=level))
@@ -581,7 +606,7 @@ def chart_cmd(study, metric, by, overview, wave, against, adjust, level, smooth,
 @against_option()
 @adjust_option
 @level_option
-@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False),
+@click.option("-o", "--output", required=True, type=click.Path(),
               help="brief.html, brief.md, brief.xlsx or brief.json (every comparison and pattern, for other tools)")
 @user_errors
 def brief_cmd(study, wave, against, adjust, level, output):
@@ -591,9 +616,11 @@ def brief_cmd(study, wave, against, adjust, level, output):
     Example:  tracker brief demo-study --against year-ago -o brief.html
     """
     from .brief import build_brief, write_brief
+    from .outputs import check_output
 
     if Path(output).suffix.lower() not in (".html", ".htm", ".md", ".xlsx", ".json"):
         raise TrackerError(f"{output}: give a file ending in .html, .md, .xlsx or .json")
+    check_output(output)
     brief = build_brief(Study(study), wave=wave, against=against, adjust=adjust, level=level,
                         charts=Path(output).suffix.lower() in (".html", ".htm"))
     say(f"wrote {write_brief(brief, output)}")
@@ -618,5 +645,6 @@ def demo_cmd(folder):
     for r in reports:
         say(f"added {r.label}: {r.rows:,} respondents, effective base {r.effective_base:,.0f}")
     say(f"demo study ready at {study.root}")
-    path = write_brief(build_brief(study), study.root / "brief.html")
+    # beside the study, never in it: a study folder is the tool's alone
+    path = write_brief(build_brief(study), study.root.with_name(study.root.name + "-brief.html"))
     click.echo(f"briefing for {study.labels[-1]} written to {path}")

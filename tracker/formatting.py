@@ -64,11 +64,9 @@ def write_table(frame: pd.DataFrame, path) -> "Path":
     from pathlib import Path
 
     from .errors import TrackerError
-    from .store import write_atomic
+    from .outputs import check_output, write_output
 
-    path = Path(path)
-    if not path.parent.is_dir():
-        raise TrackerError(f"{path}: the folder {path.parent} does not exist")
+    path = check_output(path)
     suffix = path.suffix.lower()
     if suffix in (".csv", ".json", ".md"):
         data = render(frame, suffix[1:]).encode("utf-8")
@@ -78,5 +76,4 @@ def write_table(frame: pd.DataFrame, path) -> "Path":
         data = buf.getvalue()
     else:
         raise TrackerError(f"{path}: give a file ending in .csv, .json, .md or .xlsx")
-    write_atomic(path, data)
-    return path
+    return write_output(path, data)
