@@ -12,6 +12,8 @@ import errno
 import hashlib
 import json
 import os
+import posixpath
+import re
 import tempfile
 import time
 from contextlib import contextmanager
@@ -134,8 +136,41 @@ def _fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
+#: A wave label as the ledger must hold it (the same rule as a new wave's label).
+_LABEL = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,39}")
+_SHA256 = re.compile(r"[0-9a-f]{64}")
+
+
+def stored_file_name(text) -> str | None:
+    """A ledger's file entry in its one spelling, ``waves/<name>.parquet`` (``./waves/x`` and
+    ``waves//x`` are the same file); None for anything else: an absolute path, ``..``, a
+    file outside ``waves/`` or not a Parquet file, a name that is not text."""
+    if not isinstance(text, str) or "\x00" in text or "\\" in text or text.startswith("/"):
+        return None
+    norm = posixpath.normpath(text)
+    folder, _, name = norm.partition("/")
+    if folder != WAVES or not name or "/" in name or name.startswith(".") or not name.endswith(".parquet"):
+        return None
+    return norm
+
+
+def _version_problems(v, where: str) -> list[str]:
+    """What is wrong with one version (current or replaced) of a wave entry."""
+    out = []
+    if stored_file_name(v.get("file")) is None:
+        out.append(f"{where}: file {str(v.get('file'))[:80]!r} is not a stored wave file (waves/<name>.parquet, "
+                   f"no absolute path, no '..')")
+    if "sha256" in v and not (isinstance(v["sha256"], str) and _SHA256.fullmatch(v["sha256"])):
+        out.append(f"{where}: sha256 is not a SHA-256 hex digest")
+    rows = v.get("rows")
+    if "rows" in v and (isinstance(rows, bool) or not isinstance(rows, int) or rows < 0):
+        out.append(f"{where}: rows {str(rows)[:40]!r} is not a whole number")
+    return out
+
+
 def ledger_problems(ledger) -> list[str]:
-    """What is structurally wrong with a parsed ledger (empty when nothing)."""
+    """What is structurally wrong with a parsed ledger (empty when nothing): the waves list,
+    every entry's keys and their types, the stored files' names, labels given twice."""
     if not isinstance(ledger, dict) or not isinstance(ledger.get("waves"), list):
         return ["no waves list"]
     out = []
@@ -143,12 +178,61 @@ def ledger_problems(ledger) -> list[str]:
         if not isinstance(w, dict):
             out.append(f"wave entry {i} is not an object")
             continue
+        label = w.get("label")
+        where = f"wave entry {i} ({label if isinstance(label, str) else 'no label'})"
         missing = [k for k in ENTRY_KEYS if k not in w]
         if missing:
-            out.append(f"wave entry {i} ({w.get('label', 'no label')}) lacks {', '.join(missing)}")
-    labels = [w.get("label") for w in ledger["waves"] if isinstance(w, dict)]
+            out.append(f"{where} lacks {', '.join(missing)}")
+            continue
+        if not isinstance(label, str) or not _LABEL.fullmatch(label):
+            out.append(f"{where}: label {str(label)[:40]!r} is not a wave label")
+        if not isinstance(w["date"], str) or not _is_iso_date(w["date"]):
+            out.append(f"{where}: date {str(w['date'])[:40]!r} is not an ISO date (YYYY-MM-DD)")
+        if not isinstance(w["source"], str):
+            out.append(f"{where}: source is not a file name")
+        out += _version_problems(w, where)
+        history = w.get("history", [])
+        if not isinstance(history, list) or not all(isinstance(h, dict) for h in history):
+            out.append(f"{where}: history is not a list of earlier versions")
+            continue
+        out += [p for j, h in enumerate(history, 1) for p in _version_problems(h, f"{where}, replaced version {j}")]
+    labels = [w.get("label") for w in ledger["waves"] if isinstance(w, dict) and isinstance(w.get("label"), str)]
     out += [f"wave {label} appears more than once" for label in sorted({x for x in labels if labels.count(x) > 1})]
+    files = [stored_file_name(v.get("file")) for w in ledger["waves"] if isinstance(w, dict)
+             for v in [w, *(w.get("history") if isinstance(w.get("history"), list) else [])] if isinstance(v, dict)]
+    files = [f for f in files if f]
+    out += [f"file {f} is named by more than one entry" for f in sorted({f for f in files if files.count(f) > 1})]
     return out
+
+
+def _is_iso_date(text: str) -> bool:
+    import datetime as dt
+
+    try:
+        dt.date.fromisoformat(text)
+    except ValueError:
+        return False
+    return len(text) == 10
+
+
+def _parse_ledger(path: Path):
+    """The ledger's JSON, or raise ValueError with where it is broken."""
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except json.JSONDecodeError as exc:
+        raise ValueError(f"line {exc.lineno}: {exc.msg}") from None
+    except UnicodeDecodeError:
+        raise ValueError("not UTF-8 text") from None
+    except RecursionError:
+        raise ValueError("nested too deeply to be a ledger") from None
+
+
+def _normalised(ledger: dict) -> dict:
+    """The ledger with every file entry in its one spelling (see stored_file_name)."""
+    for w in ledger["waves"]:
+        for v in [w, *w.get("history", [])]:
+            v["file"] = stored_file_name(v["file"])
+    return ledger
 
 
 def read_ledger(root: Path) -> dict:
@@ -156,16 +240,15 @@ def read_ledger(root: Path) -> dict:
     if not path.is_file():
         raise TrackerError(f"{root}: not a study folder (no {LEDGER}); make one with 'tracker new'")
     try:
-        ledger = json.loads(path.read_text(encoding="utf-8"))
+        ledger = _parse_ledger(path)
     except OSError as exc:
         raise fs_problem(exc, path, "read the ledger") from None
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        where = f"line {exc.lineno}: {exc.msg}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
-        raise TrackerError(f"{path}: the ledger is damaged ({where}); run 'tracker verify {root}'") from None
+    except ValueError as exc:
+        raise TrackerError(f"{path}: the ledger is damaged ({exc}); run 'tracker verify {root}'") from None
     problems = ledger_problems(ledger)
     if problems:
         raise TrackerError(f"{path}: the ledger is damaged ({problems[0]}); run 'tracker verify {root}'")
-    return ledger
+    return _normalised(ledger)
 
 
 WAVE_COLUMNS = ["wave", "fieldwork_date", "respondents", "source_file", "added_at", "weighting"]
@@ -226,16 +309,20 @@ def sweep_incoming(root: Path) -> None:
 
 
 def named_files(ledger: dict) -> set[str]:
-    """Every stored file the ledger names, replaced versions (history) included."""
+    """Every stored file the ledger names, replaced versions (history) included, each in its
+    one spelling (``waves/<name>.parquet``)."""
     out = set()
     for w in ledger["waves"]:
-        out.add(w["file"])
-        out.update(h["file"] for h in w.get("history", []) if isinstance(h, dict) and "file" in h)
+        for v in [w, *w.get("history", [])]:
+            if isinstance(v, dict) and stored_file_name(v.get("file")):
+                out.add(stored_file_name(v["file"]))
     return out
 
 
 def orphans(root: Path, ledger: dict) -> list[Path]:
-    """Wave files no ledger entry names (a write that failed before its ledger commit)."""
+    """Wave files no version of any ledger entry names (a write that failed before its
+    ledger commit). Only meaningful under the study lock: an add in flight has written its
+    file and not yet committed its entry."""
     named = named_files(ledger)
     folder = root / WAVES
     return sorted(p for p in folder.glob("*.parquet") if f"{WAVES}/{p.name}" not in named) if folder.is_dir() else []
@@ -257,58 +344,109 @@ class Verification:
     def lines(self) -> list[str]:
         done = [f"removed {r}" for r in self.removed]
         if self.ok:
-            return done + [f"{self.root}: ledger and {self.checked} stored file(s) agree; no leftovers"]
+            return done + [f"{self.root}: ledger, codebook and {self.checked} stored file(s) agree; no leftovers"]
         return done + [f"{self.root}: {len(self.problems)} problem(s)"] + [f"  {p}" for p in self.problems]
 
 
 def verify(root: Path, repair: bool = False) -> Verification:
-    """Check a study on disk: the ledger's syntax and entries, every stored file's presence
-    and SHA-256 against the ledger, files no entry names, and temporary leftovers. With
-    ``repair``, remove the orphans and leftovers (never a named file)."""
+    """Check a study on disk: the ledger's syntax and entries, the codebook (readable, and
+    the one the ledger recorded), every stored file's presence and SHA-256 against the
+    ledger, files no entry names, and temporary leftovers. With ``repair``, remove the
+    orphans and leftovers (never a file any version of the ledger names).
+
+    Both run under the study's write lock (waiting for a writer at work, as a second
+    writer would), against the ledger as it stands once the lock is held: a wave an add
+    has written but not yet committed is never taken for an orphan. A study whose lock
+    cannot be taken (a read-only folder) is checked without it, and never repaired."""
     root = Path(root)
-    out = Verification(root)
-    path = root / LEDGER
-    if not path.is_file():
+    if not (root / LEDGER).is_file():
         raise TrackerError(f"{root}: not a study folder (no {LEDGER})")
     try:
-        ledger = json.loads(path.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        with study_lock(root):
+            out = _verify_locked(root)
+            if repair and out.strays:
+                removed = []
+                for p in out.strays:
+                    try:
+                        p.unlink(missing_ok=True)
+                    except OSError as exc:
+                        raise fs_problem(exc, p, "remove the leftover") from None
+                    removed.append(str(p.relative_to(root)))
+                out = _verify_locked(root)
+                out.removed = removed
+    except TrackerError:
+        if repair or os.access(root, os.W_OK):
+            raise
+        out = _verify_locked(root)  # a read-only study: nothing can be in flight, nothing is repaired
+    return out
+
+
+@dataclass
+class _Found(Verification):
+    strays: list[Path] = field(default_factory=list)
+
+
+def _verify_locked(root: Path) -> _Found:
+    out = _Found(root)
+    try:
+        ledger = _parse_ledger(root / LEDGER)
+    except ValueError as exc:
         out.problems.append(f"{LEDGER}: not valid JSON ({exc})")
         return out
+    except OSError as exc:
+        raise fs_problem(exc, root / LEDGER, "read the ledger") from None
     structural = ledger_problems(ledger)
     out.problems += [f"{LEDGER}: {p}" for p in structural]
     if structural:
-        return out
-    if not (root / CODEBOOK).is_file():
-        out.problems.append(f"{CODEBOOK}: missing")
+        return out  # nothing is removed from a study whose ledger cannot be read
+    out.problems += _codebook_problems(root, ledger)
     for w in ledger["waves"]:
-        versions = [w] + [h for h in w.get("history", []) if isinstance(h, dict) and "file" in h]
-        for v in versions:
-            f = root / v["file"]
+        for v in [w, *w.get("history", [])]:
+            name = stored_file_name(v["file"])
+            f = root / name
             what = f"wave {w['label']}" + ("" if v is w else " (replaced version)")
             if not f.is_file():
-                out.problems.append(f"{v['file']}: missing ({what})")
+                out.problems.append(f"{name}: missing ({what})")
                 continue
             out.checked += 1
             want = v.get("sha256")
             if want is None:
                 continue  # stored before hashes were recorded: presence only
             if sha256_of(f) != want:
-                out.problems.append(f"{v['file']}: changed or damaged since it was stored ({what}; SHA-256 differs)")
-    stray = orphans(root, ledger) + leftovers(root)
-    for p in stray:
+                out.problems.append(f"{name}: changed or damaged since it was stored ({what}; SHA-256 differs)")
+    out.strays = orphans(root, ledger) + leftovers(root)
+    for p in out.strays:
         rel = p.relative_to(root)
         out.problems.append(f"{rel}: " + ("a temporary leftover of an interrupted write" if p.name.startswith(".incoming-")
                                           else "not named by the ledger (an orphan of a failed write)"))
-    if repair and stray:
-        removed = []
-        with study_lock(root):
-            for p in stray:
-                p.unlink(missing_ok=True)
-                removed.append(str(p.relative_to(root)))
-        out = verify(root)
-        out.removed = removed
     return out
+
+
+def codebook_sha256(ledger: dict) -> str | None:
+    """The SHA-256 of the codebook the study was made with, as the ledger records it (older
+    ledgers: the codebook of the latest wave added)."""
+    if isinstance(ledger.get("codebook_sha256"), str):
+        return ledger["codebook_sha256"]
+    added = [w for w in ledger["waves"] if isinstance(w.get("codebook_sha256"), str)]
+    return max(added, key=lambda w: str(w.get("added", "")))["codebook_sha256"] if added else None
+
+
+def _codebook_problems(root: Path, ledger: dict) -> list[str]:
+    """The codebook missing, unreadable, or not the one the ledger recorded."""
+    from .codebook import load_codebook
+
+    path = root / CODEBOOK
+    if not path.is_file():
+        return [f"{CODEBOOK}: missing"]
+    try:
+        book = load_codebook(path)
+    except TrackerError as exc:
+        return [f"{CODEBOOK}: cannot be read ({str(exc)[:300]})"]
+    want = codebook_sha256(ledger)
+    if want is not None and book.sha256 != want:
+        return [f"{CODEBOOK}: changed since the study recorded it (SHA-256 differs); the stored waves were "
+                f"checked against the recorded version"]
+    return []
 
 
 def free_wave_file(root: Path, label: str) -> str:

@@ -134,7 +134,7 @@ class Study:
             (root / store.WAVES).mkdir(exist_ok=True)
             (root / store.LOCK).touch()
             store.write_atomic(root / store.CODEBOOK, book.source.encode("utf-8"))
-            store.write_ledger(root, {"format": 1, "title": book.title, "waves": []})
+            store.write_ledger(root, {"format": 1, "title": book.title, "codebook_sha256": book.sha256, "waves": []})
         except (OSError, TrackerError) as exc:
             if made:  # leave no half-made study behind
                 import shutil
