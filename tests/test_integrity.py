@@ -189,3 +189,107 @@ def test_standard_output_failures_end_in_one_line(small_study):
     err = reader.stderr.read()
     assert reader.wait(timeout=120) == 1
     assert err.strip().splitlines() == ["error: cannot write to standard output (the program reading it stopped)"]
+
+
+# -- damaged data is never used silently ----------------------------------------------------
+
+def _two_wave_study(tmp_path, n=150):
+    study = Study.create(tmp_path / "s", EXAMPLE_CODEBOOK)
+    for i, (label, date) in enumerate([("2025-Q1", "2025-03-31"), ("2025-Q2", "2025-06-30")]):
+        example_wave(n=n + 10 * i, seed=10 + i).to_csv(tmp_path / f"{label}.csv", index=False)
+        study.add(tmp_path / f"{label}.csv", label, date)
+    return tmp_path / "s"
+
+
+def _swap(root):
+    a, b = root / "waves" / "2025-Q1.parquet", root / "waves" / "2025-Q2.parquet"
+    tmp = root / "waves" / "x"
+    a.rename(tmp)
+    b.rename(a)
+    tmp.rename(b)
+
+
+def _flip_byte(root):
+    path = root / "waves" / "2025-Q2.parquet"
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0x01  # the same size, one bit changed
+    path.write_bytes(bytes(data))
+
+
+@pytest.mark.parametrize("damage", [_swap, _flip_byte], ids=["two wave files swapped", "one bit flipped"])
+@pytest.mark.parametrize("command", [["estimates"], ["changes"], ["trends"], ["brief", "-o", "{out}/b.json"]],
+                         ids=lambda c: c[0])
+def test_a_damaged_stored_wave_is_refused_by_every_command(tmp_path, damage, command):
+    root = _two_wave_study(tmp_path)
+    run("estimates", root)  # the cache is filled from the sound files first
+    damage(root)
+    result = run(command[0], root, *[a.format(out=tmp_path) for a in command[1:]])
+    assert result.exit_code == 1, result.output
+    assert "is damaged or has changed since it was stored" in result.output
+    assert f"run 'tracker verify {root}'" in result.output and "Traceback" not in result.output
+    assert not (tmp_path / "b.json").exists()
+    assert not run("verify", root).exit_code == 0
+
+
+def _forged(path):
+    with np.load(path) as data:
+        arrays = {k: data[k] for k in data.files}
+    for k, v in arrays.items():
+        if v.dtype.kind == "f":
+            arrays[k] = np.full_like(v, 7.0)  # every statistic 7, the key kept
+    np.savez(path, **arrays)
+
+
+def _truncated(path):
+    path.write_bytes(path.read_bytes()[: path.stat().st_size // 2])
+
+
+def _garbage(path):
+    path.write_bytes(b"PK\x03\x04" + bytes(range(256)) * 40)
+
+
+def _crc_broken(path):
+    data = bytearray(path.read_bytes())
+    data[len(data) // 3] ^= 0xFF  # inside a stored array: the zip member's CRC fails
+    path.write_bytes(bytes(data))
+
+
+def _one_cell_short(path):
+    with np.load(path) as data:
+        arrays = {k: data[k] for k in data.files}
+    for k, v in arrays.items():
+        if v.dtype.kind == "f" and v.ndim == 2:
+            arrays[k] = v[:-1]
+    arrays["group"], arrays["level"] = arrays["group"][:-1], arrays["level"][:-1]
+    np.savez(path, **arrays)
+
+
+CACHE_DAMAGE = [("forged with the right key", _forged), ("truncated", _truncated), ("garbage", _garbage),
+                ("CRC broken", _crc_broken), ("one cell short", _one_cell_short)]
+
+
+@pytest.mark.parametrize("name, damage", CACHE_DAMAGE, ids=[c[0] for c in CACHE_DAMAGE])
+def test_a_damaged_cache_entry_is_computed_again_never_trusted(tmp_path, name, damage):
+    root = _two_wave_study(tmp_path)
+    want = Study(root).estimates()
+    entry = root / "cache" / "2025-Q2.npz"
+    assert entry.is_file()
+    damage(entry)
+    result = run("estimates", root, "--format", "csv")
+    assert result.exit_code == 0 and "Traceback" not in result.output, result.output
+    got = Study(root).estimates()
+    pd.testing.assert_frame_equal(got, want)
+
+
+def test_a_damaged_or_rewritten_codebook_is_caught_by_verify(tmp_path):
+    root = _two_wave_study(tmp_path)
+    book = root / "codebook.yaml"
+    text = book.read_text()
+    book.write_text(text.replace("Northgate", "Southgate", 1))
+    result = run("verify", root)
+    assert result.exit_code == 1 and "codebook.yaml: changed since the study recorded it" in result.output
+    book.write_text(text + "\nvariables: [broken\n")
+    result = run("verify", root)
+    assert result.exit_code == 1 and "codebook.yaml: cannot be read" in result.output, result.output
+    book.write_text(text)
+    assert run("verify", root).exit_code == 0

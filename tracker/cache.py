@@ -26,7 +26,7 @@ from .methods.variance import PsuTotals
 __all__ = ["CACHE", "cache_key", "hash_ids", "read_cells", "read_entry", "read_psu", "write_cells", "write_psu"]
 
 CACHE = store.CACHE
-FORMAT = 1
+FORMAT = 2  # 2: every entry carries the digest of its arrays
 
 
 def cache_key(root: Path, entry: dict, codebook_sha256: str) -> str:
@@ -55,20 +55,31 @@ def _path(root: Path, label: str, part: str = "") -> Path:
     return root / CACHE / f"{label}{part}.npz"
 
 
-def _open(root: Path, label: str, key: str, part: str = ""):
-    path = _path(root, label, part)
+def _digest(arrays: dict) -> str:
+    """SHA-256 of an entry's arrays (names, types, shapes and bytes), stored beside them: an
+    entry cut short, garbled or edited by hand no longer matches and is computed again."""
+    h = hashlib.sha256()
+    for name in sorted(k for k in arrays if k != "digest"):
+        a = np.ascontiguousarray(arrays[name])
+        h.update(f"{name}|{a.dtype.str}|{a.shape}|".encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def _open(root: Path, label: str, key: str, part: str = "") -> dict | None:
+    """Every array of an entry whose key and digest match, or None (missing, unreadable,
+    stale, short or forged: whatever the damage, the statistics are computed again)."""
     try:
-        data = np.load(path, allow_pickle=False)
-    except (OSError, ValueError, EOFError):
+        with np.load(_path(root, label, part), allow_pickle=False) as data:
+            arrays = {k: data[k] for k in data.files}
+    except Exception:  # noqa: BLE001 - numpy and zipfile raise many types for a damaged file
         return None
     try:
-        if str(data["key"]) != key:
-            data.close()
+        if str(arrays["key"]) != key or str(arrays["digest"]) != _digest(arrays):
             return None
-    except (KeyError, ValueError, OSError):
-        data.close()
+    except (KeyError, ValueError, TypeError):
         return None
-    return data
+    return arrays
 
 
 def read_entry(root: Path, label: str, key: str) -> tuple[CellArrays, np.ndarray | None] | None:
@@ -78,11 +89,13 @@ def read_entry(root: Path, label: str, key: str) -> tuple[CellArrays, np.ndarray
     if data is None:
         return None
     try:
-        with data:
-            cells = CellArrays(tuple(data["metrics"].tolist()), tuple(data["group"].tolist()),
-                               tuple(data["level"].tolist()), {k: data[k] for k in STATS})
-            return cells, (data["id_hashes"] if "id_hashes" in data.files else None)
-    except (KeyError, ValueError, OSError):
+        shape = (len(data["group"]), len(data["metrics"]))  # levels x metrics
+        if len(data["level"]) != shape[0] or any(np.shape(data[k]) != shape for k in STATS):
+            return None  # an entry one cell short (or long) is not this wave's
+        cells = CellArrays(tuple(data["metrics"].tolist()), tuple(data["group"].tolist()),
+                           tuple(data["level"].tolist()), {k: data[k] for k in STATS})
+        return cells, data.get("id_hashes")
+    except (KeyError, ValueError, TypeError, IndexError):
         return None
 
 
@@ -96,15 +109,14 @@ def read_psu(root: Path, label: str, key: str) -> tuple[PsuTotals, np.ndarray] |
     """The cached cluster totals of every cell's linearized values and the clusters' names
     (kept apart, in <label>.psu.npz: only comparisons of waves sharing clusters read them)."""
     data = _open(root, label, key, ".psu")
-    if data is None:
+    if data is None or "psu_totals" not in data:
         return None
     try:
-        with data:
-            if "psu_totals" not in data.files:
-                return None
-            return (PsuTotals(data["psu_totals"], data["psu_stratum"], int(data["psu_n_strata"])),
-                    data["psu_names"])
-    except (KeyError, ValueError, OSError):
+        totals, stratum, names = data["psu_totals"], data["psu_stratum"], data["psu_names"]
+        if totals.ndim != 2 or len(stratum) != totals.shape[0] or len(names) != totals.shape[0]:
+            return None
+        return PsuTotals(totals, stratum, int(data["psu_n_strata"])), names
+    except (KeyError, ValueError, TypeError, IndexError):
         return None
 
 
@@ -162,6 +174,7 @@ def _write(folder: Path, label: str, parts: dict[str, dict]) -> None:
     # no fsync: after a crash an entry may be cut short, and then it fails to load or its key
     # to match, and is computed again; the cost of syncing the cache is not worth it
     for part, arrays in parts.items():
+        arrays = {**arrays, "digest": np.array(_digest(arrays))}
         with store.incoming(folder / f"{label}{part}.npz", durable=False) as tmp:
             with open(tmp, "wb") as fh:
                 np.savez(fh, **arrays)

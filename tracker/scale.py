@@ -302,7 +302,7 @@ def wave_task(root: str, label: str, engine: str = "pandas", threads: int | None
     book = study.codebook
     key = study._cache_key(label)
     if engine == "duckdb":
-        path = study.root / study._entry(label)["file"]
+        path = study.stored_path(label)
         keep = bool(book.clusters and book.waves_share_clusters)
         return label, key, duckdb_cells(book, path, keep_psu=keep, threads=threads), id_hashes(book, path)
     return (label, key, *study._wave_cells(study.load(label)))

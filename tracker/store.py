@@ -449,6 +449,87 @@ def _codebook_problems(root: Path, ledger: dict) -> list[str]:
     return []
 
 
+#: In cache/: the size, modification time and inode at which each stored file was last
+#: found to have its ledger SHA-256 (derived data: losing it costs one hash per file).
+HASHED = "hashed.json"
+
+
+def _stamp(path: Path, sha256: str) -> list:
+    st = path.stat()
+    return [st.st_size, st.st_mtime_ns, st.st_ino, sha256]
+
+
+class StoredFiles:
+    """Every stored wave file is checked against the SHA-256 its ledger entry records before
+    anything reads it or what was derived from it: once per process, and without reading it
+    again while its size, modification time and inode are those at which it last matched
+    (kept in ``cache/hashed.json``); a file damaged, replaced or swapped since is refused."""
+
+    def __init__(self, root: Path):
+        self.root = root
+        self._stamps: dict | None = None
+        self._done: set[str] = set()
+
+    def _load(self) -> dict:
+        if self._stamps is None:
+            try:
+                got = json.loads((self.root / CACHE / HASHED).read_text(encoding="utf-8"))
+                self._stamps = got if isinstance(got, dict) else {}
+            except (OSError, ValueError, RecursionError):
+                self._stamps = {}
+        return self._stamps
+
+    def check(self, entry: dict) -> Path:
+        """The path of an entry's stored file, once it is known to be what the ledger says."""
+        name, want = entry["file"], entry.get("sha256")
+        path = self.root / name
+        if name in self._done:
+            return path
+        what = f"the stored file of wave {entry['label']}"
+        try:
+            stamp = _stamp(path, want) if want else None
+        except FileNotFoundError:
+            raise TrackerError(f"{path}: {what} is missing; run 'tracker verify {self.root}'") from None
+        except OSError as exc:
+            raise fs_problem(exc, path, f"read wave {entry['label']}") from None
+        if stamp is not None and self._load().get(name) != stamp:
+            try:
+                got = sha256_of(path)
+            except OSError as exc:
+                raise fs_problem(exc, path, f"read wave {entry['label']}") from None
+            if got != want:
+                raise TrackerError(f"{path}: {what} is damaged or has changed since it was stored (its "
+                                   f"SHA-256 is not the ledger's); nothing was computed from it; run "
+                                   f"'tracker verify {self.root}'")
+            self.remember(name, stamp)
+        self._done.add(name)
+        return path
+
+    def remember(self, name: str, stamp: list, locked: bool = False) -> None:
+        """Record that ``name`` matched its SHA-256 at ``stamp`` (best effort: a busy or
+        read-only study only loses the shortcut)."""
+        stamps = self._load()
+        stamps[name] = stamp
+        try:
+            (self.root / CACHE).mkdir(exist_ok=True)
+            if locked:
+                self._write(stamps)
+            else:
+                with study_lock(self.root, wait=0):
+                    self._write(stamps)
+        except (OSError, TrackerError):
+            pass
+
+    def _write(self, stamps: dict) -> None:
+        try:  # another process may have recorded other files meanwhile: keep theirs
+            on_disk = json.loads((self.root / CACHE / HASHED).read_text(encoding="utf-8"))
+            merged = {**(on_disk if isinstance(on_disk, dict) else {}), **stamps}
+        except (OSError, ValueError, RecursionError):
+            merged = dict(stamps)
+        with incoming(self.root / CACHE / HASHED, durable=False) as tmp:
+            Path(tmp).write_text(json.dumps(merged), encoding="utf-8")
+
+
 def free_wave_file(root: Path, label: str) -> str:
     """A file name under waves/ not used yet: <label>.parquet, then <label>.v2.parquet, ..."""
     name = f"{label}.parquet"

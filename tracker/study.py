@@ -118,6 +118,7 @@ class Study:
         self.codebook: Codebook = load_codebook(self.root / store.CODEBOOK)
         self._ledger = store.read_ledger(self.root)
         self._cache: dict[str, pd.DataFrame] = {}
+        self._files = store.StoredFiles(self.root)  # each stored file checked against its SHA-256
 
     # -- making and reading ------------------------------------------------------------
     @classmethod
@@ -163,11 +164,7 @@ class Study:
     def load(self, label: str) -> pd.DataFrame:
         """The harmonized respondent table of one stored wave."""
         if label not in self._cache:
-            entry = self._entry(label)
-            path = self.root / entry["file"]
-            if not path.is_file():
-                raise TrackerError(f"{path}: the stored file of wave {label} is missing; "
-                                   f"run 'tracker verify {self.root}'")
+            path = self.stored_path(label)
             try:
                 self._cache[label] = pd.read_parquet(path)
             except OSError as exc:
@@ -179,6 +176,11 @@ class Study:
                 raise TrackerError(f"{path}: the stored file of wave {label} is damaged "
                                    f"({exc.__class__.__name__}); run 'tracker verify {self.root}'") from None
         return self._cache[label]
+
+    def stored_path(self, label: str) -> Path:
+        """The stored file of a wave, once it is known to be the file the ledger recorded (its
+        SHA-256); a changed, swapped or damaged file is refused with a pointer to verify."""
+        return self._files.check(self._entry(label))
 
     def _entry(self, label: str) -> dict:
         for w in self._ledger["waves"]:
@@ -342,8 +344,9 @@ class Study:
             store.write_parquet_atomic(self.root / fname, table)
         except OSError as exc:
             raise store.fs_problem(exc, self.root / fname, "store the wave") from None
+        sha = store.sha256_of(self.root / fname)
         entry = {
-            "label": wave, "date": iso, "file": fname, "sha256": store.sha256_of(self.root / fname),
+            "label": wave, "date": iso, "file": fname, "sha256": sha,
             "source": Path(file).name,
             "source_sha256": wf.sha256, "content_sha256": wf.content_sha256, "rows": int(len(table)), "codebook_sha256": book.sha256,
             "added": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
@@ -365,6 +368,7 @@ class Study:
                 raise store.fs_problem(exc, self.root / store.LEDGER, "record the wave in the ledger") from None
             raise
         self._ledger = ledger
+        self._files.remember(fname, store._stamp(self.root / fname, sha), locked=True)
         self._cache = {}  # a replaced wave changes what was derived from it
         if cells is not None:  # the new wave's cell statistics, ready for the next command (derived)
             from dataclasses import replace as _replace
@@ -455,6 +459,8 @@ class Study:
         if key not in self._cache:
             from .cache import read_entry
 
+            self.stored_path(label)  # what the cache holds is derived from this file: it must be sound
+
             got = read_entry(self.root, label, self._cache_key(label))
             cells = None if got is None else got[0]
             if cells is not None:
@@ -475,6 +481,8 @@ class Study:
         key = ("psu", label)
         if key not in self._cache:
             from .cache import read_psu
+
+            self.stored_path(label)
 
             got = read_psu(self.root, label, self._cache_key(label))
             if got is None:
