@@ -179,6 +179,20 @@ def huge_ratio(frame):
     frame.loc[0, "wt"] = 1e7
 
 
+def nul_in_late_id(tmp):
+    frame = example_wave(n=300, seed=2)
+    frame["member_id"] = frame["member_id"].astype(object)
+    frame.loc[250, "member_id"] = "M2-250\x00"  # past the first 4 KB the sniffing reads
+    path = tmp / "w.csv"
+    frame.to_csv(path, index=False)
+    assert path.read_bytes().index(b"\x00") > 4096
+    return path
+
+
+def escape_in_id(frame):
+    frame.loc[4, "member_id"] = "M2-4\x1b[31m"
+
+
 WAVE_CASES = [
     ("no id column", csv_of(dropped("member_id")), "the id column is missing"),
     ("duplicate ids", csv_of(changed(member_id=lambda f: f.__setitem__("member_id", ["M1"] * len(f)))),
@@ -233,6 +247,12 @@ WAVE_CASES = [
     ("date not ISO", labelled("2025-Q2", date="30/06/2025"), "is not an ISO date"),
     ("date taken", labelled("2025-Q2", date="2025-03-31"), "already has fieldwork date 2025-03-31"),
     ("unknown encoding", lambda tmp: (raw(good_csv_bytes())(tmp), ["--encoding", "klingon"]), "unknown encoding"),
+    ("NUL inside an id after 4 KB", nul_in_late_id, "id value(s) hold the control character U+0000"),
+    ("escape sequence in an id", csv_of(changed(member_id=escape_in_id)), "id value(s) hold the control character U+001B"),
+    ("inf in the cluster column", csv_of(changed(visit_day="inf")), "clusters 'inf' is not a finite number"),
+    ("NaN in the strata column", csv_of(changed(site_stratum="NaN")), "strata 'NaN' is not a finite number"),
+    ("label of another form than the codebook's waves", labelled("2025-06", date="2025-06-30"),
+     "wave label '2025-06' is not of the form of the codebook's variables.membership.first_wave ('2024-Q1')"),
     ("XLSX sheet not there", lambda tmp: (xlsx(lambda wb, ws: None)(tmp), ["--sheet", "Data"]),
      "no sheet named 'Data'"),
 ]
@@ -286,7 +306,7 @@ CODEBOOK_CASES = [
     ("range with NaN", BOOK.replace("range: [16, 99]", "range: [.nan, 99]"), "both ends must be finite"),
     ("band with inf", BOOK.replace('"55+": [55, 99]', '"55+": [55, .inf]'), "both ends must be finite"),
     ("20,000 nested brackets", nested(20000), "nested more than 32 levels deep"),
-    ("alias bomb as a label", bomb(), "unknown key"),
+    ("alias bomb as a label", bomb(), "its aliases (*name) expand to more than 200,000 values"),
     ("unknown type", BOOK.replace("type: number", "type: numeric"), "'numeric' is not one of"),
     ("share code not in the frame", BOOK.replace("share: [4, 5]                     #", "share: [4, 7]  #"),
      "code 7 is not a code of satisfaction"),
@@ -304,6 +324,18 @@ CODEBOOK_CASES = [
     ("label a list", BOOK.replace("label: Age in years", "label: [Age, years]"), "variables.age.label: expected a text value"),
     ("group on an undeclared design column", BOOK.replace("  site: {variable: site}", "  stratum: {variable: site_stratum}"),
      "'site_stratum' is the strata column; to break results down by it, also declare it under variables"),
+    ("rake.always quoted", BOOK + "rake: {always: 'false'}\n", "rake.always: 'false': write true or false, without quotes"),
+    ("rake.tolerance 0", BOOK + "rake: {tolerance: 0, max_rounds: 1000}\n", "rake.tolerance: 0: give a number from 1e-12"),
+    ("rake.max_rounds 1e9", BOOK + "rake: {max_rounds: 1e9}\n", "rake.max_rounds: '1e9': give a whole number from 1 to 10,000"),
+    ("rake.cap not a cap", BOOK + "rake: {cap: 'abc'}\n", "rake.cap: cap 'abc': write it as LOW:HIGH"),
+    ("two codes with one label in a group", BOOK.replace("2: Millfield, 3: Ashby Park", "2: Millfield, 3: Millfield"),
+     "groups.site: codes 2 and 3 of site share the label 'Millfield'"),
+    ("NUL in a label", BOOK.replace("label: Age in years", 'label: "Age\\0 in years"'),
+     "variables.age.label: holds the control character U+0000"),
+    ("escape sequence in a code label", BOOK.replace("1: Harbour Road", '1: "Harbour\\e[2J Road"'),
+     "holds the control character U+001B"),
+    ("wave labels of two forms", BOOK.replace("break_before: 2025-Q1", "break_before: 2026-4"),
+     "is not written like variables.cleanliness.break_before ('2026-4')"),
     ("recode to an unknown code", BOOK.replace("map: {4: 3}", "map: {4: 8}"), "code 8 is not a code of membership"),
 ]
 

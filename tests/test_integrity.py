@@ -293,3 +293,29 @@ def test_a_damaged_or_rewritten_codebook_is_caught_by_verify(tmp_path):
     assert result.exit_code == 1 and "codebook.yaml: cannot be read" in result.output, result.output
     book.write_text(text)
     assert run("verify", root).exit_code == 0
+
+
+def test_hidden_rows_of_a_workbook_are_named_before_they_are_read(tmp_path):
+    from openpyxl import Workbook
+
+    frame = example_wave(n=30, seed=5)
+    wb = Workbook()
+    ws = wb.active
+    ws.append(list(frame.columns))
+    for row in frame.itertuples(index=False):
+        ws.append([v.item() if hasattr(v, "item") else v for v in row])
+    for r in (5, 9):
+        ws.row_dimensions[r].hidden = True  # respondents the sender filtered out of view
+    wb.save(tmp_path / "w.xlsx")
+    Study.create(tmp_path / "s", EXAMPLE_CODEBOOK)
+    result = run("check", tmp_path / "s", tmp_path / "w.xlsx", "--wave", "2025-Q1")
+    assert result.exit_code == 0, result.output
+    assert "2 row(s) are hidden in the sheet (rows 5, 9); they are read like every other row" in result.output
+
+
+def test_a_boolean_rake_setting_is_taken_as_written(tmp_path):
+    from tracker.codebook import parse_codebook
+
+    text = EXAMPLE_CODEBOOK.read_text()
+    assert parse_codebook(text + "rake: {always: false, cap: '0.2:5'}\n").rake == {"always": False, "cap": (0.2, 5.0)}
+    assert parse_codebook(text + "rake: {always: true, max_rounds: 50}\n").rake["always"] is True

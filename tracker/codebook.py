@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import math
 import re
+import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -65,26 +66,44 @@ _Loader.add_constructor("tag:yaml.org,2002:map", lambda loader, node: _construct
 MAX_BYTES = 2_000_000
 MAX_DEPTH = 32
 MAX_ALIASES = 500
+#: Values the document holds once every alias is written out ("billion laughs": a few
+#: aliases of aliases expand to millions of values when a message or a loop walks them).
+MAX_VALUES = 200_000
 
 
 def _guard(text: str, name: str) -> None:
     if len(text.encode("utf-8")) > MAX_BYTES:
         raise TrackerError(f"codebook: {name}: larger than {MAX_BYTES // 1_000_000} MB; is this the codebook?")
-    depth = aliases = 0
+    depth = aliases = values = 0
+    opened: list[tuple[str | None, int]] = []  # (anchor, values before it) of each open collection
+    size: dict[str, int] = {}  # values each anchor stands for, aliases written out
     try:
         for event in yaml.parse(text, Loader=_Loader):
-            if isinstance(event, (yaml.MappingStartEvent, yaml.SequenceStartEvent)):
+            if isinstance(event, yaml.ScalarEvent):
+                values += 1
+                if event.anchor:
+                    size[event.anchor] = 1
+            elif isinstance(event, (yaml.MappingStartEvent, yaml.SequenceStartEvent)):
+                values += 1
+                opened.append((event.anchor, values))
                 depth += 1
                 if depth > MAX_DEPTH:
                     line = event.start_mark.line + 1
                     raise TrackerError(f"codebook: {name}: nested more than {MAX_DEPTH} levels deep at line {line}")
             elif isinstance(event, (yaml.MappingEndEvent, yaml.SequenceEndEvent)):
                 depth -= 1
+                anchor, before = opened.pop()
+                if anchor:
+                    size[anchor] = values - before + 1
             elif isinstance(event, yaml.AliasEvent):
+                values += size.get(event.anchor, 1)
                 aliases += 1
                 if aliases > MAX_ALIASES:
                     raise TrackerError(f"codebook: {name}: more than {MAX_ALIASES} aliases (*name); write the "
                                        f"codebook out plainly")
+            if values > MAX_VALUES:
+                raise TrackerError(f"codebook: {name}: its aliases (*name) expand to more than {MAX_VALUES:,} values "
+                                   f"at line {event.start_mark.line + 1}; write the codebook out plainly")
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         if "nesting depth" in str(exc) and mark is not None:  # libyaml stops at its own limit first
@@ -241,7 +260,57 @@ def _mapping(node: Any, path: str, required: bool = True) -> dict:
 def _text(node: Any, path: str) -> str:
     if node is None or isinstance(node, (dict, list)):
         raise _err(path, "expected a text value")
-    return str(node)
+    text = str(node)
+    bad = next((c for c in text if unicodedata.category(c) == "Cc"), None)
+    if bad is not None:  # NUL, escape sequences and the like would reach files, pages and terminals
+        raise _err(path, f"holds the control character U+{ord(bad):04X}; labels and names are plain text")
+    return text
+
+
+def shorten(text: str, width: int = 80) -> str:
+    """``text`` cut to ``width`` characters for a message (an ellipsis says it was cut)."""
+    return text if len(text) <= width else text[: width - 3] + "..."
+
+
+#: Bounds of the codebook's rake settings: a tolerance below 1e-12 is beyond double
+#: precision for margins summing to 1, and more rounds than this never help.
+RAKE_TOLERANCE = (1e-12, 0.01)
+RAKE_ROUNDS = (1, 10_000)
+
+
+def parse_cap(text: str) -> tuple[float, float]:
+    """'0.2:5' -> (0.2, 5.0)."""
+    try:
+        lo, hi = (float(x) for x in str(text).split(":"))
+    except ValueError:
+        raise TrackerError(f"cap {shorten(str(text))!r}: write it as LOW:HIGH, for example 0.2:5") from None
+    if not (0 < lo < 1 < hi < math.inf):
+        raise TrackerError(f"cap {shorten(str(text))!r}: LOW must be between 0 and 1 and HIGH above 1")
+    return lo, hi
+
+
+def _parse_rake(node: Any) -> dict[str, Any]:
+    """The rake settings, each of its own type and within its bounds (a quoted 'false' is
+    text, not a boolean: refused rather than read as true)."""
+    rake = dict(_mapping(node, "rake", required=False))
+    if "always" in rake and not isinstance(rake["always"], bool):
+        raise _err("rake.always", f"{shorten(repr(rake['always']))}: write true or false, without quotes")
+    if "cap" in rake:
+        try:
+            rake["cap"] = parse_cap(rake["cap"] if isinstance(rake["cap"], str) else repr(rake["cap"]))
+        except TrackerError as exc:
+            raise _err("rake.cap", str(exc)) from None
+    lo, hi = RAKE_TOLERANCE
+    tol = rake.get("tolerance", 1e-8)
+    if isinstance(tol, bool) or not isinstance(tol, (int, float)) or not lo <= tol <= hi:
+        raise _err("rake.tolerance", f"{shorten(repr(tol))}: give a number from {lo:g} to {hi:g}")
+    lo, hi = RAKE_ROUNDS
+    rounds = rake.get("max_rounds", 1000)
+    if isinstance(rounds, float) and rounds.is_integer():
+        rounds = int(rounds)
+    if isinstance(rounds, bool) or not isinstance(rounds, int) or not lo <= rounds <= hi:
+        raise _err("rake.max_rounds", f"{shorten(repr(rounds))}: give a whole number from {lo:,} to {hi:,}")
+    return rake
 
 
 def _code_map(node: Any, path: str) -> dict[float, str]:
@@ -361,15 +430,64 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
             raise _err(path, f"shares sum to {total:.4g}, not 1")
         targets[gname] = shares
 
-    rake = _mapping(doc.get("rake"), "rake", required=False)
+    rake = _parse_rake(doc.get("rake"))
     single_rule, share_clusters = _design_options(doc)
-    return Codebook(
+    book = Codebook(
         title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
         variables=variables, groups=groups, metrics=metrics, profile=profile,
         targets=targets, rake=dict(rake), source=text,
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         single_cluster_rule=single_rule, waves_share_clusters=share_clusters,
     )
+    refs = wave_references(book)
+    if refs:
+        first = refs[0]
+        odd = next(((w, lab) for w, lab in refs if label_form(lab) != label_form(first[1])), None)
+        if odd is not None:
+            raise _err(odd[0], f"{shorten(odd[1])!r} is not written like {first[0]} ({shorten(first[1])!r}); "
+                               f"every wave label the codebook names must be of one form")
+    return book
+
+
+def label_form(label: str) -> str:
+    """The form of a wave label, each digit written 9 and each letter A: 2025-Q1 -> 9999-A9.
+    Labels of one form sort as text in the order they are written (2025-09 before 2025-10)."""
+    return re.sub(r"[A-Za-z]", "A", re.sub(r"[0-9]", "9", label))
+
+
+def wave_references(book: "Codebook") -> list[tuple[str, str]]:
+    """Every wave label the codebook names, with where: (``variables.x.break_before``, label)."""
+    out = []
+    for v in book.variables.values():
+        for key in ("break_before", "first_wave", "last_wave"):
+            if getattr(v, key) is not None:
+                out.append((f"variables.{v.name}.{key}", getattr(v, key)))
+        for i, rc in enumerate(v.recode):
+            out += [(f"variables.{v.name}.recode[{i}].waves", w) for w in rc.waves]
+    return out
+
+
+def reference_problems(book: "Codebook", labels: list[str], new: str | None = None) -> list[str]:
+    """Codebook wave references that cannot be placed among the study's waves: a reference
+    that is not a stored wave (``labels``) is ordered against the waves as text, which is only
+    right between labels of one form (break_before: 2026-4 among 2026-04, 2026-05 would sort
+    after every wave, and the break would silently never apply). ``new``: a wave about to be
+    added, which must be of the form of every reference not yet stored."""
+    open_refs = [(where, lab) for where, lab in wave_references(book) if lab not in labels]
+    out = []
+    if labels:
+        forms = {label_form(w) for w in labels}
+        shown = ", ".join(sorted(labels)[-2:])
+        out += [f"codebook: {where}: {shorten(lab)!r} is not a stored wave and not of the form of this study's "
+                f"wave labels (e.g. {shown}), so it cannot be placed among them; write it as the waves are labelled"
+                for where, lab in open_refs if label_form(lab) not in forms]
+    if new is not None and not out:
+        odd = next(((w, lab) for w, lab in open_refs if lab != new and label_form(lab) != label_form(new)), None)
+        if odd is not None:
+            out.append(f"wave label {shorten(new)!r} is not of the form of the codebook's {odd[0]} "
+                       f"({shorten(odd[1])!r}), so the two cannot be put in order; label the wave as the codebook "
+                       f"writes its waves")
+    return out
 
 
 def _design_options(doc: dict) -> tuple[str, bool]:
@@ -501,6 +619,13 @@ def _parse_group(name: str, node: Any, variables: dict[str, Variable], design: d
                 seen[c] = str(label)
             levels[str(label)] = cl
         return Group(name, vname, levels)
+    by_label: dict[str, float] = {}
+    for code, label in var.codes.items():
+        if label in by_label:  # one of the two would silently leave the split
+            raise _err(path, f"codes {_fmt_code(by_label[label])} and {_fmt_code(code)} of {vname} share the label "
+                             f"{shorten(label)!r}; a subgroup needs labels of its own (or put the codes together "
+                             f"with merge: {{{shorten(label, 40)}: [{_fmt_code(by_label[label])}, {_fmt_code(code)}]}})")
+        by_label[label] = code
     return Group(name, vname, {label: (code,) for code, label in var.codes.items()})
 
 

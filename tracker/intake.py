@@ -132,6 +132,9 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
     return WaveFile(path, table, first_row, sha, problems)
 
 
+#: Control characters (C0, DEL, C1): never part of an id or a design label.
+_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
+
 #: The names pandas gives a stored index that has no name of its own (row numbers, not answers).
 _UNNAMED_INDEX = re.compile(r"__index_level_\d+__")
 
@@ -230,6 +233,14 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     table = table.where(table.notna(), "").map(lambda v: v if isinstance(v, str) else _plain(v))
     problems = [Problem("warning", "", f"sheet {sheet}: column names read from row {header_row}; rows above it "
                                        f"left out")] if header_row > 1 else []
+    hidden = [r for r, dim in ws.row_dimensions.items() if dim.hidden and header_row < r <= len(rows)
+              and any(v is not None and str(v).strip() != "" for v in rows[r - 1])]
+    if hidden:
+        shown = ", ".join(str(r) for r in sorted(hidden)[:MAX_EXAMPLES])
+        more = f" (and {len(hidden) - MAX_EXAMPLES} more)" if len(hidden) > MAX_EXAMPLES else ""
+        problems.append(Problem("warning", "", f"sheet {sheet}: {len(hidden)} row(s) are hidden in the sheet "
+                                               f"(rows {shown}{more}); they are read like every other row: if the "
+                                               f"sender hid respondents to leave them out, delete those rows"))
     return table, header_row + 1, problems
 
 
@@ -448,6 +459,16 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
         else:
             if blank.any():
                 add("error", col, f"blank {role}", blank)
+            control = values.str.contains(_CONTROL, regex=True).to_numpy(dtype=bool)
+            if control.any():
+                code = next(c for c in values[control].iloc[0] if _CONTROL.match(c))
+                add("error", col, f"{role} value(s) hold the control character U+{ord(code):04X} (a NUL byte, "
+                                  f"an escape sequence or the like): a damaged export?", control)
+            if role in ("strata", "clusters"):
+                word = values.str.lower().str.lstrip("+-")
+                endless = word.isin(["inf", "infinity", "nan"]).to_numpy(dtype=bool)
+                if endless.any():
+                    add("error", col, f"{role} {values[endless].iloc[0]!r} is not a finite number", endless)
             if role == "id":
                 dup = values.duplicated(keep=False).to_numpy() & ~blank
                 if dup.any():

@@ -442,6 +442,11 @@ def _codebook_problems(root: Path, ledger: dict) -> list[str]:
         book = load_codebook(path)
     except TrackerError as exc:
         return [f"{CODEBOOK}: cannot be read ({str(exc)[:300]})"]
+    from .codebook import reference_problems
+
+    found = reference_problems(book, [w["label"] for w in ledger["waves"]])
+    if found:
+        return [f"{CODEBOOK}: {p.removeprefix('codebook: ')}" for p in found]
     want = codebook_sha256(ledger)
     if want is not None and book.sha256 != want:
         return [f"{CODEBOOK}: changed since the study recorded it (SHA-256 differs); the stored waves were "

@@ -237,6 +237,10 @@ class Study:
                 if not EARLIEST_DATE <= dt.date.fromisoformat(iso) <= latest:
                     problems.append(Problem("warning", "", f"fieldwork date {iso} lies outside {EARLIEST_DATE} to "
                                             f"{latest} (a year from today); is it a typing slip?"))
+        if label is not None and LABEL_RE.fullmatch(label):
+            from .codebook import reference_problems
+
+            problems += [Problem("error", "", p) for p in reference_problems(self.codebook, self.labels, label)]
         for w in self.wave_entries:
             if w["source_sha256"] == wf.sha256 and not (replace and w["label"] == label):
                 problems.append(Problem("error", "", f"this file is already stored as wave {w['label']}"

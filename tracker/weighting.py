@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from .cells import group_labels
-from .codebook import Codebook
+from .codebook import Codebook, parse_cap  # noqa: F401 - parse_cap: the command line imports it from here
 from .errors import TrackerError
 
 
@@ -91,12 +91,9 @@ def rake_table(book: Codebook, table: pd.DataFrame, cap: tuple[float, float] | N
     if not book.weight:
         raise TrackerError("codebook: weight: raking needs a weight column name to store the weights under")
     if cap is None and book.rake.get("cap"):
-        cap = parse_cap(str(book.rake["cap"]))
-    try:
-        tol = float(book.rake.get("tolerance", tol))
-        max_iter = int(book.rake.get("max_rounds", max_iter))
-    except (TypeError, ValueError):
-        raise TrackerError("codebook: rake: tolerance must be a number and max_rounds a whole number") from None
+        cap = book.rake["cap"]  # parsed with the codebook
+    tol = float(book.rake.get("tolerance", tol))  # both checked and bounded with the codebook
+    max_iter = int(book.rake.get("max_rounds", max_iter))
     labels, targets = [], []
     for gname, tgt in book.targets.items():
         lab = group_labels(book, table, gname)
@@ -122,14 +119,3 @@ def rake_table(book: Codebook, table: pd.DataFrame, cap: tuple[float, float] | N
     out = table.copy()
     out[book.weight] = result.weights
     return out, result
-
-
-def parse_cap(text: str) -> tuple[float, float]:
-    """'0.2:5' -> (0.2, 5.0)."""
-    try:
-        lo, hi = (float(x) for x in str(text).split(":"))
-    except ValueError:
-        raise TrackerError(f"cap {text!r}: write it as LOW:HIGH, for example 0.2:5") from None
-    if not (0 < lo < 1 < hi):
-        raise TrackerError(f"cap {text!r}: LOW must be between 0 and 1 and HIGH above 1")
-    return lo, hi
