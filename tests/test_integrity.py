@@ -319,3 +319,92 @@ def test_a_boolean_rake_setting_is_taken_as_written(tmp_path):
     text = EXAMPLE_CODEBOOK.read_text()
     assert parse_codebook(text + "rake: {always: false, cap: '0.2:5'}\n").rake == {"always": False, "cap": (0.2, 5.0)}
     assert parse_codebook(text + "rake: {always: true, max_rounds: 50}\n").rake["always"] is True
+
+
+# -- outputs are safe to open ---------------------------------------------------------------
+
+PAYLOAD = "=cmd|' /C calc'!A0"
+LINK = "[see](javascript:alert(1))"
+
+
+@pytest.fixture(scope="module")
+def hostile_study(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("hostile")
+    text = EXAMPLE_CODEBOOK.read_text()
+    text = text.replace("1: Harbour Road", f'1: "{PAYLOAD}"').replace("Harbour Road: 0.45", f'"{PAYLOAD}": 0.45')
+    text = text.replace("2: Millfield", f'2: "{LINK}"').replace("Millfield: 0.35", f'"{LINK}": 0.35')
+    text = text.replace("label: Satisfied (top-2 box)", 'label: "@SUM(1+1) top-2 <img src=x onerror=alert(1)>"')
+    (tmp / "book.yaml").write_text(text)
+    study = Study.create(tmp / "s", tmp / "book.yaml")
+    for i, (label, date) in enumerate([("2025-Q1", "2025-03-31"), ("2025-Q2", "2025-06-30")]):
+        example_wave(n=400, seed=20 + i).to_csv(tmp / f"{label}.csv", index=False)
+        study.add(tmp / f"{label}.csv", label, date)
+    return tmp
+
+
+def _is_number(text):
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _csv_cells(text):
+    import csv
+    import io
+
+    return [c for row in csv.reader(io.StringIO(text)) for c in row]
+
+
+@pytest.mark.parametrize("args", [["estimates"], ["changes", "--all"], ["composition"], ["trends"]],
+                         ids=lambda a: a[0])
+def test_no_csv_or_xlsx_cell_can_run_as_a_formula(hostile_study, args):
+    from openpyxl import load_workbook
+
+    from tracker.plain import FORMULA
+
+    t = hostile_study
+    out = t / f"{args[0]}.csv"
+    for result_text in (run(*args, t / "s", "--format", "csv").output,
+                        (run(*args, t / "s", "-o", out), out.read_text())[1]):
+        cells = [c for c in _csv_cells(result_text) if not _is_number(c)]  # a number is never a formula
+        assert any(PAYLOAD in c for c in cells) or args[0] == "trends"
+        assert not [c for c in cells if FORMULA.match(c)]  # OWASP, "CSV Injection"
+    xlsx = t / f"{args[0]}.xlsx"
+    assert run(*args, t / "s", "-o", xlsx).exit_code == 0
+    ws = load_workbook(xlsx).active
+    values = [c for row in ws.iter_rows() for c in row]
+    assert not [c.coordinate for c in values if c.data_type == "f"]
+    assert not [c.value for c in values if isinstance(c.value, str) and FORMULA.match(c.value) and not _is_number(c.value)]
+
+
+def test_markdown_and_html_outputs_carry_no_live_link_or_markup(hostile_study):
+    t = hostile_study
+    for args, out in ((["estimates"], "e.md"), (["changes", "--all"], "c.md"), (["brief"], "b.md"),
+                      (["brief"], "b.html")):
+        assert run(*args, t / "s", "-o", t / out).exit_code == 0
+        text = (t / out).read_text()
+        assert "<img src=x onerror" not in text and 'href="javascript' not in text, out
+        if out.endswith(".md"):
+            assert "](javascript:" not in text, out
+            assert "\\[see\\](javascript&#58;alert(1))" in text, out
+
+
+def test_what_reaches_the_terminal_cannot_drive_it(hostile_study, tmp_path):
+    import shutil
+
+    t = hostile_study
+    odd = tmp_path / "wave\x1b]0;owned\x07\x1b[2J.csv"
+    shutil.copy(t / "2025-Q1.csv", odd)
+    for result in (run("check", t / "s", odd), run("add", t / "s", odd, "--wave", "2025-Q3", "--date", "2025-09-30")):
+        assert "\x1b" not in result.output and "\x07" not in result.output
+        assert "wave\\x1b]0;owned\\x07\\x1b[2J.csv" in result.output
+
+
+def test_a_long_label_is_shortened_in_messages(tmp_path):
+    text = EXAMPLE_CODEBOOK.read_text().replace("profile: [site, age_band, sex]", "profile: [site, " + "X" * 5000 + "]")
+    (tmp_path / "book.yaml").write_text(text)
+    result = run("new", tmp_path / "s", "--codebook", tmp_path / "book.yaml")
+    assert result.exit_code == 1 and "is not a group in groups" in result.output and "X" * 40 in result.output
+    assert len(result.output) < 800

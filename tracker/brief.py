@@ -432,8 +432,7 @@ def render_json(brief: Brief) -> str:
 def render_markdown(brief: Brief) -> str:
     """The brief as Markdown; every text from the study is HTML-escaped, since Markdown
     renderers pass raw HTML through."""
-    def e(text) -> str:
-        return html.escape(str(text), quote=False)
+    from .plain import md_text as e
 
     out = [f"# {e(brief.title)}", "", f"Briefing for wave {e(brief.wave)}, compared with {e(brief.against)}.", ""]
     for attr, heading, empty in SECTIONS:

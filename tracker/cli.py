@@ -28,10 +28,18 @@ def Study(path):  # noqa: N802 - reads as the class it opens; imported here so -
 _quiet = {"on": False}
 
 
+def echo(text: str = "", nl: bool = True, err: bool = False) -> None:
+    """Every line the command line prints: what a terminal would obey rather than show (an
+    escape sequence in a file name or a cell) is shown as its code, and long lines are cut."""
+    from .plain import terminal_text
+
+    click.echo(terminal_text(str(text)), nl=nl, err=err)
+
+
 def say(text: str) -> None:
     """An informational line ("wrote ...", "added ..."): silenced by -q, unlike results."""
     if not _quiet["on"]:
-        click.echo(text)
+        echo(text)
 
 
 def user_errors(fn):
@@ -48,13 +56,16 @@ def user_errors(fn):
             sys.stdout.flush()  # a full disk or a closed pipe shows here, not at exit
             return out
         except TrackerError as exc:
-            click.echo(f"error: {exc}", err=True)
+            from .codebook import shorten
+
+            # a value echoed from a file or codebook may be any length: each line is kept readable
+            echo("\n".join(shorten(line, 1000) for line in f"error: {exc}".splitlines()), err=True)
             sys.exit(1)
         except OSError as exc:
             _stdout_failed(exc)
         except KeyboardInterrupt:
             # stores commit with one rename: a wave is either wholly added or not at all
-            click.echo("interrupted: the study holds either all of the change or none of it", err=True)
+            echo("interrupted: the study holds either all of the change or none of it", err=True)
             sys.exit(130)
     return click.option("-q", "--quiet", is_flag=True,
                         help="No progress bar and no 'wrote ...' lines; results and errors still print.")(wrapper)
@@ -73,7 +84,7 @@ def _stdout_failed(exc: OSError) -> None:
         why = "the program reading it stopped"
     else:
         why = (exc.strerror or exc.__class__.__name__).lower()
-    click.echo(f"error: cannot write to standard output ({why})", err=True)
+    echo(f"error: cannot write to standard output ({why})", err=True)
     sys.exit(1)
 
 
@@ -160,13 +171,13 @@ def emit(frame, fmt: str, view: str | None, wide: bool = False, output: str | No
         from .view import human_table, terminal_width
 
         text, notes = human_table(frame, view, wide=wide)
-        click.echo(text, nl=False)
+        echo(text, nl=False)
         footer = [textwrap.fill(line, terminal_width()) for line in [*notes, *footer]]
     else:
-        click.echo(render(frame, fmt), nl=False)
+        echo(render(frame, fmt), nl=False)
     if fmt in ("table", "md"):
         for line in footer:
-            click.echo(line)
+            echo(line)
 
 
 def _plain_fmt_option(fn):
@@ -190,7 +201,7 @@ def emit_rows(rows: list[dict], columns: list[str], fmt: str, output: str | None
         write_output(output, render_rows(rows, columns, suffix[1:]).encode("utf-8"), inputs)
         say(f"wrote {len(rows):,} rows to {output}")
         return
-    click.echo(render_rows(rows, columns, fmt, right), nl=False)
+    echo(render_rows(rows, columns, fmt, right), nl=False)
 
 
 @main.command("new", short_help="Make a study folder from a codebook.")
@@ -206,7 +217,7 @@ def new_cmd(study, codebook):
     from .study import Study as _Study
 
     s = _Study.create(study, codebook)
-    click.echo(f"made study {s.root} ({s.codebook.title}): {len(s.codebook.variables)} variables, "
+    echo(f"made study {s.root} ({s.codebook.title}): {len(s.codebook.variables)} variables, "
                f"{len(s.codebook.metrics)} metrics, {len(s.codebook.groups)} subgroup splits")
 
 
@@ -241,8 +252,8 @@ def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output)
     verdict = "can be added" if report.ok else "cannot be added"
     if fmt == "table" and not output:
         for line in report.lines():
-            click.echo(line)
-        click.echo(f"{file}: {report.rows:,} rows; {n_err} error(s), {n_warn} warning(s); {verdict}")
+            echo(line)
+        echo(f"{file}: {report.rows:,} rows; {n_err} error(s), {n_warn} warning(s); {verdict}")
     else:
         rows = [{"file": report.file, "severity": p.severity, "column": p.column, "message": p.message,
                  "rows": " ".join(map(str, p.rows)), "count": p.count} for p in report.problems]
@@ -281,10 +292,10 @@ def add_cmd(study, file, wave, date, encoding, replace, allow_duplicate, rake, c
         import dataclasses
         import json
 
-        click.echo(json.dumps(dataclasses.asdict(report), indent=1, default=str))
+        echo(json.dumps(dataclasses.asdict(report), indent=1, default=str))
         return
     for line in report.lines():
-        click.echo(line)
+        echo(line)
 
 
 @main.command("waves", short_help="List the stored waves in fieldwork order.")
@@ -301,7 +312,7 @@ def waves_cmd(study, fmt, output):
 
     rows = store.wave_rows(store.read_ledger(Path(study)))  # the ledger alone: no pandas, an instant answer
     if not rows and fmt == "table" and not output:
-        click.echo("no waves stored yet")
+        echo("no waves stored yet")
         return
     if fmt == "table" and not output:
         rows = [{**r, "respondents": f"{r['respondents']:,}"} for r in rows]
@@ -325,7 +336,7 @@ def verify_cmd(study, repair):
 
     result = store.verify(Path(study), repair=repair)
     for line in result.lines():
-        click.echo(line)
+        echo(line)
     sys.exit(0 if result.ok else 1)
 
 
@@ -432,9 +443,9 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fami
     footer = ([f"({rest} other comparisons without a significant change; --all lists them)"] if rest else []) \
         + list(result.footer())
     if fmt in ("table", "md") and not output and shown.empty:  # no header-only table
-        click.echo(f"No significant change in {result.wave} against {result.against}.")
+        echo(f"No significant change in {result.wave} against {result.against}.")
         for line in footer:
-            click.echo(line)
+            echo(line)
         return
     emit(shown, fmt, "changes", wide, output, footer)
 
@@ -556,7 +567,7 @@ def composition_cmd(study, wave, against, adjust, level, fmt, wide, output):
         doc = {"wave": result.wave, "against": result.against, "adjust": result.adjust, "level": result.level,
                "tests": json.loads(result.tests.to_json(orient="records", double_precision=10)),
                "shares": json.loads(result.shares.to_json(orient="records", double_precision=10))}
-        click.echo(json.dumps(doc, indent=1))
+        echo(json.dumps(doc, indent=1))
         return
     if fmt == "table" and not output:
         emit(result.shares, fmt, "composition", wide, None, result.lines())
@@ -647,4 +658,4 @@ def demo_cmd(folder):
     say(f"demo study ready at {study.root}")
     # beside the study, never in it: a study folder is the tool's alone
     path = write_brief(build_brief(study), study.root.with_name(study.root.name + "-brief.html"))
-    click.echo(f"briefing for {study.labels[-1]} written to {path}")
+    echo(f"briefing for {study.labels[-1]} written to {path}")

@@ -234,7 +234,7 @@ def _fmt_code(code: float) -> str:
 
 
 def _err(path: str, msg: str) -> TrackerError:
-    return TrackerError(f"codebook: {path}: {msg}")
+    return TrackerError(f"codebook: {shorten(path, 120)}: {shorten(msg, 600)}")
 
 
 def _as_code(value: Any, path: str) -> float:
@@ -268,8 +268,12 @@ def _text(node: Any, path: str) -> str:
 
 
 def shorten(text: str, width: int = 80) -> str:
-    """``text`` cut to ``width`` characters for a message (an ellipsis says it was cut)."""
-    return text if len(text) <= width else text[: width - 3] + "..."
+    """``text`` in at most ``width`` characters for a message: its middle cut out (an
+    ellipsis says where), so that both how it starts and how it ends stay readable."""
+    if len(text) <= width:
+        return text
+    head = (width - 3) * 2 // 3
+    return text[:head] + "..." + text[len(text) - (width - 3 - head):]
 
 
 #: Bounds of the codebook's rake settings: a tolerance below 1e-12 is beyond double

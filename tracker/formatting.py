@@ -8,7 +8,7 @@ import pandas as pd
 from .names import FORMATS  # noqa: E402
 
 
-from .plain import FORMULA_START, safe_cell  # noqa: F401 - re-exported for older imports
+from .plain import FORMULA, FORMULA_START, safe_cell  # noqa: F401 - re-exported for older imports
 from .plain import md_cell as _md
 
 
@@ -26,7 +26,7 @@ def safe_text(frame: pd.DataFrame) -> pd.DataFrame:
                 out = frame.copy() if out is frame else out
                 out[col] = fixed
             continue
-        risky = s.str[:1].isin(FORMULA_START).fillna(False).to_numpy(dtype=bool)
+        risky = s.str.match(FORMULA).fillna(False).to_numpy(dtype=bool)
         if risky.any():
             out = frame.copy() if out is frame else out
             out[col] = s.astype(object).where(~risky, "'" + s.astype(str))

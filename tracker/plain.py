@@ -7,21 +7,48 @@ import csv
 import html
 import io
 import json
+import re
 
 #: First characters with which a spreadsheet would read a text cell as a formula (OWASP,
 #: "CSV Injection"): such cells get a leading apostrophe in CSV and XLSX output.
 FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+#: The same, also after leading spaces and in their full-width forms, which some
+#: spreadsheets read as the plain characters.
+FORMULA = re.compile(r"[\t\r]|[ \u00a0\u3000]*[=+\-@\uff1d\uff0b\uff0d\uff20]")
 
 
 def safe_cell(value):
-    """Text that a spreadsheet could run as a formula, made plain text with a leading quote."""
-    if isinstance(value, str) and value[:1] in FORMULA_START:
+    """Text that a spreadsheet could run as a formula, made plain text with a leading quote:
+    the one neutralising rule of every CSV and XLSX cell the tool writes."""
+    if isinstance(value, str) and FORMULA.match(value):
         return "'" + value
     return value
 
 
+#: Link schemes that run code or carry a document when a rendered page's link is followed.
+_SCHEME = re.compile(r"(?i)\b(javascript|vbscript|data|file)(\s*):")
+
+
+def md_text(v) -> str:
+    """Text from a study made inert in Markdown: HTML escaped (renderers pass raw HTML
+    through), link and image brackets escaped, and script-like link schemes defused."""
+    text = html.escape(str(v), quote=False)
+    text = re.sub(r"([\\\[\]])", r"\\\1", text)  # no [text](target): no link, no image
+    return _SCHEME.sub(lambda m: f"{m.group(1)}{m.group(2)}&#58;", text)
+
+
 def md_cell(v) -> str:
-    return html.escape(str(v), quote=False).replace("|", "\\|").replace("\n", " ")
+    return md_text(v).replace("|", "\\|").replace("\n", " ")
+
+
+#: Characters a terminal would act on rather than show (C0 but tab and newline, DEL, C1).
+_TERMINAL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
+
+
+def terminal_text(text: str) -> str:
+    """``text`` with every character a terminal would obey (an escape sequence that clears
+    the screen or retitles the window) shown as its code, e.g. \\x1b."""
+    return _TERMINAL.sub(lambda m: f"\\x{ord(m.group()):02x}", text)
 
 
 def render_rows(rows: list[dict], columns: list[str], fmt: str, right: tuple[str, ...] = ()) -> str:
