@@ -8,6 +8,7 @@ the ones a tester tried against the tool (wave files, codebooks, damaged studies
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -193,6 +194,46 @@ def escape_in_id(frame):
     frame.loc[4, "member_id"] = "M2-4\x1b[31m"
 
 
+def fifo(tmp):
+    import os
+
+    path = tmp / "pipe.csv"
+    if not path.exists():
+        os.mkfifo(path)
+    return path
+
+
+def sparse(size, name="big.csv"):
+    def write(tmp):
+        path = tmp / name
+        with open(path, "wb") as fh:
+            fh.write(good_csv_bytes()[:200])
+            fh.truncate(size)  # sparse: no disk used
+        return path
+    return write
+
+
+def wide_header(tmp):
+    path = tmp / "wide.csv"
+    path.write_text(",".join(f"c{i}" for i in range(1_000_000)) + "\n" + ",".join("1" * 1_000_000) + "\n")
+    return path
+
+
+def space_delimited(tmp):
+    path = tmp / "w.csv"
+    frame = example_wave(n=30, seed=2)
+    path.write_text(frame.to_csv(index=False, sep=" "))
+    return path
+
+
+def unbalanced_quote(tmp):
+    lines = good_csv_bytes().decode().splitlines()
+    lines[4] = lines[4].replace(",", ',"', 1)  # a quote opened and never closed
+    path = tmp / "w.csv"
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
 WAVE_CASES = [
     ("no id column", csv_of(dropped("member_id")), "the id column is missing"),
     ("duplicate ids", csv_of(changed(member_id=lambda f: f.__setitem__("member_id", ["M1"] * len(f)))),
@@ -253,6 +294,16 @@ WAVE_CASES = [
     ("NaN in the strata column", csv_of(changed(site_stratum="NaN")), "strata 'NaN' is not a finite number"),
     ("label of another form than the codebook's waves", labelled("2025-06", date="2025-06-30"),
      "wave label '2025-06' is not of the form of the codebook's variables.membership.first_wave ('2024-Q1')"),
+    ("a named pipe as the wave", fifo, "is a named pipe, not a regular file"),
+    ("/dev/zero as the wave", lambda tmp: Path("/dev/zero"), "/dev/zero: is a device, not a regular file"),
+    ("a folder as the wave", lambda tmp: tmp, "is a folder, not a wave file"),
+    ("a 2 GB sparse file", sparse(2 << 30), "is 2 GiB, more than the 1 GiB a wave file may be"),
+    ("a header of 1,000,000 columns", wide_header, "the header has more than 100,000 columns"),
+    ("old .xls workbook", raw(b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1" + bytes(600), "w.xls"),
+     "an old-style Excel workbook (.xls), which is not read; open it and save it as .xlsx"),
+    (".xls renamed .csv", raw(b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1" + bytes(600)), "old-style Excel workbook (.xls)"),
+    ("space-delimited", space_delimited, "the columns are separated by spaces"),
+    ("an unbalanced quote", unbalanced_quote, "do not have the header's 14 fields"),
     ("XLSX sheet not there", lambda tmp: (xlsx(lambda wb, ws: None)(tmp), ["--sheet", "Data"]),
      "no sheet named 'Data'"),
 ]
@@ -348,6 +399,26 @@ def test_a_bad_codebook_makes_no_study(tmp_path, name, text, expected):
     assert result.exit_code == 1, result.output
     assert expected in result.output, result.output
     assert "Traceback" not in result.output
+    assert not (tmp_path / "study").exists()
+
+
+@pytest.mark.parametrize("kind", ["pipe", "device", "sparse"])
+def test_a_codebook_that_is_no_file_is_refused_by_type_before_reading(tmp_path, kind):
+    import os
+
+    if kind == "pipe":
+        book = tmp_path / "book.yaml"
+        os.mkfifo(book)  # reading it would hang
+        expected = "is a named pipe, not a regular file"
+    elif kind == "device":
+        book, expected = Path("/dev/zero"), "/dev/zero: is a device, not a regular file"
+    else:
+        book = tmp_path / "book.yaml"
+        with open(book, "wb") as fh:
+            fh.truncate(3 << 30)
+        expected = "larger than 2 MB"
+    result = run("new", tmp_path / "study", "--codebook", book)
+    assert result.exit_code == 1 and expected in result.output, result.output
     assert not (tmp_path / "study").exists()
 
 

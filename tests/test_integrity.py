@@ -40,6 +40,10 @@ def _parquet_no_index(frame, path):
     frame.to_parquet(path, index=False)
 
 
+def _parquet_range_index_stored(frame, path):
+    frame.reset_index(drop=True).to_parquet(path, index=True)  # a plain 0..n-1 index stored as a column
+
+
 def _parquet_reversed(frame, path):
     frame.iloc[::-1].to_parquet(path)  # the stored index runs backwards
 
@@ -72,6 +76,7 @@ WRITERS = [
     ("to_parquet(index=True)", _parquet_index_true, "w.parquet"),
     ("to_parquet(index=False)", _parquet_no_index, "w.parquet"),
     ("reversed frame to_parquet()", _parquet_reversed, "w.parquet"),
+    ("0..n-1 index stored as a column", _parquet_range_index_stored, "w.parquet"),
     ("set_index(id).to_parquet()", _parquet_named_index, "w.parquet"),
     ("pyarrow preserve_index", _arrow_preserving, "w.parquet"),
     ("to_csv() with the index", _csv_with_index, "w.csv"),
@@ -402,9 +407,106 @@ def test_what_reaches_the_terminal_cannot_drive_it(hostile_study, tmp_path):
         assert "wave\\x1b]0;owned\\x07\\x1b[2J.csv" in result.output
 
 
+def test_a_markdown_table_of_the_waves_carries_no_markup(hostile_study, tmp_path):
+    import shutil
+
+    odd = tmp_path / "<img src=x onerror=alert(1)>.csv"
+    example_wave(n=400, seed=29).to_csv(odd, index=False)
+    root = tmp_path / "s"
+    shutil.copytree(hostile_study / "s", root)
+    assert run("add", root, odd, "--wave", "2025-Q3", "--date", "2025-09-30").exit_code == 0
+    assert run("waves", root, "-o", tmp_path / "w.md").exit_code == 0
+    text = (tmp_path / "w.md").read_text()
+    assert "&lt;img src=x onerror=alert(1)&gt;.csv" in text and "<img" not in text
+
+
 def test_a_long_label_is_shortened_in_messages(tmp_path):
     text = EXAMPLE_CODEBOOK.read_text().replace("profile: [site, age_band, sex]", "profile: [site, " + "X" * 5000 + "]")
     (tmp_path / "book.yaml").write_text(text)
     result = run("new", tmp_path / "s", "--codebook", tmp_path / "book.yaml")
     assert result.exit_code == 1 and "is not a group in groups" in result.output and "X" * 40 in result.output
     assert len(result.output) < 800
+
+
+# -- files read as they are, within bounds --------------------------------------------------
+
+def _stored_like(tmp_path, write, name):
+    """Store the same wave from a plain CSV and from ``write``'s file: the two stored tables
+    must be equal."""
+    frame = example_wave(n=80, seed=30)
+    study = Study.create(tmp_path / "s", EXAMPLE_CODEBOOK)
+    frame.to_csv(tmp_path / "plain.csv", index=False)
+    study.add(tmp_path / "plain.csv", "2025-Q1", "2025-03-31")
+    path = tmp_path / name
+    write(frame, path)
+    result = run("add", tmp_path / "s", path, "--wave", "2025-Q2", "--date", "2025-06-30", "--allow-duplicate")
+    assert result.exit_code == 0, result.output
+    pd.testing.assert_frame_equal(Study(tmp_path / "s").load("2025-Q2"), study.load("2025-Q1"))
+    return result.output
+
+
+@pytest.mark.parametrize("encoding", ["utf-16-le", "utf-16-be"])
+def test_utf16_without_a_byte_order_mark_is_read(tmp_path, encoding):
+    out = _stored_like(tmp_path, lambda f, p: p.write_bytes(f.to_csv(index=False).encode(encoding)), "w.csv")
+    assert f"read as {encoding.upper()} text (no byte-order mark)" in out
+
+
+def test_cr_only_line_ends_are_read(tmp_path):
+    _stored_like(tmp_path, lambda f, p: p.write_bytes(f.to_csv(index=False).replace("\n", "\r").encode()), "w.csv")
+
+
+def test_trailing_empty_columns_are_ignored(tmp_path):
+    def write(frame, path):
+        lines = frame.to_csv(index=False).splitlines()
+        path.write_text("\n".join(line + ",," for line in lines) + "\n")  # a spreadsheet's two empty columns
+    out = _stored_like(tmp_path, write, "w.csv")
+    assert "appears more than once" not in out
+
+
+def test_a_field_over_128_kb_is_an_answer_not_an_error(tmp_path):
+    def write(frame, path):
+        frame = frame.copy()
+        frame["comments"] = ["x" * 200_000] + [""] * (len(frame) - 1)  # a long free-text answer
+        frame.to_csv(path, index=False)
+    out = _stored_like(tmp_path, write, "w.csv")
+    assert "1 column(s) not in the codebook are left out: comments" in out
+
+
+def test_a_workbook_too_large_to_load_is_refused_while_streaming(tmp_path, monkeypatch):
+    import tracker.limits as limits
+
+    frame = example_wave(n=40, seed=31)
+    frame.to_excel(tmp_path / "w.xlsx", index=False)
+    Study.create(tmp_path / "s", EXAMPLE_CODEBOOK)
+    before = snapshot(tmp_path / "s")
+    monkeypatch.setattr(limits, "MAX_XLSX_CELLS", 200)  # the real bound, 5,000,000 cells, made small
+    result = run("add", tmp_path / "s", tmp_path / "w.xlsx", "--wave", "2025-Q1", "--date", "2025-03-31")
+    assert result.exit_code == 1 and "more than 200 cells, more than a workbook is read for" in result.output
+    monkeypatch.setattr(limits, "MAX_XLSX_UNPACKED", 1000)
+    result = run("add", tmp_path / "s", tmp_path / "w.xlsx", "--wave", "2025-Q1", "--date", "2025-03-31")
+    assert result.exit_code == 1 and "the workbook unpacks to" in result.output
+    assert snapshot(tmp_path / "s") == before
+
+
+def test_checking_a_wide_header_grows_with_its_width_not_its_square(tmp_path):
+    """80,000 columns: the header checks are single passes (counted, not timed: the number of
+    candidate columns for hints is bounded, names are counted once)."""
+    import tracker.intake as intake
+
+    calls = {"n": 0}
+    real = intake.difflib.get_close_matches
+
+    def counting(*args, **kw):
+        calls["n"] += 1
+        return real(*args, **kw)
+
+    frame = pd.DataFrame({f"q{i}": ["1"] for i in range(80_000)})
+    frame.to_csv(tmp_path / "wide.csv", index=False)
+    Study.create(tmp_path / "s", EXAMPLE_CODEBOOK)
+    intake.difflib.get_close_matches = counting
+    try:
+        result = run("check", tmp_path / "s", tmp_path / "wide.csv")
+    finally:
+        intake.difflib.get_close_matches = real
+    assert result.exit_code == 1 and "80000 column(s) not in the codebook" in result.output
+    assert calls["n"] == 0  # the near-name hints are for files of a few thousand columns

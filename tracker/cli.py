@@ -206,7 +206,7 @@ def emit_rows(rows: list[dict], columns: list[str], fmt: str, output: str | None
 
 @main.command("new", short_help="Make a study folder from a codebook.")
 @click.argument("study", type=click.Path(file_okay=False))
-@click.option("--codebook", required=True, type=click.Path(dir_okay=False), help="The study's codebook (YAML).")
+@click.option("--codebook", required=True, type=click.Path(), help="The study's codebook (YAML).")
 @user_errors
 def new_cmd(study, codebook):
     """Make a study folder from a codebook.
@@ -226,7 +226,7 @@ CHECK_COLUMNS = ["file", "severity", "column", "message", "rows", "count"]
 
 @main.command("check", short_help="List a wave file's problems; change nothing.")
 @click.argument("study", type=click.Path(file_okay=False))
-@click.argument("file", type=click.Path(dir_okay=False))
+@click.argument("file", type=click.Path())
 @wave_option("The label the wave would get (checks it is free).")
 @click.option("--date", help="The fieldwork date it would get (ISO).")
 @click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
@@ -263,7 +263,7 @@ def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output)
 
 @main.command("add", short_help="Check, harmonize and store a wave.")
 @click.argument("study", type=click.Path(file_okay=False))
-@click.argument("file", type=click.Path(dir_okay=False))
+@click.argument("file", type=click.Path())
 @click.option("--wave", required=True, metavar="LABEL", help="Wave label, e.g. 2025-Q3.")
 @click.option("--date", required=True, help="Fieldwork date (ISO, e.g. 2025-09-30).")
 @click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")

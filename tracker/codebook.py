@@ -336,9 +336,15 @@ def _wave_label(node: Any, path: str) -> str:
 
 def load_codebook(path: str | Path) -> Codebook:
     """Read ``path`` and return a validated :class:`Codebook`, or raise TrackerError."""
+    from .limits import regular_file
+
     path = Path(path)
-    try:
+    try:  # by type and size before a byte is read: a pipe would hang, /dev/zero never ends
+        if regular_file(path, "a codebook", 1 << 62).st_size > MAX_BYTES:
+            raise TrackerError(f"{path}: larger than {MAX_BYTES // 1_000_000} MB; is this the codebook?")
         text = path.read_text(encoding="utf-8-sig")
+    except TrackerError as exc:
+        raise TrackerError(f"codebook: {exc}") from None
     except FileNotFoundError:
         raise TrackerError(f"codebook: {path}: file not found") from None
     except UnicodeDecodeError as exc:

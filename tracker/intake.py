@@ -73,14 +73,35 @@ MAGIC = ((b"PAR1", "Parquet", ".parquet"), (b"PK\x03\x04", "XLSX (a zip archive)
          (b"\xff\xfe", "UTF-16 text", None), (b"\xfe\xff", "UTF-16 text", None))
 
 
-def _sniff(path: Path, suffix: str) -> None:
-    """Refuse a file whose content is not what its name says, naming what it looks like."""
+#: The signature of the old binary Excel format (OLE2 compound file), which is not read.
+_OLE2 = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
+
+
+def _utf16_without_bom(head: bytes) -> str | None:
+    """'utf-16-le' or 'utf-16-be' when ``head`` reads as UTF-16 text of Latin letters with no
+    byte-order mark (every other byte NUL, on one side), else None."""
+    even, odd = head[0:len(head) - len(head) % 2:2], head[1:len(head) - len(head) % 2:2]
+    if len(even) < 8:
+        return None
+    if odd.count(0) >= 0.9 * len(odd) and even.count(0) == 0:
+        return "utf-16-le"
+    if even.count(0) >= 0.9 * len(even) and odd.count(0) == 0:
+        return "utf-16-be"
+    return None
+
+
+def _sniff(path: Path, suffix: str) -> str | None:
+    """Refuse a file whose content is not what its name says, naming what it looks like; for
+    a CSV file of UTF-16 text without a byte-order mark, return that encoding."""
     with open(path, "rb") as fh:
         head = fh.read(4096)
+    if head.startswith(_OLE2):
+        raise TrackerError(f"{path}: the file is an old-style Excel workbook (.xls), which is not read; open it "
+                           f"and save it as .xlsx, or as CSV (UTF-8)")
     for magic, what, right in MAGIC:
         if head.startswith(magic):
             if right == suffix or (right == ".xlsx" and suffix == ".xlsm"):
-                return
+                return None
             if right is None:
                 raise TrackerError(f"{path}: the file is {what}; save it as UTF-8 CSV, or give --encoding utf-16")
             raise TrackerError(f"{path}: the file is {what} although its name ends in {suffix or 'nothing'}; "
@@ -89,31 +110,38 @@ def _sniff(path: Path, suffix: str) -> None:
         what = "a Parquet file" if suffix == ".parquet" else "an XLSX workbook"
         raise TrackerError(f"{path}: the file is not {what} (its first bytes say otherwise); "
                            f"is it a CSV file with the wrong name?")
+    utf16 = _utf16_without_bom(head)
+    if utf16:
+        return utf16
     if b"\x00" in head:
         raise TrackerError(f"{path}: the file holds binary data, not CSV text (a NUL byte in its first 4 KB)")
     if head.lstrip()[:1] in (b"{", b"["):
         raise TrackerError(f"{path}: the file looks like JSON, not CSV; export the wave as CSV, XLSX or Parquet")
+    return None
 
 
 def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | None = None,
                    header_row: int | None = None) -> WaveFile:
-    """Read CSV (delimiter sniffed, UTF-8 with or without BOM by default), Parquet or XLSX.
+    """Read CSV (delimiter sniffed, UTF-8 with or without BOM by default, UTF-16 found
+    without one), Parquet or XLSX, within the bounds of :mod:`tracker.limits`.
 
     XLSX: ``sheet`` names the sheet (required when several hold data); ``header_row`` the
     spreadsheet row holding the column names (default: found as the first row that fills
     at least half the table's width with text)."""
+    from .limits import MAX_FILE_BYTES, regular_file
+
     path = Path(path)
-    if not path.is_file():
-        raise TrackerError(f"{path}: file not found")
+    st = regular_file(path, "a wave file", MAX_FILE_BYTES)
+    if st.st_size == 0:
+        raise TrackerError(f"{path}: the file is empty")
     try:
-        if path.stat().st_size == 0:
-            raise TrackerError(f"{path}: the file is empty")
         sha = file_sha256(path)
     except OSError as exc:
         raise TrackerError(f"{path}: cannot be read ({(exc.strerror or str(exc)).lower()})") from None
     suffix = path.suffix.lower()
+    found_encoding = None
     if not (encoding and suffix not in (".parquet", ".xlsx", ".xlsm")):
-        _sniff(path, suffix)
+        found_encoding = _sniff(path, suffix)
     problems: list[Problem] = []
     if suffix == ".parquet":
         table, problems = _read_parquet(path)
@@ -121,8 +149,10 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
     elif suffix in (".xlsx", ".xlsm"):
         table, first_row, problems = _read_xlsx(path, sheet, header_row)
     else:
-        table = _read_csv(path, encoding)
+        table = _read_csv(path, encoding or found_encoding)
         first_row = 2
+        if found_encoding:
+            problems.append(Problem("warning", "", f"read as {found_encoding.upper()} text (no byte-order mark)"))
     table.columns = [str(c).strip() for c in table.columns]
     table = _by_position(table)
     if table.shape[1] == 0:
@@ -152,7 +182,12 @@ def _read_parquet(path: Path) -> tuple[pd.DataFrame, list[Problem]]:
         names = pq.read_schema(path).names
     except Exception:  # pyarrow raises many types for a broken file; reading says which
         names = []
-    twice = sorted({n for n in names if names.count(n) > 1})
+    from .limits import MAX_COLUMNS
+
+    if len(names) > MAX_COLUMNS:
+        raise TrackerError(f"{path}: the file has {len(names):,} columns, more than {MAX_COLUMNS:,}; is this a wave "
+                           f"file?")
+    twice = _twice(names)
     if twice:
         raise TrackerError(f"{path}, column {twice[0]}: the column name appears more than once")
     try:
@@ -182,12 +217,50 @@ def _read_parquet(path: Path) -> tuple[pd.DataFrame, list[Problem]]:
     return table, problems
 
 
+def _xlsx_within_bounds(path: Path, sheet: str | None) -> None:
+    """Refuse a workbook too large to load whole, from its zip directory and by streaming its
+    rows (read-only: a few rows in memory at a time) before anything is built."""
+    import zipfile
+
+    from openpyxl import load_workbook
+
+    from .limits import MAX_COLUMNS, MAX_XLSX_CELLS, MAX_XLSX_UNPACKED
+
+    try:
+        with zipfile.ZipFile(path) as z:
+            unpacked = sum(i.file_size for i in z.infolist())
+    except (zipfile.BadZipFile, OSError, ValueError) as exc:
+        raise TrackerError(f"{path}: cannot be read as XLSX ({str(exc)[:200]})") from None
+    if unpacked > MAX_XLSX_UNPACKED:
+        raise TrackerError(f"{path}: the workbook unpacks to {unpacked / (1 << 30):.1f} GiB, more than "
+                           f"{MAX_XLSX_UNPACKED >> 30} GiB; deliver a wave this large as CSV or Parquet")
+    try:
+        book = load_workbook(path, read_only=True, data_only=True)
+    except Exception as exc:  # openpyxl raises many types for a broken workbook
+        raise TrackerError(f"{path}: cannot be read as XLSX ({str(exc)[:200]})") from None
+    try:
+        sheets = [book[sheet]] if sheet in book.sheetnames else book.worksheets
+        for ws in sheets:
+            cells = 0
+            for row in ws.iter_rows(values_only=True):  # streamed: the declared size can lie
+                if len(row) > MAX_COLUMNS:
+                    raise TrackerError(f"{path}, sheet {ws.title}: more than {MAX_COLUMNS:,} columns; is this a "
+                                       f"wave file?")
+                cells += len(row)
+                if cells > MAX_XLSX_CELLS:
+                    raise TrackerError(f"{path}, sheet {ws.title}: more than {MAX_XLSX_CELLS:,} cells, more than "
+                                       f"a workbook is read for; deliver a wave this large as CSV or Parquet")
+    finally:
+        book.close()
+
+
 def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     """One sheet of a workbook as text cells, refusing what would silently lose data:
     merged cells, formulas with no stored result, data on a sheet not chosen."""
     from openpyxl import load_workbook
     from openpyxl.utils import get_column_letter
 
+    _xlsx_within_bounds(path, sheet)
     try:
         book = load_workbook(path, data_only=True)
         formulas = load_workbook(path, data_only=False)
@@ -226,7 +299,7 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     body = [[r[j] if j < len(r) else None for j in keep] for r in rows[header_row:]]
     body = [r for r in body if any(v is not None and str(v).strip() != "" for v in r)]
     names = [str(header[j]).strip() for j in keep]
-    dupes = sorted({c for c in names if names.count(c) > 1})
+    dupes = _twice(names)
     if dupes:
         raise TrackerError(f"{path}, sheet {sheet}, column {dupes[0]}: the column name appears more than once")
     table = pd.DataFrame(body, columns=names, dtype=object)
@@ -313,7 +386,16 @@ def _plain(v) -> str:
     return str(v)
 
 
+def _twice(names: list[str]) -> list[str]:
+    """The names that appear more than once (in one pass: headers can be wide)."""
+    from collections import Counter
+
+    return sorted(n for n, k in Counter(names).items() if k > 1)
+
+
 def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
+    from .limits import MAX_COLUMNS
+
     raw = path.read_bytes()
     enc = encoding or "utf-8-sig"
     try:
@@ -326,19 +408,36 @@ def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
         ) from None
     except LookupError:
         raise TrackerError(f"{path}: unknown encoding {enc!r}") from None
-    if encoding and text.startswith("\ufeff"):
+    del raw
+    if text.startswith("\ufeff"):
         text = text[1:]
     if not text.strip():
         raise TrackerError(f"{path}: the file is empty")
-    sample = text[:65536]
+    if "\n" not in text and "\r" in text:
+        text = text.replace("\r", "\n")  # line ends of old Mac software: CR alone
+    first = text[: text.find("\n")] if "\n" in text else text
+    sample = text[: max(65536, len(first) + 1)]
     try:
-        delimiter = csv.Sniffer().sniff(sample, delimiters=",;\t|").delimiter
+        delimiter = csv.Sniffer().sniff(sample[:65536], delimiters=",;\t|").delimiter
     except csv.Error:
         delimiter = ","
-    header = next(csv.reader(io.StringIO(sample), delimiter=delimiter), [])
-    dupes = sorted({c.strip() for c in header if [h.strip() for h in header].count(c.strip()) > 1})
+    if first.count(delimiter) + 1 > MAX_COLUMNS:
+        raise TrackerError(f"{path}: the header has more than {MAX_COLUMNS:,} columns; is this a wave file?")
+    csv.field_size_limit(1 << 30)  # a long free-text answer is an answer, not an error
+    header = next(csv.reader(io.StringIO(first), delimiter=delimiter), [])
+    names = [h.strip() for h in header]
+    if len(names) == 1 and " " in first.strip():
+        lines = [ln.split() for ln in sample.splitlines()[:20] if ln.strip()]
+        if len(lines) > 1 and len(lines[0]) > 1 and all(len(ln) == len(lines[0]) for ln in lines):
+            raise TrackerError(f"{path}: the columns are separated by spaces, which answers can also hold; save the "
+                               f"file with commas, semicolons or tabs between columns")
+    blank_tail = 0
+    while blank_tail < len(names) and names[len(names) - 1 - blank_tail] == "":
+        blank_tail += 1
+    dupes = _twice([n for n in names[: len(names) - blank_tail]])
     if dupes:
-        raise TrackerError(f"{path}, column {dupes[0]}: the column name appears more than once in the header")
+        shown = dupes[0] or "(a blank name)"
+        raise TrackerError(f"{path}, column {shown}: the column name appears more than once in the header")
     widths = [(i, len(r)) for i, r in enumerate(csv.reader(io.StringIO(text), delimiter=delimiter), 1) if r]
     want = widths[0][1] if widths else 0
     odd = [(i, n) for i, n in widths if n != want]
@@ -349,8 +448,12 @@ def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
     try:
         table = pd.read_csv(io.StringIO(text), sep=delimiter, dtype=str, keep_default_na=False,
                             skip_blank_lines=True)
-    except pd.errors.ParserError as exc:
-        raise TrackerError(f"{path}: cannot be read as CSV ({exc})") from None
+    except (pd.errors.ParserError, csv.Error) as exc:
+        raise TrackerError(f"{path}: cannot be read as CSV ({str(exc)[:200]})") from None
+    if blank_tail:  # empty columns after the last named one (a spreadsheet's export): ignored when empty
+        tail = list(table.columns[len(names) - blank_tail:])
+        if (table[tail] == "").all().all():
+            table = table.drop(columns=tail)
     return table
 
 
@@ -394,7 +497,7 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
         rows, count = _rows(mask, fr) if mask is not None else ((), 0)
         problems.append(Problem(sev, col, msg, rows, count))
 
-    dupes = sorted({c for c in cols if cols.count(c) > 1})
+    dupes = _twice(cols)
     for c in dupes:
         add("error", c, "the column name appears more than once in the header")
     if dupes:
@@ -481,16 +584,20 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
 
     # Variables.
     order_present = []
+    hinted = 0
     for v in codebook.variables.values():
         expected = wave_in_span(label, v.first_wave, v.last_wave, order)
         file_cols = list(v.options) if v.type == "multi" else [v.name]
         present = [c for c in file_cols if c in source]
         if not present:
             if expected:
+                hinted += 1
                 what = f"option columns {', '.join(v.options)}" if v.type == "multi" else "column"
                 alias = f" (or an alias: {', '.join(v.aliases)})" if v.aliases else ""
                 near = ([c for c in extra if v.name.lower() in c.lower() or c.lower() in v.name.lower()]
-                        or difflib.get_close_matches(v.name, extra, n=1, cutoff=0.6)) if v.type != "multi" else []
+                        or (difflib.get_close_matches(v.name, extra, n=1, cutoff=0.6) if len(extra) <= 5000
+                            else [])) if (
+                    v.type != "multi" and hinted <= 10) else []  # hints for the first few: a wide file stays fast
                 hint = (f"; is column {near[0]!r} this variable under a new name? then add it to the "
                         f"variable's aliases") if near else ""
                 add("error", v.name, f"required {what}{alias} is missing for variable {v.name}{hint}")
