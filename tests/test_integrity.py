@@ -233,7 +233,7 @@ def test_a_damaged_stored_wave_is_refused_by_every_command(tmp_path, damage, com
     assert "is damaged or has changed since it was stored" in result.output
     assert f"run 'tracker verify {root}'" in result.output and "Traceback" not in result.output
     assert not (tmp_path / "b.json").exists()
-    assert not run("verify", root).exit_code == 0
+    assert run("verify", root).exit_code != 0
 
 
 def _forged(path):
@@ -510,3 +510,20 @@ def test_checking_a_wide_header_grows_with_its_width_not_its_square(tmp_path):
         intake.difflib.get_close_matches = real
     assert result.exit_code == 1 and "80000 column(s) not in the codebook" in result.output
     assert calls["n"] == 0  # the near-name hints are for files of a few thousand columns
+
+
+def test_every_test_the_reliability_page_names_exists_and_every_case_it_quotes_too():
+    import re
+    from pathlib import Path
+
+    from .test_bad_inputs import CODEBOOK_CASES, WAVE_CASES
+
+    root = Path(__file__).resolve().parent.parent
+    page = (root / "docs" / "reliability.md").read_text()
+    source = "".join(p.read_text() for p in (root / "tests").glob("test_*.py"))
+    named = set(re.findall(r"`(test_[a-z0-9_]+)`", page))
+    assert named and not [t for t in named if f"def {t}(" not in source]
+    cases = {c[0] for c in WAVE_CASES + CODEBOOK_CASES}
+    in_table = {q for line in re.findall(r"bad-input table: ([^|]+)", page) for q in re.findall(r'"([^"]+)"', line)}
+    assert in_table and not in_table - cases, in_table - cases
+    assert f"{len(WAVE_CASES)} bad wave files and {len(CODEBOOK_CASES)} bad codebooks" in page

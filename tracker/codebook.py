@@ -465,7 +465,7 @@ def label_form(label: str) -> str:
     return re.sub(r"[A-Za-z]", "A", re.sub(r"[0-9]", "9", label))
 
 
-def wave_references(book: "Codebook") -> list[tuple[str, str]]:
+def wave_references(book: Codebook) -> list[tuple[str, str]]:
     """Every wave label the codebook names, with where: (``variables.x.break_before``, label)."""
     out = []
     for v in book.variables.values():
@@ -477,7 +477,7 @@ def wave_references(book: "Codebook") -> list[tuple[str, str]]:
     return out
 
 
-def reference_problems(book: "Codebook", labels: list[str], new: str | None = None) -> list[str]:
+def reference_problems(book: Codebook, labels: list[str], new: str | None = None) -> list[str]:
     """Codebook wave references that cannot be placed among the study's waves: a reference
     that is not a stored wave (``labels``) is ordered against the waves as text, which is only
     right between labels of one form (break_before: 2026-4 among 2026-04, 2026-05 would sort

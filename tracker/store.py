@@ -196,12 +196,18 @@ def ledger_problems(ledger) -> list[str]:
             out.append(f"{where}: history is not a list of earlier versions")
             continue
         out += [p for j, h in enumerate(history, 1) for p in _version_problems(h, f"{where}, replaced version {j}")]
-    labels = [w.get("label") for w in ledger["waves"] if isinstance(w, dict) and isinstance(w.get("label"), str)]
-    out += [f"wave {label} appears more than once" for label in sorted({x for x in labels if labels.count(x) > 1})]
-    files = [stored_file_name(v.get("file")) for w in ledger["waves"] if isinstance(w, dict)
-             for v in [w, *(w.get("history") if isinstance(w.get("history"), list) else [])] if isinstance(v, dict)]
-    files = [f for f in files if f]
-    out += [f"file {f} is named by more than one entry" for f in sorted({f for f in files if files.count(f) > 1})]
+    from collections import Counter
+
+    labels = Counter(w["label"] for w in ledger["waves"] if isinstance(w, dict) and isinstance(w.get("label"), str))
+    out += [f"wave {label} appears more than once" for label in sorted(x for x, k in labels.items() if k > 1)]
+    files: Counter[str] = Counter()
+    for w in ledger["waves"]:
+        history: list = w["history"] if isinstance(w, dict) and isinstance(w.get("history"), list) else []
+        for v in [w, *history] if isinstance(w, dict) else []:
+            name = stored_file_name(v.get("file")) if isinstance(v, dict) else None
+            if name:
+                files[name] += 1
+    out += [f"file {f} is named by more than one entry" for f in sorted(f for f, k in files.items() if k > 1)]
     return out
 
 
@@ -311,11 +317,12 @@ def sweep_incoming(root: Path) -> None:
 def named_files(ledger: dict) -> set[str]:
     """Every stored file the ledger names, replaced versions (history) included, each in its
     one spelling (``waves/<name>.parquet``)."""
-    out = set()
+    out: set[str] = set()
     for w in ledger["waves"]:
         for v in [w, *w.get("history", [])]:
-            if isinstance(v, dict) and stored_file_name(v.get("file")):
-                out.add(stored_file_name(v["file"]))
+            name = stored_file_name(v.get("file")) if isinstance(v, dict) else None
+            if name:
+                out.add(name)
     return out
 
 
@@ -402,7 +409,7 @@ def _verify_locked(root: Path) -> _Found:
     out.problems += _codebook_problems(root, ledger)
     for w in ledger["waves"]:
         for v in [w, *w.get("history", [])]:
-            name = stored_file_name(v["file"])
+            name = stored_file_name(v["file"]) or ""  # checked by ledger_problems above
             f = root / name
             what = f"wave {w['label']}" + ("" if v is w else " (replaced version)")
             if not f.is_file():
@@ -449,8 +456,8 @@ def _codebook_problems(root: Path, ledger: dict) -> list[str]:
         return [f"{CODEBOOK}: {p.removeprefix('codebook: ')}" for p in found]
     want = codebook_sha256(ledger)
     if want is not None and book.sha256 != want:
-        return [f"{CODEBOOK}: changed since the study recorded it (SHA-256 differs); the stored waves were "
-                f"checked against the recorded version"]
+        return [(f"{CODEBOOK}: changed since the study recorded it (SHA-256 differs); the stored waves were "
+                 f"checked against the recorded version")]
     return []
 
 
