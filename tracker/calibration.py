@@ -176,7 +176,7 @@ def _pair(rng, book, d, items1, items2, shared, recurring, metrics, groups):
     a, b = first.table, second.table
     est_a = wave_estimates(book, a, metrics, groups, "A", "2025-01-15")
     est_b = wave_estimates(book, b, metrics, groups, "B", "2025-04-15")
-    cov, shared_units, _ = wave_covariance(book, b, a, metrics, groups, est_b, est_a)
+    cov, shared_units, _, _ = wave_covariance(book, b, a, metrics, groups, est_b, est_a)
     changes = compare(est_b, est_a, None, cov if shared_units else None, "none", LEVEL)
     return a, b, est_a, est_b, changes
 

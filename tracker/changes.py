@@ -14,7 +14,7 @@ import pandas as pd
 
 from .errors import TrackerError
 from .kinds import KINDS
-from .methods.tests import ADJUST_METHODS, adjust_pvalues, difference_test, satterthwaite_df
+from .methods.tests import ADJUST_METHODS, adjust_pvalues, difference_test, paired_df, satterthwaite_df
 
 KEYS = ["metric", "group", "subgroup"]
 
@@ -149,12 +149,14 @@ def resolve_against(labels: list[str], dates: dict[str, str], wave: str, against
 
 def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | None = None,
             covariance: np.ndarray | None = None, adjust: str = "bh", level: float = 0.95,
-            matters: dict[str, float] | None = None) -> pd.DataFrame:
+            matters: dict[str, float] | None = None, shared: np.ndarray | None = None) -> pd.DataFrame:
     """Test every cell of ``now`` against the same cell of ``then`` (rows from the estimates step).
 
     The variance of a change is the design variance itself, V_to + V_from - 2 Cov (Cov
     from shared clusters or respondents, else 0), and the test is t = change / SE on the
-    Satterthwaite (1946) combination of the two cells' design degrees of freedom. With
+    Satterthwaite (1946) combination of the two cells' design degrees of freedom when the
+    waves are independent, and on the paired design's df when they share PSUs (``shared``:
+    the PSUs holding each cell in both waves; tracker.methods.tests.paired_df). With
     unweighted data and no design this is Welch's t for means (scipy
     ``ttest_ind(equal_var=False)``). The change interval and the minimum detectable change
     are the metric kind's (tracker.kinds): for shares Newcombe's (1998) hybrid score
@@ -178,6 +180,10 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     var = np.maximum(v1 + v0 - 2 * cov, 0.0)
     se = np.sqrt(var)
     df = satterthwaite_df(v1, v0, np.maximum(df1, 1), np.maximum(df0, 1))
+    if shared is not None:
+        both = np.asarray(shared, float) > 0
+        pdf = paired_df(m["n_psu_to"].to_numpy(float), df1, m["n_psu_from"].to_numpy(float), df0, shared)
+        df = np.where(both, pdf, df)
     stat, p_raw = difference_test(d, var, df)
     lo, hi, mde = np.full(len(m), np.nan), np.full(len(m), np.nan), np.full(len(m), np.nan)
     paired = cov != 0

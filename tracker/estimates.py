@@ -22,7 +22,8 @@ from .errors import TrackerError
 from .kinds import INTERVALS, KINDS, flag_text
 from .methods.bases import design_base, design_effect, kish_base
 from .methods.variance import (
-    PsuTotals, SingleClusterError, combine_strata, cross_wave_covariance, psu_index, single_cluster_strata,
+    PsuTotals, SingleClusterError, combine_strata, cross_wave_covariance, psu_index, shared_per_cell,
+    single_cluster_strata,
 )
 
 __all__ = ["COLUMNS", "STATS", "STATS_VERSION", "CellArrays", "cell_arrays", "cell_stats", "cells_frame", "design_of", "finish", "single_cluster_lines", "wave_covariance",
@@ -281,7 +282,8 @@ def derived(stats: dict[str, np.ndarray], kind: np.ndarray, level: float = 0.95,
     n = np.asarray(stats["base"], float)
     var = np.asarray(stats["variance"], float)
     unit = np.asarray(stats["unit_variance"], float)
-    dbase = design_base(var, unit, n)
+    kish = kish_base(np.asarray(stats["weighted_base"], float), np.asarray(stats["sum_w2"], float))
+    dbase = design_base(var, unit, n, kish)
     df = np.asarray(stats["design_df"], float)
     se = np.sqrt(var)
     p = np.asarray(stats["value"], float)
@@ -298,7 +300,7 @@ def derived(stats: dict[str, np.ndarray], kind: np.ndarray, level: float = 0.95,
         flags[m] = flag_text(pairs, int(m.sum()))
     empty = n == 0
     return {
-        "effective_base": kish_base(np.asarray(stats["weighted_base"], float), np.asarray(stats["sum_w2"], float)),
+        "effective_base": kish,
         "design_effect": design_effect(var, unit, n), "design_base": dbase, "se": se, "ci_low": lo, "ci_high": hi,
         "df": df, "kind": kind, "reliable": reliable & ~empty, "flags": np.where(empty, "no respondents", flags),
     }
@@ -387,7 +389,7 @@ def _cell_psu_totals(codebook: Codebook, table: pd.DataFrame, metrics: list[Metr
 
 def wave_covariance(codebook: Codebook, a: pd.DataFrame, b: pd.DataFrame, metrics: list[Metric],
                     groups: list[str], est_a: pd.DataFrame, est_b: pd.DataFrame,
-                    by_cluster: bool | None = None) -> tuple[np.ndarray, int, str]:
+                    by_cluster: bool | None = None) -> tuple[np.ndarray, int, str, np.ndarray]:
     """Covariance of two waves' estimates, one per cell in the order of ``cell_stats``.
 
     From the clusters both waves share (same stratum and cluster label) when the study
@@ -398,7 +400,7 @@ def wave_covariance(codebook: Codebook, a: pd.DataFrame, b: pd.DataFrame, metric
     'clusters' or 'respondents').
     """
     L = 1 + sum(len(codebook.groups[g].levels) for g in groups)
-    none = (np.zeros(L * len(metrics)), 0, "")
+    none = (np.zeros(L * len(metrics)), 0, "", np.zeros(L * len(metrics)))
     tries = []
     if codebook.clusters and codebook.waves_share_clusters and by_cluster is not False:
         tries.append(True)
@@ -411,7 +413,7 @@ def wave_covariance(codebook: Codebook, a: pd.DataFrame, b: pd.DataFrame, metric
         tb, kb = _cell_psu_totals(codebook, b, metrics, groups, est_b, by_cluster)
         cov, shared = cross_wave_covariance(ta, ka, tb, kb, codebook.single_cluster_rule)
         if shared:
-            return cov, shared, "clusters" if by_cluster else "respondents"
+            return cov, shared, "clusters" if by_cluster else "respondents", shared_per_cell(ta, ka, tb, kb)
     return none
 
 

@@ -99,9 +99,16 @@ class Share(Kind):
         return f"CAST({y} AS DOUBLE)", answered
 
     def interval(self, value, se, design_base, n, df, level, method="wilson"):
+        """Wilson or Korn-Graubard on the design base (both on the same base); a share of 0
+        or 1 always gets Korn-Graubard (Clopper-Pearson on the Kish base with the degrees-of-
+        freedom adjustment, as the NCHS 2017 standard for proportions does), whose limit
+        away from the edge is wider than Wilson's there."""
+        kg = korn_graubard_interval(value, design_base, n, df, level)
         if method == "korn-graubard":
-            return korn_graubard_interval(value, design_base, n, df, level)
-        return wilson_interval(value, design_base, level, df)
+            return kg
+        lo, hi = wilson_interval(value, design_base, level, df)
+        edge = (value <= 0) | (value >= 1)
+        return np.where(edge, kg[0], lo), np.where(edge, kg[1], hi)
 
     def reliability(self, value, lo, hi, design_base, n, df, level):
         """NCHS Data Presentation Standards for Proportions (Parker et al. 2017), from memory

@@ -624,9 +624,9 @@ class Study:
         then = (self._wave_rows(others[0], ms, gs, level) if len(others) == 1
                 else self._pooled_rows(others, ms, gs, level))
         notes: list[str] = []
-        cov = None
+        cov = both = None
         if len(others) == 1:
-            c, shared, unit = self._covariance(wave, others[0], ms, gs, now, then)
+            c, shared, unit, both = self._covariance(wave, others[0], ms, gs, now, then)
             if shared and unit == "respondents":
                 cov = c
                 notes.append(f"{shared:,} respondents answered both waves: their covariance is taken into account")
@@ -635,7 +635,8 @@ class Study:
                 notes.append(f"{shared:,} clusters appear in both waves: their covariance is taken into account "
                              f"(write waves_share_clusters: false in the codebook if a cluster label can name "
                              f"different clusters in different waves)")
-        table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level, self.matters())
+        table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level, self.matters(),
+                        shared=both if cov is not None else None)
         size = int(table["p_adjusted"].notna().sum())
         self._cache[key] = (table, tuple(notes), size)
         return table, list(notes), size
@@ -645,7 +646,7 @@ class Study:
         cached cluster totals when the waves share clusters, from the respondents when they
         share respondents (found by the cached id hashes before any wave is read)."""
         from .estimates import wave_covariance
-        from .methods.variance import PsuTotals, cross_wave_covariance
+        from .methods.variance import PsuTotals, cross_wave_covariance, shared_per_cell
 
         book = self.codebook
         names = [m.name for m in ms]
@@ -654,14 +655,14 @@ class Study:
             if ta is not None and tb is not None:
                 pick = self._cells(wave).select(names, gs)
                 cols = _cell_columns(self._cells(wave), pick)
-                cov, shared = cross_wave_covariance(PsuTotals(ta.totals[:, cols], ta.stratum, ta.n_strata), ka,
-                                                    PsuTotals(tb.totals[:, cols], tb.stratum, tb.n_strata), kb,
-                                                    book.single_cluster_rule)
+                pa = PsuTotals(ta.totals[:, cols], ta.stratum, ta.n_strata)
+                pb = PsuTotals(tb.totals[:, cols], tb.stratum, tb.n_strata)
+                cov, shared = cross_wave_covariance(pa, ka, pb, kb, book.single_cluster_rule)
                 if shared:
-                    return cov, shared, "clusters"
+                    return cov, shared, "clusters", shared_per_cell(pa, ka, pb, kb)
         ha, hb = self._id_hashes(wave), self._id_hashes(other)
         if ha is None or hb is None or not np.intersect1d(ha, hb).size:
-            return np.zeros(len(now)), 0, ""
+            return np.zeros(len(now)), 0, "", np.zeros(len(now))
         return wave_covariance(book, self.load(wave), self.load(other), ms, gs, now, then, by_cluster=False)
 
     def _mix(self, ms, others, wave, var, adjust, level) -> pd.DataFrame:

@@ -26,11 +26,22 @@ def design_effect(variance, unit_variance, n):
         return np.where(unit_variance > 0, variance * n / unit_variance, np.nan)
 
 
-def design_base(variance, unit_variance, n):
+def design_base(variance, unit_variance, n, kish=None):
     """The effective base of the design, sigma^2 / V = n / design effect: for a share
     p(1 - p) / V, the effective sample size of the NCHS standard for proportions (Parker et
-    al. 2017, *Vital Health Stat* 2(175)). Where V or sigma^2 is 0 (a share of 0 or 1) it
-    is n, as that standard does."""
+    al. 2017, *Vital Health Stat* 2(175)), which intervals and the reliability rule read.
+
+    With ``kish`` (the Kish base of the cell's weights) it is never larger than that base,
+    and it is that base where V or sigma^2 is 0 (a share of 0 or 1), never the unweighted n:
+    a rare share's design variance is itself unstable and too often too small, so a base
+    above what the weights alone allow would give intervals that cover far less than they
+    say (docs/validation.md, rare shares with informative weights). Without ``kish``, n
+    where undefined, as the NCHS standard does.
+    """
     variance, unit_variance, n = (np.asarray(x, float) for x in (variance, unit_variance, n))
     with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where((variance > 0) & (unit_variance > 0), unit_variance / variance, n)
+        own = np.where((variance > 0) & (unit_variance > 0), unit_variance / variance, np.nan)
+    if kish is None:
+        return np.where(np.isnan(own), n, own)
+    kish = np.asarray(kish, float)
+    return np.where(np.isnan(own), kish, np.fmin(own, kish))

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from .distributions import t_sf
 
-__all__ = ["ADJUST_METHODS", "adjust_pvalues", "difference_test", "satterthwaite_df"]
+__all__ = ["ADJUST_METHODS", "adjust_pvalues", "difference_test", "paired_df", "satterthwaite_df"]
 
 from ..names import ADJUST_METHODS  # noqa: E402 - one list of names for the whole tool
 
@@ -56,6 +56,21 @@ def satterthwaite_df(v1, v2, df1, df2):
     with np.errstate(divide="ignore", invalid="ignore"):
         denom = np.where(np.isfinite(df1), v1**2 / df1, 0.0) + np.where(np.isfinite(df2), v2**2 / df2, 0.0)
         return np.where(denom > 0, (v1 + v2) ** 2 / denom, np.inf)
+
+
+def paired_df(psu_to, df_to, psu_from, df_from, shared):
+    """Degrees of freedom of a change whose two waves share PSUs (clusters, or respondents
+    of a panel): those of the stacked design, the PSUs holding the cell in either wave
+    (each shared one counted once) minus the strata holding them, as R's ``degf`` of the
+    design that holds both waves (Lumley 2010, *Complex Surveys*, section 3.4: the paired
+    1999/2000 comparison of ``apistrat`` has 197). ``psu_*`` and ``df_*`` are each wave's
+    PSUs and design df for the cell (strata = PSUs - df), ``shared`` the PSUs holding it in
+    both. Satterthwaite's sum of the two waves' df would count a shared PSU twice and
+    overstate the df (docs/validation.md: 5 strata of 2 recurring clusters)."""
+    psu_to, df_to, psu_from, df_from, shared = (np.asarray(x, float) for x in (psu_to, df_to, psu_from, df_from,
+                                                                               shared))
+    strata = np.maximum(psu_to - df_to, psu_from - df_from)
+    return np.maximum(psu_to + psu_from - shared - strata, 1.0)
 
 
 def difference_test(d, var, df):

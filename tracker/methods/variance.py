@@ -16,6 +16,7 @@ import scipy.sparse as sp
 
 __all__ = [
     "SINGLE_CLUSTER_RULES", "PsuTotals", "SingleClusterError", "combine_strata", "cross_wave_covariance",
+    "shared_per_cell",
     "psu_index", "psu_totals", "single_cluster_strata", "taylor_covariance", "taylor_variance",
 ]
 
@@ -211,3 +212,13 @@ def cross_wave_covariance(a: PsuTotals, keys_a: np.ndarray, b: PsuTotals, keys_b
         gb = b.totals.mean(axis=0)
         cov += ((a.totals[ia][lone] - ga) * (b.totals[ib][lone] - gb)).sum(axis=0)
     return cov, int(common.size)
+
+
+def shared_per_cell(a: PsuTotals, keys_a: np.ndarray, b: PsuTotals, keys_b: np.ndarray) -> np.ndarray:
+    """For each column (cell), the PSUs both waves share that hold respondents of the cell in
+    both (a total of linearized values that is not zero in either wave): the PSUs a paired
+    comparison of that cell counts once (see :func:`tracker.methods.tests.paired_df`)."""
+    _, ia, ib = np.intersect1d(keys_a, keys_b, assume_unique=True, return_indices=True)
+    if ia.size == 0:
+        return np.zeros(a.totals.shape[1])
+    return ((a.totals[ia] != 0) & (b.totals[ib] != 0)).sum(axis=0).astype(float)

@@ -1,0 +1,45 @@
+# Reference values from R's survey package (Lumley) on the California school data it ships
+# (data(api)), for tests/test_against_r.py. Usage: Rscript api_reference.R OUTDIR
+# Writes the three samples as coded CSV files and, for every cell, R's estimate, SE,
+# degrees of freedom and Korn-Graubard ("beta") interval, and the paired change 1999 -> 2000.
+suppressMessages(library(survey))
+data(api)
+out <- commandArgs(trailingOnly = TRUE)[1]
+options(survey.lonely.psu = "fail")
+
+coded <- function(d) {
+  data.frame(snum = d$snum, dnum = d$dnum, pw = d$pw, fpc = if (is.null(d$fpc)) NA else d$fpc,
+             stype = match(as.character(d$stype), c("E", "H", "M")),
+             sch_wide = ifelse(d$sch.wide == "Yes", 1, 2), awards = ifelse(d$awards == "Yes", 1, 2),
+             api00 = d$api00, api99 = d$api99)
+}
+samples <- list(apistrat = apistrat, apiclus1 = apiclus1, apiclus2 = apiclus2)
+designs <- list(
+  apistrat = function(d) svydesign(id = ~1, strata = ~stype, weights = ~pw, data = d),
+  apiclus1 = function(d) svydesign(id = ~dnum, weights = ~pw, data = d),
+  apiclus2 = function(d) svydesign(id = ~dnum + snum, weights = ~pw, data = d))
+
+rows <- list()
+pairs <- list()
+for (name in names(samples)) {
+  d <- coded(samples[[name]])
+  write.csv(d, file.path(out, paste0(name, ".csv")), row.names = FALSE)
+  des <- designs[[name]](d)
+  des <- update(des, yes = as.numeric(sch_wide == 1), api_2000 = api00, api_1999 = api99)
+  cells <- list(c("total", "Total", "TRUE"))
+  for (lv in 1:3) cells[[length(cells) + 1]] <- c("stype", c("E", "H", "M")[lv], paste0("stype == ", lv))
+  for (lv in 1:2) cells[[length(cells) + 1]] <- c("awards", c("Yes", "No")[lv], paste0("awards == ", lv))
+  for (cell in cells) {
+    sub <- if (cell[1] == "total") des else des[eval(parse(text = cell[3]), des$variables), ]
+    m <- svymean(~api00, sub)
+    s <- svymean(~yes, sub)
+    kg <- svyciprop(~yes, sub, method = "beta")
+    ch <- svycontrast(svymean(~api_2000 + api_1999, sub), c(1, -1))
+    rows[[length(rows) + 1]] <- data.frame(
+      design = name, group = cell[1], subgroup = cell[2], n = sum(weights(sub) > 0),
+      api00 = coef(m)[[1]], api00_se = SE(m)[[1]], yes = coef(s)[[1]], yes_se = SE(s)[[1]],
+      df = degf(sub), kg_low = attr(kg, "ci")[[1]], kg_high = attr(kg, "ci")[[2]],
+      change = coef(ch)[[1]], change_se = SE(ch)[[1]])
+  }
+}
+write.csv(do.call(rbind, rows), file.path(out, "reference.csv"), row.names = FALSE)

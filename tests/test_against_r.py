@@ -1,0 +1,156 @@
+"""Cell by cell against R's survey package (Lumley; Debian's r-cran-survey), the project's
+outside reference, on the California school data the package ships (``data(api)``):
+the stratified sample ``apistrat``, the one-stage cluster sample ``apiclus1`` and the
+two-stage ``apiclus2`` (first-stage variance, as R computes it without population sizes).
+
+tests/r/api_reference.R exports the samples and R's values; each test builds tracker studies
+from the same files. Where R is not installed the tests are skipped, except under CI
+(CI=true), where `.ci/run` installs it and a missing R is a failure. Published values from
+the package's own test outputs are checked without R in tests/test_design_variance.py.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from tracker import Study
+
+HERE = Path(__file__).parent
+DESIGNS = {
+    "apistrat": "strata: stype\n",
+    "apiclus1": "clusters: dnum\n",
+    "apiclus2": "clusters: dnum\n",
+}
+CODEBOOK = """title: California schools ({name}, R survey package data)
+id: snum
+weight: pw
+{design}variables:
+  stype:
+    label: School type
+    type: category
+    codes: {{1: E, 2: H, 3: M}}
+  sch_wide:
+    label: Met the school-wide growth target
+    type: category
+    codes: {{1: "Yes", 2: "No"}}
+  awards:
+    label: Eligible for awards
+    type: category
+    codes: {{1: "Yes", 2: "No"}}
+  api:
+    label: Academic performance index
+    type: number
+    range: [0, 1000]
+groups:
+  stype: {{variable: stype}}
+  awards: {{variable: awards}}
+metrics:
+  api_mean:
+    label: Mean API
+    variable: api
+    mean: true
+  target_met:
+    label: Met the growth target
+    variable: sch_wide
+    share: [1]
+"""
+
+
+def _need_r():
+    if shutil.which("Rscript") is None:
+        if os.environ.get("CI"):
+            pytest.fail("Rscript is not installed; .ci/run installs r-base-core and r-cran-survey")
+        pytest.skip("R is not installed (apt-get install r-base-core r-cran-survey)")
+
+
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory):
+    """R's values and the tracker studies built from the same files (two waves each: the
+    1999 and the 2000 index of the same schools)."""
+    _need_r()
+    out = tmp_path_factory.mktemp("r")
+    done = subprocess.run(["Rscript", str(HERE / "r" / "api_reference.R"), str(out)], capture_output=True,
+                          text=True, timeout=600, check=False)
+    if done.returncode != 0:
+        if os.environ.get("CI"):
+            pytest.fail(f"R's survey package did not run: {done.stderr[-2000:]}")
+        pytest.skip(f"R's survey package did not run: {done.stderr[-300:]}")
+    studies = {}
+    for name, design in DESIGNS.items():
+        data = pd.read_csv(out / f"{name}.csv")
+        (out / f"{name}.yaml").write_text(CODEBOOK.format(name=name, design=design))
+        study = Study.create(out / name, out / f"{name}.yaml")
+        for year, column, date in (("1999", "api99", "1999-06-30"), ("2000", "api00", "2000-06-30")):
+            wave = data.drop(columns=["api00", "api99", "fpc"]).assign(api=data[column])
+            wave.to_csv(out / f"{name}-{year}.csv", index=False)
+            study.add(out / f"{name}-{year}.csv", year, date)
+        studies[name] = study
+    return pd.read_csv(out / "reference.csv"), studies
+
+
+def _cells(study, metric):
+    est = study.estimates(metrics=[metric], waves=["2000"])
+    return est.set_index(["group", "subgroup"])
+
+
+@pytest.mark.parametrize("design", list(DESIGNS))
+def test_values_ses_and_domain_df_equal_r(reference, design):
+    ref, studies = reference
+    r = ref[ref["design"] == design].set_index(["group", "subgroup"])
+    mean, share = _cells(studies[design], "api_mean"), _cells(studies[design], "target_met")
+    for key, row in r.iterrows():
+        assert mean.loc[key, "base"] == row["n"], key
+        np.testing.assert_allclose(mean.loc[key, "value"], row["api00"], rtol=1e-12)
+        np.testing.assert_allclose(mean.loc[key, "se"], row["api00_se"], rtol=1e-10)
+        np.testing.assert_allclose(share.loc[key, "value"], row["yes"], rtol=1e-12)
+        np.testing.assert_allclose(share.loc[key, "se"], row["yes_se"], rtol=1e-10)
+        assert mean.loc[key, "df"] == row["df"], key
+
+
+@pytest.mark.parametrize("design", list(DESIGNS))
+def test_paired_changes_equal_r_with_their_se_and_df(reference, design):
+    """The same schools in 1999 and 2000: R's svycontrast of the two means in one design."""
+    ref, studies = reference
+    r = ref[ref["design"] == design].set_index(["group", "subgroup"])
+    ch = studies[design].changes(wave="2000", against="1999", metrics=["api_mean"]).table
+    ch = ch.set_index(["group", "subgroup"])
+    for key, row in r.iterrows():
+        np.testing.assert_allclose(ch.loc[key, "change"], row["change"], rtol=1e-10)
+        np.testing.assert_allclose(ch.loc[key, "se"], row["change_se"], rtol=1e-10)
+        assert ch.loc[key, "df"] == row["df"], key
+
+
+@pytest.mark.parametrize("design", list(DESIGNS))
+def test_korn_graubard_equals_r_on_the_same_effective_base(reference, design):
+    """R's svyciprop(method="beta") on p(1-p)/V; the tool caps that base at the Kish base of
+    the weights (never larger: a rare share's design variance is itself unstable), so where
+    R's base is larger the tool's interval is Clopper-Pearson on the Kish base with the same
+    degrees-of-freedom adjustment (statsmodels proportion_confint, method="beta")."""
+    from scipy import stats
+    from statsmodels.stats.proportion import proportion_confint
+
+    ref, studies = reference
+    r = ref[ref["design"] == design].set_index(["group", "subgroup"])
+    est = studies[design].estimates(metrics=["target_met"], waves=["2000"], interval="korn-graubard")
+    est = est.set_index(["group", "subgroup"])
+    for key, row in r.iterrows():
+        cell = est.loc[key]
+        p, v = row["yes"], row["yes_se"] ** 2
+        r_base = p * (1 - p) / v if v > 0 else np.inf  # a share of 0 or 1: no design base
+        if r_base <= cell["effective_base"]:
+            # R: n_eff = p(1-p)/V times min(1, (t_{n-1} / t_df)^2) with n the design's rows
+            np.testing.assert_allclose([cell["ci_low"], cell["ci_high"]], [row["kg_low"], row["kg_high"]],
+                                       rtol=2e-3 if key[0] != "total" else 1e-9)
+        else:
+            n, df = cell["base"], cell["df"]
+            ratio = min(1.0, (stats.t.ppf(0.975, n - 1) / stats.t.ppf(0.975, df)) ** 2)
+            base = cell["effective_base"] * ratio
+            lo, hi = proportion_confint(p * base, base, alpha=0.05, method="beta")
+            np.testing.assert_allclose([cell["ci_low"], cell["ci_high"]], [lo, hi], rtol=1e-9)
