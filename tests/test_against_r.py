@@ -23,10 +23,11 @@ import pytest
 from tracker import Study
 
 HERE = Path(__file__).parent
+# the same schools in both waves: a panel, and (for the cluster samples) the same districts
 DESIGNS = {
-    "apistrat": "strata: stype\n",
-    "apiclus1": "clusters: dnum\n",
-    "apiclus2": "clusters: dnum\n",
+    "apistrat": "strata: stype\npanel: true\n",
+    "apiclus1": "clusters: dnum\nwaves_share_clusters: true\npanel: true\n",
+    "apiclus2": "clusters: dnum\nwaves_share_clusters: true\npanel: true\n",
 }
 CODEBOOK = """title: California schools ({name}, R survey package data)
 id: snum

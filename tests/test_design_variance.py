@@ -226,17 +226,23 @@ def test_changes_take_the_covariance_of_recurring_clusters(tmp_path):
     effects = {(h, c): rng.normal(0, 0.9) for h in range(5) for c in range(3)}
     a = clustered_wave(rng, effects=effects, prefix="a")
     b = clustered_wave(rng, effects=effects, prefix="b")
-    study, _ = make(tmp_path, [a, b], name="s1")
+    study, _ = make(tmp_path, [a, b], extra="waves_share_clusters: true", name="s1")
     result = study.changes(by=[])
     assert any("15 clusters appear in both waves" in n for n in result.notes)
     row = result.table.set_index("metric").loc["avg"]
-    assert row["covariance"] > 0
+    assert row["covariance"] > 0 and row["covariance_from"] == "shared clusters"
+    assert row["df"] == 15 - 5  # the paired design: the 15 clusters held by both waves minus their 5 strata
     est = study.estimates(metrics=["avg"], by=[])
     assert row["se"] < np.sqrt((est["se"] ** 2).sum())
-    off, _ = make(tmp_path, [a, b], extra="waves_share_clusters: false", name="s2")
-    result = off.changes(by=[])
-    assert not any("clusters appear" in n for n in result.notes)
-    assert result.table.set_index("metric").loc["avg", "se"] == pytest.approx(np.sqrt((est["se"] ** 2).sum()))
+    for extra, name in (("waves_share_clusters: false", "s2"), ("", "s3")):
+        off, _ = make(tmp_path, [a, b], extra=extra, name=name)
+        result = off.changes(by=[])
+        assert not any("clusters appear in both waves (the codebook" in n for n in result.notes)
+        said = any("15 cluster labels appear in both waves; they are taken as different clusters" in n
+                   for n in result.notes)
+        assert said == (extra == "")  # a note only where the codebook does not say
+        row = result.table.set_index("metric").loc["avg"]
+        assert row["se"] == pytest.approx(np.sqrt((est["se"] ** 2).sum())) and row["covariance_from"] == "none"
 
 
 def test_detectable_share_change_has_80_percent_power_under_its_own_variance():

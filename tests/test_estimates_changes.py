@@ -52,10 +52,10 @@ metrics:
 """
 
 
-def make_study(tmp_path, waves, weight=False, strata=False, clusters=False, name="s"):
+def make_study(tmp_path, waves, weight=False, strata=False, clusters=False, name="s", panel=False):
     book = tmp_path / f"{name}.yaml"
     book.write_text(BOOK.format(weight="weight: w" if weight else "", strata="strata: st" if strata else "",
-                                clusters="clusters: cl" if clusters else ""))
+                                clusters="clusters: cl" if clusters else "") + ("panel: true\n" if panel else ""))
     study = Study.create(tmp_path / name, book)
     for i, frame in enumerate(waves):
         path = tmp_path / f"{name}-w{i}.csv"
@@ -318,12 +318,32 @@ def test_paired_covariance_equals_scipy_ttest_rel(tmp_path):
     a["q"] = rng.integers(1, 6, 250)  # no don't-knows: every respondent in both bases
     b = a.copy()
     b["q"] = np.clip(a["q"] + rng.choice([-1, 0, 0, 1, 1], 250), 1, 5)
+    study = make_study(tmp_path, [a, b], panel=True)
+    result = study.changes(by=[])
+    assert any(n.startswith("250 respondents answered both waves (the codebook declares a panel)")
+               for n in result.notes)
+    row = result.table.set_index("metric").loc["avg"]
+    ref = stats.ttest_rel(b["q"], a["q"])  # scipy paired t: statistic, df n - 1 and p
+    assert row["statistic"] == pytest.approx(ref.statistic, rel=1e-10)
+    assert row["df"] == ref.df == 249 and row["covariance_from"] == "shared respondents"
+    assert row["p_raw"] == pytest.approx(ref.pvalue, rel=1e-9)
+
+
+def test_ids_that_coincide_are_not_a_panel_unless_declared(tmp_path):
+    # two independent samples whose ids are row numbers: compared as independent (scipy
+    # ttest_ind, Welch), with one note on the overlap
+    rng = np.random.default_rng(13)
+    a = random_wave(rng, 200, weighted=False, design=False)
+    b = random_wave(rng, 200, weighted=False, design=False)
+    a["q"], b["q"] = rng.integers(1, 6, 200), rng.integers(2, 6, 200)  # no don't-knows: whole-sample bases
     study = make_study(tmp_path, [a, b])
     result = study.changes(by=[])
-    assert "250 respondents answered both waves: their covariance is taken into account" in result.notes
+    assert sum("200 respondent ids appear in both waves; they are taken as different people" in n
+               for n in result.notes) == 1
     row = result.table.set_index("metric").loc["avg"]
-    ref = stats.ttest_rel(b["q"], a["q"])  # scipy paired t statistic
+    ref = stats.ttest_ind(b["q"], a["q"], equal_var=False)  # scipy Welch t
     assert row["statistic"] == pytest.approx(ref.statistic, rel=1e-10)
+    assert row["p_raw"] == pytest.approx(ref.pvalue, rel=1e-9) and row["covariance_from"] == "none"
 
 
 def test_year_ago_pooled_and_breaks(tmp_path):

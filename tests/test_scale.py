@@ -31,7 +31,8 @@ def clustered_study(tmp_path_factory):
     from tracker import Study
 
     root = tmp_path_factory.mktemp("scale")
-    study = Study.create(root / "study", EXAMPLE_CODEBOOK)
+    (root / "book.yaml").write_text(EXAMPLE_CODEBOOK.read_text() + "waves_share_clusters: true\n")
+    study = Study.create(root / "study", root / "book.yaml")
     for k, label in enumerate(["2025-Q1", "2025-Q2", "2025-Q3"]):
         path = root / f"{label}.csv"
         example_wave(300, seed=10 + k).to_csv(path, index=False)

@@ -104,7 +104,9 @@ class Rate:
 
 def _codebook(shares: list[str], rating: bool = True, profile: bool = True) -> Codebook:
     yes_no = "{type: category, codes: {0: no, 1: yes}}"
-    lines = ["title: calibration", "id: rid", "weight: w", "strata: st", "clusters: cl", "variables:"]
+    # ids and cluster labels recur only where a scenario shares them: declared as such
+    lines = ["title: calibration", "id: rid", "weight: w", "strata: st", "clusters: cl", "panel: true",
+             "waves_share_clusters: true", "variables:"]
     lines += [f"  {s}: {yes_no}" for s in shares]
     lines += ["  sub: {type: category, codes: {1: in, 2: out}}"]
     if rating:
@@ -176,8 +178,9 @@ def _pair(rng, book, d, items1, items2, shared, recurring, metrics, groups):
     a, b = first.table, second.table
     est_a = wave_estimates(book, a, metrics, groups, "A", "2025-01-15")
     est_b = wave_estimates(book, b, metrics, groups, "B", "2025-04-15")
-    cov, shared_units, _, _ = wave_covariance(book, b, a, metrics, groups, est_b, est_a)
-    changes = compare(est_b, est_a, None, cov if shared_units else None, "none", LEVEL)
+    cov, shared_units, unit, per_cell = wave_covariance(book, b, a, metrics, groups, est_b, est_a)
+    changes = compare(est_b, est_a, None, cov if shared_units else None, "none", LEVEL,
+                      shared=per_cell if shared_units else None, source=unit)
     return a, b, est_a, est_b, changes
 
 

@@ -23,7 +23,7 @@ COLUMNS = [
     "value_from", "value_to", "change", "change_low", "change_high",
     "base_from", "base_to", "effective_base_from", "effective_base_to",
     "test", "statistic", "p_raw", "p_adjusted", "min_detectable_change",
-    "significant", "verdict", "flags",
+    "significant", "verdict", "flags", "se", "df", "covariance", "covariance_from",
 ]
 
 #: The words of a verdict, the same in every table, chart and brief.
@@ -149,14 +149,16 @@ def resolve_against(labels: list[str], dates: dict[str, str], wave: str, against
 
 def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | None = None,
             covariance: np.ndarray | None = None, adjust: str = "bh", level: float = 0.95,
-            matters: dict[str, float] | None = None, shared: np.ndarray | None = None) -> pd.DataFrame:
+            matters: dict[str, float] | None = None, shared: np.ndarray | None = None,
+            source: str = "") -> pd.DataFrame:
     """Test every cell of ``now`` against the same cell of ``then`` (rows from the estimates step).
 
     The variance of a change is the design variance itself, V_to + V_from - 2 Cov (Cov
     from shared clusters or respondents, else 0), and the test is t = change / SE on the
     Satterthwaite (1946) combination of the two cells' design degrees of freedom when the
     waves are independent, and on the paired design's df when they share PSUs (``shared``:
-    the PSUs holding each cell in both waves; tracker.methods.tests.paired_df). With
+    the PSUs holding each cell in both waves; tracker.methods.tests.paired_df; ``source``
+    says what they are, 'respondents' or 'clusters', for the covariance_from column). With
     unweighted data and no design this is Welch's t for means (scipy
     ``ttest_ind(equal_var=False)``). The change interval and the minimum detectable change
     are the metric kind's (tracker.kinds): for shares Newcombe's (1998) hybrid score
@@ -226,6 +228,8 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
         "min_detectable_change": mde,
         "significant": sig, "verdict": verdict, "flags": flags,
         "se": se, "df": df, "covariance": cov,
+        "covariance_from": np.where((np.asarray(shared, float) > 0) if shared is not None else np.zeros(len(m), bool),
+                                    f"shared {source}" if source else "none", "none"),
     })
     return out
 

@@ -218,7 +218,10 @@ class Codebook:
     source: str  # the YAML text as given
     sha256: str
     single_cluster_rule: str = "centre"  # key single_cluster_strata (tracker.methods.SINGLE_CLUSTER_RULES)
-    waves_share_clusters: bool = True    # a cluster label names the same cluster in every wave
+    # a cluster label names the same cluster in every wave: only when the codebook says so
+    # (None: not said, taken as no; docs/validation.md, independent clusters under reused labels)
+    waves_share_clusters: bool | None = None
+    panel: bool = False  # an id names the same person in every wave (a panel): only when said
 
     def design_columns(self) -> list[str]:
         return [c for c in (self.id, self.weight, self.strata, self.clusters) if c]
@@ -441,13 +444,13 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         targets[gname] = shares
 
     rake = _parse_rake(doc.get("rake"))
-    single_rule, share_clusters = _design_options(doc)
+    single_rule, share_clusters, panel = _design_options(doc)
     book = Codebook(
         title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
         variables=variables, groups=groups, metrics=metrics, profile=profile,
         targets=targets, rake=dict(rake), source=text,
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
-        single_cluster_rule=single_rule, waves_share_clusters=share_clusters,
+        single_cluster_rule=single_rule, waves_share_clusters=share_clusters, panel=panel,
     )
     refs = wave_references(book)
     if refs:
@@ -500,17 +503,21 @@ def reference_problems(book: Codebook, labels: list[str], new: str | None = None
     return out
 
 
-def _design_options(doc: dict) -> tuple[str, bool]:
-    """The keys single_cluster_strata (a rule name) and waves_share_clusters (true/false)."""
+def _design_options(doc: dict) -> tuple[str, bool | None, bool]:
+    """The keys single_cluster_strata (a rule name), waves_share_clusters and panel
+    (true/false; the first None when not given)."""
     from .names import SINGLE_CLUSTER_RULES
 
     rule = doc.get("single_cluster_strata", "centre")
     if rule not in SINGLE_CLUSTER_RULES:
         raise _err("single_cluster_strata", f"{rule!r} is not one of {', '.join(SINGLE_CLUSTER_RULES)}")
-    share = doc.get("waves_share_clusters", True)
-    if not isinstance(share, bool):
-        raise _err("waves_share_clusters", f"{share!r}: write true or false")
-    return rule, share
+    share = doc.get("waves_share_clusters")
+    if share is not None and not isinstance(share, bool):
+        raise _err("waves_share_clusters", f"{shorten(repr(share))}: write true or false, without quotes")
+    panel = doc.get("panel", False)
+    if not isinstance(panel, bool):
+        raise _err("panel", f"{shorten(repr(panel))}: write true or false, without quotes")
+    return rule, share, panel
 
 
 def _parse_variable(name: str, node: Any) -> Variable:

@@ -404,7 +404,7 @@ def wave_covariance(codebook: Codebook, a: pd.DataFrame, b: pd.DataFrame, metric
     tries = []
     if codebook.clusters and codebook.waves_share_clusters and by_cluster is not False:
         tries.append(True)
-    if codebook.id in a.columns and codebook.id in b.columns and by_cluster is not True:
+    if codebook.panel and codebook.id in a.columns and codebook.id in b.columns and by_cluster is not True:
         ids_shared = np.intersect1d(a[codebook.id].astype(str).to_numpy(), b[codebook.id].astype(str).to_numpy())
         if ids_shared.size:
             tries.append(False)

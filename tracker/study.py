@@ -625,21 +625,45 @@ class Study:
                 else self._pooled_rows(others, ms, gs, level))
         notes: list[str] = []
         cov = both = None
+        unit = ""
         if len(others) == 1:
             c, shared, unit, both = self._covariance(wave, others[0], ms, gs, now, then)
             if shared and unit == "respondents":
                 cov = c
-                notes.append(f"{shared:,} respondents answered both waves: their covariance is taken into account")
+                notes.append(f"{shared:,} respondents answered both waves (the codebook declares a panel): their "
+                             f"covariance is taken into account, on the paired design's degrees of freedom")
             elif shared:
                 cov = c
-                notes.append(f"{shared:,} clusters appear in both waves: their covariance is taken into account "
-                             f"(write waves_share_clusters: false in the codebook if a cluster label can name "
-                             f"different clusters in different waves)")
+                notes.append(f"{shared:,} clusters appear in both waves (the codebook says waves_share_clusters: "
+                             f"true): their covariance is taken into account, on the paired design's degrees of "
+                             f"freedom")
+            notes += self._overlap_notes(wave, others[0], unit)
         table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level, self.matters(),
-                        shared=both if cov is not None else None)
+                        shared=both if cov is not None else None, source=unit if cov is not None else "")
         size = int(table["p_adjusted"].notna().sum())
         self._cache[key] = (table, tuple(notes), size)
         return table, list(notes), size
+
+    def _overlap_notes(self, wave: str, other: str, used: str) -> list[str]:
+        """Notes on ids or cluster labels two waves share that the codebook does not declare
+        as the same people or clusters (so the waves are compared as independent samples)."""
+        book = self.codebook
+        out = []
+        if used != "respondents" and book.id:
+            ha, hb = self._id_hashes(wave), self._id_hashes(other)
+            if ha is not None and hb is not None:
+                k = int(np.intersect1d(ha, hb).size)
+                if k and k >= 0.05 * min(ha.size, hb.size):  # a large overlap: row numbers, or a panel not declared
+                    out.append(f"{k:,} respondent ids appear in both waves; they are taken as different people "
+                               f"(independent samples), since the codebook does not declare panel: true")
+        if used != "clusters" and book.clusters and book.waves_share_clusters is None:
+            labels = [pd.read_parquet(self.stored_path(w), columns=[c for c in (book.strata, book.clusters) if c])
+                      .astype(str).agg("\x1f".join, axis=1).unique() for w in (wave, other)]
+            k = int(np.intersect1d(labels[0], labels[1]).size)
+            if k:
+                out.append(f"{k:,} cluster labels appear in both waves; they are taken as different clusters "
+                           f"(independent samples), since the codebook does not say waves_share_clusters: true")
+        return out
 
     def _covariance(self, wave: str, other: str, ms: list, gs: list[str], now: pd.DataFrame, then: pd.DataFrame):
         """Covariance of two waves' estimates (tracker.estimates.wave_covariance): from the
@@ -661,7 +685,7 @@ class Study:
                 if shared:
                     return cov, shared, "clusters", shared_per_cell(pa, ka, pb, kb)
         ha, hb = self._id_hashes(wave), self._id_hashes(other)
-        if ha is None or hb is None or not np.intersect1d(ha, hb).size:
+        if not book.panel or ha is None or hb is None or not np.intersect1d(ha, hb).size:
             return np.zeros(len(now)), 0, "", np.zeros(len(now))
         return wave_covariance(book, self.load(wave), self.load(other), ms, gs, now, then, by_cluster=False)
 

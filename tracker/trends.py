@@ -284,7 +284,8 @@ def _pattern_tests(y, v, ok, X_trend):
             with np.errstate(invalid="ignore", divide="ignore"):
                 t[:, c] = fit["beta"][:, 1] / np.sqrt(fit["cov"][:, 1, 1])
         t = np.where(valid, np.abs(np.nan_to_num(t)), 0.0)
-        centred = cols - (np.einsum("sk,skm->sm", w, cols) / w.sum(axis=1)[:, None])[:, None, :]
+        with np.errstate(invalid="ignore", divide="ignore"):  # a series with no weight left: no test (valid)
+            centred = cols - (np.einsum("sk,skm->sm", w, cols) / w.sum(axis=1)[:, None])[:, None, :]
         G = np.einsum("skm,sk,skn->smn", centred, w, centred)
         d = np.sqrt(np.einsum("smm->sm", G))
         d = np.where(d > 0, d, 1.0)
