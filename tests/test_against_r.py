@@ -155,3 +155,35 @@ def test_korn_graubard_equals_r_on_the_same_effective_base(reference, design):
             base = cell["effective_base"] * ratio
             lo, hi = proportion_confint(p * base, base, alpha=0.05, method="beta")
             np.testing.assert_allclose([cell["ci_low"], cell["ci_high"]], [lo, hi], rtol=1e-9)
+
+
+LONELY_RULES = {"adjust": "centre", "average": "average", "certainty": "certainty"}
+
+
+@pytest.fixture(scope="module")
+def lonely(reference, tmp_path_factory):
+    out = tmp_path_factory.mktemp("lonely")
+    data_dir = next(iter(reference[1].values())).root.parent
+    studies = {}
+    for r_rule, rule in LONELY_RULES.items():
+        text = CODEBOOK.format(name="apiclus2 by county", design="strata: county\nclusters: dnum\n")
+        (out / f"{rule}.yaml").write_text(text + f"single_cluster_strata: {rule}\n")
+        study = Study.create(out / rule, out / f"{rule}.yaml")
+        data = pd.read_csv(data_dir / "lonely.csv")
+        data.drop(columns=["api99", "fpc"]).rename(columns={"api00": "api"}).to_csv(out / "w.csv", index=False)
+        study.add(out / "w.csv", "2000", "2000-06-30")
+        studies[r_rule] = study
+    return pd.read_csv(data_dir / "lonely_reference.csv"), studies
+
+
+@pytest.mark.parametrize("r_rule", list(LONELY_RULES))
+def test_each_one_cluster_rule_equals_r_in_total_and_in_subgroups(lonely, r_rule):
+    """R's survey.lonely.psu = adjust / average / certainty on 17 one-district counties; the
+    'average' rule per subgroup: the strata holding it over those of them with two or more
+    clusters in the design."""
+    ref, studies = lonely
+    r = ref[ref["rule"] == r_rule].set_index(["group", "subgroup"])
+    mean, share = _cells(studies[r_rule], "api_mean"), _cells(studies[r_rule], "target_met")
+    for key, row in r.iterrows():
+        np.testing.assert_allclose(mean.loc[key, "se"], row["api00_se"], rtol=1e-10, err_msg=str(key))
+        np.testing.assert_allclose(share.loc[key, "se"], row["yes_se"], rtol=1e-10, err_msg=str(key))

@@ -73,7 +73,7 @@ def _refuse(codebook: Codebook, table: pd.DataFrame, exc: SingleClusterError) ->
 
 #: Bump when the per-cell statistics change meaning or computation: every cached copy
 #: (tracker.cache) is then rebuilt.
-STATS_VERSION = 2
+STATS_VERSION = 3  # 3: the average rule for one-cluster strata per subgroup, as R
 
 #: The per-cell sufficient statistics, each a (levels x metrics) array in CellArrays.
 STATS = ("base", "weighted_base", "sum_w2", "value", "variance", "unit_variance", "n_psu", "design_df")
@@ -211,25 +211,27 @@ def _unclustered_variance(D, Ef, EY, w, value, sw, members, strata, rule):
     n_strata = int(h.max()) + 1 if n else 1
     (a, b), (a2, ab, b2) = _level_sums(D, h, n_strata, [w, w * w], [EY, Ef], [EY * EY, EY, Ef])
     if n_strata == 1:
-        present = (members > 0).astype(float)
+        held = (members > 0)[None]
     else:
-        present = (_level_sums(D, h, n_strata, [np.ones(n)], [Ef])[0][0] > 0).sum(axis=0)
+        held = _level_sums(D, h, n_strata, [np.ones(n)], [Ef])[0][0] > 0
     n_h = np.bincount(h, minlength=n_strata)
-    return unclustered_from_sums(a, b, a2, ab, b2, present, members, value, sw, n_h, rule)
+    return unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule)
 
 
-def unclustered_from_sums(a, b, a2, ab, b2, present, members, value, sw, n_h, rule):
+def unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule):
     """The variance of every cell from per-stratum sums (strata x levels x metrics) of
-    w e y (a), w e (b), w^2 e y^2 (a2), w^2 e y (ab) and w^2 e (b2); ``present`` counts the
-    strata holding each cell's respondents, ``n_h`` the respondents of each stratum. The
-    per-stratum moments go to :func:`tracker.methods.variance.combine_strata`."""
+    w e y (a), w e (b), w^2 e y^2 (a2), w^2 e y (ab) and w^2 e (b2); ``held`` says which
+    strata hold each cell's respondents (strata x levels x metrics), ``n_h`` the
+    respondents of each stratum. The per-stratum moments go to
+    :func:`tracker.methods.variance.combine_strata`."""
     n_strata = a.shape[0]
     L, M = value.shape
     with np.errstate(divide="ignore", invalid="ignore"):
         s1 = np.nan_to_num((a - value * b) / sw)
         s2 = np.nan_to_num((a2 - 2 * value * ab + value**2 * b2) / sw**2)
-    var = combine_strata(s1.reshape(n_strata, -1), s2.reshape(n_strata, -1), n_h, rule).reshape(L, M)
-    return var, members, members - present
+    held = np.broadcast_to(np.asarray(held, bool).reshape(-1, L, M), (n_strata, L, M)).reshape(n_strata, -1)
+    var = combine_strata(s1.reshape(n_strata, -1), s2.reshape(n_strata, -1), n_h, rule, held).reshape(L, M)
+    return var, members, members - held.sum(axis=0).reshape(L, M)
 
 
 def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule):
@@ -262,9 +264,10 @@ def clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule):
     t = np.where(np.isfinite(t), t, 0.0).reshape(P, L * M)
     H = sp.csr_matrix((np.ones(P), (psu_stratum, np.arange(P))), shape=(n_strata, P))
     n_h = np.bincount(psu_stratum, minlength=n_strata)
-    var = combine_strata(np.asarray(H @ t), np.asarray(H @ t**2), n_h, rule).reshape(L, M)
+    held = np.asarray(H @ counts.astype(float)) > 0  # strata x cells
+    var = combine_strata(np.asarray(H @ t), np.asarray(H @ t**2), n_h, rule, held).reshape(L, M)
     n_psu = counts.sum(axis=0).reshape(L, M)
-    n_str = (np.asarray(H @ counts.astype(float)) > 0).sum(axis=0).reshape(L, M)
+    n_str = held.sum(axis=0).reshape(L, M)
     return var, n_psu, n_psu - n_str, PsuTotals(t, psu_stratum, n_strata)
 
 
@@ -433,7 +436,10 @@ def single_cluster_lines(codebook: Codebook, table: pd.DataFrame, groups: list[s
     if lone.size:
         then = ("the codebook refuses such a wave (single_cluster_strata: refuse); merge each with a neighbouring "
                 "stratum in the file or choose another rule (docs/codebook.md)" if rule == "refuse" else
-                f"their variance follows the rule single_cluster_strata: {rule} (docs/methods.md)")
+                f"their variance follows the rule single_cluster_strata: {rule} (docs/methods.md)"
+                + ("; this rule understates the variance unless the lone clusters were taken with certainty "
+                   "(certainty) or vary as the others do (average); centre does not"
+                   if rule in ("average", "certainty") else ""))
         out.append(f"{lone.size} stratum(s) hold a single cluster: {_names(names[lone])}; {then}")
     D, levels = group_matrix(codebook, table, list(codebook.groups) if groups is None else groups)
     for j in range(1, D.shape[1]):  # a loop over subgroup levels

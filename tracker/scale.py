@@ -262,9 +262,9 @@ def _finish(book, metrics, gnames, lnames, got, pairs, n_levels, strata, cluster
             total_rows = lev_all == 0
             n_h = np.bincount(unit_of_row[rows_all[total_rows]],
                               weights=np.asarray(got["n_rows"], float)[rows_all[total_rows]], minlength=U)
-            present = (cnt > 0).sum(axis=0).astype(float)
+            held = cnt > 0  # strata x levels x metrics
             w2ey, w2ey2 = cube("w2ey"), cube("w2ey2")
-            var, n_psu, df = unclustered_from_sums(wey, we, w2ey2, w2ey, w2e, present, n, value, sw,
+            var, n_psu, df = unclustered_from_sums(wey, we, w2ey2, w2ey, w2e, held, n, value, sw,
                                                    n_h.astype(np.int64), rule)
     except SingleClusterError as exc:
         where = np.asarray(unit_names if not clusters else pd.unique(s_lab[first]), dtype=str)

@@ -43,3 +43,25 @@ for (name in names(samples)) {
   }
 }
 write.csv(do.call(rbind, rows), file.path(out, "reference.csv"), row.names = FALSE)
+
+# One-cluster strata: apiclus2's districts stratified by county (17 of 26 counties hold one
+# district), under each of R's rules for a lonely PSU.
+d <- coded(apiclus2)
+d$county <- as.character(apiclus2$cname)
+write.csv(d, file.path(out, "lonely.csv"), row.names = FALSE)
+lonely <- list()
+for (rule in c("adjust", "average", "certainty")) {
+  options(survey.lonely.psu = rule)
+  des <- svydesign(id = ~dnum, strata = ~county, weights = ~pw, data = d, nest = TRUE)
+  des <- update(des, yes = as.numeric(sch_wide == 1))
+  cells <- list(c("total", "Total", "TRUE"))
+  for (lv in 1:3) cells[[length(cells) + 1]] <- c("stype", c("E", "H", "M")[lv], paste0("stype == ", lv))
+  for (lv in 1:2) cells[[length(cells) + 1]] <- c("awards", c("Yes", "No")[lv], paste0("awards == ", lv))
+  for (cell in cells) {
+    sub <- if (cell[1] == "total") des else des[eval(parse(text = cell[3]), des$variables), ]
+    lonely[[length(lonely) + 1]] <- data.frame(
+      rule = rule, group = cell[1], subgroup = cell[2], api00_se = SE(svymean(~api00, sub))[[1]],
+      yes_se = SE(svymean(~yes, sub))[[1]])
+  }
+}
+write.csv(do.call(rbind, lonely), file.path(out, "lonely_reference.csv"), row.names = FALSE)

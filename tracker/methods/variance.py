@@ -75,15 +75,18 @@ def _stratum_matrix(stratum: np.ndarray, n_strata: int) -> sp.csr_matrix:
     return sp.csr_matrix((np.ones(stratum.size), (stratum, np.arange(stratum.size))), shape=(n_strata, stratum.size))
 
 
-def combine_strata(s1: np.ndarray, s2: np.ndarray, n_h: np.ndarray, rule: str = "centre") -> np.ndarray:
+def combine_strata(s1: np.ndarray, s2: np.ndarray, n_h: np.ndarray, rule: str = "centre",
+                   present: np.ndarray | None = None) -> np.ndarray:
     """The variance from per-stratum moments of PSU totals t: s1 = sum t, s2 = sum t^2 (H x K).
 
     A stratum with n_h >= 2 PSUs adds n_h / (n_h - 1) (s2 - s1^2 / n_h) (Wolter 2007, ch. 6).
     A stratum with one PSU adds, by ``rule``: 'centre', (t - t_bar)^2 with t_bar the mean
     of all PSU totals (the svy package's 'center', R survey's lonely.psu = "adjust");
     'average', the mean contribution of the strata with several PSUs (svy 'scale', R
-    "average"); 'certainty', nothing (svy and samplics 'skip'); 'refuse' raises
-    :class:`SingleClusterError`.
+    "average"): the sum scaled by the strata holding the column's cell over those of them
+    with several PSUs in the design (``present``, H x K: which strata hold each cell;
+    every stratum when not given), as R's ``onestage`` does for a domain; 'certainty',
+    nothing (svy and samplics 'skip'); 'refuse' raises :class:`SingleClusterError`.
     """
     n_h = np.asarray(n_h, float)
     ok = n_h > 1
@@ -99,8 +102,11 @@ def combine_strata(s1: np.ndarray, s2: np.ndarray, n_h: np.ndarray, rule: str = 
         # one PSU: s1 = t and s2 = t^2, so (t - t_bar)^2 = s2 - 2 t_bar s1 + t_bar^2
         var = var + (s2[lone] - 2 * t_bar * s1[lone] + t_bar**2).sum(axis=0)
     elif rule == "average":
-        n_ok = int(ok.sum())
-        var = var * (n_ok + int(lone.sum())) / n_ok if n_ok else np.full_like(var, np.nan)
+        held = (n_h > 0)[:, None] if present is None else np.asarray(present, bool)
+        held = np.broadcast_to(held, s1.shape)
+        n_held, n_ok = held.sum(axis=0), (held & ok[:, None]).sum(axis=0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            var = np.where(n_ok > 0, var * n_held / np.where(n_ok > 0, n_ok, 1), np.nan)
     elif rule == "refuse":
         raise SingleClusterError(np.flatnonzero(lone))
     elif rule != "certainty":
