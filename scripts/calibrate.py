@@ -22,7 +22,10 @@ sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
 
-from tracker.calibration import FORECAST_DESIGN, FORECAST_REPS, DESIGNS, TIERS, TREND_DESIGN, TREND_REPS, Report, run  # noqa: E402
+from tracker.calibration import (  # noqa: E402
+    DESIGNS, FEW_DESIGN, FEW_REPS, FORECAST_DESIGN, FORECAST_REPS, RARE_DESIGN, RARE_REPS, TIERS, TREND_DESIGN, TREND_REPS,
+    Report, run,
+)
 
 
 def _limits() -> str:
@@ -85,9 +88,11 @@ def render(report: Report) -> str:
         lo, mid, hi = report.deff.get(d.name, (float("nan"),) * 3)
         out.append(f"- **{d.name}**: {d.describe()}. Design effect of the share 0.5 in total (Kish, V / V_srs): "
                    f"median {mid:.2f} (range {lo:.2f} to {hi:.2f}).")
-    out += ["", "Intervals: Wilson on the effective base p(1-p)/V with the t quantile on the design degrees of "
-            "freedom (the default), and Korn-Graubard (`--interval korn-graubard`); means and balances use t. "
-            "Change tests: t on V_to + V_from - 2 Cov with Satterthwaite degrees of freedom. Sharing scenarios keep "
+    out += ["", "Intervals: Wilson on the design base p(1-p)/V (never above the Kish base of the weights) with the t "
+            "quantile on the design degrees of freedom (the default), and Korn-Graubard (`--interval "
+            "korn-graubard`); means and balances use t. Change tests: t on V_to + V_from - 2 Cov with Satterthwaite "
+            "degrees of freedom for independent waves and the paired design's when waves share clusters or "
+            "respondents (declared in the codebook, as the scenarios here are). Sharing scenarios keep "
             "the cluster labels, with cluster effects correlated 0.8 between waves, and bring back 30 % or 70 % of "
             "each cluster's respondents with latents correlated 0.6.", ""]
     sections = [(d.name, "") for d in DESIGNS] + [(FORECAST_DESIGN, (
@@ -107,6 +112,21 @@ def render(report: Report) -> str:
         "series of 'not steady' against a straight line, a step at any wave and a one-wave blip at any wave "
         "(Sidak over the effective number of candidate waves, weighted Bonferroni across the three), then the "
         "shape that fits best, or 'moved up/down' when the waves cannot tell a trend from a step. " + _limits()))]
+    sections += [(RARE_DESIGN, (
+        f"{RARE_REPS[report.tier]:,} waves of 1,500 respondents, no clusters, lognormal weights of Kish efficiency "
+        "0.42 (log SD 0.93), a true share of 0.05 whose chance of a 'yes' rises with the square root of the weight "
+        "(informative weights), and four subgroups of 10, 15, 25 and 50 % of the sample. The design base is never "
+        "above the Kish base of the weights and is the Kish base at 0 %; the reliability rule also refuses a share "
+        "resting on fewer than 15 effective respondents on its rarer side (tracker/kinds.py). Promised: coverage of "
+        "every cell at least 93 %, and of the cells the rule passes at least 92 % (where at least 30 pass; where "
+        "the rule passes almost none, it refuses them, which is the promise kept the other way)."))]
+    sections += [(FEW_DESIGN, (
+        f"{FEW_REPS[report.tier]:,} wave pairs per scenario, no change in truth, cluster effect SD 0.3. Recurring "
+        "clusters keep their labels and correlated effects (0.8) and are declared (`waves_share_clusters: true`): "
+        "the change uses their covariance on the paired design's degrees of freedom (10 clusters minus 5 strata). "
+        "New clusters under reused labels (interview days, say) have independent effects: not declared, the waves "
+        "are independent; wrongly declared, the covariance of unrelated clusters is used (reported, not promised: "
+        "the reason the codebook must say so)."))]
     for name, intro in sections:
         out += [f"## {name[0].upper() + name[1:]}", ""] + ([intro, ""] if intro else []) + [
                 "| what | setting | nominal | measured | MC SE | target | meets |",
@@ -135,11 +155,12 @@ def render(report: Report) -> str:
                     "can tell (see that section); the classifier is tuned to keep its wrong calls (false patterns, "
                     "a trend read as a step or a step as a trend) within target instead. Every other miss is "
                     "within Monte Carlo error."]
-    out += ["", "Coverage among cells that pass the reliability rule is reported, not promised: a thin "
-            "subgroup's cell of a rare share passes the rule mostly when its estimate came out high, so the cells "
-            "that pass are a biased selection and their intervals cover less often (for a share of 0.1 in a subgroup "
-            "of about 80, the rule passes only a few percent of the cells). The rule protects against reading such "
-            "cells; pooled waves or the total are the better source for them.",
+    out += ["", "Coverage among cells that pass the reliability rule is promised in the rare-share design and "
+            "reported in the others: a thin subgroup's cell of a rare share passes a width rule mostly when its "
+            "estimate came out on one side, so the cells that pass are a biased selection. The rule's floor of 15 "
+            "effective respondents on the rarer side removes most of that selection (without it, the cells of a "
+            "0.05 share that passed in a subgroup of effective base about 170 covered 72-78 %); pooled waves or the "
+            "total are the better source for such cells.",
             "", "Smoothing is promised for a slowly moving series (1 point a wave); at twice that speed (reported) "
             "the smoother still cuts the squared error by about two thirds, but its interval covers less than "
             "promised, since the signal variance is then harder to learn from 14 waves of a thin subgroup.", ""]

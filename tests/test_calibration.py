@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import pytest
 
-from tracker.calibration import DESIGNS, FORECAST_DESIGN, TREND_DESIGN, run
+from tracker.calibration import DESIGNS, FEW_DESIGN, FORECAST_DESIGN, RARE_DESIGN, TREND_DESIGN, run
 
 
 @pytest.fixture(scope="module")
@@ -28,6 +28,9 @@ def test_every_promised_rate_holds_within_monte_carlo_error(report):
     assert len(targeted) >= 2 * 40 + 4  # both designs, every quantity, and four trend rates
     # and the next wave's range (three settings), surprises (false discoveries, power), smoothing
     assert sum(r.design == FORECAST_DESIGN for r in targeted) == 7
+    # rare shares with informative weights (every cell, both intervals) and few clusters (recurring, reused labels)
+    assert sum(r.design == RARE_DESIGN and r.what == "95% interval coverage" for r in targeted) == 10
+    assert sum(r.design == FEW_DESIGN for r in targeted) == 8
     off = [f"{r.design}: {r.what}, {r.setting}: {r.measured:.3f} (target {r.target}, MC SE {r.mc_se:.3f})"
            for r in targeted if not r.within_mc(3.5)]
     assert not off, "\n".join(off)

@@ -31,7 +31,8 @@ from .composition import compare_composition
 from .estimates import finish, wave_covariance, wave_estimates
 from .methods.tests import adjust_pvalues
 
-__all__ = ["DESIGNS", "FORECAST_DESIGN", "TIERS", "Design", "Rate", "run"]
+__all__ = ["DESIGNS", "FEW_DESIGN", "FEW_REPS", "FORECAST_DESIGN", "RARE_DESIGN", "RARE_REPS", "TIERS", "Design",
+           "Rate", "run"]
 
 RATING = np.array([0.10, 0.15, 0.25, 0.30, 0.20])     # category shares of the 1-5 rating
 TRUTH = {"p50": 0.5, "p30": 0.3, "p10": 0.1, "p03": 0.03,
@@ -102,11 +103,12 @@ class Rate:
         return self.target is None or self.target[0] - k * self.mc_se <= self.measured <= self.target[1] + k * self.mc_se
 
 
-def _codebook(shares: list[str], rating: bool = True, profile: bool = True) -> Codebook:
+def _codebook(shares: list[str], rating: bool = True, profile: bool = True, declared: bool = True) -> Codebook:
     yes_no = "{type: category, codes: {0: no, 1: yes}}"
     # ids and cluster labels recur only where a scenario shares them: declared as such
-    lines = ["title: calibration", "id: rid", "weight: w", "strata: st", "clusters: cl", "panel: true",
-             "waves_share_clusters: true", "variables:"]
+    lines = ["title: calibration", "id: rid", "weight: w", "strata: st", "clusters: cl"]
+    lines += ["panel: true", "waves_share_clusters: true"] if declared else []
+    lines += ["variables:"]
     lines += [f"  {s}: {yes_no}" for s in shares]
     lines += ["  sub: {type: category, codes: {1: in, 2: out}}"]
     if rating:
@@ -133,8 +135,10 @@ class _Wave:
 
 
 def _draw(rng, d: Design, items: dict[str, float], tag: str, prev: _Wave | None = None, shared: float = 0.0,
-          recurring: bool = False) -> _Wave:
-    """One wave. ``items`` maps each share item to its true share; the rating is always drawn."""
+          recurring: bool = False, reuse_labels: bool = False) -> _Wave:
+    """One wave. ``items`` maps each share item to its true share; the rating is always drawn.
+    ``recurring``: the earlier wave's clusters again (labels kept, effects correlated);
+    ``reuse_labels``: new clusters under the earlier wave's labels (interview days, say)."""
     n_cl = d.strata * d.clusters
     k = len(items) + 1
     if prev is not None and recurring:
@@ -166,15 +170,15 @@ def _draw(rng, d: Design, items: dict[str, float], tag: str, prev: _Wave | None 
         prof[back] = old["prof"].to_numpy()[back] - 1
         sub[back] = old["sub"].to_numpy()[back]
         w[back] = old["w"].to_numpy()[back] / PROFILE_WEIGHT[prof[back]]
-    label = "R" if recurring or prev is None else tag
+    label = "R" if recurring or reuse_labels or prev is None else tag
     table = pd.DataFrame({"rid": ids, "w": w * PROFILE_WEIGHT[prof], "st": cluster // d.clusters,
                           "cl": [f"{label}{c}" for c in cluster], "sub": sub, "prof": prof + 1, **cols})
     return _Wave(table, e, effects)
 
 
-def _pair(rng, book, d, items1, items2, shared, recurring, metrics, groups):
+def _pair(rng, book, d, items1, items2, shared, recurring, metrics, groups, reuse_labels=False):
     first = _draw(rng, d, items1, "a")
-    second = _draw(rng, d, items2, "b", first, shared, recurring)
+    second = _draw(rng, d, items2, "b", first, shared, recurring, reuse_labels)
     a, b = first.table, second.table
     est_a = wave_estimates(book, a, metrics, groups, "A", "2025-01-15")
     est_b = wave_estimates(book, b, metrics, groups, "B", "2025-04-15")
@@ -288,11 +292,14 @@ def _power(rng, d: Design, tier: Tier, out: list[Rate]) -> None:
             for _ in range(tier.power_pairs):
                 *_, ch = _pair(rng, book, d, shares, moved, 0.0, False, metrics, [])
                 r = ch.set_index("metric").loc[m]
-                hits.append(float(r["p_raw"] <= 1 - LEVEL))
+                # power of the test where the tool makes it: a cell the reliability rule refuses is
+                # "not tested", never called a change (the share tested is in the setting)
+                hits.append(float(r["p_raw"] <= 1 - LEVEL) if np.isfinite(r["p_raw"]) else np.nan)
             rate, mc, k = _prop(hits)
             what = "power at the reported detectable change" if times == 1 else "power at twice the detectable change"
             target = (0.75, 0.85) if times == 1 else None
-            out.append(Rate(d.name, what, f"{LABELS[m]} rising by {times * mde * 100:.1f} points (unadjusted test)",
+            out.append(Rate(d.name, what, f"{LABELS[m]} rising by {times * mde * 100:.1f} points (unadjusted test; "
+                                          f"{k / tier.power_pairs:.0%} of comparisons tested)",
                             rate, mc, k, target, 0.80 if times == 1 else None))
 
 
@@ -477,6 +484,99 @@ class Report:
     deff: dict[str, tuple[float, float, float]] = field(default_factory=dict)  # design -> (min, median, max)
 
 
+FEW_DESIGN = "few clusters: recurring or reused labels"
+FEW_REPS = {"full": 2000, "quick": 400, "test": 150}
+
+
+def _few_clusters(rng, reps: int, out: list[Rate]) -> None:
+    """Change-test size and interval coverage with 5 strata of 2 clusters: clusters that
+    recur (declared, so the paired design's df), and new clusters under reused labels
+    (undeclared, so independent; and wrongly declared, reported), with 5 clusters per
+    stratum for the wrong declaration too."""
+    books = {True: _codebook(list(SHARES)), False: _codebook(list(SHARES), declared=False)}
+    scenarios = [  # (name, design, recurring, reuse labels, declared, target)
+        ("recurring clusters, declared", Design("5 x 2", 5, 2, 30), True, False, True, True),
+        ("new clusters under reused labels, not declared", Design("5 x 2", 5, 2, 30), False, True, False, True),
+        ("new clusters under reused labels, wrongly declared", Design("5 x 2", 5, 2, 30), False, True, True, False),
+        ("5 clusters per stratum, new clusters under reused labels, wrongly declared", Design("5 x 5", 5, 5, 12),
+         False, True, True, False),
+    ]
+    for name, d, recurring, reuse, declared, promised in scenarios:
+        book = books[declared]
+        metrics = list(book.metrics.values())
+        reject: dict[str, list[float]] = {m: [] for m in ("p50", "rating_mean")}
+        inside: dict[str, list[float]] = {m: [] for m in reject}
+        for _ in range(reps):
+            *_, ch = _pair(rng, book, d, SHARES, SHARES, 0.0, recurring, metrics, [], reuse_labels=reuse)
+            tot = ch[ch["group"] == "total"].set_index("metric")
+            for m in reject:
+                r = tot.loc[m]
+                reject[m].append(float(r["p_raw"] <= 1 - LEVEL) if np.isfinite(r["p_raw"]) else np.nan)
+                inside[m].append(float(r["change_low"] <= 0 <= r["change_high"]))
+        setting = f"{d.strata} strata x {d.clusters} clusters x {d.size}; {name}"
+        for m in reject:
+            rate, mc, k = _prop(reject[m])
+            out.append(Rate(FEW_DESIGN, "change-test size", f"{LABELS[m]}, total; {setting}", rate, mc, k,
+                            (0.04, 0.06) if promised else None, 0.05))
+            rate, mc, k = _prop(inside[m])
+            out.append(Rate(FEW_DESIGN, "change-interval coverage", f"{LABELS[m]}, total; {setting}", rate, mc, k,
+                            (0.94, 0.96) if promised else None, 0.95))
+
+
+RARE_DESIGN = "rare shares, informative weights"
+RARE_REPS = {"full": 3000, "quick": 600, "test": 200}
+#: The rare-share wave: 1,500 respondents, lognormal weights with Kish efficiency exp(-s^2)
+#: = 0.42, a true share of 0.05 whose chance rises with the weight (informative weights),
+#: and four subgroups of 10, 15, 25 and 50 % of the sample (effective bases about 60-320).
+RARE_N, RARE_SD, RARE_TRUE, RARE_SUBS = 1500, 0.93, 0.05, np.array([0.10, 0.15, 0.25, 0.50])
+
+
+def _rare_codebook() -> Codebook:
+    return parse_codebook("\n".join([
+        "title: rare shares", "id: rid", "weight: w", "variables:",
+        "  rare: {type: category, codes: {0: no, 1: yes}}",
+        "  sub: {type: category, codes: {1: a, 2: b, 3: c, 4: d}}",
+        "groups:", "  sub: {variable: sub}", "metrics:", "  rare: {variable: rare, share: [1]}"]) + "\n")
+
+
+def _rare_shares(rng, reps: int, out: list[Rate]) -> None:
+    """Coverage of a rare share (0.05) with informative weights, in total and in thin
+    subgroups, for both intervals and for the cells the reliability rule passes."""
+    book = _rare_codebook()
+    metrics, groups = list(book.metrics.values()), ["sub"]
+    # P(yes | w) = c w^0.5, c set so that the population (weighted) share is RARE_TRUE:
+    # E[w p] / E[w] = c E[w^1.5] / E[w], with log w ~ N(0, s^2)
+    c = RARE_TRUE * np.exp(RARE_SD**2 / 2) / np.exp(1.5**2 * RARE_SD**2 / 2)
+    hits: dict[tuple[str, str, str], list[float]] = {}
+    effective: dict[str, list[float]] = {}
+    for _ in range(reps):
+        w = np.exp(rng.normal(0.0, RARE_SD, RARE_N))
+        yes = rng.random(RARE_N) < np.minimum(c * np.sqrt(w), 1.0)
+        table = pd.DataFrame({"rid": np.arange(RARE_N).astype(str), "w": w, "rare": yes.astype(float),
+                              "sub": rng.choice(4, RARE_N, p=RARE_SUBS) + 1.0})
+        est = wave_estimates(book, table, metrics, groups, "A", "2025-01-15", LEVEL)
+        kg = finish(est, {m.name: m.kind for m in metrics}, LEVEL, "korn-graubard")
+        for frame, iv in ((est, "wilson"), (kg, "korn-graubard")):
+            inside = ((frame["ci_low"] <= RARE_TRUE) & (RARE_TRUE <= frame["ci_high"])).to_numpy(float)
+            for where, hit, ok, neff in zip(frame["subgroup"], inside, frame["reliable"], frame["effective_base"]):
+                hits.setdefault((where, iv, "all"), []).append(hit)
+                if ok:
+                    hits.setdefault((where, iv, "reliable"), []).append(hit)
+                if iv == "wilson":
+                    effective.setdefault(where, []).append(neff)
+    for (where, iv, which), h in sorted(hits.items()):
+        rate, mc, k = _prop(h)
+        size = f"effective base about {np.median(effective[where]):.0f}"
+        if which == "all":
+            out.append(Rate(RARE_DESIGN, "95% interval coverage", f"share 0.05, {where} ({size}), {iv}", rate, mc, k,
+                            (0.93, 1.0), 0.95))
+        else:
+            share = len(h) / len(hits[(where, iv, "all")])
+            out.append(Rate(RARE_DESIGN, "95% interval coverage, cells passing the reliability rule",
+                            f"share 0.05, {where} ({size}), {iv}; {share:.0%} of cells pass", rate, mc, k,
+                            (0.92, 1.0) if k >= 30 else None, 0.95))
+
+
 def _one_design(args) -> tuple[list[Rate], tuple[float, float, float]]:
     d, tier, seed, verbose = args
     t = TIERS[tier]
@@ -518,4 +618,10 @@ def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DES
     if verbose:
         print(f"{FORECAST_DESIGN}", file=sys.stderr, flush=True)
     _forecasts(np.random.default_rng(np.random.SeedSequence([seed, 14])), FORECAST_REPS[tier], rates)
+    if verbose:
+        print(f"{RARE_DESIGN}", file=sys.stderr, flush=True)
+    _rare_shares(np.random.default_rng(np.random.SeedSequence([seed, 21])), RARE_REPS[tier], rates)
+    if verbose:
+        print(f"{FEW_DESIGN}", file=sys.stderr, flush=True)
+    _few_clusters(np.random.default_rng(np.random.SeedSequence([seed, 22])), FEW_REPS[tier], rates)
     return Report(rates, tier, seed, time.perf_counter() - start, deff)

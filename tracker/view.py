@@ -51,7 +51,7 @@ VIEWS: dict[str, list[Col]] = {
     ],
     "changes": [
         Col("metric_label", "metric", keep=0), Col("subgroup", "subgroup", keep=0),
-        Col("value_from", "from", "value", 1), Col("value_to", "to", "value", 0),
+        Col("value_from", "from", "value", 0), Col("value_to", "to", "value", 0),
         Col("change", "change", "change", 0), Col(("change_low", "change_high"), "interval", "span_change", 1),
         Col("p_adjusted", "p adj.", "p", 1), Col("verdict", "verdict", keep=0),
         Col("min_detectable_change", "detectable", "size", 3), Col("base_to", "base", "count", 2),

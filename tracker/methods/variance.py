@@ -115,16 +115,23 @@ def combine_strata(s1: np.ndarray, s2: np.ndarray, n_h: np.ndarray, rule: str = 
 
 
 def taylor_variance(z: np.ndarray, strata: np.ndarray | None = None, psu: np.ndarray | None = None,
-                    rule: str = "centre") -> np.ndarray:
+                    rule: str = "centre", members: np.ndarray | None = None) -> np.ndarray:
     """Variance of the totals of linearized values ``z`` (N x K): one value per column.
 
     The with-replacement (ultimate cluster) estimator of :func:`combine_strata`, which
     samplics ``TaylorEstimator`` implements for strata with several PSUs (Wolter 2007, ch. 6).
+    ``members`` (N x K, bool) says which respondents belong to each column's cell (a
+    subgroup): the 'average' rule counts the strata that hold them.
     """
     t = psu_totals(np.asarray(z, float), strata, psu)
     H = _stratum_matrix(t.stratum, t.n_strata)
     n_h = np.bincount(t.stratum, minlength=t.n_strata)
-    return combine_strata(np.asarray(H @ t.totals), np.asarray(H @ t.totals**2), n_h, rule)
+    held = None
+    if members is not None:
+        row_stratum = np.zeros(len(z), dtype=np.int64) if strata is None else \
+            np.unique(strata, return_inverse=True)[1].ravel()
+        held = np.asarray(_stratum_matrix(row_stratum, t.n_strata) @ np.asarray(members, float)) > 0
+    return combine_strata(np.asarray(H @ t.totals), np.asarray(H @ t.totals**2), n_h, rule, held)
 
 
 def taylor_covariance(z: np.ndarray, strata: np.ndarray | None = None, psu: np.ndarray | None = None,
