@@ -187,3 +187,44 @@ def test_each_one_cluster_rule_equals_r_in_total_and_in_subgroups(lonely, r_rule
     for key, row in r.iterrows():
         np.testing.assert_allclose(mean.loc[key, "se"], row["api00_se"], rtol=1e-10, err_msg=str(key))
         np.testing.assert_allclose(share.loc[key, "se"], row["yes_se"], rtol=1e-10, err_msg=str(key))
+
+
+FPC = {"apistrat": "population: {1: 4421, 2: 755, 3: 1018}\n", "apiclus1": "population: 757\n"}
+
+
+@pytest.fixture(scope="module")
+def with_fpc(reference, tmp_path_factory):
+    out = tmp_path_factory.mktemp("fpc")
+    data_dir = next(iter(reference[1].values())).root.parent
+    studies = {}
+    for name, key in FPC.items():
+        (out / f"{name}.yaml").write_text(CODEBOOK.format(name=name, design=DESIGNS[name] + key))
+        study = Study.create(out / name, out / f"{name}.yaml")
+        for year in ("1999", "2000"):
+            study.add(data_dir / f"{name}-{year}.csv", year, f"{year}-06-30")
+        studies[name] = study
+    return pd.read_csv(data_dir / "fpc_reference.csv"), studies
+
+
+def test_the_finite_population_correction_gives_the_published_values(with_fpc):
+    """R survey's tests/api.Rout.save: apistrat with fpc, mean api00 662.29, SE 9.4089; Lumley
+    (2010, *Complex Surveys*, section 3.4 / the package's paired example): apiclus1 with fpc,
+    api00 - api99 = 37.191, SE 3.0852 (published to the digits shown)."""
+    _, studies = with_fpc
+    total = _cells(studies["apistrat"], "api_mean").loc[("total", "Total")]
+    assert round(total["value"], 2) == 662.29 and round(total["se"], 4) == 9.4089
+    ch = studies["apiclus1"].changes(wave="2000", against="1999", metrics=["api_mean"], by=[]).table.iloc[0]
+    assert round(ch["change"], 3) == 37.191 and round(ch["se"], 4) == 3.0852
+
+
+@pytest.mark.parametrize("design", list(FPC))
+def test_the_finite_population_correction_equals_r_cell_by_cell(with_fpc, design):
+    ref, studies = with_fpc
+    r = ref[ref["design"] == design].set_index(["group", "subgroup"])
+    mean, share = _cells(studies[design], "api_mean"), _cells(studies[design], "target_met")
+    ch = studies[design].changes(wave="2000", against="1999", metrics=["api_mean"]).table.set_index(
+        ["group", "subgroup"])
+    for key, row in r.iterrows():
+        np.testing.assert_allclose(mean.loc[key, "se"], row["api00_se"], rtol=1e-10, err_msg=str(key))
+        np.testing.assert_allclose(share.loc[key, "se"], row["yes_se"], rtol=1e-10, err_msg=str(key))
+        np.testing.assert_allclose(ch.loc[key, "se"], row["change_se"], rtol=1e-10, err_msg=str(key))

@@ -387,6 +387,10 @@ CODEBOOK_CASES = [
      "holds the control character U+001B"),
     ("wave labels of two forms", BOOK.replace("break_before: 2025-Q1", "break_before: 2026-4"),
      "is not written like variables.cleanliness.break_before ('2026-4')"),
+    ("population by stratum without strata", BOOK.replace("strata: site_stratum", "") + "population: {1: 100}\n",
+     "population: a mapping by stratum needs strata"),
+    ("population one number with strata", BOOK + "population: 500\n", "the study has strata: give each stratum's"),
+    ("population not a number", BOOK + "population: {1: many, 2: 10, 3: 10}\n", "population.1: 'many': give the"),
     ("recode to an unknown code", BOOK.replace("map: {4: 3}", "map: {4: 8}"), "code 8 is not a code of membership"),
 ]
 
@@ -455,3 +459,15 @@ def test_design_columns_are_also_variables_and_groups(tmp_path):
     stored = study.load("2025-Q1")
     assert north["base"] == int(((stored["site_stratum"] == 1) & stored["satisfaction"].isin([1, 2, 3, 4, 5])).sum())
     assert set(est["subgroup"]) == {"Total", "North", "Central", "South"}
+
+
+def test_a_population_smaller_than_the_sample_refuses_the_wave(tmp_path):
+    # each stratum holds 7 visit days (clusters) in the example wave; stratum 1's population says 5
+    (tmp_path / "book.yaml").write_text(BOOK + "population: {1: 5, 2: 300, 3: 300}\n")
+    Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    example_wave(n=200, seed=2).to_csv(tmp_path / "w.csv", index=False)
+    before = snapshot(tmp_path / "s")
+    result = run("add", tmp_path / "s", tmp_path / "w.csv", "--wave", "2025-Q1", "--date", "2025-03-31")
+    assert result.exit_code == 1, result.output
+    assert "population: stratum 1: the wave holds more clusters than the population declared" in result.output
+    assert snapshot(tmp_path / "s") == before

@@ -115,7 +115,8 @@ def read_psu(root: Path, label: str, key: str) -> tuple[PsuTotals, np.ndarray] |
         totals, stratum, names = data["psu_totals"], data["psu_stratum"], data["psu_names"]
         if totals.ndim != 2 or len(stratum) != totals.shape[0] or len(names) != totals.shape[0]:
             return None
-        return PsuTotals(totals, stratum, int(data["psu_n_strata"])), names
+        factor = data.get("psu_factor")
+        return PsuTotals(totals, stratum, int(data["psu_n_strata"]), factor), names
     except (KeyError, ValueError, TypeError, IndexError):
         return None
 
@@ -137,6 +138,7 @@ def write_cells(root: Path, label: str, key: str, cells: CellArrays | None, id_h
     if psu and cells is not None and cells.psu is not None and cells.psu_names is not None:
         parts[".psu"] = {"key": np.array(key), "psu_totals": cells.psu.totals, "psu_stratum": cells.psu.stratum,
                          "psu_n_strata": np.array(cells.psu.n_strata),
+                         **({"psu_factor": cells.psu.factor} if cells.psu.factor is not None else {}),
                          "psu_names": np.asarray(cells.psu_names, dtype=str)}
     if not parts:
         return False
@@ -164,6 +166,8 @@ def write_psu(root: Path, label: str, key: str, cells: CellArrays) -> bool:
             _write(folder, label, {".psu": {"key": np.array(key), "psu_totals": cells.psu.totals,
                                             "psu_stratum": cells.psu.stratum,
                                             "psu_n_strata": np.array(cells.psu.n_strata),
+                                            **({"psu_factor": cells.psu.factor} if cells.psu.factor is not None
+                                               else {}),
                                             "psu_names": np.asarray(cells.psu_names, dtype=str)}})
     except (OSError, TrackerError):
         return False

@@ -222,6 +222,9 @@ class Codebook:
     # (None: not said, taken as no; docs/validation.md, independent clusters under reused labels)
     waves_share_clusters: bool | None = None
     panel: bool = False  # an id names the same person in every wave (a panel): only when said
+    # key population: per stratum label (or "" without strata) the PSUs of the population, or
+    # a sampling fraction below 1: the finite population correction (None: none)
+    population: dict[str, float] | None = None
 
     def design_columns(self) -> list[str]:
         return [c for c in (self.id, self.weight, self.strata, self.clusters) if c]
@@ -444,6 +447,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         targets[gname] = shares
 
     rake = _parse_rake(doc.get("rake"))
+    population = _parse_population(doc.get("population"), strata)
     single_rule, share_clusters, panel = _design_options(doc)
     book = Codebook(
         title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
@@ -451,6 +455,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         targets=targets, rake=dict(rake), source=text,
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         single_cluster_rule=single_rule, waves_share_clusters=share_clusters, panel=panel,
+        population=population,
     )
     refs = wave_references(book)
     if refs:
@@ -460,6 +465,38 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
             raise _err(odd[0], f"{shorten(odd[1])!r} is not written like {first[0]} ({shorten(first[1])!r}); "
                                f"every wave label the codebook names must be of one form")
     return book
+
+
+def stratum_key(label: Any) -> str:
+    """A stratum label as the key population matches it: a whole number in one spelling
+    (1, 1.0 and '1' alike: a coded stratum column is stored as numbers), anything else as
+    its text."""
+    text = str(label).strip()
+    try:
+        x = float(text)
+    except ValueError:
+        return text
+    return str(int(x)) if math.isfinite(x) and x.is_integer() else text
+
+
+def _parse_population(node: Any, strata: str | None) -> dict[str, float] | None:
+    """The key population: one number (no strata) or a mapping from each stratum's label to
+    its number; a number of 1 or more is the count of PSUs (clusters, or respondents when no
+    clusters are declared) in the population, one between 0 and 1 the sampling fraction."""
+    if node is None:
+        return None
+    def number(v, where):
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v <= 0:
+            raise _err(where, f"{shorten(repr(v))}: give the population count (1 or more) or the sampling fraction "
+                              f"(between 0 and 1)")
+        return float(v)
+    if isinstance(node, dict):
+        if strata is None:
+            raise _err("population", "a mapping by stratum needs strata; without strata give one number")
+        return {stratum_key(k): number(v, f"population.{k}") for k, v in node.items()}
+    if strata is not None:
+        raise _err("population", "the study has strata: give each stratum's number, as {stratum label: number}")
+    return {"": number(node, "population")}
 
 
 def label_form(label: str) -> str:

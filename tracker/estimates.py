@@ -26,7 +26,8 @@ from .methods.variance import (
     single_cluster_strata,
 )
 
-__all__ = ["COLUMNS", "STATS", "STATS_VERSION", "CellArrays", "cell_arrays", "cell_stats", "cells_frame", "design_of", "finish", "single_cluster_lines", "wave_covariance",
+__all__ = ["COLUMNS", "STATS", "STATS_VERSION", "CellArrays", "cell_arrays", "cell_stats", "cells_frame", "design_of",
+           "finish", "fpc_factor", "population_of", "population_problems", "single_cluster_lines", "wave_covariance",
            "wave_estimates", "weights_of"]
 
 # Columns of the estimates table, in order.
@@ -63,6 +64,56 @@ def design_of(codebook: Codebook, table: pd.DataFrame) -> tuple[np.ndarray | Non
     return (None if strata is None else _codes(strata)), (None if psu is None else _codes(psu))
 
 
+def population_of(codebook: Codebook, table: pd.DataFrame) -> np.ndarray | None:
+    """Each respondent's stratum population (PSUs in the population, or a sampling fraction
+    below 1) from the codebook's key population; None when it declares none."""
+    if codebook.population is None:
+        return None
+    strata, _ = design_labels(codebook, table)
+    from .codebook import stratum_key
+
+    labels = pd.Series(np.full(len(table), "", dtype=object) if strata is None else strata)
+    keys = labels.map(dict(zip(u := labels.unique(), map(stratum_key, u))))  # one conversion per stratum
+    values = keys.map(codebook.population)
+    if values.isna().any():
+        missing = sorted(set(keys[values.isna()].astype(str)))[:5]
+        raise TrackerError(f"codebook: population: no number for stratum {', '.join(missing)}")
+    return values.to_numpy(float)
+
+
+def fpc_factor(pop: np.ndarray | None, row_stratum: np.ndarray, n_h: np.ndarray) -> np.ndarray | None:
+    """Per stratum 1 - f_h, f_h = n_h / N_h (the PSUs sampled over those in the population)
+    or the sampling fraction itself when the codebook gives one (below 1)."""
+    if pop is None:
+        return None
+    N = np.zeros(len(n_h))
+    N[row_stratum] = pop
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(N < 1, 1 - N, 1 - np.asarray(n_h, float) / np.where(N > 0, N, 1))
+
+
+def population_problems(codebook: Codebook, table: pd.DataFrame) -> list[str]:
+    """Strata whose declared population is smaller than what the wave sampled from them."""
+    try:
+        pop = population_of(codebook, table)
+    except TrackerError as exc:
+        return [str(exc)]
+    if pop is None:
+        return []
+    strata, clusters = design_of(codebook, table)
+    psu_id, psu_stratum, n_strata = psu_index(strata, clusters, len(table))
+    n_h = np.bincount(psu_stratum, minlength=n_strata)
+    factor = fpc_factor(pop, psu_stratum[psu_id], n_h)
+    bad = np.flatnonzero(factor < 0)
+    if not bad.size:
+        return []
+    labels, _ = design_labels(codebook, table)
+    names = pd.factorize(pd.Series(labels if labels is not None else np.full(len(table), "")))[1]
+    shown = ", ".join(str(names[b]) or "(the sample)" for b in bad[:5])
+    what = "clusters" if codebook.clusters else "respondents"
+    return [f"codebook: population: stratum {shown}: the wave holds more {what} than the population declared"]
+
+
 def _refuse(codebook: Codebook, table: pd.DataFrame, exc: SingleClusterError) -> TrackerError:
     strata, _ = design_labels(codebook, table)
     # the variance code numbers strata in order of first appearance (pd.factorize)
@@ -73,7 +124,7 @@ def _refuse(codebook: Codebook, table: pd.DataFrame, exc: SingleClusterError) ->
 
 #: Bump when the per-cell statistics change meaning or computation: every cached copy
 #: (tracker.cache) is then rebuilt.
-STATS_VERSION = 3  # 3: the average rule for one-cluster strata per subgroup, as R
+STATS_VERSION = 4  # 3: the average rule per subgroup, as R; 4: the finite population correction
 
 #: The per-cell sufficient statistics, each a (levels x metrics) array in CellArrays.
 STATS = ("base", "weighted_base", "sum_w2", "value", "variance", "unit_variance", "n_psu", "design_df")
@@ -127,6 +178,7 @@ def cell_arrays(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], 
     D, levels = group_matrix(codebook, table, groups, residual)
     w = weights_of(codebook, table)
     strata, psu = design_of(codebook, table)
+    pop = population_of(codebook, table)
     if sample is not None:
         strata = _codes(pd.Series(sample).astype(str) + "|" + ("" if strata is None else pd.Series(strata).astype(str)))
     Ef = E.astype(float)
@@ -145,10 +197,11 @@ def cell_arrays(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], 
     psu_totals = names = None
     try:
         if psu is None:
-            var, n_psu, df = _unclustered_variance(D, Ef, EY, w, value, sw, n, strata, codebook.single_cluster_rule)
+            var, n_psu, df = _unclustered_variance(D, Ef, EY, w, value, sw, n, strata, codebook.single_cluster_rule,
+                                                   pop)
         else:
             var, n_psu, df, psu_totals, first_row = _clustered_variance(D, Ef, EY, w, value, sw, strata, psu,
-                                                                         codebook.single_cluster_rule)
+                                                                         codebook.single_cluster_rule, pop)
             if keep_psu:
                 s_lab, c_lab = design_labels(codebook, table)
                 names = c_lab[first_row].astype(str)
@@ -198,7 +251,7 @@ def _level_sums(D: np.ndarray, unit: np.ndarray, n_units: int, weights: list[np.
     return out
 
 
-def _unclustered_variance(D, Ef, EY, w, value, sw, members, strata, rule):
+def _unclustered_variance(D, Ef, EY, w, value, sw, members, strata, rule, pop=None):
     """Taylor variance when each respondent is a PSU.
 
     Within stratum h, with z_i = d_i w_i (y_i - value) e_i / sw: sum z and sum z^2 expand
@@ -215,10 +268,10 @@ def _unclustered_variance(D, Ef, EY, w, value, sw, members, strata, rule):
     else:
         held = _level_sums(D, h, n_strata, [np.ones(n)], [Ef])[0][0] > 0
     n_h = np.bincount(h, minlength=n_strata)
-    return unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule)
+    return unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule, fpc_factor(pop, h, n_h))
 
 
-def unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule):
+def unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule, fpc=None):
     """The variance of every cell from per-stratum sums (strata x levels x metrics) of
     w e y (a), w e (b), w^2 e y^2 (a2), w^2 e y (ab) and w^2 e (b2); ``held`` says which
     strata hold each cell's respondents (strata x levels x metrics), ``n_h`` the
@@ -230,11 +283,11 @@ def unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule)
         s1 = np.nan_to_num((a - value * b) / sw)
         s2 = np.nan_to_num((a2 - 2 * value * ab + value**2 * b2) / sw**2)
     held = np.broadcast_to(np.asarray(held, bool).reshape(-1, L, M), (n_strata, L, M)).reshape(n_strata, -1)
-    var = combine_strata(s1.reshape(n_strata, -1), s2.reshape(n_strata, -1), n_h, rule, held).reshape(L, M)
+    var = combine_strata(s1.reshape(n_strata, -1), s2.reshape(n_strata, -1), n_h, rule, held, fpc).reshape(L, M)
     return var, members, members - held.sum(axis=0).reshape(L, M)
 
 
-def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule):
+def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule, pop=None):
     """Taylor variance with declared clusters: one sparse (PSU x level) by respondent
     product per wave gives every cell's PSU totals of w e y and w e at once, and
     :func:`clustered_from_totals` finishes. Also returns a respondent of each PSU (to name it)."""
@@ -244,13 +297,14 @@ def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule):
     (A, B), = _level_sums(D, psu_id, P, [w], [EY, Ef])
     # with every weight positive a PSU holds a cell's respondents exactly when its weight total is positive
     counts = (B > 0) if bool((w > 0).all()) else (_level_sums(D, psu_id, P, [np.ones(N)], [Ef])[0][0] > 0)
-    var, n_psu, df, totals = clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule)
+    fpc = fpc_factor(pop, psu_stratum[psu_id], np.bincount(psu_stratum, minlength=n_strata))
+    var, n_psu, df, totals = clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule, fpc)
     first = np.zeros(P, dtype=np.int64)
     first[psu_id[::-1]] = np.arange(N)[::-1]
     return var, n_psu, df, totals, first
 
 
-def clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule):
+def clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule, fpc=None):
     """The variance of every cell from its PSU totals (PSUs x levels x metrics) of w e y (A)
     and w e (B): the linearized totals t = (A - value B) / sw, compared within strata by
     :func:`tracker.methods.variance.combine_strata`. ``counts`` says which PSUs hold
@@ -265,10 +319,10 @@ def clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule):
     H = sp.csr_matrix((np.ones(P), (psu_stratum, np.arange(P))), shape=(n_strata, P))
     n_h = np.bincount(psu_stratum, minlength=n_strata)
     held = np.asarray(H @ counts.astype(float)) > 0  # strata x cells
-    var = combine_strata(np.asarray(H @ t), np.asarray(H @ t**2), n_h, rule, held).reshape(L, M)
+    var = combine_strata(np.asarray(H @ t), np.asarray(H @ t**2), n_h, rule, held, fpc).reshape(L, M)
     n_psu = counts.sum(axis=0).reshape(L, M)
     n_str = held.sum(axis=0).reshape(L, M)
-    return var, n_psu, n_psu - n_str, PsuTotals(t, psu_stratum, n_strata)
+    return var, n_psu, n_psu - n_str, PsuTotals(t, psu_stratum, n_strata, fpc)
 
 
 def derived(stats: dict[str, np.ndarray], kind: np.ndarray, level: float = 0.95,
@@ -377,6 +431,7 @@ def _cell_psu_totals(codebook: Codebook, table: pd.DataFrame, metrics: list[Metr
     M = Y.shape[1]
     psu_id, psu_stratum, n_strata = psu_index(None if strata is None else _codes(strata), key_codes, N)
     P = psu_stratum.size
+    fpc = fpc_factor(population_of(codebook, table), psu_stratum[psu_id], np.bincount(psu_stratum, minlength=n_strata))
     value = est["value"].to_numpy().reshape(L, M)
     sw = est["weighted_base"].to_numpy().reshape(L, M)
     we = E * w[:, None]
@@ -387,7 +442,7 @@ def _cell_psu_totals(codebook: Codebook, table: pd.DataFrame, metrics: list[Metr
     first = np.zeros(P, dtype=np.int64)
     first[psu_id[::-1]] = np.arange(N)[::-1]  # a respondent of each PSU, to name it
     names = np.asarray(key_names)[key_codes[first]]
-    return PsuTotals(np.nan_to_num(t.reshape(P, L * M)), psu_stratum, n_strata), names.astype(str)
+    return PsuTotals(np.nan_to_num(t.reshape(P, L * M)), psu_stratum, n_strata, fpc), names.astype(str)
 
 
 def wave_covariance(codebook: Codebook, a: pd.DataFrame, b: pd.DataFrame, metrics: list[Metric],

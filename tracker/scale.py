@@ -333,6 +333,9 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
         raise TrackerError(f"--engine {engine}: use one of {', '.join(ENGINES)}")
     if engine == "duckdb":
         _need("duckdb")
+        if study.codebook.population is not None:
+            raise TrackerError("--engine duckdb does not apply the finite population correction (the codebook's "
+                               "population) yet; use --engine pandas, which does")
     if workers is not None and scheduler is not None:
         raise TrackerError("give --workers or --scheduler, not both")
     if workers is not None and workers < 1:

@@ -268,12 +268,12 @@ class Study:
     def _design_problems(self, table: pd.DataFrame) -> list[Problem]:
         """Strata holding a single cluster, in total and in each subgroup: a warning, or an
         error under the rule single_cluster_strata: refuse."""
-        from .estimates import single_cluster_lines
+        from .estimates import population_problems, single_cluster_lines
 
         book = self.codebook
         lines = single_cluster_lines(book, table)
         column = book.strata or ""
-        out = []
+        out = [Problem("error", column, line) for line in population_problems(book, table)]
         for i, line in enumerate(lines):
             total = i == 0 and not line.startswith("subgroup ")
             severity = "error" if total and book.single_cluster_rule == "refuse" else "warning"
@@ -679,8 +679,8 @@ class Study:
             if ta is not None and tb is not None:
                 pick = self._cells(wave).select(names, gs)
                 cols = _cell_columns(self._cells(wave), pick)
-                pa = PsuTotals(ta.totals[:, cols], ta.stratum, ta.n_strata)
-                pb = PsuTotals(tb.totals[:, cols], tb.stratum, tb.n_strata)
+                pa = PsuTotals(ta.totals[:, cols], ta.stratum, ta.n_strata, ta.factor)
+                pb = PsuTotals(tb.totals[:, cols], tb.stratum, tb.n_strata, tb.factor)
                 cov, shared = cross_wave_covariance(pa, ka, pb, kb, book.single_cluster_rule)
                 if shared:
                     return cov, shared, "clusters", shared_per_cell(pa, ka, pb, kb)

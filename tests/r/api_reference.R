@@ -44,6 +44,29 @@ for (name in names(samples)) {
 }
 write.csv(do.call(rbind, rows), file.path(out, "reference.csv"), row.names = FALSE)
 
+# The finite population correction: apistrat (each stratum's school count) and apiclus1 (757
+# districts), as svydesign(fpc = ~fpc).
+fpc_rows <- list()
+fpc_designs <- list(
+  apistrat = function(d) svydesign(id = ~1, strata = ~stype, weights = ~pw, data = d, fpc = ~fpc),
+  apiclus1 = function(d) svydesign(id = ~dnum, weights = ~pw, data = d, fpc = ~fpc))
+for (name in names(fpc_designs)) {
+  des <- fpc_designs[[name]](coded(samples[[name]]))
+  des <- update(des, yes = as.numeric(sch_wide == 1), api_2000 = api00, api_1999 = api99)
+  cells <- list(c("total", "Total", "TRUE"))
+  for (lv in 1:3) cells[[length(cells) + 1]] <- c("stype", c("E", "H", "M")[lv], paste0("stype == ", lv))
+  for (lv in 1:2) cells[[length(cells) + 1]] <- c("awards", c("Yes", "No")[lv], paste0("awards == ", lv))
+  for (cell in cells) {
+    sub <- if (cell[1] == "total") des else des[eval(parse(text = cell[3]), des$variables), ]
+    m <- svymean(~api00, sub)
+    ch <- svycontrast(svymean(~api_2000 + api_1999, sub), c(1, -1))
+    fpc_rows[[length(fpc_rows) + 1]] <- data.frame(
+      design = name, group = cell[1], subgroup = cell[2], api00 = coef(m)[[1]], api00_se = SE(m)[[1]],
+      yes_se = SE(svymean(~yes, sub))[[1]], change = coef(ch)[[1]], change_se = SE(ch)[[1]])
+  }
+}
+write.csv(do.call(rbind, fpc_rows), file.path(out, "fpc_reference.csv"), row.names = FALSE)
+
 # One-cluster strata: apiclus2's districts stratified by county (17 of 26 counties hold one
 # district), under each of R's rules for a lonely PSU.
 d <- coded(apiclus2)

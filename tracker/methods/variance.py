@@ -59,6 +59,7 @@ class PsuTotals:
     totals: np.ndarray
     stratum: np.ndarray
     n_strata: int
+    factor: np.ndarray | None = None  # per stratum, 1 - the sampling fraction (None: no correction)
 
 
 def psu_totals(z: np.ndarray, strata: np.ndarray | None = None, psu: np.ndarray | None = None) -> PsuTotals:
@@ -76,7 +77,7 @@ def _stratum_matrix(stratum: np.ndarray, n_strata: int) -> sp.csr_matrix:
 
 
 def combine_strata(s1: np.ndarray, s2: np.ndarray, n_h: np.ndarray, rule: str = "centre",
-                   present: np.ndarray | None = None) -> np.ndarray:
+                   present: np.ndarray | None = None, fpc: np.ndarray | None = None) -> np.ndarray:
     """The variance from per-stratum moments of PSU totals t: s1 = sum t, s2 = sum t^2 (H x K).
 
     A stratum with n_h >= 2 PSUs adds n_h / (n_h - 1) (s2 - s1^2 / n_h) (Wolter 2007, ch. 6).
@@ -87,11 +88,16 @@ def combine_strata(s1: np.ndarray, s2: np.ndarray, n_h: np.ndarray, rule: str = 
     with several PSUs in the design (``present``, H x K: which strata hold each cell;
     every stratum when not given), as R's ``onestage`` does for a domain; 'certainty',
     nothing (svy and samplics 'skip'); 'refuse' raises :class:`SingleClusterError`.
+
+    ``fpc`` (H,): each stratum's finite population correction 1 - n_h / N_h, multiplying
+    its contribution, as R's ``svydesign(fpc=)`` does (Cochran 1977, *Sampling Techniques*,
+    section 5.3); None for sampling with replacement or from a population too large to matter.
     """
     n_h = np.asarray(n_h, float)
+    g = np.ones(len(n_h)) if fpc is None else np.asarray(fpc, float)
     ok = n_h > 1
     with np.errstate(divide="ignore", invalid="ignore"):
-        f = np.where(ok, n_h / (n_h - 1), 0.0)
+        f = np.where(ok, g * n_h / (n_h - 1), 0.0)
         within = np.maximum(s2 - s1**2 / np.where(n_h > 0, n_h, 1)[:, None], 0.0)
     var = (f[:, None] * within).sum(axis=0)
     lone = n_h == 1
@@ -100,7 +106,7 @@ def combine_strata(s1: np.ndarray, s2: np.ndarray, n_h: np.ndarray, rule: str = 
     if rule == "centre":
         t_bar = s1.sum(axis=0) / n_h.sum()
         # one PSU: s1 = t and s2 = t^2, so (t - t_bar)^2 = s2 - 2 t_bar s1 + t_bar^2
-        var = var + (s2[lone] - 2 * t_bar * s1[lone] + t_bar**2).sum(axis=0)
+        var = var + (g[lone][:, None] * (s2[lone] - 2 * t_bar * s1[lone] + t_bar**2)).sum(axis=0)
     elif rule == "average":
         held = (n_h > 0)[:, None] if present is None else np.asarray(present, bool)
         held = np.broadcast_to(held, s1.shape)
@@ -219,11 +225,12 @@ def cross_wave_covariance(a: PsuTotals, keys_a: np.ndarray, b: PsuTotals, keys_b
         f = 1.0 / (1 - 1 / n_a - 1 / n_b + m_h / (n_a * n_b))
     da = a.totals[ia] - mean_a[ha]
     db = b.totals[ib] - mean_b[hb]
-    cov += (np.where(lone, 0.0, f)[:, None] * da * db).sum(axis=0)
+    g = np.ones(len(ha)) if a.factor is None else np.asarray(a.factor, float)[ha]  # 1 - f_h, as the variances
+    cov += (np.where(lone, 0.0, f * g)[:, None] * da * db).sum(axis=0)
     if lone.any() and rule == "centre":
         ga = a.totals.mean(axis=0)
         gb = b.totals.mean(axis=0)
-        cov += ((a.totals[ia][lone] - ga) * (b.totals[ib][lone] - gb)).sum(axis=0)
+        cov += (g[lone][:, None] * (a.totals[ia][lone] - ga) * (b.totals[ib][lone] - gb)).sum(axis=0)
     return cov, int(common.size)
 
 
