@@ -19,18 +19,20 @@ designs <- list(
   apiclus1 = function(d) svydesign(id = ~dnum, weights = ~pw, data = d),
   apiclus2 = function(d) svydesign(id = ~dnum + snum, weights = ~pw, data = d))
 
+# the cells compared: the total, then each subgroup (as R's subset() of the design)
+CELLS <- list(c("total", "Total", "TRUE"))
+for (lv in 1:3) CELLS[[length(CELLS) + 1]] <- c("stype", c("E", "H", "M")[lv], paste0("stype == ", lv))
+for (lv in 1:2) CELLS[[length(CELLS) + 1]] <- c("awards", c("Yes", "No")[lv], paste0("awards == ", lv))
+cell_of <- function(des, cell) if (cell[1] == "total") des else des[eval(parse(text = cell[3]), des$variables), ]
+
 rows <- list()
-pairs <- list()
 for (name in names(samples)) {
   d <- coded(samples[[name]])
   write.csv(d, file.path(out, paste0(name, ".csv")), row.names = FALSE)
   des <- designs[[name]](d)
   des <- update(des, yes = as.numeric(sch_wide == 1), api_2000 = api00, api_1999 = api99)
-  cells <- list(c("total", "Total", "TRUE"))
-  for (lv in 1:3) cells[[length(cells) + 1]] <- c("stype", c("E", "H", "M")[lv], paste0("stype == ", lv))
-  for (lv in 1:2) cells[[length(cells) + 1]] <- c("awards", c("Yes", "No")[lv], paste0("awards == ", lv))
-  for (cell in cells) {
-    sub <- if (cell[1] == "total") des else des[eval(parse(text = cell[3]), des$variables), ]
+  for (cell in CELLS) {
+    sub <- cell_of(des, cell)
     m <- svymean(~api00, sub)
     s <- svymean(~yes, sub)
     kg <- svyciprop(~yes, sub, method = "beta")
@@ -53,11 +55,8 @@ fpc_designs <- list(
 for (name in names(fpc_designs)) {
   des <- fpc_designs[[name]](coded(samples[[name]]))
   des <- update(des, yes = as.numeric(sch_wide == 1), api_2000 = api00, api_1999 = api99)
-  cells <- list(c("total", "Total", "TRUE"))
-  for (lv in 1:3) cells[[length(cells) + 1]] <- c("stype", c("E", "H", "M")[lv], paste0("stype == ", lv))
-  for (lv in 1:2) cells[[length(cells) + 1]] <- c("awards", c("Yes", "No")[lv], paste0("awards == ", lv))
-  for (cell in cells) {
-    sub <- if (cell[1] == "total") des else des[eval(parse(text = cell[3]), des$variables), ]
+  for (cell in CELLS) {
+    sub <- cell_of(des, cell)
     m <- svymean(~api00, sub)
     ch <- svycontrast(svymean(~api_2000 + api_1999, sub), c(1, -1))
     fpc_rows[[length(fpc_rows) + 1]] <- data.frame(
@@ -77,11 +76,8 @@ for (rule in c("adjust", "average", "certainty")) {
   options(survey.lonely.psu = rule)
   des <- svydesign(id = ~dnum, strata = ~county, weights = ~pw, data = d, nest = TRUE)
   des <- update(des, yes = as.numeric(sch_wide == 1))
-  cells <- list(c("total", "Total", "TRUE"))
-  for (lv in 1:3) cells[[length(cells) + 1]] <- c("stype", c("E", "H", "M")[lv], paste0("stype == ", lv))
-  for (lv in 1:2) cells[[length(cells) + 1]] <- c("awards", c("Yes", "No")[lv], paste0("awards == ", lv))
-  for (cell in cells) {
-    sub <- if (cell[1] == "total") des else des[eval(parse(text = cell[3]), des$variables), ]
+  for (cell in CELLS) {
+    sub <- cell_of(des, cell)
     lonely[[length(lonely) + 1]] <- data.frame(
       rule = rule, group = cell[1], subgroup = cell[2], api00_se = SE(svymean(~api00, sub))[[1]],
       yes_se = SE(svymean(~yes, sub))[[1]])
