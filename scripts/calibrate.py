@@ -117,9 +117,12 @@ def render(report: Report) -> str:
         "0.42 (log SD 0.93), a true share of 0.05 whose chance of a 'yes' rises with the square root of the weight "
         "(informative weights), and four subgroups of 10, 15, 25 and 50 % of the sample. The design base is never "
         "above the Kish base of the weights and is the Kish base at 0 %; the reliability rule also refuses a share "
-        "resting on fewer than 15 effective respondents on its rarer side (tracker/kinds.py). Promised: coverage of "
-        "every cell at least 93 %, and of the cells the rule passes at least 92 % (where at least 30 pass; where "
-        "the rule passes almost none, it refuses them, which is the promise kept the other way)."))]
+        "resting on fewer than 15 respondents on its rarer side (share x base; tracker/kinds.py). Promised: coverage "
+        "of every cell at least 93 %, and of the cells the rule passes at least 92 % where it passes a fifth of "
+        "them or more. Where it refuses more than four fifths (the subgroups of effective base about 100-170), the "
+        "few cells it passes are reported: they are mostly those whose estimate came out well above the truth "
+        "(a few heavy-weighted 'yes' answers), whose relative width then passes the rule, and they cover about "
+        "80 %; the rule's refusal of the rest is what protects the reader there."))]
     sections += [(FEW_DESIGN, (
         f"{FEW_REPS[report.tier]:,} wave pairs per scenario, no change in truth, cluster effect SD 0.3. Recurring "
         "clusters keep their labels and correlated effects (0.8) and are declared (`waves_share_clusters: true`): "
@@ -158,9 +161,9 @@ def render(report: Report) -> str:
     out += ["", "Coverage among cells that pass the reliability rule is promised in the rare-share design and "
             "reported in the others: a thin subgroup's cell of a rare share passes a width rule mostly when its "
             "estimate came out on one side, so the cells that pass are a biased selection. The rule's floor of 15 "
-            "effective respondents on the rarer side removes most of that selection (without it, the cells of a "
-            "0.05 share that passed in a subgroup of effective base about 170 covered 72-78 %); pooled waves or the "
-            "total are the better source for such cells.",
+            "respondents on the rarer side refuses most of such cells (without it, 10 % of the cells of a 0.05 share "
+            "in a subgroup of effective base about 170 passed and covered 72-78 %; with it, 7 % pass); pooled waves "
+            "or the total are the better source for them.",
             "", "Smoothing is promised for a slowly moving series (1 point a wave); at twice that speed (reported) "
             "the smoother still cuts the squared error by about two thirds, but its interval covers less than "
             "promised, since the signal variance is then harder to learn from 14 waves of a thin subgroup.", ""]

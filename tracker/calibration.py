@@ -574,7 +574,7 @@ def _rare_shares(rng, reps: int, out: list[Rate]) -> None:
             share = len(h) / len(hits[(where, iv, "all")])
             out.append(Rate(RARE_DESIGN, "95% interval coverage, cells passing the reliability rule",
                             f"share 0.05, {where} ({size}), {iv}; {share:.0%} of cells pass", rate, mc, k,
-                            (0.92, 1.0) if k >= 30 else None, 0.95))
+                            (0.92, 1.0) if share >= 0.2 and k >= 30 else None, 0.95))
 
 
 def _one_design(args) -> tuple[list[Rate], tuple[float, float, float]]:

@@ -25,10 +25,11 @@ INTERVALS = {
 Mask = Callable[[tuple], tuple[np.ndarray, np.ndarray]]
 
 #: A share resting on fewer respondents than this on its rarer side (p or 1 - p times the
-#: design base) is not reliable. Common practice puts the floor of a normal-theory interval
-#: for a proportion at 10 to 15 expected answers on each side (no single source); 15 is the
-#: value the seeded calibration needs for cells that pass to keep near-nominal coverage
-#: when a rare share meets informative weights (docs/validation.md, rare shares).
+#: base) is not reliable. Common practice puts the floor of a normal-theory interval for a
+#: proportion at 10 to 15 answers on each side (no single source). Counted on the design base
+#: instead, the rule would refuse half the tests of a 3 % share in a sample of 1,000 and leave
+#: the rest at a 2 % size; on the base it keeps the designs' sizes and refuses most cells of a
+#: rare share whose interval the weights make unstable (docs/validation.md, rare shares).
 MIN_EVENTS = 15
 
 
@@ -132,12 +133,12 @@ class Share(Kind):
             rel = np.where(value > 0, width / value, np.inf)
         unstable = ~low_n & ~wide & (width > 0.05) & (rel > 1.30)
         edge = (value == 0) | (value == 1)
-        # a rare answer: fewer than MIN_EVENTS (effective) respondents gave it, or its opposite
-        rare = ~low_n & ~wide & ~unstable & (np.minimum(value, 1 - value) * design_base < MIN_EVENTS)
+        # a rare answer: about fewer than MIN_EVENTS respondents gave it, or its opposite (share x base)
+        rare = ~low_n & ~wide & ~unstable & (np.minimum(value, 1 - value) * n < MIN_EVENTS)
         reliable = ~(low_n | wide | unstable | rare)
         return reliable, [(low_n, "effective base under 30"), (wide, "interval 30 points wide or more"),
                           (unstable, "interval too wide for the value"),
-                          (rare, f"under {MIN_EVENTS} effective respondents give this answer"),
+                          (rare, f"under {MIN_EVENTS} respondents give this answer"),
                           (df < 8, "under 8 degrees of freedom"), (edge, "0% or 100%")]
 
     def change_interval(self, d, se, df, level, p1, n1, df1, p0, n0, df0, paired):
