@@ -228,3 +228,83 @@ def test_the_finite_population_correction_equals_r_cell_by_cell(with_fpc, design
         np.testing.assert_allclose(mean.loc[key, "se"], row["api00_se"], rtol=1e-10, err_msg=str(key))
         np.testing.assert_allclose(share.loc[key, "se"], row["yes_se"], rtol=1e-10, err_msg=str(key))
         np.testing.assert_allclose(ch.loc[key, "se"], row["change_se"], rtol=1e-10, err_msg=str(key))
+
+
+RAKED_METRICS = """  elementary:
+    label: Elementary school
+    variable: stype
+    share: [1]
+  award:
+    label: Eligible for awards
+    variable: awards
+    share: [1]
+targets:
+  stype: {{E: {e!r}, H: {h!r}, M: {m!r}}}
+  sch_wide: {{"Yes": {yes!r}, "No": {no!r}}}
+rake: {{tolerance: 1.0e-12}}
+"""
+
+
+@pytest.fixture(scope="module")
+def raked(reference, tmp_path_factory):
+    """apiclus1 raked by `add --rake` to the population margins of R's tests/rakecheck.R
+    (school type 4421 / 755 / 1018, school-wide target met 5122 of 6194)."""
+    out = tmp_path_factory.mktemp("raked")
+    data_dir = next(iter(reference[1].values())).root.parent
+    studies = {}
+    for with_fpc in (False, True):
+        text = CODEBOOK.format(name="apiclus1 raked", design="clusters: dnum\n" + ("population: 757\n" if with_fpc
+                                                                                   else ""))
+        text = text.replace("groups:\n", "groups:\n  sch_wide: {variable: sch_wide}\n")
+        text += RAKED_METRICS.format(e=4421 / 6194, h=755 / 6194, m=1018 / 6194, yes=5122 / 6194, no=1072 / 6194)
+        name = "fpc" if with_fpc else "plain"
+        (out / f"{name}.yaml").write_text(text)
+        study = Study.create(out / name, out / f"{name}.yaml")
+        study.add(data_dir / "apiclus1-2000.csv", "2000", "2000-06-30", rake=True)
+        studies[with_fpc] = study
+    return pd.read_csv(data_dir / "raked_reference.csv"), pd.read_csv(data_dir / "raked_weights.csv"), studies
+
+
+def test_raked_weights_equal_r(raked):
+    _, weights, studies = raked
+    stored = studies[False].load("2000").assign(snum=lambda t: t["snum"].astype(float).astype(int))
+    both = stored.merge(weights, on="snum")
+    assert len(both) == 183
+    np.testing.assert_allclose(both["pw"], both["raked"], rtol=1e-7)
+
+
+@pytest.mark.parametrize("with_fpc", [False, True], ids=["no fpc", "fpc"])
+def test_raked_variance_equals_r_calibration_aware(raked, with_fpc):
+    """R's rake() variance (the residuals of the regression on the margins' indicators):
+    api00 641.23 with SE 23.942 (no fpc) and 23.704 (fpc, as tests/rakecheck.Rout.save), every
+    share of the design to 1e-6, a raked margin's share (elementary, target met) with SE 0."""
+    ref, _, studies = raked
+    r = ref[ref["fpc"] == with_fpc].set_index(["group", "subgroup"])
+    study = studies[with_fpc]
+    cells = {m: _cells(study, m) for m in ("api_mean", "target_met", "elementary", "award")}
+    total = cells["api_mean"].loc[("total", "Total")]
+    assert round(total["value"], 2) == 641.23 and round(total["se"], 3) == (23.704 if with_fpc else 23.942)
+    for key, row in r.iterrows():
+        np.testing.assert_allclose(cells["api_mean"].loc[key, "value"], row["api00"], rtol=1e-9, err_msg=str(key))
+        np.testing.assert_allclose(cells["api_mean"].loc[key, "se"], row["api00_se"], rtol=1e-6, err_msg=str(key))
+        for metric, col in (("target_met", "yes_se"), ("elementary", "elementary_se"), ("award", "award_se")):
+            np.testing.assert_allclose(cells[metric].loc[key, "se"], row[col], rtol=1e-6, atol=1e-9,
+                                       err_msg=f"{metric} {key}")
+    assert cells["target_met"].loc[("total", "Total"), "se"] < 1e-9  # a raked margin cannot move
+
+
+def test_a_raked_margin_is_never_tested(reference, raked, tmp_path):
+    """Both waves raked to the codebook's targets: a margin's share is the target in each, with
+    no sampling error, and its comparison says it is fixed by the weighting (common practice,
+    no source: a calibrated total is not an estimate)."""
+    _, _, studies = raked
+    data_dir = next(iter(reference[1].values())).root.parent
+    (tmp_path / "b.yaml").write_text((studies[False].root / "codebook.yaml").read_text())
+    both = Study.create(tmp_path / "s", tmp_path / "b.yaml")
+    for year in ("1999", "2000"):
+        both.add(data_dir / f"apiclus1-{year}.csv", year, f"{year}-06-30", rake=True)
+    table = both.changes(wave="2000", against="1999", metrics=["elementary", "award"], by=[]).table
+    row = table.set_index("metric").loc["elementary"]
+    assert row["change"] == pytest.approx(0.0, abs=1e-12)
+    assert row["verdict"] == "not tested" and "fixed by the weighting" in row["flags"]
+    assert "fixed by the weighting" not in table.set_index("metric").loc["award", "flags"]  # not a margin

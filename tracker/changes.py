@@ -209,8 +209,13 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
                           "no respondents in " + m["wave_from"].astype(str))
     detail = np.where(empty_to | empty_from, empty_text,
                       np.where(unreliable, "unreliable cell: " + cell_flags.astype(str), cell_flags))
+    # a cell with spread among its respondents but no sampling variance is held by the weighting
+    # (a raked margin: its share is the target): its change is the targets', never tested
+    spread = (m["unit_variance_to"].to_numpy(float) > 0) & (m["unit_variance_from"].to_numpy(float) > 0)
+    fixed = spread & (np.sqrt(v1) <= 1e-9 * np.maximum(1, np.abs(p1))) & (np.sqrt(v0) <= 1e-9 * np.maximum(1, np.abs(p0)))
+    detail = np.where(fixed, "fixed by the weighting (a raked margin: its share is the target)", detail)
     flags = _join(why_blocked, detail, " | ")
-    testable = (why_blocked == "") & ~empty_to & ~empty_from & ~unreliable
+    testable = (why_blocked == "") & ~empty_to & ~empty_from & ~unreliable & ~fixed
     testable &= np.isfinite(p_raw)
     p_adj = adjust_pvalues(np.where(testable, p_raw, np.nan), adjust)
     sig = testable & (p_adj <= 1 - level)

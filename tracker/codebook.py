@@ -225,6 +225,8 @@ class Codebook:
     # key population: per stratum label (or "" without strata) the PSUs of the population, or
     # a sampling fraction below 1: the finite population correction (None: none)
     population: dict[str, float] | None = None
+    # key weights_raked_to: groups whose margins the delivered weights were raked to
+    raked_to: tuple[str, ...] = ()
 
     def design_columns(self) -> list[str]:
         return [c for c in (self.id, self.weight, self.strata, self.clusters) if c]
@@ -448,6 +450,13 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
 
     rake = _parse_rake(doc.get("rake"))
     population = _parse_population(doc.get("population"), strata)
+    raked_node = doc.get("weights_raked_to") or []
+    if not isinstance(raked_node, list):
+        raise _err("weights_raked_to", "expected a list of group names")
+    raked_to = tuple(str(g) for g in raked_node)
+    for i, g in enumerate(raked_to):
+        if g not in groups:
+            raise _err(f"weights_raked_to[{i}]", f"{shorten(g)!r} is not a group in groups")
     single_rule, share_clusters, panel = _design_options(doc)
     book = Codebook(
         title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
@@ -455,7 +464,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         targets=targets, rake=dict(rake), source=text,
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         single_cluster_rule=single_rule, waves_share_clusters=share_clusters, panel=panel,
-        population=population,
+        population=population, raked_to=raked_to,
     )
     refs = wave_references(book)
     if refs:

@@ -64,6 +64,46 @@ def design_of(codebook: Codebook, table: pd.DataFrame) -> tuple[np.ndarray | Non
     return (None if strata is None else _codes(strata)), (None if psu is None else _codes(psu))
 
 
+#: The column of a stored wave raked by ``add --rake`` that keeps each respondent's weight
+#: before the raking (the design weight the calibration-aware variance regresses with).
+BASE_WEIGHT = "weight_before_raking"
+
+
+def calibration_of(codebook: Codebook, table: pd.DataFrame) -> tuple[np.ndarray, np.ndarray] | None:
+    """(indicators of the raking margins' levels, respondents x levels; the weights their
+    regression uses) when the wave's weights were raked: by ``add --rake`` (to the codebook's
+    targets, with the weights before raking kept in BASE_WEIGHT) or before delivery (the
+    codebook's ``weights_raked_to``, regressed with the delivered weights: the design weights
+    are not known). None for weights taken as fixed."""
+    if BASE_WEIGHT in table.columns and codebook.targets:
+        groups, d = list(codebook.targets), table[BASE_WEIGHT].to_numpy(float)
+    elif codebook.raked_to:
+        groups, d = list(codebook.raked_to), weights_of(codebook, table)
+    else:
+        return None
+    M, _ = group_matrix(codebook, table, groups)
+    return M[:, 1:].astype(float), d
+
+
+def _calibration_correction(cal, D, Ef, EY, w, value, sw, psu_id, P) -> np.ndarray:
+    """PSU totals (P x levels x metrics) to take from each cell's linearized totals so that
+    they become those of the residuals of the regression of the linearized values on the
+    raking margins' indicators, weighted by the design weights (Deville & Sarndal 1992, JASA
+    87:376; as R's ``calibrate`` and ``rake``): z_i = w_i (u_i - M_i b), b = (M'DM)^+ M'D u,
+    u_i = d_i e_i (y_i - value) / sum w for the cell. A raked margin's own share gets 0."""
+    M, d = cal
+    N, p = M.shape
+    L, K = value.shape
+    Md = M * d[:, None]
+    DMd = (Md[:, :, None] * D.astype(float)[:, None, :]).reshape(N, p * L)  # respondent x (margin level, level)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        num = ((DMd.T @ EY).reshape(p, L, K) - value[None] * (DMd.T @ Ef).reshape(p, L, K)) / sw[None]
+    num = np.where(np.isfinite(num), num, 0.0)
+    beta = np.linalg.pinv(M.T @ Md) @ num.reshape(p, L * K)  # pinv: the margins' indicators are collinear
+    C = sp.csr_matrix((np.ones(N), (psu_id, np.arange(N))), shape=(P, N))
+    return (np.asarray(C @ (M * w[:, None])) @ beta).reshape(P, L, K)
+
+
 def population_of(codebook: Codebook, table: pd.DataFrame) -> np.ndarray | None:
     """Each respondent's stratum population (PSUs in the population, or a sampling fraction
     below 1) from the codebook's key population; None when it declares none."""
@@ -124,7 +164,7 @@ def _refuse(codebook: Codebook, table: pd.DataFrame, exc: SingleClusterError) ->
 
 #: Bump when the per-cell statistics change meaning or computation: every cached copy
 #: (tracker.cache) is then rebuilt.
-STATS_VERSION = 4  # 3: the average rule per subgroup, as R; 4: the finite population correction
+STATS_VERSION = 5  # 3: average rule per subgroup; 4: finite population correction; 5: raked weights
 
 #: The per-cell sufficient statistics, each a (levels x metrics) array in CellArrays.
 STATS = ("base", "weighted_base", "sum_w2", "value", "variance", "unit_variance", "n_psu", "design_df")
@@ -179,6 +219,9 @@ def cell_arrays(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], 
     w = weights_of(codebook, table)
     strata, psu = design_of(codebook, table)
     pop = population_of(codebook, table)
+    cal = calibration_of(codebook, table)
+    if cal is not None and psu is None:
+        psu = np.arange(len(table))  # each respondent its own PSU: the residuals are per respondent
     if sample is not None:
         strata = _codes(pd.Series(sample).astype(str) + "|" + ("" if strata is None else pd.Series(strata).astype(str)))
     Ef = E.astype(float)
@@ -201,8 +244,8 @@ def cell_arrays(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], 
                                                    pop)
         else:
             var, n_psu, df, psu_totals, first_row = _clustered_variance(D, Ef, EY, w, value, sw, strata, psu,
-                                                                         codebook.single_cluster_rule, pop)
-            if keep_psu:
+                                                                         codebook.single_cluster_rule, pop, cal)
+            if keep_psu and codebook.clusters:
                 s_lab, c_lab = design_labels(codebook, table)
                 names = c_lab[first_row].astype(str)
                 if s_lab is not None:
@@ -287,7 +330,7 @@ def unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule,
     return var, members, members - held.sum(axis=0).reshape(L, M)
 
 
-def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule, pop=None):
+def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule, pop=None, cal=None):
     """Taylor variance with declared clusters: one sparse (PSU x level) by respondent
     product per wave gives every cell's PSU totals of w e y and w e at once, and
     :func:`clustered_from_totals` finishes. Also returns a respondent of each PSU (to name it)."""
@@ -298,13 +341,15 @@ def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule, pop=None):
     # with every weight positive a PSU holds a cell's respondents exactly when its weight total is positive
     counts = (B > 0) if bool((w > 0).all()) else (_level_sums(D, psu_id, P, [np.ones(N)], [Ef])[0][0] > 0)
     fpc = fpc_factor(pop, psu_stratum[psu_id], np.bincount(psu_stratum, minlength=n_strata))
-    var, n_psu, df, totals = clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule, fpc)
+    correction = None if cal is None else _calibration_correction(cal, D, Ef, EY, w, value, sw, psu_id, P)
+    var, n_psu, df, totals = clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule, fpc,
+                                                   correction)
     first = np.zeros(P, dtype=np.int64)
     first[psu_id[::-1]] = np.arange(N)[::-1]
     return var, n_psu, df, totals, first
 
 
-def clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule, fpc=None):
+def clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule, fpc=None, correction=None):
     """The variance of every cell from its PSU totals (PSUs x levels x metrics) of w e y (A)
     and w e (B): the linearized totals t = (A - value B) / sw, compared within strata by
     :func:`tracker.methods.variance.combine_strata`. ``counts`` says which PSUs hold
@@ -315,6 +360,8 @@ def clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule, 
     counts = counts.reshape(P, L * M)
     with np.errstate(divide="ignore", invalid="ignore"):
         t = (A - value[None] * B) / sw[None]
+    if correction is not None:  # raked weights: the totals of the regression residuals (_calibration_correction)
+        t = t - correction
     t = np.where(np.isfinite(t), t, 0.0).reshape(P, L * M)
     H = sp.csr_matrix((np.ones(P), (psu_stratum, np.arange(P))), shape=(n_strata, P))
     n_h = np.bincount(psu_stratum, minlength=n_strata)

@@ -336,6 +336,10 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
         if study.codebook.population is not None:
             raise TrackerError("--engine duckdb does not apply the finite population correction (the codebook's "
                                "population) yet; use --engine pandas, which does")
+        if study.codebook.raked_to or any((w.get("weighting") or {}).get("kind") == "raked"
+                                          for w in study.wave_entries):
+            raise TrackerError("--engine duckdb does not compute the variance of raked weights yet; use --engine "
+                               "pandas, which does")
     if workers is not None and scheduler is not None:
         raise TrackerError("give --workers or --scheduler, not both")
     if workers is not None and workers < 1:

@@ -116,6 +116,9 @@ def rake_table(book: Codebook, table: pd.DataFrame, cap: tuple[float, float] | N
         raise TrackerError(f"raking: the targets cannot be met{why} (largest margin error "
                            f"{result.max_margin_error:.3g} after {result.iterations} iterations)")
     result = RakeResult(result.weights, result.iterations, result.max_margin_error, True, cap, dict(book.targets))
+    from .estimates import BASE_WEIGHT
+
     out = table.copy()
+    out[BASE_WEIGHT] = base if base is not None else 1.0  # the variance regresses on the margins with them
     out[book.weight] = result.weights
     return out, result

@@ -66,6 +66,31 @@ for (name in names(fpc_designs)) {
 }
 write.csv(do.call(rbind, fpc_rows), file.path(out, "fpc_reference.csv"), row.names = FALSE)
 
+# Raked weights: apiclus1 raked to school type and to the school-wide target (as the package's
+# tests/rakecheck.R), without and with the finite population correction.
+raked <- list()
+pop_types <- data.frame(stype = c(1, 2, 3), Freq = c(4421, 755, 1018))
+pop_wide <- data.frame(sch_wide = c(1, 2), Freq = c(5122, 1072))
+for (with_fpc in c(FALSE, TRUE)) {
+  d <- coded(apiclus1)
+  des <- if (with_fpc) svydesign(id = ~dnum, weights = ~pw, data = d, fpc = ~fpc) else
+    svydesign(id = ~dnum, weights = ~pw, data = d)
+  des <- rake(des, list(~stype, ~sch_wide), list(pop_types, pop_wide), control = list(maxit = 100, epsilon = 1e-12))
+  des <- update(des, yes = as.numeric(sch_wide == 1), elementary = as.numeric(stype == 1),
+                award = as.numeric(awards == 1))
+  if (!with_fpc) write.csv(data.frame(snum = d$snum, raked = weights(des)), file.path(out, "raked_weights.csv"),
+                           row.names = FALSE)
+  for (cell in CELLS) {
+    sub <- cell_of(des, cell)
+    est <- svymean(~api00 + yes + elementary + award, sub)
+    raked[[length(raked) + 1]] <- data.frame(
+      fpc = with_fpc, group = cell[1], subgroup = cell[2], api00 = coef(est)[["api00"]],
+      api00_se = SE(est)[["api00"]], yes_se = SE(est)[["yes"]], elementary = coef(est)[["elementary"]],
+      elementary_se = SE(est)[["elementary"]], award = coef(est)[["award"]], award_se = SE(est)[["award"]])
+  }
+}
+write.csv(do.call(rbind, raked), file.path(out, "raked_reference.csv"), row.names = FALSE)
+
 # One-cluster strata: apiclus2's districts stratified by county (17 of 26 counties hold one
 # district), under each of R's rules for a lonely PSU.
 d <- coded(apiclus2)
