@@ -23,8 +23,8 @@ sys.path.insert(0, str(ROOT))
 import numpy as np  # noqa: E402
 
 from tracker.calibration import (  # noqa: E402
-    DESIGNS, FEW_DESIGN, FEW_REPS, FORECAST_DESIGN, FORECAST_REPS, RARE_DESIGN, RARE_REPS, TIERS, TREND_DESIGN, TREND_REPS,
-    Report, run,
+    DESIGNS, FEW_DESIGN, FEW_REPS, FORECAST_DESIGN, FORECAST_REPS, RAKED_DESIGN, RAKED_REPS, RARE_DESIGN, RARE_REPS, TIERS,
+    TREND_DESIGN, TREND_REPS, Report, run,
 )
 
 
@@ -130,6 +130,14 @@ def render(report: Report) -> str:
         "New clusters under reused labels (interview days, say) have independent effects: not declared, the waves "
         "are independent; wrongly declared, the covariance of unrelated clusters is used (reported, not promised: "
         "the reason the codebook must say so)."))]
+    sections += [(RAKED_DESIGN, (
+        f"{RAKED_REPS[report.tier]:,} waves of 1,000 respondents drawn with region a at half its population "
+        "share (base weights correct it) and raked to the population margins of region (0.5 / 0.3 / 0.2) and "
+        "age band (0.6 / 0.4) by the tool's own raking, as `add --rake` does. Each wave is estimated twice: with "
+        "the calibration-aware variance (the residuals of the regression on the margins' indicators, the "
+        "default for raked waves) and, for comparison, with the weights taken as fixed (reported). The interval "
+        "of a raked wave's share is on its design base capped at the respondents, not at the Kish base: the "
+        "calibration's gain is real."))]
     for name, intro in sections:
         out += [f"## {name[0].upper() + name[1:]}", ""] + ([intro, ""] if intro else []) + [
                 "| what | setting | nominal | measured | MC SE | target | meets |",

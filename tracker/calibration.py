@@ -31,8 +31,8 @@ from .composition import compare_composition
 from .estimates import finish, wave_covariance, wave_estimates
 from .methods.tests import adjust_pvalues
 
-__all__ = ["DESIGNS", "FEW_DESIGN", "FEW_REPS", "FORECAST_DESIGN", "RARE_DESIGN", "RARE_REPS", "TIERS", "Design",
-           "Rate", "run"]
+__all__ = ["DESIGNS", "FEW_DESIGN", "FEW_REPS", "FORECAST_DESIGN", "RAKED_DESIGN", "RAKED_REPS", "RARE_DESIGN",
+           "RARE_REPS", "TIERS", "Design", "Rate", "run"]
 
 RATING = np.array([0.10, 0.15, 0.25, 0.30, 0.20])     # category shares of the 1-5 rating
 TRUTH = {"p50": 0.5, "p30": 0.3, "p10": 0.1, "p03": 0.03,
@@ -523,6 +523,76 @@ def _few_clusters(rng, reps: int, out: list[Rate]) -> None:
                             (0.94, 0.96) if promised else None, 0.95))
 
 
+RAKED_DESIGN = "raked weights"
+RAKED_REPS = {"full": 2000, "quick": 400, "test": 150}
+#: Population margins of the raked design: a region of 3 levels and an age band of 2; each
+#: region's share of 'yes' on the related item (a strong relation) and the unrelated item.
+RAKED_REGION, RAKED_AGE = np.array([0.5, 0.3, 0.2]), np.array([0.6, 0.4])
+RAKED_RELATED = np.array([0.2, 0.5, 0.8])
+
+
+def _raked_codebook() -> Codebook:
+    r, a = RAKED_REGION, RAKED_AGE
+    return parse_codebook("\n".join([
+        "title: raked", "id: rid", "weight: w", "variables:",
+        "  region: {type: category, codes: {1: a, 2: b, 3: c}}", "  age: {type: category, codes: {1: young, 2: old}}",
+        "  related: {type: category, codes: {0: no, 1: yes}}", "  unrelated: {type: category, codes: {0: no, 1: yes}}",
+        "groups:", "  region: {variable: region}", "  age: {variable: age}",
+        "metrics:", "  related: {variable: related, share: [1]}", "  unrelated: {variable: unrelated, share: [1]}",
+        "  region_a: {variable: region, share: [1]}",
+        "targets:", f"  region: {{a: {r[0]}, b: {r[1]}, c: {r[2]}}}", f"  age: {{young: {a[0]}, old: {a[1]}}}",
+        "rake: {tolerance: 1.0e-10}"]) + "\n")
+
+
+def _raked_items(rng, reps: int, out: list[Rate]) -> None:
+    """Waves of 1,000 drawn with region a under-represented (drawn at half its share) and
+    raked to the population margins: coverage and SE / SD of an item related to the margins
+    (its share differs by region), one unrelated, and a raked margin itself."""
+    from .estimates import BASE_WEIGHT
+    from .weighting import rake_table
+
+    book = _raked_codebook()
+    metrics = list(book.metrics.values())
+    truth = {"related": float(RAKED_REGION @ RAKED_RELATED), "unrelated": 0.3, "region_a": float(RAKED_REGION[0])}
+    draw = RAKED_REGION * np.array([0.5, 1.25, 1.25])
+    draw /= draw.sum()
+    hits = {(m, v): [] for m in truth for v in ("calibrated", "fixed")}
+    values: dict[str, list[float]] = {m: [] for m in truth}
+    ses = {(m, v): [] for m in truth for v in ("calibrated", "fixed")}
+    for _ in range(reps):
+        region = rng.choice(3, 1000, p=draw)
+        age = rng.choice(2, 1000, p=RAKED_AGE)
+        table = pd.DataFrame({"rid": np.arange(1000).astype(str), "w": (RAKED_REGION / draw)[region],
+                              "region": region + 1.0, "age": age + 1.0,
+                              "related": (rng.random(1000) < RAKED_RELATED[region]).astype(float),
+                              "unrelated": (rng.random(1000) < 0.3).astype(float)})
+        raked, _ = rake_table(book, table)
+        for how, frame in (("calibrated", raked), ("fixed", raked.drop(columns=[BASE_WEIGHT]))):
+            est = wave_estimates(book, frame, metrics, [], "A", "2025-01-15", LEVEL).set_index("metric")
+            for m, t in truth.items():
+                r = est.loc[m]
+                hits[(m, how)].append(float(r["ci_low"] <= t <= r["ci_high"]) if m != "region_a"
+                                      else float(abs(r["value"] - t) < 1e-6))
+                ses[(m, how)].append(r["se"])
+                if how == "calibrated":
+                    values[m].append(r["value"])
+    labels = {"related": "an item related to the margins (0.2 / 0.5 / 0.8 by region)",
+              "unrelated": "an item unrelated to them (0.3)", "region_a": "a raked margin (region a, 0.5)"}
+    for m in ("related", "unrelated"):
+        sd = float(np.std(values[m], ddof=1))
+        for how in ("calibrated", "fixed"):
+            rate, mc, k = _prop(hits[(m, how)])
+            promised = how == "calibrated"
+            out.append(Rate(RAKED_DESIGN, "95% interval coverage", f"{labels[m]}, weights taken as {how}", rate, mc, k,
+                            (0.94, 0.96) if promised else None, 0.95))
+            ratio = float(np.sqrt(np.mean(np.square(ses[(m, how)]))) / sd)
+            out.append(Rate(RAKED_DESIGN, "SE / SD of the estimate", f"{labels[m]}, weights taken as {how}", ratio,
+                            ratio / np.sqrt(2 * (k - 1)), k, (0.95, 1.05) if promised else None, 1.0))
+    rate, mc, k = _prop([float(s < 1e-9) for s in ses[("region_a", "calibrated")]])
+    out.append(Rate(RAKED_DESIGN, "share of waves whose raked margin has SE 0", labels["region_a"], rate, mc, k,
+                    (1.0, 1.0), 1.0))
+
+
 RARE_DESIGN = "rare shares, informative weights"
 RARE_REPS = {"full": 3000, "quick": 600, "test": 200}
 #: The rare-share wave: 1,500 respondents, lognormal weights with Kish efficiency exp(-s^2)
@@ -624,4 +694,7 @@ def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DES
     if verbose:
         print(f"{FEW_DESIGN}", file=sys.stderr, flush=True)
     _few_clusters(np.random.default_rng(np.random.SeedSequence([seed, 22])), FEW_REPS[tier], rates)
+    if verbose:
+        print(f"{RAKED_DESIGN}", file=sys.stderr, flush=True)
+    _raked_items(np.random.default_rng(np.random.SeedSequence([seed, 23])), RAKED_REPS[tier], rates)
     return Report(rates, tier, seed, time.perf_counter() - start, deff)

@@ -77,6 +77,7 @@ def calibration_of(codebook: Codebook, table: pd.DataFrame) -> tuple[np.ndarray,
     are not known). None for weights taken as fixed."""
     if BASE_WEIGHT in table.columns and codebook.targets:
         groups, d = list(codebook.targets), table[BASE_WEIGHT].to_numpy(float)
+        d = np.where(np.isnan(d), weights_of(codebook, table), d)  # pooled with waves not raked
     elif codebook.raked_to:
         groups, d = list(codebook.raked_to), weights_of(codebook, table)
     else:
@@ -164,10 +165,10 @@ def _refuse(codebook: Codebook, table: pd.DataFrame, exc: SingleClusterError) ->
 
 #: Bump when the per-cell statistics change meaning or computation: every cached copy
 #: (tracker.cache) is then rebuilt.
-STATS_VERSION = 5  # 3: average rule per subgroup; 4: finite population correction; 5: raked weights
+STATS_VERSION = 6  # 3: average rule per subgroup; 4: finite population correction; 5, 6: raked weights
 
 #: The per-cell sufficient statistics, each a (levels x metrics) array in CellArrays.
-STATS = ("base", "weighted_base", "sum_w2", "value", "variance", "unit_variance", "n_psu", "design_df")
+STATS = ("base", "weighted_base", "sum_w2", "value", "variance", "unit_variance", "n_psu", "design_df", "base_cap")
 
 
 @dataclass(frozen=True)
@@ -252,8 +253,12 @@ def cell_arrays(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], 
                     names = np.char.add(np.char.add(s_lab[first_row].astype(str), SEP), names)
     except SingleClusterError as exc:
         raise _refuse(codebook, table, exc) from None
+    with np.errstate(divide="ignore", invalid="ignore"):
+        # the largest base the design base may take: the Kish base of fixed weights; for raked
+        # weights the respondents themselves (the calibration's gain is real, the weighting's loss is in V)
+        cap = n.astype(float) if cal is not None else sw * sw / sw2
     stats = {"base": n, "weighted_base": sw, "sum_w2": sw2, "value": value, "variance": var,
-             "unit_variance": unit_var, "n_psu": n_psu.astype(float), "design_df": df.astype(float)}
+             "unit_variance": unit_var, "n_psu": n_psu.astype(float), "design_df": df.astype(float), "base_cap": cap}
     return CellArrays(tuple(m.name for m in metrics), levels.group, levels.level, stats,
                       psu_totals if keep_psu else None, names)
 
@@ -387,7 +392,8 @@ def derived(stats: dict[str, np.ndarray], kind: np.ndarray, level: float = 0.95,
     var = np.asarray(stats["variance"], float)
     unit = np.asarray(stats["unit_variance"], float)
     kish = kish_base(np.asarray(stats["weighted_base"], float), np.asarray(stats["sum_w2"], float))
-    dbase = design_base(var, unit, n, kish)
+    # the Kish base where a table gives no cap (fixed weights: tables made before the cap existed)
+    dbase = design_base(var, unit, n, np.asarray(stats["base_cap"], float) if "base_cap" in stats else kish)
     df = np.asarray(stats["design_df"], float)
     se = np.sqrt(var)
     p = np.asarray(stats["value"], float)
@@ -414,7 +420,7 @@ def finish(cells: pd.DataFrame, kinds: dict[str, str], level: float = 0.95, inte
     """:func:`derived` added to a table of sufficient statistics (one row per cell)."""
     c = cells.copy()
     kind = c["metric"].map(kinds).to_numpy()
-    for k, v in derived({k: c[k].to_numpy() for k in STATS}, kind, level, interval).items():
+    for k, v in derived({k: c[k].to_numpy() for k in STATS if k in c}, kind, level, interval).items():
         c[k] = v
     return c
 

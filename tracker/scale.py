@@ -271,8 +271,11 @@ def _finish(book, metrics, gnames, lnames, got, pairs, n_levels, strata, cluster
         raise TrackerError(f"strata {', '.join(map(str, where[exc.strata][:10]))} hold a single cluster, and the "
                            f"codebook says single_cluster_strata: refuse (see docs/codebook.md for the other "
                            f"rules)") from None
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cap = sw * sw / sw2  # the Kish base (raked studies are refused by this engine)
     stats = {"base": n, "weighted_base": sw, "sum_w2": sw2, "value": value, "variance": var,
-             "unit_variance": unit_var, "n_psu": np.asarray(n_psu, float), "design_df": np.asarray(df, float)}
+             "unit_variance": unit_var, "n_psu": np.asarray(n_psu, float), "design_df": np.asarray(df, float),
+             "base_cap": cap}
     return CellArrays(tuple(m.name for m in metrics), ("total", *gnames), ("Total", *lnames), stats, psu, psu_names)
 
 
