@@ -61,7 +61,7 @@ def _pct(x: float) -> str:
 
 
 def _fmt(rate, value: float) -> str:
-    return f"{value:.3f}" if rate.what.startswith("SE of change") else _pct(value)
+    return f"{value:.3f}" if rate.what.startswith(("SE of change", "SE / SD")) else _pct(value)
 
 
 def render(report: Report) -> str:
