@@ -308,3 +308,22 @@ def test_a_raked_margin_is_never_tested(reference, raked, tmp_path):
     assert row["change"] == pytest.approx(0.0, abs=1e-12)
     assert row["verdict"] == "not tested" and "fixed by the weighting" in row["flags"]
     assert "fixed by the weighting" not in table.set_index("metric").loc["award", "flags"]  # not a margin
+
+
+def test_rao_scott_of_two_waves_make_up_equals_r(reference, tmp_path):
+    """R's svychisq(~wave + stype, statistic = "F") (second order, the verdict: F, its two df
+    and p) and "Chisq" (first order) on apiclus1 and apiclus2 stacked as two independent waves."""
+    ref = pd.read_csv(next(iter(reference[1].values())).root.parent / "raoscott_reference.csv").iloc[0]
+    data_dir = next(iter(reference[1].values())).root.parent
+    text = CODEBOOK.format(name="two samples", design="clusters: dnum\n") + "profile: [stype]\n"
+    (tmp_path / "b.yaml").write_text(text)
+    study = Study.create(tmp_path / "s", tmp_path / "b.yaml")
+    study.add(data_dir / "apiclus1-2000.csv", "1", "2000-03-31")
+    apiclus2 = pd.read_csv(data_dir / "apiclus2.csv")
+    apiclus2.drop(columns=["api99", "fpc"]).rename(columns={"api00": "api"}).to_csv(tmp_path / "w2.csv", index=False)
+    study.add(tmp_path / "w2.csv", "2", "2000-06-30")
+    test = study.composition(wave="2", against="1").tests.set_index("group").loc["stype"]
+    np.testing.assert_allclose([test["f"], test["f_df_num"], test["f_df_den"], test["p"]],
+                               [ref["f"], ref["f_df1"], ref["f_df2"], ref["f_p"]], rtol=1e-9)
+    # R's "Chisq" reports Pearson's X^2 of the weighted table with the first-order corrected p-value
+    np.testing.assert_allclose([test["pearson_chi2"], test["p_chi2"]], [ref["chisq"], ref["chisq_p"]], rtol=1e-9)

@@ -91,6 +91,18 @@ for (with_fpc in c(FALSE, TRUE)) {
 }
 write.csv(do.call(rbind, raked), file.path(out, "raked_reference.csv"), row.names = FALSE)
 
+# Rao-Scott: the make-up by school type of apiclus1 against apiclus2 (independent samples),
+# stacked with the wave as a stratum and each wave's weights scaled to its respondents.
+stack <- rbind(transform(coded(apiclus1), wave = 1), transform(coded(apiclus2), wave = 2))
+stack$w <- stack$pw * ave(stack$pw, stack$wave, FUN = function(x) length(x) / sum(x))
+stack$psu <- paste(stack$wave, stack$dnum)
+des <- svydesign(id = ~psu, strata = ~wave, weights = ~w, data = stack)
+f <- svychisq(~wave + stype, des, statistic = "F")
+first <- svychisq(~wave + stype, des, statistic = "Chisq")
+write.csv(data.frame(f = f$statistic[[1]], f_df1 = f$parameter[[1]], f_df2 = f$parameter[[2]], f_p = f$p.value,
+                     chisq = first$statistic[[1]], chisq_p = first$p.value),
+          file.path(out, "raoscott_reference.csv"), row.names = FALSE)
+
 # One-cluster strata: apiclus2's districts stratified by county (17 of 26 counties hold one
 # district), under each of R's rules for a lonely PSU.
 d <- coded(apiclus2)
