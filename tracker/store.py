@@ -202,8 +202,8 @@ def ledger_problems(ledger) -> list[str]:
     out += [f"wave {label} appears more than once" for label in sorted(x for x, k in labels.items() if k > 1)]
     files: Counter[str] = Counter()
     for w in ledger["waves"]:
-        history: list = w["history"] if isinstance(w, dict) and isinstance(w.get("history"), list) else []
-        for v in [w, *history] if isinstance(w, dict) else []:
+        earlier: list = w["history"] if isinstance(w, dict) and isinstance(w.get("history"), list) else []
+        for v in [w, *earlier] if isinstance(w, dict) else []:
             name = stored_file_name(v.get("file")) if isinstance(v, dict) else None
             if name:
                 files[name] += 1
