@@ -23,8 +23,8 @@ sys.path.insert(0, str(ROOT))
 import numpy as np  # noqa: E402
 
 from tracker.calibration import (  # noqa: E402
-    DESIGNS, FEW_DESIGN, FEW_REPS, FORECAST_DESIGN, FORECAST_REPS, RAKED_DESIGN, RAKED_REPS, RARE_DESIGN, RARE_REPS, TIERS,
-    TREND_DESIGN, TREND_REPS, Report, run,
+    DESIGNS, FEW_DESIGN, FEW_REPS, FORECAST_DESIGN, FORECAST_REPS, LONE_DESIGN, LONE_REPS, RAKED_DESIGN, RAKED_REPS,
+    RARE_DESIGN, RARE_REPS, TIERS, TREND_DESIGN, TREND_REPS, Report, run,
 )
 
 
@@ -138,6 +138,13 @@ def render(report: Report) -> str:
         "default for raked waves) and, for comparison, with the weights taken as fixed (reported). The interval "
         "of a raked wave's share is on its design base capped at the respondents, not at the Kish base: the "
         "calibration's gain is real."))]
+    sections += [(LONE_DESIGN, (
+        f"{LONE_REPS[report.tier]:,} pairs of independent waves of 12 strata with their own effects, 6 holding two "
+        "clusters and 6 holding one (a draw from its stratum, not a certainty), 40 respondents a cluster, no "
+        "change in truth; each pair is judged under each rule for one-cluster strata. Promised: `centre` (the "
+        "default) never rejects more than 6 % (it may reject less: it counts the strata's differences as "
+        "variance); `average` and `certainty` are reported: `certainty` leaves the lone strata's variance out, "
+        "which is right only for strata taken with certainty."))]
     for name, intro in sections:
         out += [f"## {name[0].upper() + name[1:]}", ""] + ([intro, ""] if intro else []) + [
                 "| what | setting | nominal | measured | MC SE | target | meets |",

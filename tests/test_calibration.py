@@ -10,7 +10,8 @@ from __future__ import annotations
 
 import pytest
 
-from tracker.calibration import DESIGNS, FEW_DESIGN, FORECAST_DESIGN, RAKED_DESIGN, RARE_DESIGN, TREND_DESIGN, run
+from tracker.calibration import (DESIGNS, FEW_DESIGN, FORECAST_DESIGN, LONE_DESIGN, RAKED_DESIGN, RARE_DESIGN,
+                                 TREND_DESIGN, run)
 
 
 @pytest.fixture(scope="module")
@@ -32,6 +33,7 @@ def test_every_promised_rate_holds_within_monte_carlo_error(report):
     assert sum(r.design == RARE_DESIGN and r.what == "95% interval coverage" for r in targeted) == 10
     assert sum(r.design == FEW_DESIGN for r in targeted) == 8
     assert sum(r.design == RAKED_DESIGN for r in targeted) == 5  # related and unrelated items, the margin
+    assert sum(r.design == LONE_DESIGN for r in targeted) == 2  # the centre rule, a share and a mean
     off = [f"{r.design}: {r.what}, {r.setting}: {r.measured:.3f} (target {r.target}, MC SE {r.mc_se:.3f})"
            for r in targeted if not r.within_mc(3.5)]
     assert not off, "\n".join(off)

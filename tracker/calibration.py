@@ -31,7 +31,8 @@ from .composition import compare_composition
 from .estimates import finish, wave_covariance, wave_estimates
 from .methods.tests import adjust_pvalues
 
-__all__ = ["DESIGNS", "FEW_DESIGN", "FEW_REPS", "FORECAST_DESIGN", "RAKED_DESIGN", "RAKED_REPS", "RARE_DESIGN",
+__all__ = ["DESIGNS", "FEW_DESIGN", "FEW_REPS", "FORECAST_DESIGN", "LONE_DESIGN", "LONE_REPS", "RAKED_DESIGN",
+           "RAKED_REPS", "RARE_DESIGN",
            "RARE_REPS", "TIERS", "Design", "Rate", "run"]
 
 RATING = np.array([0.10, 0.15, 0.25, 0.30, 0.20])     # category shares of the 1-5 rating
@@ -523,6 +524,54 @@ def _few_clusters(rng, reps: int, out: list[Rate]) -> None:
                             (0.94, 0.96) if promised else None, 0.95))
 
 
+LONE_DESIGN = "one-cluster strata"
+LONE_REPS = {"full": 2000, "quick": 400, "test": 150}
+
+
+def _lone_wave(rng, tag: str) -> pd.DataFrame:
+    """12 strata with their own effects (SD 0.3 on the latent scale): 6 hold 2 clusters and 6
+    hold one (the lone cluster is a draw from its stratum, not a certainty), 40 respondents a
+    cluster, cluster effects SD 0.3, lognormal weights (SD 0.3)."""
+    stratum_effect = np.linspace(-0.45, 0.45, 12)  # fixed: the strata are the same in every wave
+    per = np.array([2] * 6 + [1] * 6)
+    st = np.repeat(np.arange(12), per)
+    cl_effect = stratum_effect[st] + rng.normal(0, 0.3, st.size)
+    cl = np.repeat(np.arange(st.size), 40)
+    latent = cl_effect[cl] + rng.normal(size=cl.size)
+    sd = np.sqrt(1 + 0.3**2 + 0.3**2)
+    cuts = stats.norm.ppf(np.cumsum(RATING)[:-1]) * sd
+    return pd.DataFrame({"rid": [f"{tag}{i}" for i in range(cl.size)], "w": np.exp(rng.normal(0, 0.3, cl.size)),
+                         "st": st[cl], "cl": [f"{tag}{c}" for c in cl],
+                         "p50": (latent < 0).astype(int), "rating": 1 + np.searchsorted(cuts, latent)})
+
+
+def _lone_clusters(rng, reps: int, out: list[Rate]) -> None:
+    """Change-test size between independent waves with 6 of 12 strata holding one cluster,
+    under each rule for such strata (docs/methods.md: which rule is safe when)."""
+    books = {}
+    for rule in ("centre", "average", "certainty"):
+        books[rule] = parse_codebook("\n".join([
+            "title: lone", "id: rid", "weight: w", "strata: st", "clusters: cl", f"single_cluster_strata: {rule}",
+            "variables:", "  p50: {type: category, codes: {0: no, 1: yes}}",
+            "  rating: {type: scale, codes: {1: a, 2: b, 3: c, 4: d, 5: e}}",
+            "metrics:", "  p50: {variable: p50, share: [1]}", "  rating_mean: {variable: rating, mean: true}"]) + "\n")
+    reject = {(r, m): [] for r in books for m in ("p50", "rating_mean")}
+    for _ in range(reps):
+        a, b = _lone_wave(rng, "a"), _lone_wave(rng, "b")
+        for rule, book in books.items():
+            metrics = list(book.metrics.values())
+            est_a = wave_estimates(book, a, metrics, [], "A", "2025-01-15", LEVEL)
+            est_b = wave_estimates(book, b, metrics, [], "B", "2025-04-15", LEVEL)
+            ch = compare(est_b, est_a, None, None, "none", LEVEL).set_index("metric")
+            for m in ("p50", "rating_mean"):
+                p = ch.loc[m, "p_raw"]
+                reject[(rule, m)].append(float(p <= 1 - LEVEL) if np.isfinite(p) else np.nan)
+    for (rule, m), hits in reject.items():
+        rate, mc, k = _prop(hits)
+        out.append(Rate(LONE_DESIGN, "change-test size", f"{LABELS[m]}, total; rule {rule}", rate, mc, k,
+                        (0.0, 0.06) if rule == "centre" else None, 0.05))  # centre: never above 6 %
+
+
 RAKED_DESIGN = "raked weights"
 RAKED_REPS = {"full": 2000, "quick": 400, "test": 150}
 #: Population margins of the raked design: a region of 3 levels and an age band of 2; each
@@ -697,4 +746,7 @@ def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DES
     if verbose:
         print(f"{RAKED_DESIGN}", file=sys.stderr, flush=True)
     _raked_items(np.random.default_rng(np.random.SeedSequence([seed, 23])), RAKED_REPS[tier], rates)
+    if verbose:
+        print(f"{LONE_DESIGN}", file=sys.stderr, flush=True)
+    _lone_clusters(np.random.default_rng(np.random.SeedSequence([seed, 24])), LONE_REPS[tier], rates)
     return Report(rates, tier, seed, time.perf_counter() - start, deff)
