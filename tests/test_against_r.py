@@ -96,6 +96,20 @@ def reference(tmp_path_factory):
     return pd.read_csv(out / "reference.csv"), studies
 
 
+def _data_dir(reference) -> Path:
+    """The folder holding R's exported files."""
+    return next(iter(reference[1].values())).root.parent
+
+
+def _study(folder: Path, name: str, text: str, waves, rake: bool = False):
+    """A study made from codebook ``text`` with ``waves`` [(file, label, date)] added."""
+    (folder / f"{name}.yaml").write_text(text)
+    study = Study.create(folder / name, folder / f"{name}.yaml")
+    for path, label, date in waves:
+        study.add(path, label, date, rake=rake)
+    return study
+
+
 def _cells(study, metric):
     est = study.estimates(metrics=[metric], waves=["2000"])
     return est.set_index(["group", "subgroup"])
@@ -163,16 +177,14 @@ LONELY_RULES = {"adjust": "centre", "average": "average", "certainty": "certaint
 @pytest.fixture(scope="module")
 def lonely(reference, tmp_path_factory):
     out = tmp_path_factory.mktemp("lonely")
-    data_dir = next(iter(reference[1].values())).root.parent
+    data_dir = _data_dir(reference)
     studies = {}
     for r_rule, rule in LONELY_RULES.items():
         text = CODEBOOK.format(name="apiclus2 by county", design="strata: county\nclusters: dnum\n")
-        (out / f"{rule}.yaml").write_text(text + f"single_cluster_strata: {rule}\n")
-        study = Study.create(out / rule, out / f"{rule}.yaml")
         data = pd.read_csv(data_dir / "lonely.csv")
         data.drop(columns=["api99", "fpc"]).rename(columns={"api00": "api"}).to_csv(out / "w.csv", index=False)
-        study.add(out / "w.csv", "2000", "2000-06-30")
-        studies[r_rule] = study
+        studies[r_rule] = _study(out, rule, text + f"single_cluster_strata: {rule}\n",
+                                 [(out / "w.csv", "2000", "2000-06-30")])
     return pd.read_csv(data_dir / "lonely_reference.csv"), studies
 
 
@@ -195,14 +207,11 @@ FPC = {"apistrat": "population: {1: 4421, 2: 755, 3: 1018}\n", "apiclus1": "popu
 @pytest.fixture(scope="module")
 def with_fpc(reference, tmp_path_factory):
     out = tmp_path_factory.mktemp("fpc")
-    data_dir = next(iter(reference[1].values())).root.parent
+    data_dir = _data_dir(reference)
     studies = {}
     for name, key in FPC.items():
-        (out / f"{name}.yaml").write_text(CODEBOOK.format(name=name, design=DESIGNS[name] + key))
-        study = Study.create(out / name, out / f"{name}.yaml")
-        for year in ("1999", "2000"):
-            study.add(data_dir / f"{name}-{year}.csv", year, f"{year}-06-30")
-        studies[name] = study
+        studies[name] = _study(out, name, CODEBOOK.format(name=name, design=DESIGNS[name] + key),
+                               [(data_dir / f"{name}-{year}.csv", year, f"{year}-06-30") for year in ("1999", "2000")])
     return pd.read_csv(data_dir / "fpc_reference.csv"), studies
 
 
@@ -250,18 +259,15 @@ def raked(reference, tmp_path_factory):
     """apiclus1 raked by `add --rake` to the population margins of R's tests/rakecheck.R
     (school type 4421 / 755 / 1018, school-wide target met 5122 of 6194)."""
     out = tmp_path_factory.mktemp("raked")
-    data_dir = next(iter(reference[1].values())).root.parent
+    data_dir = _data_dir(reference)
     studies = {}
     for with_fpc in (False, True):
         text = CODEBOOK.format(name="apiclus1 raked", design="clusters: dnum\n" + ("population: 757\n" if with_fpc
                                                                                    else ""))
         text = text.replace("groups:\n", "groups:\n  sch_wide: {variable: sch_wide}\n")
         text += RAKED_METRICS.format(e=4421 / 6194, h=755 / 6194, m=1018 / 6194, yes=5122 / 6194, no=1072 / 6194)
-        name = "fpc" if with_fpc else "plain"
-        (out / f"{name}.yaml").write_text(text)
-        study = Study.create(out / name, out / f"{name}.yaml")
-        study.add(data_dir / "apiclus1-2000.csv", "2000", "2000-06-30", rake=True)
-        studies[with_fpc] = study
+        studies[with_fpc] = _study(out, "fpc" if with_fpc else "plain", text,
+                                   [(data_dir / "apiclus1-2000.csv", "2000", "2000-06-30")], rake=True)
     return pd.read_csv(data_dir / "raked_reference.csv"), pd.read_csv(data_dir / "raked_weights.csv"), studies
 
 
@@ -298,11 +304,9 @@ def test_a_raked_margin_is_never_tested(reference, raked, tmp_path):
     no sampling error, and its comparison says it is fixed by the weighting (common practice,
     no source: a calibrated total is not an estimate)."""
     _, _, studies = raked
-    data_dir = next(iter(reference[1].values())).root.parent
-    (tmp_path / "b.yaml").write_text((studies[False].root / "codebook.yaml").read_text())
-    both = Study.create(tmp_path / "s", tmp_path / "b.yaml")
-    for year in ("1999", "2000"):
-        both.add(data_dir / f"apiclus1-{year}.csv", year, f"{year}-06-30", rake=True)
+    data_dir = _data_dir(reference)
+    both = _study(tmp_path, "s", (studies[False].root / "codebook.yaml").read_text(),
+                  [(data_dir / f"apiclus1-{year}.csv", year, f"{year}-06-30") for year in ("1999", "2000")], rake=True)
     table = both.changes(wave="2000", against="1999", metrics=["elementary", "award"], by=[]).table
     row = table.set_index("metric").loc["elementary"]
     assert row["change"] == pytest.approx(0.0, abs=1e-12)
@@ -314,13 +318,11 @@ def test_a_raked_margin_is_never_tested(reference, raked, tmp_path):
 def two_samples(reference, tmp_path_factory):
     """apiclus1 and apiclus2 as two independent waves of one study (clusters, no panel)."""
     tmp = tmp_path_factory.mktemp("two")
-    data_dir = next(iter(reference[1].values())).root.parent
-    (tmp / "b.yaml").write_text(CODEBOOK.format(name="two samples", design="clusters: dnum\n") + "profile: [stype]\n")
-    study = Study.create(tmp / "s", tmp / "b.yaml")
-    study.add(data_dir / "apiclus1-2000.csv", "1", "2000-03-31")
+    data_dir = _data_dir(reference)
     apiclus2 = pd.read_csv(data_dir / "apiclus2.csv")
     apiclus2.drop(columns=["api99", "fpc"]).rename(columns={"api00": "api"}).to_csv(tmp / "w2.csv", index=False)
-    study.add(tmp / "w2.csv", "2", "2000-06-30")
+    study = _study(tmp, "s", CODEBOOK.format(name="two samples", design="clusters: dnum\n") + "profile: [stype]\n",
+                   [(data_dir / "apiclus1-2000.csv", "1", "2000-03-31"), (tmp / "w2.csv", "2", "2000-06-30")])
     return study, data_dir
 
 

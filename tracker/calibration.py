@@ -734,19 +734,12 @@ def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DES
         print(f"{TREND_DESIGN}", file=sys.stderr, flush=True)
     _trend_patterns(np.random.default_rng(np.random.SeedSequence(seed).spawn(len(designs) + 1)[-1]),
                     TREND_REPS[tier], rates)
-    if verbose:
-        print(f"{FORECAST_DESIGN}", file=sys.stderr, flush=True)
-    _forecasts(np.random.default_rng(np.random.SeedSequence([seed, 14])), FORECAST_REPS[tier], rates)
-    if verbose:
-        print(f"{RARE_DESIGN}", file=sys.stderr, flush=True)
-    _rare_shares(np.random.default_rng(np.random.SeedSequence([seed, 21])), RARE_REPS[tier], rates)
-    if verbose:
-        print(f"{FEW_DESIGN}", file=sys.stderr, flush=True)
-    _few_clusters(np.random.default_rng(np.random.SeedSequence([seed, 22])), FEW_REPS[tier], rates)
-    if verbose:
-        print(f"{RAKED_DESIGN}", file=sys.stderr, flush=True)
-    _raked_items(np.random.default_rng(np.random.SeedSequence([seed, 23])), RAKED_REPS[tier], rates)
-    if verbose:
-        print(f"{LONE_DESIGN}", file=sys.stderr, flush=True)
-    _lone_clusters(np.random.default_rng(np.random.SeedSequence([seed, 24])), LONE_REPS[tier], rates)
+    # the single-design settings, each on its own seed stream ([seed, tag])
+    for name, step, reps, tag in ((FORECAST_DESIGN, _forecasts, FORECAST_REPS, 14),
+                                  (RARE_DESIGN, _rare_shares, RARE_REPS, 21), (FEW_DESIGN, _few_clusters, FEW_REPS, 22),
+                                  (RAKED_DESIGN, _raked_items, RAKED_REPS, 23),
+                                  (LONE_DESIGN, _lone_clusters, LONE_REPS, 24)):
+        if verbose:
+            print(name, file=sys.stderr, flush=True)
+        step(np.random.default_rng(np.random.SeedSequence([seed, tag])), reps[tier], rates)
     return Report(rates, tier, seed, time.perf_counter() - start, deff)

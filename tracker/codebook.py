@@ -418,13 +418,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
     if not metrics:
         raise _err("metrics", "no metrics are declared")
 
-    profile_node = doc.get("profile") or []
-    if not isinstance(profile_node, list):
-        raise _err("profile", "expected a list of group names")
-    profile = tuple(str(p) for p in profile_node)
-    for i, p in enumerate(profile):
-        if p not in groups:
-            raise _err(f"profile[{i}]", f"{p!r} is not a group in groups")
+    profile = _group_list(doc, "profile", groups)
 
     targets = {}
     for gname, node in _mapping(doc.get("targets"), "targets", required=False).items():
@@ -450,13 +444,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
 
     rake = _parse_rake(doc.get("rake"))
     population = _parse_population(doc.get("population"), strata)
-    raked_node = doc.get("weights_raked_to") or []
-    if not isinstance(raked_node, list):
-        raise _err("weights_raked_to", "expected a list of group names")
-    raked_to = tuple(str(g) for g in raked_node)
-    for i, g in enumerate(raked_to):
-        if g not in groups:
-            raise _err(f"weights_raked_to[{i}]", f"{shorten(g)!r} is not a group in groups")
+    raked_to = _group_list(doc, "weights_raked_to", groups)
     single_rule, share_clusters, panel = _design_options(doc)
     book = Codebook(
         title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
@@ -474,6 +462,18 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
             raise _err(odd[0], f"{shorten(odd[1])!r} is not written like {first[0]} ({shorten(first[1])!r}); "
                                f"every wave label the codebook names must be of one form")
     return book
+
+
+def _group_list(doc: dict, key: str, groups: dict) -> tuple[str, ...]:
+    """A codebook key holding a list of group names (profile, weights_raked_to), each checked."""
+    node = doc.get(key) or []
+    if not isinstance(node, list):
+        raise _err(key, "expected a list of group names")
+    names = tuple(str(g) for g in node)
+    for i, g in enumerate(names):
+        if g not in groups:
+            raise _err(f"{key}[{i}]", f"{g!r} is not a group in groups")
+    return names
 
 
 def stratum_key(label: Any) -> str:
