@@ -272,11 +272,14 @@ def raked(reference, tmp_path_factory):
 
 
 def test_raked_weights_equal_r(raked):
+    """R's rake() weights, rescaled from R's population total (6194) to the design weights'
+    sum (6194.001), which tracker's weights keep: equal to 1e-9."""
     _, weights, studies = raked
     stored = studies[False].load("2000").assign(snum=lambda t: t["snum"].astype(float).astype(int))
     both = stored.merge(weights, on="snum")
     assert len(both) == 183
-    np.testing.assert_allclose(both["pw"], both["raked"], rtol=1e-7)
+    design_total = stored["pw"].sum()
+    np.testing.assert_allclose(both["pw"], both["raked"] * design_total / 6194, rtol=1e-9)
 
 
 @pytest.mark.parametrize("with_fpc", [False, True], ids=["no fpc", "fpc"])
@@ -297,6 +300,44 @@ def test_raked_variance_equals_r_calibration_aware(raked, with_fpc):
             np.testing.assert_allclose(cells[metric].loc[key, "se"], row[col], rtol=1e-6, atol=1e-9,
                                        err_msg=f"{metric} {key}")
     assert cells["target_met"].loc[("total", "Total"), "se"] < 1e-9  # a raked margin cannot move
+
+
+@pytest.fixture(scope="module")
+def bounded(reference, tmp_path_factory):
+    """apiclus1 raked to the same margins by `add --rake --cap 0.85:1.8` (three schools reach
+    the cap) and R's calibrate(calfun = "raking", bounds = c(0.85, 1.8)) of the same design."""
+    out = tmp_path_factory.mktemp("bounded")
+    data_dir = _data_dir(reference)
+    text = CODEBOOK.format(name="apiclus1 raked within a cap", design="clusters: dnum\n")
+    text = text.replace("groups:\n", "groups:\n  sch_wide: {variable: sch_wide}\n")
+    text += RAKED_METRICS.format(e=4421 / 6194, h=755 / 6194, m=1018 / 6194, yes=5122 / 6194, no=1072 / 6194)
+    text = text.replace("rake: {tolerance: 1.0e-12}", "rake: {tolerance: 1.0e-12, cap: '0.85:1.8'}")
+    study = _study(out, "capped", text, [(data_dir / "apiclus1-2000.csv", "2000", "2000-06-30")], rake=True)
+    return (pd.read_csv(data_dir / "bounded_reference.csv"), pd.read_csv(data_dir / "bounded_weights.csv"),
+            study, reference)
+
+
+def test_capped_raking_equals_r_bounded_calibration(bounded):
+    """R's bounded raking (calibrate(calfun = "raking", bounds = )): the same weights to 1e-9
+    (the weights closest to the design weights within the cap, Deville and Sarndal 1992), and
+    every value and SE of the design to 1e-6 (the variance regresses on the margins with the
+    design weights, as R's, whatever the bounds)."""
+    ref, weights, study, _ = bounded
+    stored = study.load("2000").assign(snum=lambda t: t["snum"].astype(float).astype(int))
+    both = stored.merge(weights, on="snum")
+    assert len(both) == 183
+    np.testing.assert_allclose(both["pw"], both["bounded"], rtol=1e-9)
+    design = pd.read_csv(_data_dir(bounded[3]) / "apiclus1.csv").set_index("snum")["pw"]
+    ratio = both["pw"] / both["snum"].map(design)
+    assert ratio.max() == pytest.approx(1.8, abs=1e-12) and (np.abs(ratio - 1.8) < 1e-9).sum() == 3
+    cells = {m: _cells(study, m) for m in ("api_mean", "target_met", "elementary", "award")}
+    for key, row in ref.set_index(["group", "subgroup"]).iterrows():
+        np.testing.assert_allclose(cells["api_mean"].loc[key, "value"], row["api00"], rtol=1e-9, err_msg=str(key))
+        np.testing.assert_allclose(cells["award"].loc[key, "value"], row["award"], rtol=1e-9, err_msg=str(key))
+        for metric, col in (("api_mean", "api00_se"), ("target_met", "yes_se"), ("elementary", "elementary_se"),
+                            ("award", "award_se")):
+            np.testing.assert_allclose(cells[metric].loc[key, "se"], row[col], rtol=1e-6, atol=1e-9,
+                                       err_msg=f"{metric} {key}")
 
 
 def test_a_raked_margin_is_never_tested(reference, raked, tmp_path):

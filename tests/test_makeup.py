@@ -72,6 +72,30 @@ def test_raking_with_caps_keeps_the_ratio_and_the_margins():
     assert not tight.converged  # S must rise by a quarter at least: impossible within 1.1
 
 
+def test_capped_raking_is_the_bounded_raking_solution():
+    """Deville & Sarndal (1992, JASA 87:376, section 3): the bounded raking weights are
+    g = clip(exp(x'lambda), lo, hi), so log g is additive in the margins' labels wherever a
+    weight is inside the cap, and the additive value lies beyond the bound wherever it is at
+    one (the optimality conditions, which pin down the unique solution). Base weights unequal."""
+    rng = np.random.default_rng(7)
+    n = 900
+    area = rng.choice(["N", "C", "S"], n, p=[0.5, 0.3, 0.2])
+    age = rng.choice(["y", "m", "o"], n, p=[0.2, 0.4, 0.4])
+    base = rng.lognormal(0.0, 0.4, n)
+    targets = [{"N": 0.4, "C": 0.35, "S": 0.25}, {"y": 0.35, "m": 0.4, "o": 0.25}]
+    lo, hi = 0.55, 2.2  # free raking's ratios run from 0.48 to 2.53: both bounds bind
+    result = rake([area, age], targets, base=base, cap=(lo, hi), tol=1e-12)
+    assert result.converged
+    g = result.weights / base
+    at_lo, at_hi = np.isclose(g, lo, rtol=1e-9), np.isclose(g, hi, rtol=1e-9)
+    assert at_hi.sum() > 0 and at_lo.sum() > 0
+    inside = ~(at_lo | at_hi)
+    x = np.column_stack([np.ones(n)] + [(area == k) * 1.0 for k in "CS"] + [(age == k) * 1.0 for k in "mo"])
+    coef, *_ = np.linalg.lstsq(x[inside], np.log(g[inside]), rcond=None)
+    assert np.abs(x[inside] @ coef - np.log(g[inside])).max() < 1e-9
+    assert (x[at_hi] @ coef >= np.log(hi) - 1e-9).all() and (x[at_lo] @ coef <= np.log(lo) + 1e-9).all()
+
+
 def _raking_study(tmp_path, **book_changes):
     text = EXAMPLE_CODEBOOK.read_text()
     for old, new in book_changes.items():

@@ -1,9 +1,11 @@
 """Raking weights: iterative proportional fitting to population margins, with caps.
 
-Method: Deming & Stephan (1940) iterative proportional fitting ("raking"); capping by
-trimming the weight ratio and raking again (common practice, no source). The margins of
-the result are checked against an independent implementation (the ``ipfn`` package) in
-the tests.
+Method: Deming & Stephan (1940) iterative proportional fitting ("raking"). With a cap on
+the ratio of final to base weight, bounded raking (Deville & Sarndal 1992, JASA 87:376,
+section 3): the weights closest to the base weights in the raking distance among those that
+meet the margins within the cap, found by Newton's method on the problem's convex dual (the
+same solution as R survey's ``calibrate(calfun = "raking", bounds = )``). The margins are
+checked against the ``ipfn`` package and the capped weights against R in the tests.
 """
 
 from __future__ import annotations
@@ -54,8 +56,8 @@ def rake(labels: list[np.ndarray], targets: list[dict[str, float]], base: np.nda
     ``labels[k]`` gives each respondent's label on margin k; ``targets[k]`` maps label to
     population share (summing to 1). Weights keep the base total (the number of
     respondents when ``base`` is None). With ``cap=(lo, hi)`` the ratio of final to base
-    weight is kept within [lo, hi]: weights are trimmed, then raked again, until both the
-    margins and the caps hold.
+    weight is kept within [lo, hi] by bounded raking (the weights closest to the base ones
+    in the raking distance that meet the margins within the cap: ``_bounded_raking``).
     """
     n = labels[0].size
     w0 = np.ones(n) if base is None else np.asarray(base, float)
@@ -67,6 +69,9 @@ def rake(labels: list[np.ndarray], targets: list[dict[str, float]], base: np.nda
         code = np.array([pos.get(x, -1) for x in lab])
         idx.append(code)
         tshare.append(np.array([tgt[k] for k in keys]))
+    if cap is not None:
+        w, it, err = _bounded_raking(idx, tshare, w0, cap, tol, max_iter)
+        return RakeResult(w, it, err, err < tol, cap, {})
     w = w0.copy()
     it = 0
     err = np.inf
@@ -74,13 +79,74 @@ def rake(labels: list[np.ndarray], targets: list[dict[str, float]], base: np.nda
         for code, share in zip(idx, tshare):
             current = np.bincount(code, weights=w, minlength=share.size)
             w = w * (share * total / current)[code]
-        if cap is not None:
-            w = np.clip(w, cap[0] * w0, cap[1] * w0)
-        err = max(float(np.abs(np.bincount(c, weights=w, minlength=s.size) / w.sum() - s).max())
-                  for c, s in zip(idx, tshare))
+        err = _margin_error(idx, tshare, w)
         if err < tol:
             break
     return RakeResult(w * total / w.sum(), it, err, err < tol, cap, {})
+
+
+def _margin_error(idx: list[np.ndarray], tshare: list[np.ndarray], w: np.ndarray) -> float:
+    """The largest distance between a margin's weighted share and its target."""
+    return max(float(np.abs(np.bincount(c, weights=w, minlength=s.size) / w.sum() - s).max())
+               for c, s in zip(idx, tshare))
+
+
+def _bounded_raking(idx: list[np.ndarray], tshare: list[np.ndarray], w0: np.ndarray,
+                    cap: tuple[float, float], tol: float, max_iter: int) -> tuple[np.ndarray, int, float]:
+    """Weights ``w0 * g`` minimising the raking distance sum w0 (g log g - g + 1) subject to
+    the margins' totals and ``cap[0] <= g <= cap[1]`` (Deville & Sarndal 1992, section 3).
+
+    The solution is g = clip(exp(x'lambda), lo, hi), x a respondent's margin indicators. The
+    dual, D(lambda) = sum w0 psi(x'lambda) - lambda'T with psi the conjugate of the bounded
+    distance (psi' = clip(exp(u), lo, hi)), is convex: Newton steps (a pseudo-inverse, since
+    the margins share their total) with backtracking on D reach its minimum when the cap admits
+    a solution; otherwise D falls without bound and the rounds run out (not converged).
+    Respondent-level work is by bincount over each margin's codes (no dense indicator matrix).
+    """
+    lo, hi = cap
+    total = w0.sum()
+    sizes = [s.size for s in tshare]
+    offsets = np.cumsum([0] + sizes[:-1])
+    target = np.concatenate([s * total for s in tshare])
+    lam = np.zeros(int(sum(sizes)))
+
+    def state(lam):
+        u = sum(lam[o + c] for o, c in zip(offsets, idx))
+        g = np.clip(np.exp(np.minimum(u, 700.0)), lo, hi)
+        psi = u * g - g * np.log(g) + g - 1.0  # the conjugate at u (g the clipped exponential)
+        return u, g, float(w0 @ psi - lam @ target)
+
+    def margins(weights):
+        return np.concatenate([np.bincount(c, weights=weights, minlength=m) for c, m in zip(idx, sizes)])
+
+    u, g, dual = state(lam)
+    err = np.inf
+    for it in range(1, max_iter + 1):
+        grad = margins(w0 * g) - target
+        inside = w0 * g * ((u > np.log(lo)) & (u < np.log(hi)))
+        hess = np.empty((lam.size, lam.size))
+        for a, (oa, ca, ma) in enumerate(zip(offsets, idx, sizes)):
+            for b, (ob, cb, mb) in enumerate(zip(offsets, idx, sizes)):
+                if b < a:
+                    continue
+                block = np.bincount(ca * mb + cb, weights=inside, minlength=ma * mb).reshape(ma, mb)
+                hess[oa:oa + ma, ob:ob + mb] = block
+                hess[ob:ob + mb, oa:oa + ma] = block.T
+        # a small ridge: a label whose respondents are all at a bound has no curvature, and
+        # the margins' shared total leaves one flat direction per extra margin (no gradient there)
+        step = -np.linalg.solve(hess + 1e-9 * total * np.eye(lam.size), grad)
+        t = 1.0
+        slack = 1e-12 * (abs(dual) + total)  # near the solution the dual is flat to rounding
+        while t > 1e-10:  # Armijo backtracking on the dual
+            u_new, g_new, dual_new = state(lam + t * step)
+            if dual_new <= dual + 1e-4 * t * float(grad @ step) + slack:
+                break
+            t /= 2
+        lam, u, g, dual = lam + t * step, u_new, g_new, dual_new
+        err = _margin_error(idx, tshare, w0 * g)
+        if err < tol or t <= 1e-10:
+            break
+    return w0 * g, it, err
 
 
 def rake_table(book: Codebook, table: pd.DataFrame, cap: tuple[float, float] | None = None,
