@@ -6,7 +6,8 @@ two-stage ``apiclus2`` (first-stage variance, as R computes it without populatio
 tests/r/api_reference.R exports the samples and R's values; each test builds tracker studies
 from the same files. Where R is not installed the tests are skipped, except under CI
 (CI=true), where `.ci/run` installs it and a missing R is a failure. Published values from
-the package's own test outputs are checked without R in tests/test_design_variance.py.
+the package's own test outputs are checked without R in tests/test_published.py, on copies
+of two samples (tests/data/api) that a test here ties to R's own.
 """
 
 from __future__ import annotations
@@ -215,15 +216,13 @@ def with_fpc(reference, tmp_path_factory):
     return pd.read_csv(data_dir / "fpc_reference.csv"), studies
 
 
-def test_the_finite_population_correction_gives_the_published_values(with_fpc):
-    """R survey's tests/api.Rout.save: apistrat with fpc, mean api00 662.29, SE 9.4089; Lumley
-    (2010, *Complex Surveys*, section 3.4 / the package's paired example): apiclus1 with fpc,
-    api00 - api99 = 37.191, SE 3.0852 (published to the digits shown)."""
-    _, studies = with_fpc
-    total = _cells(studies["apistrat"], "api_mean").loc[("total", "Total")]
-    assert round(total["value"], 2) == 662.29 and round(total["se"], 4) == 9.4089
-    ch = studies["apiclus1"].changes(wave="2000", against="1999", metrics=["api_mean"], by=[]).table.iloc[0]
-    assert round(ch["change"], 3) == 37.191 and round(ch["se"], 4) == 3.0852
+def test_the_bundled_samples_are_r_s_own(reference):
+    """tests/data/api (what tests/test_published.py checks the published values on without R)
+    equals R's data(api) as this run exported it."""
+    data_dir = _data_dir(reference)
+    for name in ("apistrat", "apiclus1"):
+        pd.testing.assert_frame_equal(pd.read_csv(HERE / "data" / "api" / f"{name}.csv"),
+                                      pd.read_csv(data_dir / f"{name}.csv"), check_exact=True)
 
 
 @pytest.mark.parametrize("design", list(FPC))

@@ -158,3 +158,26 @@ def test_without_the_extra_the_message_says_how_to_get_it(clustered_study, monke
     out = CliRunner().invoke(main, ["prepare", str(clustered_study.root), "--engine", "duckdb", "--rebuild"])
     assert out.exit_code == 1 and "Traceback" not in out.output
     assert "pip install 'wavetell[scale]'" in out.output
+
+
+@pytest.mark.parametrize("name, design", [
+    ("apistrat", "strata: stype\npopulation: {1: 4421, 2: 755, 3: 1018}\n"),
+    ("apiclus1", "clusters: dnum\npopulation: 757\n"),
+    ("apiclus1", "clusters: dnum\npopulation: 0.02\n"),
+])
+def test_duckdb_applies_the_finite_population_correction_alike(tmp_path, name, design):
+    """With the codebook's population (counts per stratum, one count, a sampling fraction)
+    DuckDB gives the in-process statistics, themselves equal to R's svydesign(fpc =) in
+    tests/test_against_r.py and to the published values in tests/test_published.py."""
+    from tests.test_published import _study
+    from tracker.scale import duckdb_cells
+
+    study = _study(tmp_path, name, design, years=("2000",))
+    book = study.codebook
+    keep = bool(book.clusters)
+    mine = cell_arrays(book, study.load("2000"), list(book.metrics.values()), list(book.groups), keep_psu=keep)
+    other = duckdb_cells(book, study.stored_path("2000"), keep_psu=keep)
+    same(mine, other)
+    plain = cell_arrays(book.__class__(**{**book.__dict__, "population": None}), study.load("2000"),
+                        list(book.metrics.values()), list(book.groups))
+    assert (other.stats["variance"][0] < plain.stats["variance"][0]).all()  # the correction applied

@@ -23,7 +23,7 @@ import pandas as pd
 
 from .codebook import Codebook
 from .errors import TrackerError
-from .estimates import SEP, CellArrays, clustered_from_totals, unclustered_from_sums
+from .estimates import SEP, CellArrays, clustered_from_totals, fpc_factor, unclustered_from_sums
 from .kinds import KINDS
 from .methods.variance import SingleClusterError
 
@@ -253,9 +253,12 @@ def _finish(book, metrics, gnames, lnames, got, pairs, n_levels, strata, cluster
     n_strata = int(unit_stratum.max()) + 1 if U else 1
     rule = book.single_cluster_rule
     psu = psu_names = None
+    stratum_labels = pd.unique(s_lab[first]) if U else np.zeros(0, dtype=str)  # in unit_stratum's order
     try:
         if clusters:
-            var, n_psu, df, totals = clustered_from_totals(wey, we, cnt > 0, value, sw, unit_stratum, n_strata, rule)
+            fpc = _fpc(book, stratum_labels, np.bincount(unit_stratum, minlength=n_strata))
+            var, n_psu, df, totals = clustered_from_totals(wey, we, cnt > 0, value, sw, unit_stratum, n_strata, rule,
+                                                           fpc)
             if keep_psu:
                 psu, psu_names = totals, np.asarray(unit_names, dtype=str)
         else:
@@ -265,7 +268,8 @@ def _finish(book, metrics, gnames, lnames, got, pairs, n_levels, strata, cluster
             held = cnt > 0  # strata x levels x metrics
             w2ey, w2ey2 = cube("w2ey"), cube("w2ey2")
             var, n_psu, df = unclustered_from_sums(wey, we, w2ey2, w2ey, w2e, held, n, value, sw,
-                                                   n_h.astype(np.int64), rule)
+                                                   n_h.astype(np.int64), rule,
+                                                   _fpc(book, np.asarray(unit_names, dtype=str), n_h))
     except SingleClusterError as exc:
         where = np.asarray(unit_names if not clusters else pd.unique(s_lab[first]), dtype=str)
         raise TrackerError(f"strata {', '.join(map(str, where[exc.strata][:10]))} hold a single cluster, and the "
@@ -277,6 +281,20 @@ def _finish(book, metrics, gnames, lnames, got, pairs, n_levels, strata, cluster
              "unit_variance": unit_var, "n_psu": np.asarray(n_psu, float), "design_df": np.asarray(df, float),
              "base_cap": cap}
     return CellArrays(tuple(m.name for m in metrics), ("total", *gnames), ("Total", *lnames), stats, psu, psu_names)
+
+
+def _fpc(book: Codebook, stratum_labels: np.ndarray, n_h: np.ndarray) -> np.ndarray | None:
+    """Each stratum's 1 - f_h from the codebook's population (as tracker.estimates.population_of
+    and fpc_factor for the rows in memory), or None when it declares none."""
+    if book.population is None:
+        return None
+    from .codebook import stratum_key
+
+    keys = [stratum_key(x) for x in stratum_labels]
+    missing = [k for k in keys if k not in book.population]
+    if missing:
+        raise TrackerError(f"codebook: population: no number for stratum {', '.join(missing[:5])}")
+    return fpc_factor(np.array([book.population[k] for k in keys], float), np.arange(len(keys)), n_h)
 
 
 def id_hashes(book: Codebook, path: str | Path, batch: int = 1_000_000) -> np.ndarray | None:
@@ -336,9 +354,6 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
         raise TrackerError(f"--engine {engine}: use one of {', '.join(ENGINES)}")
     if engine == "duckdb":
         _need("duckdb")
-        if study.codebook.population is not None:
-            raise TrackerError("--engine duckdb does not apply the finite population correction (the codebook's "
-                               "population) yet; use --engine pandas, which does")
         if study.codebook.raked_to or any((w.get("weighting") or {}).get("kind") == "raked"
                                           for w in study.wave_entries):
             raise TrackerError("--engine duckdb does not compute the variance of raked weights yet; use --engine "

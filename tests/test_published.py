@@ -1,0 +1,102 @@
+"""Published values of R's survey package, checked without R on the samples it ships.
+
+The samples (tests/data/api, exported from R's ``data(api)``; its README says how) are the
+input; every check value is published, to the digits shown:
+- R survey's ``tests/api.Rout.save``: apistrat with the finite population correction, mean
+  api00 662.29 with SE 9.4089;
+- Lumley (2010), *Complex Surveys*, the paired example of the package: apiclus1 with the
+  finite population correction, api00 - api99 = 37.191 with SE 3.0852;
+- R survey's ``tests/rakecheck.Rout.save``: apiclus1 raked to school type (4421 / 755 / 1018)
+  and the school-wide target (5122 of 6194), with the finite population correction, mean
+  api00 641.23 with SE 23.704.
+tests/test_against_r.py compares every other cell with R itself.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from tracker import Study
+
+DATA = Path(__file__).parent / "data" / "api"
+BOOK = """title: California schools ({name}, R survey package data)
+id: snum
+weight: pw
+{design}variables:
+  stype:
+    label: School type
+    type: category
+    codes: {{1: E, 2: H, 3: M}}
+  sch_wide:
+    label: Met the school-wide growth target
+    type: category
+    codes: {{1: "Yes", 2: "No"}}
+  api:
+    label: Academic performance index
+    type: number
+    range: [0, 1000]
+groups:
+  stype: {{variable: stype}}
+  sch_wide: {{variable: sch_wide}}
+metrics:
+  api_mean:
+    label: Mean API
+    variable: api
+    mean: true
+"""
+
+
+def _study(tmp_path: Path, name: str, design: str, years=("1999", "2000"), rake: bool = False) -> Study:
+    data = pd.read_csv(DATA / f"{name}.csv")
+    (tmp_path / "book.yaml").write_text(BOOK.format(name=name, design=design))
+    study = Study.create(tmp_path / name, tmp_path / "book.yaml")
+    for year in years:
+        path = tmp_path / f"{name}-{year}.csv"
+        data.drop(columns=["api00", "api99", "fpc", "awards"]).assign(api=data[f"api{year[2:]}"]).to_csv(path, index=False)
+        study.add(path, year, f"{year}-06-30", rake=rake)
+    return study
+
+
+def _total(study: Study, wave: str = "2000") -> pd.Series:
+    est = study.estimates(metrics=["api_mean"], waves=[wave])
+    return est.set_index(["group", "subgroup"]).loc[("total", "Total")]
+
+
+def test_stratified_sample_with_fpc(tmp_path):
+    """api.Rout.save: svydesign(id = ~1, strata = ~stype, fpc = ~fpc), svymean(~api00)."""
+    study = _study(tmp_path, "apistrat", "strata: stype\npopulation: {1: 4421, 2: 755, 3: 1018}\n", years=("2000",))
+    total = _total(study)
+    assert round(total["value"], 2) == 662.29
+    assert round(total["se"], 4) == 9.4089
+
+
+def test_paired_change_of_the_same_schools_with_fpc(tmp_path):
+    """Lumley (2010), the paired example: svycontrast(svymean(~api00 + api99), c(1, -1)) on
+    apiclus1 with fpc: 37.191, SE 3.0852 (the same schools and districts in both waves)."""
+    study = _study(tmp_path, "apiclus1",
+                   "clusters: dnum\nwaves_share_clusters: true\npanel: true\npopulation: 757\n")
+    row = study.changes(wave="2000", against="1999", metrics=["api_mean"], by=[]).table.iloc[0]
+    assert round(row["change"], 3) == 37.191
+    assert round(row["se"], 4) == 3.0852
+
+
+@pytest.mark.parametrize("fpc", [True, False], ids=["fpc", "no fpc"])
+def test_raked_cluster_sample(tmp_path, fpc):
+    """rakecheck.Rout.save: rake(dclus1, list(~stype, ~sch.wide), ...), svymean(~api00):
+    641.23 with SE 23.704 (fpc); without the fpc, rakecheck.R's design gives 23.942 (the
+    published output prints only the fpc design, so the second value is R's, not published)."""
+    targets = ("targets:\n  stype: {E: %r, H: %r, M: %r}\n  sch_wide: {'Yes': %r, 'No': %r}\n"
+               "rake: {tolerance: 1.0e-12}\n") % (4421 / 6194, 755 / 6194, 1018 / 6194, 5122 / 6194, 1072 / 6194)
+    design = "clusters: dnum\n" + ("population: 757\n" if fpc else "")
+    book = BOOK.format(name="apiclus1", design=design).replace("metrics:", targets + "metrics:")
+    data = pd.read_csv(DATA / "apiclus1.csv")
+    (tmp_path / "book.yaml").write_text(book)
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    data.drop(columns=["api99", "fpc", "awards"]).rename(columns={"api00": "api"}).to_csv(tmp_path / "w.csv", index=False)
+    study.add(tmp_path / "w.csv", "2000", "2000-06-30", rake=True)
+    total = _total(study)
+    assert round(total["value"], 2) == 641.23
+    assert round(total["se"], 3) == (23.704 if fpc else 23.942)
