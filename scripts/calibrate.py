@@ -129,7 +129,12 @@ def render(report: Report) -> str:
         "the change uses their covariance on the paired design's degrees of freedom (10 clusters minus 5 strata). "
         "New clusters under reused labels (interview days, say) have independent effects: not declared, the waves "
         "are independent; wrongly declared, the covariance of unrelated clusters is used (reported, not promised: "
-        "the reason the codebook must say so)."))]
+        "the reason the codebook must say so). Every cell here has 5 degrees of freedom, and the reliability rule "
+        "refuses a share whose interval is 30 points wide or more: with so few clusters that is mostly a wave "
+        "whose variance estimate came out large, so the comparisons left to test lean to small variances, and "
+        "among them the test rejects more often than 5 % (reported). What a reader meets is the rate of "
+        "no-change comparisons called a move, a refused comparison never being one: that is the promise. A "
+        "mean has no width rule and is tested in nearly every pair."))]
     sections += [(RAKED_DESIGN, (
         f"{RAKED_REPS[report.tier]:,} waves of 1,000 respondents drawn with region a at half its population "
         "share (base weights correct it) and raked to the population margins of region (0.5 / 0.3 / 0.2) and "
