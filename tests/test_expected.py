@@ -32,7 +32,7 @@ def test_with_no_between_wave_variation_the_range_is_the_closed_form():
     y = np.array([0.50, 0.51, 0.49, 0.50, 0.51, 0.50, 0.49, 0.50])
     se = np.array([0.02, 0.025, 0.02, 0.03, 0.02, 0.02, 0.025, 0.02])
     hist = series_rows(y, se)
-    pats = pd.DataFrame({"metric": ["m"], "group": ["total"], "subgroup": ["Total"], "pattern": ["steady"],
+    pats = pd.DataFrame({"metric": ["m"], "group": ["total"], "subgroup": ["Total"], "pattern": ["no pattern found"],
                          "shift_wave": [None], "blip_wave": [None]})
     v_new = pd.Series([0.02**2], index=pd.MultiIndex.from_tuples([("m", "total", "Total")]))
     got = predict(hist, pats, "2022-05-15", v_new).iloc[0]

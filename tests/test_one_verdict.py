@@ -14,6 +14,7 @@ import pytest
 from click.testing import CliRunner
 
 from tracker import Study
+from tracker.changes import VERDICTS
 from tracker.charts import trend_frame
 from tracker.cli import main
 
@@ -31,9 +32,15 @@ def _agree(study: Study, wave: str, tmp_path):
     doc = json.loads(out.read_text())
     comps = pd.DataFrame(doc["comparisons"]).set_index(KEY)
     for field in ("metric", "group", "subgroup", "wave_from", "wave_to", "change", "change_low", "change_high",
-                  "p_adjusted", "significant", "min_detectable_change", "verdict"):
+                  "adjusted_low", "adjusted_high", "adjusted_level", "p_adjusted", "significant",
+                  "min_detectable_change", "verdict"):
         assert field in doc["comparisons"][0]
     assert doc["family_size"] == int(comps["p_adjusted"].notna().sum())
+    assert set(comps["verdict"]) <= set(VERDICTS) and set(doc["verdicts"]) == set(VERDICTS)
+    # the adjusted interval agrees with the verdict: zero outside it exactly when significant
+    tested = comps[comps["p_adjusted"].notna()]
+    outside = (tested["adjusted_low"] > 0) | (tested["adjusted_high"] < 0)
+    assert (outside.to_numpy() == tested["significant"].astype(bool).to_numpy()).all()
 
     # the table command, asked for everything, in the same family
     result = runner.invoke(main, ["changes", root, "--wave", wave, "--all", "--format", "csv"])
@@ -83,8 +90,9 @@ def _agree(study: Study, wave: str, tmp_path):
     mostly_mix = moved[moved["mostly_make_up"].astype(bool)]
     assert metrics_of("headline") == sorted(set(moved.index.get_level_values(0)) - set(mostly_mix.index.get_level_values(0)))
     assert metrics_of("mix_moves") == sorted(mostly_mix.index.get_level_values(0))
-    assert metrics_of("steady") == sorted(totals.index.get_level_values(0)[totals["verdict"] == "steady"])
-    assert metrics_of("unclear") == sorted(totals.index.get_level_values(0)[totals["verdict"] == "unclear"])
+    assert metrics_of("held") == sorted(totals.index.get_level_values(0)[totals["verdict"] == "held"])
+    assert metrics_of("not_significant") == sorted(
+        totals.index.get_level_values(0)[totals["verdict"] == "not significant"])
     for item in sections["subgroup_moves"]:
         row = comps[(comps.index.get_level_values(0) == item["metric"])
                     & (comps.index.get_level_values(2) == item["subgroup"])].iloc[0]
@@ -108,7 +116,7 @@ def _agree(study: Study, wave: str, tmp_path):
 def test_the_demo_gives_one_verdict_per_move(demo_study, wave, tmp_path):
     doc = _agree(demo_study, wave, tmp_path)
     verdicts = {c["verdict"] for c in doc["comparisons"]}
-    assert {"steady", "unclear"} <= verdicts  # both kinds of 'did not move' occur
+    assert {"held", "not significant"} <= verdicts  # the demo declares its margins: both occur
     if wave == "2026-Q1":
         # the planted make-up shift moves fares_fair; it is not a headline
         assert [i["metric"] for i in doc["sections"]["mix_moves"]] == ["fares_fair"]
@@ -125,24 +133,36 @@ def test_a_generated_study_gives_one_verdict_per_move(tmp_path):
     assert any(c["verdict"] in ("rise", "fall") for c in doc["comparisons"])
 
 
-def test_steady_is_a_claim_and_smallest_change_moves_the_line(tmp_path):
-    # a tight smallest change that matters turns 'steady' into 'unclear'; never the reverse
+def test_held_is_said_only_against_a_declared_margin(tmp_path):
+    """'Held' is a claim (common practice, no source: an equivalence reading needs a margin
+    chosen in advance): with no smallest change declared it is never said, whatever the
+    interval; with one, only where the whole adjusted interval lies within it."""
     rng = np.random.default_rng(32)
     waves = [clustered_wave(rng, n_strata=6, clusters=4, size=(25, 35), prefix=f"w{i}-") for i in range(2)]
     loose, _ = make(tmp_path, waves, extra="waves_share_clusters: false", name="loose")
-    book = (tmp_path / "loose.yaml").read_text().replace("    mean: true\n", "    mean: true\n    smallest_change: 0.01\n")
-    (tmp_path / "tight.yaml").write_text(book)
-    tight = Study.create(tmp_path / "tight", tmp_path / "tight.yaml")
-    for i, frame in enumerate(waves):
-        frame.to_csv(tmp_path / f"t{i}.csv", index=False)
-        tight.add(tmp_path / f"t{i}.csv", f"W{i + 1}", f"2025-{i + 1:02d}-15")
-    a = loose.changes(by=[]).table.set_index("metric").loc["avg"]
-    b = tight.changes(by=[]).table.set_index("metric").loc["avg"]
-    assert a["change"] == b["change"] and a["p_adjusted"] == b["p_adjusted"]
-    if a["verdict"] == "steady":
-        assert b["verdict"] == "unclear"  # the interval cannot lie within 0.01 either way
+    text = (tmp_path / "loose.yaml").read_text()
+    studies = {}
+    for name, book in (("wide", text + "smallest_change: {mean: 5, share: 60}\n"),
+                       ("tight", text.replace("    mean: true\n", "    mean: true\n    smallest_change: 0.01\n"))):
+        (tmp_path / f"{name}.yaml").write_text(book)
+        studies[name] = Study.create(tmp_path / name, tmp_path / f"{name}.yaml")
+        for i, frame in enumerate(waves):
+            frame.to_csv(tmp_path / f"{name}{i}.csv", index=False)
+            studies[name].add(tmp_path / f"{name}{i}.csv", f"W{i + 1}", f"2025-{i + 1:02d}-15")
+    none = loose.changes().table
+    assert "held" not in set(none["verdict"]) and "not significant" in set(none["verdict"])
+    wide = studies["wide"].changes().table
+    assert (wide["p_adjusted"].to_numpy() == none["p_adjusted"].to_numpy()).all()
+    quiet = wide[wide["verdict"].isin(["held", "not significant"])]
+    inside = (quiet["adjusted_low"] >= -quiet["metric"].map(studies["wide"].matters())) & (
+        quiet["adjusted_high"] <= quiet["metric"].map(studies["wide"].matters()))
+    assert ((quiet["verdict"] == "held") == inside).all() and inside.any()
+    tight = studies["tight"].changes(by=[]).table.set_index("metric").loc["avg"]
+    assert tight["verdict"] != "held"  # an interval cannot lie within 0.01 either way
     with pytest.raises(Exception, match="smallest_change"):
-        Study.create(tmp_path / "bad", _write(tmp_path / "bad.yaml", book.replace("0.01", "-1")))
+        Study.create(tmp_path / "bad", _write(tmp_path / "bad.yaml", text + "smallest_change: {mean: -1}\n"))
+    with pytest.raises(Exception, match="smallest_change.ratio"):
+        Study.create(tmp_path / "bad2", _write(tmp_path / "bad2.yaml", text + "smallest_change: {ratio: 1}\n"))
 
 
 def _write(path, text):

@@ -21,7 +21,8 @@ __all__ = ["COMPARISON_FIELDS", "PATTERN_FIELDS", "Analysis", "analyse"]
 #: The fields of each comparison in the machine-readable brief (stable names).
 COMPARISON_FIELDS = [
     "metric", "metric_label", "kind", "group", "subgroup", "wave_from", "wave_to", "value_from", "value_to",
-    "change", "change_low", "change_high", "base_from", "base_to", "p_raw", "p_adjusted", "significant",
+    "change", "change_low", "change_high", "adjusted_low", "adjusted_high", "adjusted_level", "base_from",
+    "base_to", "p_raw", "p_adjusted", "significant",
     "min_detectable_change", "verdict", "flags", "mostly_make_up",
 ]
 #: The fields of each series' pattern.
@@ -137,8 +138,10 @@ def _mix_notes(study, result, comp, metrics: list[str]) -> dict[str, tuple[str, 
                 continue
             k = KINDS[r.kind]
             verdict = "still significant" if r.standardised_significant else "not significant"
+            g = study.codebook.groups[group]
+            var = study.codebook.variables.get(g.variable)
             out[r.metric] = (f"Most of this change ({r.mix_share_of_change:.0%}) comes from the shift in the sample's "
-                             f"mix on {group}; within its groups the change is {k.fmt_change(r.within_part)}, and "
+                             f"mix on {var.label if var is not None else group}; within its groups the change is {k.fmt_change(r.within_part)}, and "
                              f"at the earlier wave's mix the change is {k.fmt_change(r.standardised_change, True)} "
                              f"({verdict}).", not r.standardised_significant)
     return out

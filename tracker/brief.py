@@ -21,6 +21,7 @@ from .formatting import safe_cell
 from .kinds import KINDS
 from .methods.bases import kish_base
 from .methods.tests import ADJUST_METHODS
+from .wording import count, fixed, p_text, plural
 
 CAUTIONS = (
     "Significance is not importance: a significant change can be too small to matter, and a change "
@@ -50,18 +51,21 @@ class Brief:
     against: str
     headline: tuple[Item, ...]
     subgroup_moves: tuple[Item, ...]
-    steady: tuple[Item, ...]
+    held: tuple[Item, ...]
     trends: tuple[Item, ...]
     sample_notes: tuple[Item, ...]
     method: tuple[str, ...]
     mix_moves: tuple[Item, ...] = ()
-    unclear: tuple[Item, ...] = ()
+    not_significant: tuple[Item, ...] = ()
     surprises: tuple[Item, ...] = ()
     data: dict = field(default_factory=dict)  # the analysis as plain data (Analysis.to_dict)
     cautions: tuple[str, ...] = CAUTIONS
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     charts: tuple[tuple[str, dict], ...] = ()
-    compact_charts: tuple[tuple[str, dict], ...] = ()  # small charts of the series that held, drawn in a grid
+    compact_charts: tuple[tuple[str, dict], ...] = ()  # small charts of the series that did not move, in a grid
+    intro: tuple[str, ...] = ()  # what the intervals and the words mean, in plain sentences
+    first_wave: bool = False  # a study's first wave: levels only, nothing to compare with
+    levels: tuple[Item, ...] = ()  # the first wave's levels
 
 
 # -- wording --------------------------------------------------------------------------------
@@ -78,65 +82,81 @@ def _num(kind: str, d: float) -> str:
     return KINDS[kind].fmt_number(d)
 
 
-def change_sentence(row, level: float) -> str:
-    """'Punctuality good or very good fell from 75% to 62%, down 13.2 points (95% interval 9.2 to 17.1); ...'"""
+def _who(row) -> str:
+    return row.metric_label if row.group == "total" else f"{row.metric_label}, {row.subgroup}"
+
+
+def _was(row) -> str:
+    """'61.0% (was 62.0%)'"""
+    return f"{fmt_value(row.kind, row.value_to)} (was {fmt_value(row.kind, row.value_from)})"
+
+
+def _printed(row) -> float:
+    """The change as the two printed values show it (tracker.wording.shown_change)."""
+    return KINDS[row.kind].shown_change(row.value_from, row.value_to)
+
+
+def change_sentence(row) -> str:
+    """'Punctuality rated good fell from 75.0% to 61.8%, down 13.2 points (adjusted interval 8.1
+    to 18.3 points; bases 1,020 and 998).' The interval is the one adjusted with the verdict."""
     kind = row.kind
     down = row.change < 0
-    lo, hi = (-row.change_high, -row.change_low) if down else (row.change_low, row.change_high)
-    who = row.metric_label if row.group == "total" else f"{row.metric_label}, {row.subgroup}"
+    lo, hi = (-row.adjusted_high, -row.adjusted_low) if down else (row.adjusted_low, row.adjusted_high)
     verb, word = ("fell", "down") if down else ("rose", "up")
-    return (f"{who} {verb} from {fmt_value(kind, row.value_from)} to {fmt_value(kind, row.value_to)}, "
-            f"{word} {fmt_size(kind, row.change)} ({level:.0%} interval {_num(kind, lo)} to {_num(kind, hi)}); "
-            f"base {int(row.base_from):,} and {int(row.base_to):,}.")
+    return (f"{_who(row)} {verb} from {fmt_value(kind, row.value_from)} to {fmt_value(kind, row.value_to)}, "
+            f"{word} {fmt_size(kind, _printed(row))} (adjusted interval {_num(kind, lo)} to "
+            f"{fmt_size(kind, hi)}; bases {int(row.base_from):,} and {int(row.base_to):,}).")
 
 
-def steady_sentence(row, limit: float, matters_given: bool) -> str:
-    """'Information good: 61% (was 62%); held steady: the change ... lies within 3.9 points either way'."""
+def held_sentence(row, limit: float) -> str:
+    """'Information rated good: 61.0% (was 62.0%); held within the margin: the adjusted interval of
+    the change (-2.1 to +1.5 points) lies within 3.0 points either way, the smallest change that
+    matters for this measure.'"""
     kind = row.kind
-    what = ("the smallest change that matters for this measure" if matters_given
-            else "the change this comparison could detect with 80% power")
-    return (f"{row.metric_label}: {fmt_value(kind, row.value_to)} (was {fmt_value(kind, row.value_from)}); held "
-            f"steady: the whole interval of the change ({_span(kind, row.change_low, row.change_high)}) "
-            f"lies within {fmt_size(kind, limit)} either way, {what}.")
+    return (f"{_who(row)}: {_was(row)}; held within the margin: the adjusted interval of the change "
+            f"({_span(kind, row.adjusted_low, row.adjusted_high)}) lies within {fmt_size(kind, limit)} either way, "
+            f"the smallest change that matters for this measure.")
 
 
-def unclear_sentence(row, family: int) -> str:
-    """A move that is not significant but not ruled out either: never 'held steady'."""
+def not_significant_sentence(row) -> str:
+    """A change that is not significant: its size, its adjusted interval, and what could have
+    been detected. Never a claim that the measure held."""
     kind = row.kind
-    who = row.metric_label if row.group == "total" else f"{row.metric_label}, {row.subgroup}"
-    return (f"{who}: {fmt_value(kind, row.value_to)} (was {fmt_value(kind, row.value_from)}), a move of "
-            f"{_signed(kind, row.change)} (interval {_span(kind, row.change_low, row.change_high)}). Not beyond the noise of the {family} comparisons made, but a change "
-            f"of this size is not ruled out either; this comparison could detect about "
-            f"{fmt_size(kind, row.min_detectable_change)}. Watch the next wave before reading it either way.")
+    return (f"{_who(row)}: {_was(row)}, a change of {_signed(kind, _printed(row))}; not significant (adjusted "
+            f"interval {_span(kind, row.adjusted_low, row.adjusted_high)}). This comparison could have detected "
+            f"a change of about {fmt_size(kind, row.min_detectable_change)}.")
 
 
 def not_tested_sentence(row) -> str:
-    kind = row.kind
-    return (f"{row.metric_label}: {fmt_value(kind, row.value_to)} (was {fmt_value(kind, row.value_from)}); "
-            f"not tested: {row.flags}.")
+    return f"{row.metric_label}: {_was(row)}; not tested: {row.flags}."
+
+
+def _per_year(kind: str, x: float) -> str:
+    """A slope in the kind's shown units: '+1.2 points' or '+0.05'."""
+    k = KINDS[kind]
+    return fixed(x * k.scale, k.decimals, signed=True) + (f" {k.change_unit}" if k.change_unit else "")
 
 
 def trend_sentence(row, level: float) -> str:
+    """One series' pattern in words (tracker.trends.PATTERNS)."""
     kind = row.kind
-    who = row.metric_label if row.group == "total" else f"{row.metric_label}, {row.subgroup}"
+    who = _who(row)
+    span = f"over {row.waves} waves ({row.first_wave} to {row.last_wave})"
     if str(row.pattern).startswith("shifted"):
         return (f"{who} {row.pattern} at {row.shift_wave}: {fmt_value(kind, row.level_before)} "
                 f"({fmt_value(kind, row.level_before_low)} to {fmt_value(kind, row.level_before_high)}) before, "
                 f"{fmt_value(kind, row.level_after)} ({fmt_value(kind, row.level_after_low)} to "
                 f"{fmt_value(kind, row.level_after_high)}) since; the new level has held.")
     if row.pattern in ("rising", "falling"):
-        unit = "" if kind == "mean" else " points"
-        f = 1 if kind == "mean" else 100
-        return (f"{who} is {row.pattern}: {row.slope_per_year * f:+.{2 if kind == 'mean' else 1}f}{unit} a year "
-                f"({level:.0%} interval {row.slope_low * f:+.{2 if kind == 'mean' else 1}f} to "
-                f"{row.slope_high * f:+.{2 if kind == 'mean' else 1}f}) over {row.waves} waves "
-                f"({row.first_wave} to {row.last_wave}).")
+        return (f"{who} is {row.pattern}: {_per_year(kind, row.slope_per_year)} a year ({level:.0%} interval "
+                f"{_per_year(kind, row.slope_low)} to {_per_year(kind, row.slope_high)}) {span}.")
     if row.pattern in ("moved up", "moved down"):
-        unit = "" if kind == "mean" else " points"
-        f = 1 if kind == "mean" else 100
-        return (f"{who} {row.pattern} over {row.waves} waves ({row.first_wave} to {row.last_wave}): "
-                f"{row.slope_per_year * f:+.{2 if kind == 'mean' else 1}f}{unit} a year on a straight-line reading, "
-                f"but the waves cannot tell a steady trend from a one-off step; brief the move, not its shape.")
+        return (f"{who} {row.pattern} {span}: {_per_year(kind, row.slope_per_year)} a year on a straight-line "
+                f"reading, but the waves cannot tell a gradual trend from a one-off step; brief the move, not its "
+                f"shape.")
+    if row.pattern == "flat":
+        return (f"{who} is flat {span}: its slope, {_per_year(kind, row.slope_per_year)} a year, stays within the "
+                f"smallest change that matters per year.")
     if row.pattern == "one-wave blip":
         side = "below" if row.blip_size < 0 else "above"
         return (f"{who}: {row.blip_wave} was a one-wave blip ({fmt_size(kind, row.blip_size)} {side} the rest "
@@ -149,9 +169,15 @@ def trend_sentence(row, level: float) -> str:
 
 def build_brief(study, wave: str | None = None, against: str = "previous", adjust: str = "bh",
                 level: float = 0.95, charts: bool = True) -> Brief:
-    """Everything the brief says, read from the wave's one analysis (Study.analysis)."""
+    """Everything the brief says, read from the wave's one analysis (Study.analysis); for a
+    study's first wave, the levels alone (:func:`first_wave_brief`)."""
     from .progress import step
 
+    labels = study.labels
+    if not labels:
+        raise TrackerError(f"{study.root}: the study holds no waves yet; add one first")
+    if (wave or labels[-1]) == labels[0]:
+        return first_wave_brief(study, labels[0], level, charts)
     step("briefing", 0, 2, "estimates, changes and trends")
     analysis = study.analysis(wave=wave, against=against, adjust=adjust, level=level)
     result = analysis.changes
@@ -162,10 +188,10 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     head = total_sig.reindex(total_sig["change"].abs().sort_values(ascending=False).index)
     mixes = analysis.mix
     by_mix = {m for m, (_, explained) in mixes.items() if explained}
-    headline = tuple(Item(change_sentence(r, level) + (" " + mixes[r.metric][0] if r.metric in mixes else ""),
+    headline = tuple(Item(change_sentence(r) + (" " + mixes[r.metric][0] if r.metric in mixes else ""),
                           "fall" if r.change < 0 else "rise", r.metric, r.subgroup)
                      for r in head.itertuples() if r.metric not in by_mix)
-    mix_moves = tuple(Item(change_sentence(r, level) + " " + mixes[r.metric][0], "note", r.metric, r.subgroup)
+    mix_moves = tuple(Item(change_sentence(r) + " " + mixes[r.metric][0], "note", r.metric, r.subgroup)
                       for r in head.itertuples() if r.metric in by_mix)
     if not headline and mix_moves:
         headline = (Item("No measure moved in total beyond what the sample's changed make-up explains (next "
@@ -173,58 +199,52 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     moved_totals = set(total_sig["metric"])
     sub = tested_sig[(tested_sig["group"] != "total") & ~tested_sig["metric"].isin(moved_totals)]
     sub = sub.reindex(sub["change"].abs().sort_values(ascending=False).index)
-    subgroup_moves = tuple(Item(change_sentence(r, level) + " The total did not move significantly.",
+    subgroup_moves = tuple(Item(change_sentence(r) + " The total did not move significantly.",
                                 "fall" if r.change < 0 else "rise", r.metric, r.subgroup) for r in sub.itertuples())
     totals = t[t["group"] == "total"]
     matters = study.matters()
-    steady = tuple(Item(steady_sentence(r, matters.get(r.metric, r.min_detectable_change), r.metric in matters),
-                        "flat", r.metric) for r in totals[totals["verdict"] == "steady"].itertuples())
+    held = tuple(Item(held_sentence(r, matters[r.metric]), "flat", r.metric)
+                 for r in totals[totals["verdict"] == "held"].itertuples())
     family = result.family_size or result.n_tests
-    unclear_rows = totals[totals["verdict"] == "unclear"]
-    unclear_rows = unclear_rows.reindex(unclear_rows["change"].abs().sort_values(ascending=False).index)
-    unclear = tuple(Item(unclear_sentence(r, family), "note", r.metric) for r in unclear_rows.itertuples())
+    quiet_rows = totals[totals["verdict"] == "not significant"]
+    quiet_rows = quiet_rows.reindex(quiet_rows["change"].abs().sort_values(ascending=False).index)
+    not_significant = tuple(Item(not_significant_sentence(r), "note", r.metric) for r in quiet_rows.itertuples())
 
     trends = analysis.trends
-    moving = trends[~trends["pattern"].isin(["steady", "too few waves"])]
+    still_words = ["no pattern found", "flat", "too few waves"]
+    moving = trends[~trends["pattern"].isin(still_words)]
     total_moving = moving[moving["group"] == "total"]
     sub_moving = moving[(moving["group"] != "total") & ~moving["metric"].isin(set(total_moving["metric"]))]
     trend_items = [Item(trend_sentence(r, level), _trend_mark(r), r.metric, r.subgroup)
                    for r in pd.concat([total_moving, sub_moving]).itertuples()]
     headline_metrics = {i.metric for i in headline}
-    still = trends[(trends["group"] == "total") & (trends["pattern"] == "steady")]
-    for r in still[still["metric"].isin(headline_metrics)].itertuples():
+    quiet = trends[(trends["group"] == "total") & trends["pattern"].isin(["no pattern found", "flat"])]
+    for r in quiet[quiet["metric"].isin(headline_metrics)].itertuples():
         trend_items.append(Item(f"{r.metric_label}: the move in {wave} is a single wave so far; before it the series "
                                 f"shows no trend or shift. A step needs later waves to confirm it, so brief it as the "
                                 f"latest wave's change, not yet as a new level.", "note", r.metric))
-    still = still[~still["metric"].isin(headline_metrics)]
-    if len(still):
-        trend_items.append(Item("Steady over the series: " + "; ".join(still["metric_label"]) + ".", "flat"))
+    quiet = quiet[~quiet["metric"].isin(headline_metrics)]
+    for r in quiet[quiet["pattern"] == "flat"].itertuples():
+        trend_items.append(Item(trend_sentence(r, level), "flat", r.metric))
+    none_found = quiet[quiet["pattern"] == "no pattern found"]
+    if len(none_found):
+        trend_items.append(Item("No trend, step or blip found over the series (which is not to say nothing moved): "
+                                + "; ".join(none_found["metric_label"]) + ".", "note"))
     short = trends[(trends["group"] == "total") & (trends["pattern"] == "too few waves")]
     for r in short.itertuples():
         trend_items.append(Item(f"{r.metric_label}: {r.note}.", "note", r.metric))
 
     sample = _sample_notes(study, analysis)
-    n_tests, n_sig = result.n_tests, result.n_significant
-    method = (
-        f"Compared: {wave} with {result.against}. {n_tests} tests (every metric in total and in every subgroup), "
-        f"{n_sig} significant at the {1 - level:g} level after {ADJUST_METHODS[adjust]} adjustment; only "
-        f"adjusted results are called significant. 'Held steady' means the whole interval of the change lies "
-        f"within the smallest change that matters (by default the change the comparison could detect); a move "
-        f"that is neither is 'not clear either way'.",
-        "Every change is tested with t on its design-based variance (Taylor linearization with the study's "
-        "weights, strata and clusters; minus the covariance of shared clusters or respondents) and the design's "
-        "degrees of freedom. Shares get Newcombe's hybrid score interval for the difference. Intervals are "
-        + f"{level:.0%}.",
-        "Minimum detectable change: the change each comparison would find with 80% power at the unadjusted level "
-        "(for shares, the larger of a rise and a fall, with the variance the changed share would have).",
-        "Trends: each series (sampling error plus the between-wave variation) is tested once for not being "
-        "steady, against a straight line, a step at any wave and a one-wave blip at any wave, with the search "
-        "accounted for; those tests are adjusted together across every series, and a series that moved gets "
-        "the shape that fits it best ('moved up/down' when its waves cannot tell a trend from a step). Slopes "
-        "are per year of fieldwork time.",
-        "Reliability: cells below an effective base of 30 or with too wide a Korn-Graubard interval (NCHS "
-        "presentation standard for proportions, 2017) are flagged and not tested.",
-    ) + tuple(result.notes[1:])
+    n_sig = result.n_significant
+    adj_level = float(t["adjusted_level"].iloc[0]) if len(t) else level
+    intro = (
+        f"Compared: {wave} with {result.against}. {count(family, 'comparison')} (every measure in total and in every "
+        f"subgroup) were judged together, and {count(n_sig, 'change')} {plural(n_sig, 'was', 'were')} found "
+        f"significant.",
+        "Each change is shown with its interval adjusted for all the comparisons made together: a change is called "
+        "significant exactly when that interval leaves out zero.",
+    )
+    method = _method_lines(adjust, level, adj_level, family, n_sig, bool(matters)) + _design_lines(result)
 
     tables = {
         "Headline": head[_TABLE_COLS].reset_index(drop=True),
@@ -237,16 +257,15 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     compact: list[tuple[str, dict]] = []
     thin = _thin_subgroups(study, wave, level)
     thin_groups = {g for g, _ in thin}
-    smoothed_drawn = any(g in thin_groups for _, g in shown_sub_pairs(sub))  # the same words in every form
+    smoothed_drawn = charts and any(g in thin_groups for _, g in shown_sub_pairs(sub))  # the same words in every form
     if thin:
-        where = ("In this brief's subgroup charts (HTML) they also get a smoothed line" if smoothed_drawn else
-                 "'tracker estimates --smooth' and 'tracker chart --smooth' give them a smoothed series")
+        where = (" In this brief's subgroup charts they also get a smoothed line, which damps that noise by "
+                 "borrowing strength from the waves around each one; the figures reported stay the direct "
+                 "estimates." if smoothed_drawn else "")
         sample.append(Item(
             f"Thin subgroups (effective base under {SMOOTH_BELOW} in {wave}): "
-            f"{', '.join(f'{lev} ({g})' for g, lev in thin[:8])}{' and more' if len(thin) > 8 else ''}; their "
-            f"estimates swing with sampling noise alone. {where}: a local-level model with each wave's known "
-            f"sampling error (signal extraction, as for repeated surveys since Scott and Smith 1974) damps that "
-            f"noise. The direct estimates stay the figures reported.", "note"))
+            f"{', '.join(f'{lev} ({_group_label(study, g)})' for g, lev in thin[:8])}"
+            f"{' and more' if len(thin) > 8 else ''}; their estimates swing with sampling noise alone.{where}", "note"))
     if charts:
         from .charts import change_overview, chart_spec, trend_chart
 
@@ -255,7 +274,7 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         drawn = [m for m in study.codebook.metrics if m in set(t["metric"])]
         # a metric that neither moved this wave nor follows a pattern gets a small chart in a grid
         moved = headline_metrics | {i.metric for i in subgroup_moves} | {i.metric for i in mix_moves} \
-            | set(moving["metric"]) | set(unclear_rows["metric"])
+            | set(moving["metric"])
         for k, metric in enumerate(drawn):
             step("drawing charts", k, len(drawn), metric)
             label = study.codebook.metrics[metric].label
@@ -267,15 +286,142 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
                                                                                 level=level, until=wave))))
             for m, g in sorted(shown_sub):
                 if m == metric:
-                    chart_list.append((f"{label} by {g}", chart_spec(trend_chart(
+                    chart_list.append((f"{label} by {_group_label(study, g)}", chart_spec(trend_chart(
                         study, metric, by=g, adjust=adjust, level=level, until=wave, smooth=g in thin_groups))))
     return Brief(
         title=study.codebook.title, wave=wave, against=result.against, headline=headline,
-        subgroup_moves=subgroup_moves, steady=steady, trends=tuple(trend_items), sample_notes=tuple(sample),
-        method=method, tables=tables, charts=tuple(chart_list), compact_charts=tuple(compact),
-        mix_moves=mix_moves, unclear=unclear, surprises=_surprise_items(analysis),
-        data=analysis.to_dict(),
+        subgroup_moves=subgroup_moves, held=held if matters else (), trends=tuple(trend_items),
+        sample_notes=tuple(sample), method=method, tables=tables, charts=tuple(chart_list),
+        compact_charts=tuple(compact), mix_moves=mix_moves, not_significant=not_significant,
+        surprises=_surprise_items(analysis), data=analysis.to_dict(), intro=intro,
     )
+
+
+def _group_label(study, group: str) -> str:
+    """A split as a reader knows it: the label of the variable it is made from."""
+    g = study.codebook.groups.get(group)
+    var = study.codebook.variables.get(g.variable) if g is not None else None
+    return var.label if var is not None else group
+
+
+def _method_lines(adjust: str, level: float, adj_level: float, family: int, n_sig: int,
+                  margins: bool) -> tuple[str, ...]:
+    """The method section: what the words mean and how the numbers were made, with sources."""
+    from .changes import VERDICTS
+
+    interval = {"bh": f"false-coverage-rate adjusted intervals (Benjamini and Yekutieli 2005) at the "
+                      f"{adj_level:.2%} level, which fits {count(n_sig, 'significant change')} among "
+                      f"{count(family, 'comparison')}",
+                "by": f"false-coverage-rate adjusted intervals at the {adj_level:.2%} level (the Benjamini-"
+                      f"Yekutieli form)",
+                "holm": f"intervals at the {adj_level:.2%} level, the last step of Holm's procedure",
+                "none": f"{level:.0%} intervals, with no adjustment"}[adjust]
+    words = [f"'{name}': {VERDICTS[code].split(': ', 1)[1]}." for code, name in
+             (("rise", "Significant rise"), ("fall", "Significant fall"), ("not significant", "Not significant"),
+              ("held", "Held within the margin"))]
+    if not margins:
+        words[-1] = ("'Held within the margin' is never said here: the codebook declares no smallest change that "
+                     "matters, and without one a change that is not significant is only that.")
+    return (
+        f"Significance: {ADJUST_METHODS[adjust]} adjustment across the {count(family, 'comparison')} at the "
+        f"{1 - level:g} level; only adjusted results are called significant. The interval beside each change is "
+        f"the one that agrees with that verdict: {interval}.",
+        *words,
+        "Every change is tested with t on its design-based variance (Taylor linearization with the study's weights, "
+        "strata and clusters; minus the covariance of shared clusters or respondents) on the design's degrees of "
+        "freedom. The figures in sentences are rounded; a change in a sentence is the difference of the two values "
+        "as printed, and intervals are computed from the unrounded figures.",
+        "Minimum detectable change: the change each comparison would find with 80% power at the unadjusted level "
+        "(for shares, the larger of a rise and a fall, with the variance the changed share would have).",
+        "Series: each one (sampling error plus the variation between waves) is tested once for a trend, a step at "
+        "any wave or a one-wave blip at any wave, with the search accounted for; those tests are adjusted together "
+        "across every series, and a series that moved gets the shape that fits it best ('moved up/down' when its "
+        "waves cannot tell a trend from a step). 'No pattern found' is not a claim that nothing moved; 'flat' is "
+        "said only where the codebook declares the smallest change that matters. Slopes are per year of fieldwork "
+        "time.",
+        "Reliability: cells below an effective base of 30, with too wide a Korn-Graubard interval or resting on "
+        "fewer than 15 respondents on the rarer side (after the NCHS presentation standard for proportions, 2017) "
+        "are flagged and not tested.",
+        "Thin subgroups' smoothed lines: a local-level model with each wave's known sampling error (signal "
+        "extraction for repeated surveys, Scott and Smith 1974).",
+        "The make-up of the sample is compared with a Rao-Scott corrected test on the weighted shares.",
+    )
+
+
+def _design_lines(result) -> tuple[str, ...]:
+    """How the waves' sharing was treated, from the comparisons' typed covariance column."""
+    used = set(result.table["covariance_from"]) - {"none"}
+    out = []
+    if "shared respondents" in used:
+        out.append("Some respondents answered both waves (the study is a panel): the comparisons take the link "
+                   "between their answers into account.")
+    if "shared clusters" in used:
+        out.append("The waves share sampling clusters: the comparisons take the link between them into account.")
+    return tuple(out)
+
+
+def first_wave_brief(study, wave: str, level: float = 0.95, charts: bool = True) -> Brief:
+    """The brief of a study's first wave: every measure's level with its interval, base and
+    flags (in total and by subgroup), the sample's make-up, the cautions, and a plain
+    statement that there is nothing earlier to compare with."""
+    from .kinds import KINDS as kinds
+
+    est = study.estimates(waves=[wave], level=level)
+    totals = est[est["group"] == "total"]
+    levels = []
+    for r in totals.itertuples():
+        k = kinds[r.kind]
+        flag = f" Flagged: {r.flags}." if isinstance(r.flags, str) and r.flags else ""
+        levels.append(Item(f"{r.metric_label}: {k.fmt_value(r.value)} ({level:.0%} interval {k.fmt_value(r.ci_low)} "
+                           f"to {k.fmt_value(r.ci_high)}; base {int(r.base):,}).{flag}", "note", r.metric))
+    table = study.load(wave)
+    weights = weights_of(study.codebook, table)
+    eff = float(kish_base(weights.sum(), (weights**2).sum()))
+    sample = [Item(f"{wave}: {count(len(table), 'respondent')}; effective base {eff:,.0f} (weighting efficiency "
+                   f"{eff / len(table):.0%}).", "note")]
+    from .cells import group_labels
+
+    for g in study.codebook.profile or list(study.codebook.groups):
+        lab = pd.Series(group_labels(study.codebook, table, g))
+        shares = pd.Series(weights).groupby(lab.fillna("(none)").to_numpy()).sum() / weights.sum()
+        shares = shares.reindex([x for x in study.codebook.groups[g].levels if x in shares.index]
+                                + [x for x in shares.index if x not in study.codebook.groups[g].levels])
+        sample.append(Item(f"Make-up by {_group_label(study, g)}: "
+                           + ", ".join(f"{k} {fixed(v * 100, 1)}%" for k, v in shares.items()) + " (weighted).",
+                           "note"))
+    statement = (f"{wave} is the study's first wave: there is no earlier wave to compare with, so nothing is called a "
+                 f"change yet. Changes are judged from the second wave on, and patterns over the series once four "
+                 f"waves have a reliable value.")
+    chart_list: list[tuple[str, dict]] = []
+    if charts:
+        from .charts import chart_spec, trend_chart
+
+        chart_list = [(f"{study.codebook.metrics[m].label}", chart_spec(trend_chart(study, m, level=level,
+                                                                                    until=wave, compact=True)))
+                      for m in study.codebook.metrics if m in set(totals["metric"])]
+    data = {"title": study.codebook.title, "wave": wave, "against": None, "first_wave": True, "level": level,
+            "statement": statement, "comparisons": [], "patterns": [],
+            "levels": _level_records(est)}
+    return Brief(
+        title=study.codebook.title, wave=wave, against="", headline=(), subgroup_moves=(), held=(), trends=(),
+        sample_notes=tuple(sample), method=(
+            f"Levels are weighted estimates with {level:.0%} intervals from the design-based variance (Taylor "
+            f"linearization with the study's weights, strata and clusters): Wilson intervals on the design's "
+            f"effective base for shares, t intervals for means and balances.",
+            "Reliability: cells below an effective base of 30, with too wide a Korn-Graubard interval or resting on "
+            "fewer than 15 respondents on the rarer side (after the NCHS presentation standard for proportions, "
+            "2017) are flagged."),
+        tables={"Estimates": est}, charts=tuple(chart_list), data=data, intro=(statement,), first_wave=True,
+        levels=tuple(levels),
+    )
+
+
+def _level_records(est: pd.DataFrame) -> list[dict]:
+    from .analysis import _records
+
+    cols = [c for c in ("metric", "metric_label", "kind", "group", "subgroup", "wave", "value", "ci_low", "ci_high",
+                        "base", "effective_base", "flags") if c in est.columns]
+    return _records(est[cols])
 
 
 #: Subgroups under this effective base in the briefed wave get a smoothed line in their charts.
@@ -344,7 +490,7 @@ def _sample_notes(study, analysis) -> list[Item]:
         table = study.load(w)
         weights = weights_of(book, table)
         eff = float(kish_base(weights.sum(), (weights**2).sum()))
-        notes.append(Item(f"{w}: {len(table):,} respondents; effective base {eff:,.0f} "
+        notes.append(Item(f"{w}: {count(len(table), 'respondent')}; effective base {eff:,.0f} "
                           f"(weighting efficiency {eff / len(table):.0%}).", "note"))
     t = result.table
     untested = t[(t["group"] == "total") & (t["verdict"] == "not tested") & ~t["flags"].str.contains("wording break")]
@@ -352,23 +498,29 @@ def _sample_notes(study, analysis) -> list[Item]:
     flagged = t[t["flags"].str.contains("unreliable|no respondents", regex=True)]
     if len(flagged):
         ex = "; ".join(f"{r.metric_label}, {r.subgroup}" for r in flagged.head(5).itertuples())
-        notes.append(Item(f"{len(flagged)} comparisons were not tested because a base was too small or an interval "
-                          f"too wide (for example {ex}).", "note"))
-    for metric, rows in t[t["flags"].str.contains("wording break")].groupby("metric"):
-        notes.append(Item(f"{rows['metric_label'].iloc[0]}: {rows['flags'].iloc[0].split(' | ')[0]}.", "note", metric))
+        n = len(flagged)
+        notes.append(Item(f"{count(n, 'comparison')} {plural(n, 'was', 'were')} not tested because a base was too "
+                          f"small or an interval too wide (for example {ex}).", "note"))
+    broken = set(t.loc[t["flags"].str.contains("wording break"), "metric"])
+    for metric in sorted(broken):
+        m = book.metrics[metric]
+        for vname, at in study._breaks(m):
+            notes.append(Item(f"{m.label}: the question ({book.variables[vname].label}) changed at {at}, so it is not "
+                              f"compared across that wave.", "note", metric))
     for r in trends[(trends["group"] == "total") & trends["note"].str.contains("wording break")].itertuples():
-        notes.append(Item(f"{r.metric_label}: {r.note}; its trend uses only the waves since.", "note", r.metric))
-    overlap = [n for n in result.notes if "answered both waves" in n or "appear in both waves" in n]
-    notes.extend(Item(n + ".", "note") for n in overlap)
+        notes.append(Item(f"{r.metric_label}: its series starts again at {r.first_wave} after a change of wording; "
+                          f"its pattern uses only the waves since.", "note", r.metric))
+    notes.extend(Item(line, "note") for line in _design_lines(result))
     comp = analysis.composition
     if comp is not None:
         for r in comp.tests.itertuples():
             if r.shifted:
-                notes.append(Item(f"The sample's make-up shifted on {r.group}: {r.largest_move} of the weighted sample "
-                                  f"(Rao-Scott test, adjusted p {r.p_adjusted:.4f}). Measures that differ between "
-                                  f"these groups can move for that reason alone.", "note"))
+                notes.append(Item(f"The sample's make-up shifted on {_group_label(study, r.group)}: {r.largest_move} "
+                                  f"of the weighted sample (adjusted p {p_text(r.p_adjusted)}). Measures that differ "
+                                  f"between these groups can move for that reason alone.", "note"))
         if not comp.tests["shifted"].any():
-            notes.append(Item(f"No shift in the weighted make-up on {', '.join(comp.tests['group'])}.", "flat"))
+            names = [_group_label(study, g) for g in comp.tests["group"]]
+            notes.append(Item(f"No shift in the weighted make-up on {', '.join(names)}.", "flat"))
     return notes
 
 
@@ -404,16 +556,32 @@ def write_brief(brief: Brief, path: str | Path) -> Path:
 
 
 SECTIONS = [
+    ("levels", "Where the measures stand", ""),
     ("headline", "What moved", "No measure moved significantly in total."),
     ("mix_moves", "Moved with the sample's make-up", ""),
     ("subgroup_moves", "Moves in one subgroup only", "No subgroup moved on its own."),
-    ("steady", "Held steady", "No measure can be called steady: see the next section."),
-    ("unclear", "Not clear either way", ""),
+    ("held", "Held within the margin", ""),
+    ("not_significant", "Not significant", ""),
     ("surprises", "Out of line with the series", ""),
-    ("trends", "Trends", "No series has enough waves for a trend."),
+    ("trends", "Patterns over the series", "No series has enough waves for a pattern."),
     ("sample_notes", "Sample notes", ""),
 ]
+
+
+def _sections(brief: Brief):
+    """(attribute, heading, text when empty) of the sections this brief shows: a first wave has
+    levels and sample notes only."""
+    if brief.first_wave:
+        return [x for x in SECTIONS if x[0] in ("levels", "sample_notes")]
+    return [x for x in SECTIONS if x[0] != "levels"]
 WORD = {"rise": "Up: ", "fall": "Down: ", "flat": "", "note": ""}
+
+
+def _subtitle(brief: Brief, escape, bold: bool = False) -> str:
+    wave = f"<b>{escape(brief.wave)}</b>" if bold else escape(brief.wave)
+    if brief.first_wave:
+        return f"Briefing for wave {wave}, the study's first."
+    return f"Briefing for wave {wave}, compared with {escape(brief.against)}."
 
 
 def render_json(brief: Brief) -> str:
@@ -423,7 +591,8 @@ def render_json(brief: Brief) -> str:
 
     doc = dict(brief.data)
     doc["sections"] = {attr: [{"text": i.text, "mark": i.mark, "metric": i.metric, "subgroup": i.subgroup}
-                              for i in getattr(brief, attr)] for attr, _, _ in SECTIONS}
+                              for i in getattr(brief, attr)] for attr, _, _ in _sections(brief)}
+    doc["intro"] = list(brief.intro)
     doc["method"] = list(brief.method)
     doc["cautions"] = list(brief.cautions)
     return json.dumps(doc, indent=1, ensure_ascii=False, allow_nan=False) + "\n"
@@ -434,8 +603,8 @@ def render_markdown(brief: Brief) -> str:
     renderers pass raw HTML through."""
     from .plain import md_text as e
 
-    out = [f"# {e(brief.title)}", "", f"Briefing for wave {e(brief.wave)}, compared with {e(brief.against)}.", ""]
-    for attr, heading, empty in SECTIONS:
+    out = [f"# {e(brief.title)}", "", _subtitle(brief, e), ""] + [e(x) for x in brief.intro] + [""]
+    for attr, heading, empty in _sections(brief):
         items = getattr(brief, attr)
         if not items and not empty:
             continue
@@ -452,11 +621,11 @@ def render_html(brief: Brief) -> str:
     from .page import chart_div, page
 
     e = html.escape
-    parts = [f"<h1>{e(brief.title)}</h1>",
-             f'<p class="sub">Briefing for wave <b>{e(brief.wave)}</b>, compared with {e(brief.against)}.</p>']
+    parts = [f"<h1>{e(brief.title)}</h1>", f'<p class="sub">{_subtitle(brief, e, bold=True)}</p>']
+    parts += [f"<p>{e(x)}</p>" for x in brief.intro]
     charts = list(brief.charts)
-    chart_at = {"headline": [0]} if charts else {}
-    for attr, heading, empty in SECTIONS:
+    chart_at = {"headline": [0]} if charts and not brief.first_wave else {}
+    for attr, heading, empty in _sections(brief):
         items = getattr(brief, attr)
         if not items and not empty and attr not in chart_at:
             continue
@@ -469,12 +638,13 @@ def render_html(brief: Brief) -> str:
             parts.append(f'<p class="muted">{e(empty)}</p>')
         for k in chart_at.get(attr, []):
             parts.append(f"<figure>{chart_div(k)}<figcaption class=\"muted\">{e(charts[k][0])}</figcaption></figure>")
-    if len(charts) > 1 or brief.compact_charts:
+    if len(charts) > len(chart_at) or brief.compact_charts:
         parts.append("<h2>Every measure, wave by wave</h2>")
-        for k in range(1, len(charts)):
+        for k in range(len(chart_at), len(charts)):
             parts.append(f"<figure>{chart_div(k)}<figcaption class=\"muted\">{e(charts[k][0])}</figcaption></figure>")
     if brief.compact_charts:
-        parts.append('<p class="muted">Held or not clear this wave, with no trend over the series:</p><div class="grid">')
+        parts.append('<p class="muted">Not significant or held this wave, with no pattern over the series:</p>'
+                     '<div class="grid">')
         for k in range(len(charts), len(charts) + len(brief.compact_charts)):
             parts.append(f"<figure>{chart_div(k)}</figure>")
         parts.append("</div>")
@@ -497,8 +667,10 @@ def render_xlsx(brief: Brief) -> bytes:
     ws.title = "Brief"
     ws.append([safe_cell(brief.title)])
     ws["A1"].font = Font(bold=True, size=14)
-    ws.append([safe_cell(f"Wave {brief.wave}, compared with {brief.against}")])
-    for attr, heading, empty in SECTIONS:
+    ws.append([safe_cell(_subtitle(brief, lambda x: x))])
+    for line in brief.intro:
+        ws.append([safe_cell(line)])
+    for attr, heading, empty in _sections(brief):
         if not getattr(brief, attr) and not empty:
             continue
         ws.append([])

@@ -355,7 +355,7 @@ def _trend_patterns(rng, reps: int, out: list[Rate]) -> None:
         covered = ((rows["slope_low"] <= slope) & (rows["slope_high"] >= slope)).astype(float).tolist() \
             if slope is not None else []
         calls = np.array(calls)
-        moving = ~np.isin(calls, ["steady", "too few waves"])
+        moving = ~np.isin(calls, ["no pattern found", "flat", "too few waves"])
         if not signal.any():
             rate, mc, k = _prop(moving)
             out.append(Rate(TREND_DESIGN, "false pattern calls", name, rate, mc, k, (0.0, 0.05), 0.05))

@@ -14,39 +14,51 @@ import pandas as pd
 
 from .errors import TrackerError
 from .kinds import KINDS
-from .methods.tests import ADJUST_METHODS, adjust_pvalues, difference_test, paired_df, satterthwaite_df
+from .methods.intervals import t_interval
+from .methods.tests import (ADJUST_METHODS, adjust_pvalues, difference_test, family_level, paired_df,
+                            satterthwaite_df)
 
 KEYS = ["metric", "group", "subgroup"]
 
 COLUMNS = [
     "metric", "metric_label", "kind", "group", "subgroup", "wave_from", "wave_to",
-    "value_from", "value_to", "change", "change_low", "change_high",
+    "value_from", "value_to", "change", "change_low", "change_high", "adjusted_low", "adjusted_high",
+    "adjusted_level",
     "base_from", "base_to", "effective_base_from", "effective_base_to",
     "test", "statistic", "p_raw", "p_adjusted", "min_detectable_change",
     "significant", "verdict", "flags", "se", "df", "covariance", "covariance_from",
 ]
 
-#: The words of a verdict, the same in every table, chart and brief.
+#: The verdict of a comparison: its code (in every machine format) and its one definition.
+#: The same words never describe a series (tracker.trends.PATTERNS has its own).
 VERDICTS = {
-    "rise": "a significant rise after adjustment",
-    "fall": "a significant fall after adjustment",
-    "steady": "the whole interval of the change lies within the smallest change that matters",
-    "unclear": "not beyond the noise of the comparisons made, but a change that matters is not ruled out",
-    "not tested": "a base too small, an interval too wide, or a wording break",
+    "rise": "a significant rise: zero lies below the adjusted interval of the change",
+    "fall": "a significant fall: zero lies above the adjusted interval of the change",
+    "held": "held within the margin: the whole adjusted interval of the change lies within the smallest "
+            "change that matters declared in the codebook",
+    "not significant": "not significant after adjustment: zero lies inside the adjusted interval; the change "
+                       "the comparison could have detected is shown beside it",
+    "not tested": "not tested: a base too small, an interval too wide, a wording break or a share fixed by the "
+                  "weighting",
 }
+#: How each verdict is named in a sentence or a legend (one name per code).
+VERDICT_NAMES = {"rise": "significant rise", "fall": "significant fall", "held": "held within the margin",
+                 "not significant": "not significant", "not tested": "not tested"}
 
 
-def verdict_of(testable, significant, change, low, high, mde, matters=None) -> np.ndarray:
-    """The verdict of each move (VERDICTS). 'steady' is a claim: the interval lies within
-    plus or minus the smallest change that matters (``matters``, else the minimum
-    detectable change), and the move itself is no larger than its detectable change;
-    anything else that is not significant is 'unclear'."""
-    change, low, high, mde = (np.asarray(x, float) for x in (change, low, high, mde))
-    limit = mde if matters is None else np.where(np.isnan(matters), mde, matters)
-    steady = (low >= -limit) & (high <= limit) & (np.abs(change) <= mde)
+def verdict_of(testable, significant, change, adjusted_low, adjusted_high, matters=None) -> np.ndarray:
+    """The verdict of each comparison (VERDICTS). 'held' is a claim and is made only against
+    a smallest change that matters the codebook declares (``matters``, NaN where none): the
+    whole adjusted interval lies within it either way. With no margin declared a comparison
+    that is not significant is only that, whatever its interval."""
+    change, lo, hi = (np.asarray(x, float) for x in (change, adjusted_low, adjusted_high))
+    limit = np.full(change.shape, np.nan) if matters is None else np.asarray(matters, float)
+    with np.errstate(invalid="ignore"):
+        held = np.isfinite(limit) & (lo >= -limit) & (hi <= limit)
+    sig = np.asarray(significant, bool)
     return np.where(~np.asarray(testable, bool), "not tested",
-                    np.where(significant & (change > 0), "rise", np.where(significant & (change < 0), "fall",
-                             np.where(steady, "steady", "unclear"))))
+                    np.where(sig & (change > 0), "rise", np.where(sig & (change < 0), "fall",
+                             np.where(held, "held", "not significant"))))
 
 
 @dataclass(frozen=True)
@@ -219,13 +231,19 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     testable &= np.isfinite(p_raw)
     p_adj = adjust_pvalues(np.where(testable, p_raw, np.nan), adjust)
     sig = testable & (p_adj <= 1 - level)
+    # the interval dual to the test (t on the same SE and df) at the family's agreeing level:
+    # zero lies outside it exactly when the comparison is significant after adjustment
+    adj_level = family_level(p_adj, adjust, 1 - level)
+    adj_lo, adj_hi = t_interval(d, se, np.maximum(df, 1.0), adj_level)
+    adj_lo, adj_hi = np.where(testable, adj_lo, np.nan), np.where(testable, adj_hi, np.nan)
     limit = m["metric"].map(matters or {}).to_numpy(float)
-    verdict = verdict_of(testable, sig, d, lo, hi, mde, limit)
+    verdict = verdict_of(testable, sig, d, adj_lo, adj_hi, limit)
     out = pd.DataFrame({
         "metric": m["metric"], "metric_label": m["metric_label_to"], "kind": kind,
         "group": m["group"], "subgroup": m["subgroup"],
         "wave_from": m["wave_from"], "wave_to": m["wave_to"],
         "value_from": p0, "value_to": p1, "change": d, "change_low": lo, "change_high": hi,
+        "adjusted_low": adj_lo, "adjusted_high": adj_hi, "adjusted_level": np.full(len(m), adj_level),
         "base_from": m["base_from"], "base_to": m["base_to"],
         "effective_base_from": k0, "effective_base_to": k1,
         "test": tests,

@@ -26,7 +26,7 @@ OKABE_ITO = {
     "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "reddish purple": "#CC79A7",
 }
 MUTED = "#999999"
-STATUS_ORDER = ["rise", "fall", "steady", "unclear", "not tested", "first wave"]
+STATUS_ORDER = ["rise", "fall", "held", "not significant", "not tested", "first wave"]
 STATUS_COLOUR = [OKABE_ITO["blue"], OKABE_ITO["vermillion"], MUTED, "#666666", "#cccccc", "#cccccc"]
 STATUS_SHAPE = ["triangle-up", "triangle-down", "circle", "diamond", "cross", "square"]
 FONT = "Helvetica, Arial, sans-serif"
@@ -293,6 +293,8 @@ def change_overview(result, totals_only: bool = False, width: int = 520) -> dict
         raise TrackerError("no tested changes to draw")
     f = t["kind"].map(_scale_factor)
     t["row"] = np.where(t["group"] == "total", t["metric_label"], t["metric_label"] + " | " + t["subgroup"])
+    # the interval drawn is the adjusted one: zero outside it exactly when the verdict is a move
+    t["change_low"], t["change_high"] = t["adjusted_low"], t["adjusted_high"]
     for col in ("change", "change_low", "change_high", "min_detectable_change"):
         t[col + "_shown"] = t[col] * f
     t["mde_low"] = -t["min_detectable_change_shown"]
@@ -318,10 +320,10 @@ def change_overview(result, totals_only: bool = False, width: int = 520) -> dict
             "opacity": {"condition": {"test": "datum.significant", "value": 1.0}, "value": 0.5},
             "tooltip": [_tip("row", "nominal", "measure"), _tip("verdict", "nominal", "verdict"),
                         _tip("change_shown", "quantitative", "change", "+.1f"),
-                        _tip("change_low_shown", "quantitative", "interval from", "+.1f"),
-                        _tip("change_high_shown", "quantitative", "interval to", "+.1f"),
+                        _tip("change_low_shown", "quantitative", "adjusted interval from", "+.1f"),
+                        _tip("change_high_shown", "quantitative", "adjusted interval to", "+.1f"),
                         _tip("min_detectable_change_shown", "quantitative", "min detectable change", ".1f"),
-                        _tip("p_adjusted", "quantitative", "adjusted p", ".4f"),
+                        _tip("p_adjusted", "quantitative", "adjusted p", ".3f"),
                         _tip("base_from", "quantitative", "base before", ","),
                         _tip("base_to", "quantitative", "base now", ",")]}}
         charts.append({"data": {"values": _values(part, OVERVIEW_FIELDS)}, "layer": [mde, zero, bars, dots],
@@ -329,7 +331,9 @@ def change_overview(result, totals_only: bool = False, width: int = 520) -> dict
     family = result.family_size if getattr(result, "family_size", None) is not None else result.n_tests
     return {"vconcat": charts, "resolve": {"scale": {"x": "independent", "y": "independent"}}, "title": {
         "text": f"{result.wave} against {result.against}: every tested change", "anchor": "start", "fontSize": 14,
-        "subtitle": [f"Line: {result.level:.0%} interval. Grey band: the minimum detectable change (80 % power).",
+        "subtitle": [f"Line: the interval adjusted for the {family:,} comparisons made together (zero lies "
+                     f"outside it exactly when a change is significant). Grey band: the minimum detectable change "
+                     f"(80 % power).",
                      f"Drawn: {len(t)} changes, {int(t['significant'].sum())} significant at {1 - result.level:g} "
                      f"after {ADJUST_METHODS[result.adjust]} adjustment",
                      f"across the {family} tests of the comparison" + (

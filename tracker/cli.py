@@ -16,6 +16,7 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 
 from .errors import TrackerError
 from .names import ADJUST_METHODS as ADJUST_NAMES
+from .wording import plural
 from .names import FORMATS
 
 
@@ -178,6 +179,13 @@ def emit(frame, fmt: str, view: str | None, wide: bool = False, output: str | No
     if fmt in ("table", "md"):
         for line in footer:
             echo(line)
+
+
+def family_option(fn):
+    """--family: the tests adjusted together (the brief's, by default)."""
+    return click.option("--family", type=click.Choice(["brief", "asked"]), default="brief", show_default=True,
+                        help="Adjust across every metric and subgroup (as the brief does), or only across what "
+                             "is asked for (verdicts can then differ from the brief's).")(fn)
 
 
 def _plain_fmt_option(fn):
@@ -416,8 +424,7 @@ def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, smooth,
 @adjust_option
 @level_option
 @click.option("--all", "show_all", is_flag=True, help="List every comparison, not only significant changes.")
-@click.option("--family", type=click.Choice(["brief", "asked"]), default="brief", show_default=True,
-              help="Adjust across every metric and subgroup (as the brief does), or only the comparisons asked for.")
+@family_option
 @click.option("--mix", metavar="GROUP",
               help="Split each total change into the part due to the sample's mix on this group and the "
                    "part within its levels, with the change standardised to the earlier mix.")
@@ -460,11 +467,14 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fami
 @level_option
 @click.option("--rolling", type=click.IntRange(min=2), metavar="K",
               help="Instead: rolling estimates, each wave pooled with the K-1 waves before it.")
-@click.option("--moving-only", is_flag=True, help="List only series whose pattern is not steady.")
+@click.option("--moving-only", is_flag=True,
+              help="List only series that moved (a trend, a shift, a blip or a move whose shape is unclear).")
+@family_option
 @_fmt_option
 @user_errors
-def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_only, fmt, wide, output):
-    """The pattern of every series (steady, rising, falling, shifted, a one-wave blip, moved) and its slope.
+def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_only, family, fmt, wide, output):
+    """The pattern of every series (rising, falling, shifted, a one-wave blip, moved, flat or no pattern
+    found) and its slope.
 
     \b
     Example:  tracker trends demo-study --by total --moving-only
@@ -477,15 +487,26 @@ def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_o
         emit(pooled, fmt, "estimates", wide, output, [f"Each wave pooled with the {rolling - 1} before it."])
         return
     table = s.trends(metrics=list(metrics) or None, by=list(by) if by else None, last=last, since=since,
-                     adjust=adjust, level=level)
-    shown = table[table["pattern"] != "steady"] if moving_only else table
+                     adjust=adjust, level=level, family=family)
+    still = ("no pattern found", "flat", "too few waves")
+    shown = table[~table["pattern"].isin(still)] if moving_only else table
     counts = table["pattern"].value_counts()
-    emit(shown[COLUMNS], fmt, "trends", wide, output, [
-        f"{len(table)} series: " + ", ".join(f"{v} {k}" for k, v in counts.items()),
-        f"Each series tested once for not being steady (a line, a step or a one-wave blip), after "
-        f"{table.attrs['adjust']} adjustment across all series at the {1 - level:g} level. Slopes are per year "
-        f"of fieldwork time.",
-        "Sampling error and the between-wave variation are both in the intervals; significance is not importance."])
+    size = table.attrs["family_size"]
+    which = ("every metric in total and in every subgroup, as the brief" if family == "brief"
+             else "only the series asked for: a narrower family than the brief's, so patterns can differ from it")
+    footer = [
+        f"{len(table)} {plural(len(table), 'series', 'series')}: " + ", ".join(f"{v} {k}" for k, v in counts.items()),
+        f"Each series tested once for a trend, a step or a one-wave blip, after {ADJUST_NAMES[adjust]} adjustment "
+        f"across {size:,} {plural(size, 'series', 'series')} ({which}) at the {1 - level:g} level. Slopes are per "
+        f"year of fieldwork time.",
+        "Sampling error and the between-wave variation are both in the intervals; significance is not importance."]
+    if fmt in ("table", "md") and not output and shown.empty:
+        echo("No series moved: every one shows no pattern, is flat, or has too few waves." if moving_only
+             else "No series to show.")
+        for line in footer:
+            echo(line)
+        return
+    emit(shown[COLUMNS], fmt, "trends", wide, output, footer)
 
 
 @main.command("expect", short_help="The expected range of every metric in the next wave.")

@@ -227,6 +227,9 @@ class Codebook:
     population: dict[str, float] | None = None
     # key weights_raked_to: groups whose margins the delivered weights were raked to
     raked_to: tuple[str, ...] = ()
+    # key smallest_change at the top: the study's default per metric kind, in the units shown
+    # (a metric's own smallest_change wins); none declared, no 'held' or 'flat' is ever said
+    smallest_change: dict[str, float] = field(default_factory=dict)
 
     def design_columns(self) -> list[str]:
         return [c for c in (self.id, self.weight, self.strata, self.clusters) if c]
@@ -445,6 +448,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
     rake = _parse_rake(doc.get("rake"))
     population = _parse_population(doc.get("population"), strata)
     raked_to = _group_list(doc, "weights_raked_to", groups)
+    smallest_default = _parse_smallest_defaults(doc.get("smallest_change"))
     single_rule, share_clusters, panel = _design_options(doc)
     book = Codebook(
         title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
@@ -452,7 +456,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         targets=targets, rake=dict(rake), source=text,
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         single_cluster_rule=single_rule, waves_share_clusters=share_clusters, panel=panel,
-        population=population, raked_to=raked_to,
+        population=population, raked_to=raked_to, smallest_change=smallest_default,
     )
     refs = wave_references(book)
     if refs:
@@ -474,6 +478,23 @@ def _group_list(doc: dict, key: str, groups: dict) -> tuple[str, ...]:
         if g not in groups:
             raise _err(f"{key}[{i}]", f"{g!r} is not a group in groups")
     return names
+
+
+def _parse_smallest_defaults(node: Any) -> dict[str, float]:
+    """The top-level smallest_change: {share: 3, balance: 5, mean: 0.1}, each kind's smallest
+    change that matters in the units it is shown in."""
+    if node is None:
+        return {}
+    out = {}
+    for kind, value in _mapping(node, "smallest_change").items():
+        kind = str(kind)
+        if kind not in ("share", "mean", "balance"):
+            raise _err(f"smallest_change.{kind}", f"{kind!r} is not a metric kind: give share, mean or balance")
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 < value < math.inf:
+            raise _err(f"smallest_change.{kind}", f"{value!r}: give a positive number (percentage points for a "
+                                                  f"share or balance, the mean's own units for a mean)")
+        out[kind] = float(value)
+    return out
 
 
 def stratum_key(label: Any) -> str:

@@ -131,6 +131,9 @@ groups:
     bands: {"16-34": [16, 34], "35-59": [35, 59], "60+": [60, 99]}
   frequency: {variable: frequency, merge: {Most days: [1], Less often than daily: [2, 3]}}
 
+# the study team's judgement of the smallest change worth acting on, per kind of measure
+smallest_change: {share: 5, balance: 8, mean: 0.2}
+
 metrics:
   satisfied:
     label: Satisfied overall (top-2 box)

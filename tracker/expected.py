@@ -37,10 +37,12 @@ __all__ = ["MODELS", "RANGE_COLUMNS", "SURPRISE_COLUMNS", "WINDOW", "basis_text"
 KEYS = ["metric", "group", "subgroup"]
 
 #: The pattern of a series -> the model its next wave is predicted from. A line for every
-#: pattern: the seeded simulation (docs/validation.md) found a level for steady series and a
-#: flat level after a step too narrow when a slow slope was read as steady or as a step.
+#: pattern: the seeded simulation (docs/validation.md) found a constant level for series with
+#: no pattern, and a level after a step, too narrow when a slow slope went unseen or was read
+#: as a step.
 MODELS = {"rising": "line", "falling": "line", "moved up": "line", "moved down": "line",
-          "shifted up": "step", "shifted down": "step", "steady": "line", "one-wave blip": "line"}
+          "shifted up": "step", "shifted down": "step", "no pattern found": "line", "flat": "line",
+          "one-wave blip": "line"}
 
 #: Predictions use the latest this many waves (six years of quarters, two of months): the
 #: recent series is what a new wave should follow, and judging a wave at intake then costs

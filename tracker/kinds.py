@@ -13,6 +13,7 @@ import numpy as np
 
 from .methods.intervals import korn_graubard_interval, newcombe_interval, t_interval, wilson_interval
 from .methods.power import min_detectable_change, min_detectable_share_change
+from .wording import fixed, shown_change
 
 __all__ = ["INTERVALS", "KINDS", "Kind", "flag_text"]
 
@@ -81,16 +82,21 @@ class Kind:
     def min_detectable(self, p0, v0, n1, cov, se, df, level):
         return min_detectable_change(se, level, df=df)
 
-    # display
+    # display: the same decimals for a kind everywhere, no "-0" (tracker.wording)
     def fmt_value(self, v: float) -> str:
-        return f"{v * self.scale:.{self.decimals}f}{self.unit}"
+        return fixed(v * self.scale, self.decimals) + self.unit
 
     def fmt_change(self, d: float, signed: bool = False) -> str:
-        text = f"{d * self.scale:+.{self.decimals}f}" if signed else f"{abs(d) * self.scale:.{self.decimals}f}"
+        text = fixed(d * self.scale, self.decimals, signed=True) if signed else fixed(abs(d) * self.scale,
+                                                                                      self.decimals)
         return text + (f" {self.change_unit}" if self.change_unit else "")
 
     def fmt_number(self, d: float) -> str:
-        return f"{abs(d) * self.scale:.{self.decimals}f}"
+        return fixed(abs(d) * self.scale, self.decimals)
+
+    def shown_change(self, v_from: float, v_to: float) -> float:
+        """The change as the printed values show it, in value units (tracker.wording)."""
+        return shown_change(v_from, v_to, self.scale, self.decimals) / self.scale
 
 
 class Share(Kind):
@@ -150,8 +156,6 @@ class Share(Kind):
     def min_detectable(self, p0, v0, n1, cov, se, df, level):
         return min_detectable_share_change(p0, v0, n1, cov, level, df=df)[0]
 
-    def fmt_value(self, v: float) -> str:
-        return f"{v * 100:.0f}%"
 
 
 class Mean(Kind):
@@ -183,7 +187,7 @@ class Balance(Kind):
         return f"(CAST({plus} AS DOUBLE) - CAST({minus} AS DOUBLE))", answered
 
     def fmt_value(self, v: float) -> str:
-        return f"{v * 100:+.0f}"
+        return fixed(v * 100, self.decimals, signed=True)
 
 
 KINDS: dict[str, Kind] = {k.name: k for k in (Share(), Mean(), Balance())}

@@ -84,6 +84,14 @@ def check_level(level: float) -> None:
         raise TrackerError(f"--level {level}: give a confidence level between 0.5 and 1, e.g. 0.95")
 
 
+def check_adjust(adjust: str) -> None:
+    """Refuse an adjustment the tool does not know (one list: tracker.names.ADJUST_METHODS)."""
+    from .names import ADJUST_METHODS
+
+    if adjust not in ADJUST_METHODS:
+        raise TrackerError(f"--adjust {adjust}: use one of {', '.join(ADJUST_METHODS)}")
+
+
 def parse_date(text: str) -> str:
     try:
         return dt.date.fromisoformat(str(text).strip()).isoformat()
@@ -548,11 +556,18 @@ class Study:
         return out.copy() if detail else out[COLUMNS]
 
     def matters(self) -> dict[str, float]:
-        """The smallest change that matters per metric (codebook ``smallest_change``), in value units."""
+        """The smallest change that matters per metric, in value units: the metric's own
+        ``smallest_change``, else the codebook's default for its kind; metrics with neither are
+        left out (nothing is then called held or flat)."""
         from .kinds import KINDS
 
-        return {m.name: m.smallest_change / KINDS[m.kind].scale for m in self.codebook.metrics.values()
-                if m.smallest_change is not None}
+        book = self.codebook
+        out = {}
+        for m in book.metrics.values():
+            given = m.smallest_change if m.smallest_change is not None else book.smallest_change.get(m.kind)
+            if given is not None:
+                out[m.name] = given / KINDS[m.kind].scale
+        return out
 
     def _breaks(self, metric):
         """(variable, wave) for each wording break of the metric's variable and base variable."""
@@ -753,21 +768,36 @@ class Study:
         return out
 
     def trends(self, metrics=None, by=None, last: int | None = None, since: str | None = None,
-               adjust: str = "bh", level: float = 0.95, until: str | None = None) -> pd.DataFrame:
-        """Slope per year, extra variation, and the pattern (steady, rising, falling, shifted, blip)
-        of every metric x subgroup series; see docs/methods.md."""
+               adjust: str = "bh", level: float = 0.95, until: str | None = None, family: str = "brief"):
+        """Slope per year, extra variation, and the pattern (tracker.trends.PATTERNS) of every
+        metric x subgroup series; see docs/methods.md.
+
+        The pattern tests are adjusted in one family: by default (``family="brief"``) every
+        metric in total and in every subgroup over the same waves, the family the brief uses,
+        whatever ``metrics`` and ``by`` narrow the rows to; ``family="asked"`` adjusts across
+        only the series asked for (``df.attrs["family"]`` says which, and its size)."""
         from .trends import fit_trends
 
         check_level(level)
-        if adjust not in ("bh", "holm", "by", "none"):
-            raise TrackerError(f"--adjust {adjust}: use one of bh, holm, by, none")
+        check_adjust(adjust)
+        if family not in ("brief", "asked"):
+            raise TrackerError(f"--family {family}: use brief (every metric and subgroup) or asked")
         ms = self._pick_metrics(metrics)
+        gs = self._pick_groups(by)
         labels = self._window(last, since, until)
-        key = ("trends", tuple(m.name for m in ms), None if by is None else tuple(by), tuple(labels), adjust, level)
+        fam_ms, fam_by = (self._pick_metrics(), None) if family == "brief" else (ms, by)
+        key = ("trends", tuple(m.name for m in fam_ms), None if fam_by is None else tuple(gs), tuple(labels), adjust,
+               level)
         if key not in self._cache:
-            est = self.estimates(metrics=[m.name for m in ms], by=by, waves=labels, level=level)
-            self._cache[key] = fit_trends(est, self.segment_starts(ms, labels), adjust, level)
-        return self._cache[key].copy()
+            est = self.estimates(metrics=[m.name for m in fam_ms], by=fam_by, waves=labels, level=level)
+            self._cache[key] = fit_trends(est, self.segment_starts(fam_ms, labels), adjust, level,
+                                          matters=self.matters())
+        out = self._cache[key]
+        size = int(out["pattern_p_adjusted"].notna().sum())
+        keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
+        out = out[keep].reset_index(drop=True)
+        out.attrs.update(family=family, family_size=size)
+        return out
 
     # -- before and after a wave (tracker.expected) -----------------------------------------
     def next_date(self) -> str:

@@ -13,9 +13,26 @@ import pandas as pd
 from .methods.distributions import chi2_sf, norm_ppf, t_ppf, t_sf
 from scipy.special import logsumexp
 
-from .methods.tests import ADJUST_METHODS, adjust_pvalues
+from .methods.tests import ADJUST_METHODS, adjust_pvalues, family_level
 
 MIN_WAVES = 4
+
+#: The pattern of a series: its code (in every machine format) and its one definition. None
+#: of these words describes a comparison of two waves (tracker.changes.VERDICTS has those).
+PATTERNS = {
+    "rising": "a straight-line rise over the waves, beyond what sampling and wave-to-wave variation explain",
+    "falling": "a straight-line fall over the waves, beyond what sampling and wave-to-wave variation explain",
+    "shifted up": "a step up to a new level that has held since",
+    "shifted down": "a step down to a new level that has held since",
+    "one-wave blip": "one wave out of line with a series that does not move with it",
+    "moved up": "moved up over the waves, but they cannot tell a trend from a one-off step",
+    "moved down": "moved down over the waves, but they cannot tell a trend from a one-off step",
+    "flat": "no pattern found, and the whole adjusted interval of the slope lies within the smallest change "
+            "that matters (declared in the codebook) per year",
+    "no pattern found": "no trend, step or blip beyond the noise after adjustment; not a claim that nothing "
+                        "moved",
+    "too few waves": "fewer than four waves with a reliable value: no pattern is judged",
+}
 
 COLUMNS = [
     "metric", "metric_label", "kind", "group", "subgroup", "first_wave", "last_wave", "waves",
@@ -117,15 +134,19 @@ def _series_arrays(est: pd.DataFrame, segment_start: dict[str, str] | None = Non
 
 
 def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, adjust: str = "bh",
-               level: float = 0.95, min_waves: int = MIN_WAVES) -> pd.DataFrame:
+               level: float = 0.95, min_waves: int = MIN_WAVES, matters: dict[str, float] | None = None
+               ) -> pd.DataFrame:
     """Slope, extra-variation test, shift and blip for every series in an estimates table.
 
     ``segment_start`` maps a metric to the wave its current series starts at (a wording
     break): earlier waves are left out for that metric. Each series gets one p-value for
-    "it is not steady" (see ``_pattern_tests``); those p-values are adjusted together
-    (``adjust``) across every series of the call, and a series that passes gets the shape
-    that fits it best: rising/falling, shifted up/down, a one-wave blip, or moved up/down
-    when the waves cannot tell a trend from a step.
+    "it moved" (see ``_pattern_tests``); those p-values are adjusted together (``adjust``)
+    across every series of the call, and a series that passes gets the shape that fits it
+    best: rising/falling, shifted up/down, a one-wave blip, or moved up/down when the waves
+    cannot tell a trend from a step (PATTERNS). A series that does not pass is 'no pattern
+    found', or 'flat' where ``matters`` (metric -> smallest change that matters, in value
+    units, declared in the codebook) holds the slope's interval at the family's agreeing
+    level (tracker.methods.tests.family_level) within that change per year.
     """
     series, waves, y, v, ok, years = _series_arrays(est, segment_start)
     S, K = y.shape
@@ -150,13 +171,19 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
     p_any = np.where(fit_ok, tests["p"], np.nan)
     adj = adjust_pvalues(p_any, adjust)
     moving = fit_ok & (adj <= 1 - level)
-    shape = np.where(moving, tests["shape"], "steady")
+    shape = np.where(moving, tests["shape"], "none")
     up = np.where(shape == "step", tests["step_size"] > 0, slope > 0)
     pattern = np.select(
         [~fit_ok, shape == "blip", (shape == "step") & up, shape == "step", (shape == "line") & up,
          shape == "line", (shape == "unclear") & up, shape == "unclear"],
         ["too few waves", "one-wave blip", "shifted up", "shifted down", "rising", "falling", "moved up",
-         "moved down"], "steady")
+         "moved down"], "no pattern found")
+    margin = series["metric"].map(matters or {}).to_numpy(float)
+    tq_family = t_ppf(0.5 + family_level(adj, adjust, 1 - level) / 2, df)
+    with np.errstate(invalid="ignore"):
+        flat = ((pattern == "no pattern found") & np.isfinite(margin) & (slope - tq_family * slope_se >= -margin)
+                & (slope + tq_family * slope_se <= margin))
+    pattern = np.where(flat, "flat", pattern)
     is_shift, is_blip, pattern_p = shape == "step", shape == "blip", adj
     shift = _levels(y, np.where(ok, v, 1.0), ok, tests["step_at"])
 
@@ -220,7 +247,7 @@ def effective_tests(R: np.ndarray) -> np.ndarray:
 
 
 def _candidates(ok: np.ndarray, X_trend: np.ndarray) -> dict:
-    """Regressors and validity of every candidate alternative to the steady series: the
+    """Regressors and validity of every candidate alternative to a constant level: the
     centred straight line; a step at wave j (two reliable waves before j, two from j on);
     a one-wave blip at interior wave j (two reliable waves before, one after; the latest
     wave is never a blip, it has no later neighbour yet)."""
@@ -244,15 +271,15 @@ def _candidates(ok: np.ndarray, X_trend: np.ndarray) -> dict:
 
 
 def _pattern_tests(y, v, ok, X_trend):
-    """One model comparison per series: steady against a straight line, a step at any
+    """One model comparison per series: a constant level against a straight line, a step at any
     candidate wave and a one-wave blip at any candidate wave.
 
-    Each candidate adds one regressor to the steady level and is fitted as a random-effects
+    Each candidate adds one regressor to the constant level and is fitted as a random-effects
     meta-regression (known sampling variances plus between-wave variance, re-estimated with
     the candidate in the model, so a blip or step does not inflate its own noise); its t is
     taken on k - 2 df. Within a kind, the largest |t| is referred to the Sidak bound with
     the effective number of tests of its candidates (Li & Ji 2005), computed from the
-    correlation of the candidate estimates under the steady model. The series' p is the
+    correlation of the candidate estimates under the constant-level model. The series' p is the
     weighted Bonferroni combination of the three kinds, min_k p_k / budget_k, so false calls
     of any pattern stay within the level per series (measured in docs/validation.md).
 
@@ -268,8 +295,8 @@ def _pattern_tests(y, v, ok, X_trend):
     one = np.ones((S, K))
     k = ok.sum(axis=1)
     df = np.maximum(k - 2, 1)
-    steady = meta_regression(y, v, one[:, :, None], ok)
-    w = np.where(ok, 1.0 / (v + steady["tau2"][:, None]), 0.0)
+    level_fit = meta_regression(y, v, one[:, :, None], ok)
+    w = np.where(ok, 1.0 / (v + level_fit["tau2"][:, None]), 0.0)
     rows = np.arange(S)
     res = {}
     for name, (cols, valid, at) in _candidates(ok, X_trend).items():
@@ -341,7 +368,7 @@ def _levels(y, v, ok, at):
 
 def fitted_values(trend_rows: pd.DataFrame, est: pd.DataFrame, t0: str | None = None) -> pd.Series:
     """The fitted line or shift levels at each estimate row (NaN where the pattern is
-    steady, a blip, or the wave lies outside the fitted series).
+    no pattern found, flat, a blip, or the wave lies outside the fitted series).
 
     Time zero is ``t0``, the fieldwork date of the first wave the trends were fitted on
     (default: the first date in ``est``)."""

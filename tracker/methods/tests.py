@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from .distributions import t_sf
 
-__all__ = ["ADJUST_METHODS", "adjust_pvalues", "difference_test", "paired_df", "satterthwaite_df"]
+__all__ = ["ADJUST_METHODS", "adjust_pvalues", "difference_test", "family_level", "paired_df", "satterthwaite_df"]
 
 from ..names import ADJUST_METHODS  # noqa: E402 - one list of names for the whole tool
 
@@ -45,6 +45,41 @@ def adjust_pvalues(p, method: str = "bh") -> np.ndarray:
     res[order] = np.minimum(adj, 1.0)
     out[ok] = res
     return out
+
+
+def family_level(p_adjusted, method: str = "bh", alpha: float = 0.05) -> float:
+    """The confidence level of the intervals that agree with a family's adjusted verdicts:
+    zero lies outside a comparison's interval at this level exactly when its adjusted p is
+    at most ``alpha`` (for an interval dual to the comparison's own test).
+
+    bh: the false-coverage-rate adjusted level 1 - R alpha / m for the R comparisons found
+    significant of the m tested (Benjamini & Yekutieli 2005, JASA 100:71, definition 1;
+    with R = 0 the level 1 - alpha / m); by: the same with alpha / sum(1/i), the factor of
+    Benjamini & Yekutieli (2001); holm: 1 - alpha / (m - R + 1), the last step Holm's (1979)
+    procedure took, Bonferroni's simultaneous level when nothing is significant; none:
+    1 - alpha. Why these agree: a BH-significant p is at most R alpha / m and any other is
+    above it (else the step-up would have gone further); a Holm-significant p is at most
+    alpha / (m - R + 1) and the first one kept is above alpha / (m - R).
+
+    >>> p = [0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459,
+    ...      0.3240, 0.4262, 0.5719, 0.6528, 0.7590, 1.000]   # Benjamini & Hochberg (1995)
+    >>> round(family_level(adjust_pvalues(p, "bh"), "bh"), 6)   # R = 4 of m = 15
+    0.986667
+    >>> round(family_level(adjust_pvalues(p, "holm"), "holm"), 6)   # R = 3: 1 - 0.05 / 13
+    0.996154
+    """
+    q = np.asarray(p_adjusted, float)
+    q = q[np.isfinite(q)]
+    m = q.size
+    if method not in ADJUST_METHODS:
+        raise ValueError(f"unknown adjustment {method!r}; use one of {', '.join(ADJUST_METHODS)}")
+    if m == 0 or method == "none":
+        return 1.0 - alpha
+    r = int((q <= alpha).sum())
+    if method == "holm":
+        return 1.0 - alpha / (m - r + 1)
+    factor = float(np.sum(1.0 / np.arange(1, m + 1))) if method == "by" else 1.0
+    return 1.0 - max(r, 1) * alpha / (m * factor)
 
 
 def satterthwaite_df(v1, v2, df1, df2):
