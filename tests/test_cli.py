@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import subprocess
+
+import pytest
 import sys
 
 from click.testing import CliRunner
@@ -67,18 +69,27 @@ def test_the_distribution_has_a_name_of_its_own():
 
 
 def test_waves_answers_from_the_ledger_alone(demo_study):
-    code = ("import sys; from tracker.cli import main\n"
+    code = ("import os, sys; os.environ['COLUMNS'] = '100'; from tracker.cli import main\n"
             f"try: main(['waves', {str(demo_study.root)!r}])\n"
             "except SystemExit: pass\n"
             "print('heavy:', [m for m in ('pandas', 'numpy', 'scipy') if m in sys.modules])")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip().endswith("heavy: []")
     lines = out.splitlines()
-    assert lines[0].split() == ["wave", "fieldwork_date", "respondents", "source_file", "added_at", "weighting"]
+    assert lines[0].split() == ["wave", "fieldwork", "respondents", "weighting", "added", "from", "file"]
     first = demo_study.waves().iloc[0]
     assert lines[1].startswith(f"{first['wave']}  {first['fieldwork_date']}")
-    assert f"{first['respondents']:,}" in lines[1] and lines[1].endswith("weights from the file (wt)")
+    assert f"{first['respondents']:,}" in lines[1] and "weights from the file (wt)" in lines[1]
+    assert lines[1].endswith(first["source_file"])
     assert len(lines) == 1 + len(demo_study.labels) + 1
+
+
+@pytest.mark.parametrize("columns", [60, 80, 100])
+def test_waves_fits_the_terminal(demo_study, columns):
+    """Every line of `waves` within the width (common practice, no source); the dates whole."""
+    out = _run("waves", demo_study.root, columns=columns).output.splitlines()
+    assert max(len(line) for line in out) <= max(columns, 72)  # the fixed columns need 72 at least
+    assert all(line.split()[1].count("-") == 2 for line in out[1:])
 
 
 # -- the readable view (common practice, no source: a table should fit the screen and read in

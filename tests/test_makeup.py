@@ -233,7 +233,7 @@ def test_demo_mix_wave_is_flagged_and_its_move_is_mostly_mix(demo_study):
 def test_composition_command_and_add_summary(demo_study, tmp_path):
     result = CliRunner().invoke(main, ["composition", str(demo_study.root), "--wave", "2025-Q4"])
     assert result.exit_code == 0, result.output
-    assert "frequency: shifted" in result.output and "area: no clear shift" in result.output
+    assert "frequency: shifted" in result.output and "area: no significant shift" in result.output
     from tracker.demo import build_demo
 
     _, reports = build_demo(tmp_path / "d")

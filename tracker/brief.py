@@ -316,7 +316,7 @@ def _method_lines(adjust: str, level: float, adj_level: float, family: int, n_si
                       f"Yekutieli form)",
                 "holm": f"intervals at the {adj_level:.2%} level, the last step of Holm's procedure",
                 "none": f"{level:.0%} intervals, with no adjustment"}[adjust]
-    words = [f"'{name}': {VERDICTS[code].split(': ', 1)[1]}." for code, name in
+    words = [f"'{name}': {VERDICTS[code]}." for code, name in
              (("rise", "Significant rise"), ("fall", "Significant fall"), ("not significant", "Not significant"),
               ("held", "Held within the margin"))]
     if not margins:

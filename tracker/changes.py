@@ -32,14 +32,13 @@ COLUMNS = [
 #: The verdict of a comparison: its code (in every machine format) and its one definition.
 #: The same words never describe a series (tracker.trends.PATTERNS has its own).
 VERDICTS = {
-    "rise": "a significant rise: zero lies below the adjusted interval of the change",
-    "fall": "a significant fall: zero lies above the adjusted interval of the change",
-    "held": "held within the margin: the whole adjusted interval of the change lies within the smallest "
-            "change that matters declared in the codebook",
-    "not significant": "not significant after adjustment: zero lies inside the adjusted interval; the change "
-                       "the comparison could have detected is shown beside it",
-    "not tested": "not tested: a base too small, an interval too wide, a wording break or a share fixed by the "
-                  "weighting",
+    "rise": "significant after adjustment, upwards: the whole adjusted interval of the change lies above zero",
+    "fall": "significant after adjustment, downwards: the whole adjusted interval of the change lies below zero",
+    "held": "the whole adjusted interval of the change lies within the smallest change that matters, as "
+            "declared in the codebook",
+    "not significant": "zero lies inside the adjusted interval of the change; the change the comparison could "
+                       "have detected is shown beside it",
+    "not tested": "a base too small, an interval too wide, a wording break, or a share fixed by the weighting",
 }
 #: How each verdict is named in a sentence or a legend (one name per code).
 VERDICT_NAMES = {"rise": "significant rise", "fall": "significant fall", "held": "held within the margin",
@@ -104,7 +103,11 @@ class ChangeResult:
             f"{alpha:g} level ({len(self.table) - self.n_tests} not tested).",
         ]
         lines.extend(self.notes)
-        lines.append("Verdicts: " + "; ".join(f"{k}: {v}" for k, v in VERDICTS.items()) + ".")
+        level = float(self.table["adjusted_level"].iloc[0]) if len(self.table) else self.level
+        lines.append(f"The adjusted interval is at the {level:.2%} level, which agrees with the verdicts: zero lies "
+                     f"outside it exactly when a change is significant.")
+        used = [k for k in VERDICTS if k in set(self.table["verdict"])]
+        lines.append("Verdicts: " + "; ".join(f"{k}: {VERDICTS[k]}" for k in used) + ".")
         lines.append("Significance is not importance; intervals cover sampling error only; a change in the "
                      "sample's make-up can move a measure; small bases are flagged and never called significant.")
         return lines

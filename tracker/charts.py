@@ -64,7 +64,7 @@ def _chart_table(study, labels: list[str], adjust: str, level: float) -> pd.Data
             [*keys, "wave", "verdict", "change", "p_adjusted", "change_flags"]]
         est = est.merge(steps, on=[*keys, "wave"], how="left")
     else:
-        est["verdict"], est["change"], est["p_adjusted"], est["change_flags"] = np.nan, np.nan, np.nan, ""
+        est["verdict"], est["change"], est["p_adjusted"], est["change_flags"] = "first wave", np.nan, np.nan, ""
     est["verdict"] = est["verdict"].fillna("first wave")
     return est
 

@@ -181,6 +181,13 @@ def emit(frame, fmt: str, view: str | None, wide: bool = False, output: str | No
             echo(line)
 
 
+def terminal_width_plain() -> int:
+    """The terminal's width (100 when it cannot be measured), without importing pandas."""
+    import shutil
+
+    return shutil.get_terminal_size((100, 24)).columns
+
+
 def family_option(fn):
     """--family: the tests adjusted together (the brief's, by default)."""
     return click.option("--family", type=click.Choice(["brief", "asked"]), default="brief", show_default=True,
@@ -323,7 +330,15 @@ def waves_cmd(study, fmt, output):
         echo("no waves stored yet")
         return
     if fmt == "table" and not output:
-        rows = [{**r, "respondents": f"{r['respondents']:,}"} for r in rows]
+        from .plain import fit_rows
+
+        rows = [{"wave": r["wave"], "fieldwork": r["fieldwork_date"], "respondents": f"{r['respondents']:,}",
+                 "weighting": r["weighting"], "added": str(r["added_at"])[:10], "from file": r["source_file"]}
+                for r in rows]
+        columns = ["wave", "fieldwork", "respondents", "weighting", "added", "from file"]
+        echo(fit_rows(rows, columns, terminal_width_plain(), right=("respondents",),
+                      shrink=("from file", "weighting")), nl=False)
+        return
     emit_rows(rows, store.WAVE_COLUMNS, fmt, output, right=("respondents",))
 
 
@@ -441,7 +456,7 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fami
     result = Study(study).changes(wave=wave, against=against, by=list(by) if by else None,
                                   metrics=list(metrics) or None, adjust=adjust, level=level, mix=mix, family=family)
     if mix:
-        emit(result.mix, fmt, None, wide, output,
+        emit(result.mix, fmt, "mix", wide, output,
              [f"Kitagawa split of each total change by the mix on {mix}; the standardised change re-weights "
               f"{result.wave} to the mix of {result.against}, tested with {ADJUST_NAMES[adjust]} adjustment."])
         return

@@ -21,7 +21,8 @@ from .estimates import cell_stats, design_labels, weights_of
 from .methods.raoscott import rao_scott_table
 from .methods.tests import ADJUST_METHODS, adjust_pvalues
 from .methods.variance import taylor_covariance
-from .view import p_text
+from .wording import count
+from .wording import p_text as wording_p
 
 
 def stacked_shares(labels: list[np.ndarray], levels: list[str], weights: list[np.ndarray], strata: list, psus: list,
@@ -85,10 +86,11 @@ class CompositionResult:
     def lines(self) -> list[str]:
         out = []
         for r in self.tests.itertuples():
-            verdict = "shifted" if r.shifted else "no clear shift"
-            out.append(f"{r.group}: {verdict} (weighted mix, Rao-Scott F {r.f:.2f} on {r.f_df_num:.1f} and "
-                       f"{r.f_df_den:.1f} df, adjusted p {p_text([r.p_adjusted])[0]}); largest move: {r.largest_move}")
-        out.append(f"{len(self.tests)} profile groups tested, {int(self.tests['shifted'].sum())} shifted, after "
+            verdict = "shifted" if r.shifted else "no significant shift"
+            out.append(f"{r.group}: {verdict} in the weighted mix (adjusted p {wording_p(r.p_adjusted)}); largest "
+                       f"move: {r.largest_move}")
+        out.append(f"{count(len(self.tests), 'profile group')} tested (Rao-Scott), "
+                   f"{int(self.tests['shifted'].sum())} shifted, after "
                    f"{ADJUST_METHODS[self.adjust]} adjustment at the {1 - self.level:g} level.")
         return out
 

@@ -68,8 +68,30 @@ def render_rows(rows: list[dict], columns: list[str], fmt: str, right: tuple[str
         lines += ["| " + " | ".join(md_cell(v) for v in row) + " |" for row in text]
         return "\n".join(lines) + "\n"
     if not rows:
-        return "(no rows)\n"
+        return "Nothing to show: no row matches what was asked.\n"
     widths = [max(len(c), *(len(row[i]) for row in text)) for i, c in enumerate(columns)]
+    out = ["  ".join(c.rjust(w) if c in right else c.ljust(w) for c, w in zip(columns, widths)).rstrip()]
+    out += ["  ".join(v.rjust(w) if c in right else v.ljust(w) for c, v, w in zip(columns, row, widths)).rstrip()
+            for row in text]
+    return "\n".join(out) + "\n"
+
+
+def fit_rows(rows: list[dict], columns: list[str], width: int, right: tuple[str, ...] = (),
+             shrink: tuple[str, ...] = ()) -> str:
+    """Plain rows as a table no wider than ``width``: the ``shrink`` columns, in that order,
+    are shortened (their ends shown as '…') down to their header's width; the others never."""
+    text = [[("" if r.get(c) is None else str(r.get(c))) for c in columns] for r in rows]
+    widths = [max(len(c), *(len(row[i]) for row in text)) if text else len(c) for i, c in enumerate(columns)]
+    over = sum(widths) + 2 * (len(widths) - 1) - width
+    for name in shrink:
+        if over <= 0:
+            break
+        i = columns.index(name)
+        cut = min(over, widths[i] - max(len(name), 4))
+        if cut > 0:
+            widths[i] -= cut
+            over -= cut
+    text = [[v if len(v) <= w else v[: w - 1] + "…" for v, w in zip(row, widths)] for row in text]
     out = ["  ".join(c.rjust(w) if c in right else c.ljust(w) for c, w in zip(columns, widths)).rstrip()]
     out += ["  ".join(v.rjust(w) if c in right else v.ljust(w) for c, v, w in zip(columns, row, widths)).rstrip()
             for row in text]

@@ -52,7 +52,8 @@ VIEWS: dict[str, list[Col]] = {
     "changes": [
         Col("metric_label", "metric", keep=0), Col("subgroup", "subgroup", keep=0),
         Col("value_from", "from", "value", 0), Col("value_to", "to", "value", 0),
-        Col("change", "change", "change", 0), Col(("change_low", "change_high"), "interval", "span_change", 1),
+        Col("change", "change", "change", 0),
+        Col(("adjusted_low", "adjusted_high"), "adj. interval", "span_change", 1),
         Col("p_adjusted", "p adj.", "p", 1), Col("verdict", "verdict", keep=0),
         Col("min_detectable_change", "detectable", "size", 3), Col("base_to", "base", "count", 2),
         Col("flags", "flags", keep=2), Col("group", "split", keep=6), Col("p_raw", "p raw", "p", 7),
@@ -67,6 +68,13 @@ VIEWS: dict[str, list[Col]] = {
         Col("value", "value", "value", 0), Col(("low", "high"), "expected range", "span", 0),
         Col("p_adjusted", "p adj.", "p", 1), Col("base", "base", "count", 2), Col("group", "split", keep=6),
     ],
+    "mix": [
+        Col("metric_label", "metric", keep=0), Col("change", "change", "change", 0),
+        Col("mix_part", "from the mix", "change", 0), Col("within_part", "within groups", "change", 0),
+        Col("standardised_change", "at the earlier mix", "change", 0),
+        Col(("standardised_low", "standardised_high"), "interval", "span_change", 2),
+        Col("standardised_p_adjusted", "p adj.", "p", 1), Col("mix_variable", "mix on", keep=3),
+    ],
     "trends": [
         Col("metric_label", "metric", keep=0), Col("subgroup", "subgroup", keep=0), Col("pattern", "pattern", keep=0),
         Col("slope_per_year", "per year", "change", 1), Col(("slope_low", "slope_high"), "interval", "span_change", 2),
@@ -76,6 +84,10 @@ VIEWS: dict[str, list[Col]] = {
         Col("note", "note", keep=4), Col("group", "split", keep=6),
     ],
 }
+
+
+#: The column a flagged row's mark follows in each view (else the first number).
+MARK_AFTER = {"estimates": "value", "changes": "verdict", "trends": "pattern", "surprises": "value"}
 
 
 def _num(x: np.ndarray, digits: int, signed: bool = False) -> np.ndarray:
@@ -129,6 +141,14 @@ def p_text(p: np.ndarray) -> np.ndarray:
     return np.where(p < 0.001, "<0.001", np.char.mod("%.3f", p).astype(object))
 
 
+def _flagged(frame: pd.DataFrame) -> np.ndarray:
+    """Rows with a flag (a non-empty flags cell)."""
+    if "flags" not in frame:
+        return np.zeros(len(frame), bool)
+    f = frame["flags"]
+    return (f.notna() & (f.astype(str).str.strip() != "") & (f.astype(str) != "nan")).to_numpy()
+
+
 def terminal_width() -> int:
     return shutil.get_terminal_size((DEFAULT_WIDTH, 24)).columns
 
@@ -139,7 +159,7 @@ def human_table(frame: pd.DataFrame, view: str, width: int | None = None, wide: 
     Columns are dropped from the least needed (highest ``keep``) until the table fits
     ``width`` (default: the terminal's, or DEFAULT_WIDTH), unless ``wide``."""
     if frame.empty:
-        return "(no rows)\n", []
+        return "Nothing to show: no row matches what was asked.\n", []
     width = width or terminal_width()
     kinds = frame["kind"] if "kind" in frame else pd.Series("share", index=frame.index)
     cols = [c for c in VIEWS[view] if all(s in frame for s in ((c.source,) if isinstance(c.source, str) else c.source))]
@@ -152,6 +172,13 @@ def human_table(frame: pd.DataFrame, view: str, width: int | None = None, wide: 
             cells[c.title] = _column(c.how, frame[c.source[0]].to_numpy(), kinds, frame[c.source[1]].to_numpy())
         else:
             cells[c.title] = _column(c.how, frame[c.source].to_numpy(object), kinds)
+    marked = _flagged(frame)
+    if marked.any():  # a mark that no width drops, beside what it qualifies, with its legend in the footer
+        after = MARK_AFTER.get(view)
+        at = next((k + 1 for k, c in enumerate(cols) if c.title == after),
+                  next((k for k, c in enumerate(cols) if c.how != "text"), len(cols)))
+        cols.insert(at, Col("__mark__", "!", keep=0))
+        cells["!"] = ["!" if m else "" for m in marked]
     right = {c.title for c in cols if c.how not in ("text",)}
     widths = {t: max(len(t), *(len(x) for x in v)) for t, v in cells.items()}
     shown = [c.title for c in cols]
@@ -203,6 +230,10 @@ def human_table(frame: pd.DataFrame, view: str, width: int | None = None, wide: 
         lines.append("  ".join(cells[t][i].rjust(widths[t]) if t in right else cells[t][i].ljust(widths[t])
                                for t in shown).rstrip())
     notes = []
+    if marked.any():
+        where = "the flags column" if "flags" in shown else "the flags column (--wide, or --format csv)"
+        notes.append(f"! marks {int(marked.sum()):,} flagged {'row' if marked.sum() == 1 else 'rows'}: read them "
+                     f"with care; {where} says why.")
     if names_for_labels:
         notes.append("Metrics are shown by their short names to fit; --wide shows their labels.")
     if dropped:
