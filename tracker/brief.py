@@ -493,21 +493,22 @@ def _sample_notes(study, analysis) -> list[Item]:
         notes.append(Item(f"{w}: {count(len(table), 'respondent')}; effective base {eff:,.0f} "
                           f"(weighting efficiency {eff / len(table):.0%}).", "note"))
     t = result.table
-    untested = t[(t["group"] == "total") & (t["verdict"] == "not tested") & ~t["flags"].str.contains("wording break")]
+    why = t["not_tested_because"]
+    untested = t[(t["group"] == "total") & (t["verdict"] == "not tested") & (why != "wording break")]
     notes.extend(Item(not_tested_sentence(r), "note", r.metric) for r in untested.itertuples())
-    flagged = t[t["flags"].str.contains("unreliable|no respondents", regex=True)]
+    flagged = t[why.isin(["unreliable", "no respondents"])]
     if len(flagged):
         ex = "; ".join(f"{r.metric_label}, {r.subgroup}" for r in flagged.head(5).itertuples())
         n = len(flagged)
         notes.append(Item(f"{count(n, 'comparison')} {plural(n, 'was', 'were')} not tested because a base was too "
                           f"small or an interval too wide (for example {ex}).", "note"))
-    broken = set(t.loc[t["flags"].str.contains("wording break"), "metric"])
+    broken = set(t.loc[why == "wording break", "metric"])
     for metric in sorted(broken):
         m = book.metrics[metric]
         for vname, at in study._breaks(m):
             notes.append(Item(f"{m.label}: the question ({book.variables[vname].label}) changed at {at}, so it is not "
                               f"compared across that wave.", "note", metric))
-    for r in trends[(trends["group"] == "total") & trends["note"].str.contains("wording break")].itertuples():
+    for r in trends[(trends["group"] == "total") & trends["restarts_at"].notna()].itertuples():
         notes.append(Item(f"{r.metric_label}: its series starts again at {r.first_wave} after a change of wording; "
                           f"its pattern uses only the waves since.", "note", r.metric))
     notes.extend(Item(line, "note") for line in _design_lines(result))

@@ -40,6 +40,9 @@ VERDICTS = {
                        "have detected is shown beside it",
     "not tested": "a base too small, an interval too wide, a wording break, or a share fixed by the weighting",
 }
+#: Why a comparison was not tested (column ``not_tested_because``; empty when tested).
+NOT_TESTED = ("wording break", "no respondents", "unreliable", "fixed by the weighting", "no sampling variance")
+
 #: How each verdict is named in a sentence or a legend (one name per code).
 VERDICT_NAMES = {"rise": "significant rise", "fall": "significant fall", "held": "held within the margin",
                  "not significant": "not significant", "not tested": "not tested"}
@@ -89,7 +92,7 @@ class ChangeResult:
         t = self.table
         if not show_all:
             t = t[t["significant"]]
-        kind_order = t["kind"].map({"share": 0, "balance": 1, "mean": 2}).fillna(3)
+        kind_order = t["kind"].map({k: kind.order for k, kind in KINDS.items()}).fillna(9)
         keys = pd.DataFrame({"sig": ~t["significant"].astype(bool), "sub": t["group"] != "total",
                              "kind": kind_order, "size": -t["change"].abs().fillna(-1)}, index=t.index)
         return t.loc[keys.sort_values(["sig", "sub", "kind", "size"], kind="mergesort").index]
@@ -113,6 +116,15 @@ class ChangeResult:
         return lines
 
 
+@dataclass(frozen=True)
+class Baseline:
+    """What a wave is compared with: the waves, how results name it, and a note saying which."""
+
+    waves: tuple[str, ...]
+    label: str
+    note: str
+
+
 def year_ago(labels: list[str], dates: dict[str, str], wave: str, tolerance_days: int = 42) -> tuple[str | None, str]:
     """The stored wave nearest to 12 months before ``wave`` by fieldwork date, within tolerance."""
     target = dt.date.fromisoformat(dates[wave]) - dt.timedelta(days=365)
@@ -126,26 +138,32 @@ def year_ago(labels: list[str], dates: dict[str, str], wave: str, tolerance_days
     if best is None or gap > tolerance_days:
         return None, (f"no stored wave lies within {tolerance_days // 7} weeks of {target.isoformat()} "
                       f"(12 months before {wave})")
+    return best, f"year-ago wave: {_year_ago_label(best, dates, wave, target)}"
+
+
+def _year_ago_label(best: str, dates: dict[str, str], wave: str, target: dt.date) -> str:
     off = (dt.date.fromisoformat(dates[best]) - target).days
     when = ("12 months before" if off == 0 else
             f"{abs(off)} day{'s' if abs(off) != 1 else ''} {'after' if off > 0 else 'before'} 12 months before")
-    return best, f"year-ago wave: {best} (fieldwork {dates[best]}, {when} {wave}'s {dates[wave]})"
+    return f"{best} (fieldwork {dates[best]}, {when} {wave}'s {dates[wave]})"
 
 
-def resolve_against(labels: list[str], dates: dict[str, str], wave: str, against: str) -> tuple[list[str], str]:
-    """The wave(s) to compare with, and a note saying which."""
+def resolve_against(labels: list[str], dates: dict[str, str], wave: str, against: str) -> Baseline:
+    """The wave(s) to compare ``wave`` with (``against``: previous, year-ago, pooled:K or a
+    stored label), as a :class:`Baseline`."""
     if wave not in labels:
         raise TrackerError(f"no wave labelled {wave!r} (stored: {', '.join(labels) or 'none'})")
     i = labels.index(wave)
     if against == "previous":
         if i == 0:
             raise TrackerError(f"{wave} is the first stored wave; there is no previous wave to compare with")
-        return [labels[i - 1]], f"previous wave: {labels[i - 1]}"
+        return Baseline((labels[i - 1],), labels[i - 1], f"previous wave: {labels[i - 1]}")
     if against == "year-ago":
         found, note = year_ago(labels[:i], dates, wave)
         if found is None:
             raise TrackerError(note)
-        return [found], note
+        label = _year_ago_label(found, dates, wave, dt.date.fromisoformat(dates[wave]) - dt.timedelta(days=365))
+        return Baseline((found,), label, note)
     if against.startswith("pooled:"):
         try:
             k = int(against.split(":", 1)[1])
@@ -154,12 +172,12 @@ def resolve_against(labels: list[str], dates: dict[str, str], wave: str, against
         if k < 1 or i < k:
             raise TrackerError(f"--against {against}: {wave} has {i} earlier wave(s); cannot pool {k}")
         chosen = labels[i - k:i]
-        return chosen, f"pooled earlier waves: {', '.join(chosen)}"
+        return Baseline(tuple(chosen), ", ".join(chosen), f"pooled earlier waves: {', '.join(chosen)}")
     if against not in labels:
         raise TrackerError(f"--against {against}: not 'previous', 'year-ago', 'pooled:K' or a stored wave label")
     if against == wave:
         raise TrackerError(f"--against {against}: a wave cannot be compared with itself")
-    return [against], f"wave {against}"
+    return Baseline((against,), f"wave {against}", f"wave {against}")
 
 
 def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | None = None,
@@ -232,6 +250,10 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     flags = _join(why_blocked, detail, " | ")
     testable = (why_blocked == "") & ~empty_to & ~empty_from & ~unreliable & ~fixed
     testable &= np.isfinite(p_raw)
+    # why a comparison was not tested, as a typed value (NOT_TESTED) that readers select on
+    reason = np.select([testable, why_blocked != "", empty_to | empty_from, unreliable, fixed],
+                       ["", "wording break", "no respondents", "unreliable", "fixed by the weighting"],
+                       "no sampling variance")
     p_adj = adjust_pvalues(np.where(testable, p_raw, np.nan), adjust)
     sig = testable & (p_adj <= 1 - level)
     # the interval dual to the test (t on the same SE and df) at the family's agreeing level:
@@ -256,6 +278,7 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
         "se": se, "df": df, "covariance": cov,
         "covariance_from": np.where((np.asarray(shared, float) > 0) if shared is not None else np.zeros(len(m), bool),
                                     f"shared {source}" if source else "none", "none"),
+        "not_tested_because": reason,  # typed, not in the machine formats' COLUMNS
     })
     return out
 

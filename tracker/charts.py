@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import TrackerError
+from .kinds import KINDS
 
 OKABE_ITO = {
     "black": "#000000", "orange": "#E69F00", "sky blue": "#56B4E9", "bluish green": "#009E73",
@@ -39,11 +40,11 @@ CONFIG = {"axis": {"grid": True, "gridColor": "#eeeeee", "labelFontSize": 11, "t
 
 
 def _scale_factor(kind: str) -> float:
-    return 100.0 if kind in ("share", "balance") else 1.0
+    return KINDS[kind].scale if kind in KINDS else 1.0
 
 
 def _unit(kind: str) -> str:
-    return {"share": "%", "balance": "points", "mean": "mean"}.get(kind, "")
+    return KINDS[kind].chart_unit if kind in KINDS else ""
 
 
 def _chart_table(study, labels: list[str], adjust: str, level: float) -> pd.DataFrame:
@@ -188,14 +189,15 @@ def trend_spec(data: pd.DataFrame, by: str | None, adjust: str = "bh", level: fl
     unit = _unit(a["kind"])
     labels = list(dict.fromkeys(data.sort_values("date")["wave"]))
     x = _wave_axis(labels, width)
-    f1 = ".1f" if unit != "mean" else ".2f"
+    decimals = KINDS[a["kind"]].decimals if a["kind"] in KINDS else 2
+    f1 = f".{decimals}f"
     tooltip = [
         _tip("wave", "nominal", "wave"), _tip("panel", "nominal", "who"),
         _tip("value_shown", "quantitative", "value", f1),
         _tip("ci_low_shown", "quantitative", "interval from", f1),
         _tip("ci_high_shown", "quantitative", "interval to", f1),
         _tip("verdict", "nominal", "change from wave before"),
-        _tip("change_shown", "quantitative", "change", "+.1f" if unit != "mean" else "+.2f"),
+        _tip("change_shown", "quantitative", "change", f"+.{decimals}f"),
         _tip("base", "quantitative", "base", ","), _tip("effective_base", "quantitative", "effective base", ",.0f"),
         _tip("flags", "nominal", "flags"),
     ]
@@ -298,7 +300,7 @@ def change_overview(result, totals_only: bool = False, width: int = 520) -> dict
     for col in ("change", "change_low", "change_high", "min_detectable_change"):
         t[col + "_shown"] = t[col] * f
     t["mde_low"] = -t["min_detectable_change_shown"]
-    t["unit"] = np.where(t["kind"] == "mean", "means (scale points)", "shares and balances (percentage points)")
+    t["unit"] = t["kind"].map({k: kind.axis_title for k, kind in KINDS.items()})
     domain, colours, shapes = _legend_domain(t["verdict"])
     legend = {"title": "change", "orient": "bottom"}
     colour = _field("verdict", "nominal", scale={"domain": domain, "range": colours}, legend=legend)

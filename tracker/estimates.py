@@ -530,8 +530,18 @@ def wave_covariance(codebook: Codebook, a: pd.DataFrame, b: pd.DataFrame, metric
 
 # -- strata with a single cluster ----------------------------------------------------------------
 
-def single_cluster_lines(codebook: Codebook, table: pd.DataFrame, groups: list[str] | None = None) -> list[str]:
-    """Warnings naming every stratum with one cluster, in total and in each subgroup."""
+@dataclass(frozen=True)
+class SingleClusterFinding:
+    """Strata holding one cluster: in the whole wave (``scope`` 'total', which the rule
+    'refuse' refuses) or for one subgroup's respondents ('subgroup', always estimable)."""
+
+    scope: str
+    text: str
+
+
+def single_cluster_lines(codebook: Codebook, table: pd.DataFrame,
+                         groups: list[str] | None = None) -> list[SingleClusterFinding]:
+    """Findings naming every stratum with one cluster, in total and in each subgroup."""
     strata, clusters = design_labels(codebook, table)
     if strata is None or clusters is None:
         return []
@@ -548,15 +558,17 @@ def single_cluster_lines(codebook: Codebook, table: pd.DataFrame, groups: list[s
                 + ("; this rule understates the variance unless the lone clusters were taken with certainty "
                    "(certainty) or vary as the others do (average); centre does not"
                    if rule in ("average", "certainty") else ""))
-        out.append(f"{lone.size} stratum(s) hold a single cluster: {_names(names[lone])}; {then}")
+        out.append(SingleClusterFinding("total", f"{lone.size} stratum(s) hold a single cluster: "
+                                                 f"{_names(names[lone])}; {then}"))
     D, levels = group_matrix(codebook, table, list(codebook.groups) if groups is None else groups)
     for j in range(1, D.shape[1]):  # a loop over subgroup levels
         sub = single_cluster_strata(strata, clusters, D[:, j])
         sub = np.setdiff1d(sub, lone)
         if sub.size:
-            out.append(f"subgroup {levels.group[j]} = {levels.level[j]}: its respondents sit in a single cluster in "
-                       f"{sub.size} stratum(s): {_names(names[sub])} (estimable: the stratum's other clusters count "
-                       f"as zero for it, but its degrees of freedom are fewer)")
+            out.append(SingleClusterFinding(
+                "subgroup", f"subgroup {levels.group[j]} = {levels.level[j]}: its respondents sit in a single cluster "
+                            f"in {sub.size} stratum(s): {_names(names[sub])} (estimable: the stratum's other clusters "
+                            f"count as zero for it, but its degrees of freedom are fewer)"))
     return out
 
 

@@ -151,10 +151,12 @@ def recent_mask(ok: np.ndarray, n: int = 3) -> np.ndarray:
 
 
 def shown(kind: str, v: float) -> str:
-    """A value as the brief writes it, one decimal more than a headline (shares in %)."""
+    """A value as the brief writes it (the kind's own form, tracker.kinds)."""
     if not np.isfinite(v):
         return "n/a"
-    return {"share": f"{v * 100:.1f}%", "balance": f"{v * 100:+.1f}"}.get(kind, f"{v:.2f}")
+    from .kinds import kind_of
+
+    return kind_of(kind).fmt_value(v)
 
 
 def basis_text(row) -> str:

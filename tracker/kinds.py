@@ -55,6 +55,10 @@ class Kind:
     unit = ""            # after a shown value
     change_unit = ""     # after a shown change
     decimals = 2
+    order = 9            # reading order in tables: shares, balances, means (sizes in one unit together)
+    bounds: tuple[float, float] | None = None  # the range a value (and a predicted one) cannot leave
+    chart_unit = ""      # the y-axis word of a trend chart
+    axis_title = ""      # the x-axis of the change overview, shared by the kinds in the same units
 
     def values(self, codes_mask: Mask, numeric: Callable[[], tuple[np.ndarray, np.ndarray]], metric) \
             -> tuple[np.ndarray, np.ndarray]:
@@ -103,6 +107,8 @@ class Share(Kind):
     name = "share"
     test = "t on the design variance (shares)"
     scale, unit, change_unit, decimals = 100.0, "%", "points", 1
+    order, bounds, chart_unit = 0, (0.0, 1.0), "%"
+    axis_title = "shares and balances (percentage points)"
 
     def values(self, codes_mask, numeric, metric):
         y, answered = codes_mask(metric.codes)
@@ -161,6 +167,7 @@ class Share(Kind):
 class Mean(Kind):
     name = "mean"
     test = "t on the design variance (means)"
+    order, chart_unit, axis_title = 2, "mean", "means (scale points)"
 
     def values(self, codes_mask, numeric, metric):
         x, answered = numeric()
@@ -175,6 +182,8 @@ class Balance(Kind):
     name = "balance"
     test = "t on the design variance (balances)"
     scale, unit, change_unit, decimals = 100.0, "", "points", 1
+    order, bounds, chart_unit = 1, (-1.0, 1.0), "points"
+    axis_title = "shares and balances (percentage points)"
 
     def values(self, codes_mask, numeric, metric):
         plus, answered = codes_mask(metric.plus)
@@ -191,3 +200,13 @@ class Balance(Kind):
 
 
 KINDS: dict[str, Kind] = {k.name: k for k in (Share(), Mean(), Balance())}
+
+
+def kind_of(name) -> Kind:
+    """The kind called ``name``; a table without a kind column reads as shares (the default)."""
+    return KINDS.get(str(name), KINDS["share"])
+
+
+def attribute(kinds, name: str, default=None) -> list:
+    """One attribute of each row's kind (a column's worth, for pandas ``map``)."""
+    return [getattr(KINDS[k], name) if k in KINDS else default for k in kinds]

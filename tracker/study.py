@@ -279,13 +279,11 @@ class Study:
         from .estimates import population_problems, single_cluster_lines
 
         book = self.codebook
-        lines = single_cluster_lines(book, table)
         column = book.strata or ""
         out = [Problem("error", column, line) for line in population_problems(book, table)]
-        for i, line in enumerate(lines):
-            total = i == 0 and not line.startswith("subgroup ")
-            severity = "error" if total and book.single_cluster_rule == "refuse" else "warning"
-            out.append(Problem(severity, column, line))
+        for finding in single_cluster_lines(book, table):
+            refused = finding.scope == "total" and book.single_cluster_rule == "refuse"
+            out.append(Problem("error" if refused else "warning", column, finding.text))
         return out
 
     def add(self, file: str | Path, wave: str, date: str, encoding: str | None = None,
@@ -607,7 +605,8 @@ class Study:
         wave = wave or labels[-1]
         check_level(level)
         ms, gs = self._pick_metrics(metrics), self._pick_groups(by)
-        others, note = resolve_against(labels, self.dates(), wave, against)
+        baseline = resolve_against(labels, self.dates(), wave, against)
+        others, note = list(baseline.waves), baseline.note
         if family == "brief":
             table, notes, size = self._compare(wave, others, self._pick_metrics(), self._pick_groups(), adjust, level)
             keep = table["metric"].isin([m.name for m in ms]) & table["group"].isin(["total", *gs])
@@ -624,7 +623,7 @@ class Study:
             mix_rows = self._mix(ms, others, wave, mix, adjust, level)
             table = table.merge(mix_rows.drop(columns=["metric_label", "kind", "change"]).assign(group="total"),
                                 on=["metric", "group"], how="left")
-        return ChangeResult(table, wave, note.split(": ", 1)[-1], adjust, level, tuple(notes), tuple(others), mix_rows,
+        return ChangeResult(table, wave, baseline.label, adjust, level, tuple(notes), tuple(others), mix_rows,
                             size)
 
     def _compare(self, wave: str, others: list[str], ms: list, gs: list[str], adjust: str, level: float):
@@ -729,7 +728,7 @@ class Study:
         wave = wave or labels[-1]
         if against.startswith("pooled:"):
             raise TrackerError("composition compares two single waves; give previous, year-ago or a wave label")
-        others, _ = resolve_against(labels, self.dates(), wave, against)
+        others = list(resolve_against(labels, self.dates(), wave, against).waves)
         gs = list(self.codebook.profile) if groups is None else self._pick_groups(groups)
         if not gs:
             raise TrackerError("codebook: profile: no profile groups to compare (add 'profile: [...]' to the codebook)")
@@ -850,9 +849,12 @@ class Study:
         book = self.codebook
         pred["metric_label"] = pred["metric"].map({m.name: m.label for m in book.metrics.values()})
         pred["kind"] = pred["metric"].map({m.name: m.kind for m in book.metrics.values()})
-        for col in ("expected", "low", "high"):  # shares and balances cannot leave their range
-            lo_edge = np.where(pred["kind"] == "balance", -1.0, 0.0)
-            pred[col] = np.where(pred["kind"] == "mean", pred[col], np.clip(pred[col], lo_edge, 1.0))
+        from .kinds import KINDS
+
+        lo_edge = pred["kind"].map({k: (kind.bounds or (-np.inf, np.inf))[0] for k, kind in KINDS.items()})
+        hi_edge = pred["kind"].map({k: (kind.bounds or (-np.inf, np.inf))[1] for k, kind in KINDS.items()})
+        for col in ("expected", "low", "high"):  # a value cannot leave its kind's range
+            pred[col] = np.clip(pred[col].to_numpy(float), lo_edge.to_numpy(float), hi_edge.to_numpy(float))
         pred["basis"] = [basis_text(r) for r in pred.itertuples()]
         ms, gs = self._pick_metrics(metrics), self._pick_groups(by)
         keep = pred["metric"].isin([m.name for m in ms]) & pred["group"].isin(["total", *gs])

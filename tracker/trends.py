@@ -221,6 +221,8 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
         "blip_wave": np.where(is_blip, wv[np.maximum(tests["blip_at"], 0)], None),
         "blip_size": np.where(is_blip, tests["blip_size"], np.nan),
         "note": note,
+        # typed: the wave a wording break restarts the series at (None: no restart in the window)
+        "restarts_at": series["metric"].map(lambda m: (segment_start or {}).get(m)).to_numpy(object),
         "tau2": trend["tau2"], "intercept": trend["beta"][:, 0], "time_centre": tbar,
     })
     out.attrs["adjust"] = ADJUST_METHODS[adjust]

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .kinds import KINDS
+from .kinds import kind_of
 
 #: Width used when the terminal's cannot be measured (a pipe, a file).
 DEFAULT_WIDTH = 100
@@ -115,7 +115,7 @@ def _column(how: str, a, kinds: np.ndarray, b=None) -> list[str]:
         text = {"int": lambda v: _num(v, 0), "deff": lambda v: _num(v, 2), "p": p_text}[how](x)
         return list(np.where(blank, "", text))
     for name in np.unique(kinds):
-        k = KINDS.get(str(name), KINDS["share"])
+        k = kind_of(name)
         m = (kinds == name) & ~blank
         if not m.any():
             continue
@@ -161,7 +161,7 @@ def human_table(frame: pd.DataFrame, view: str, width: int | None = None, wide: 
     if frame.empty:
         return "Nothing to show: no row matches what was asked.\n", []
     width = width or terminal_width()
-    kinds = frame["kind"] if "kind" in frame else pd.Series("share", index=frame.index)
+    kinds = frame["kind"] if "kind" in frame else pd.Series(kind_of(None).name, index=frame.index)
     cols = [c for c in VIEWS[view] if all(s in frame for s in ((c.source,) if isinstance(c.source, str) else c.source))]
     if "group" in frame and frame["group"].nunique() <= 1:
         cols = [c for c in cols if c.source != "group"]
