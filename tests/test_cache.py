@@ -39,20 +39,20 @@ def test_a_replaced_wave_or_a_changed_codebook_rebuilds_the_entry(demo_copy):
     s = Study(demo_copy)
     s.estimates()
     label = s.labels[-1]
-    key = s._cache_key(label)
+    key = s.cellstore.key(label)
     assert read_cells(demo_copy, label, key) is not None
     table = s.load(label)
     path = demo_copy.parent / "again.parquet"
     table.iloc[:-5].to_parquet(path)  # the wave replaced by a different file: a new file, a new key
     s.add(path, label, s.dates()[label], replace=True)
     s2 = Study(demo_copy)
-    assert s2._cache_key(label) != key and read_cells(demo_copy, label, key) is None  # the old entry is gone
-    got = read_cells(demo_copy, label, s2._cache_key(label))  # add stored the new wave's
+    assert s2.cellstore.key(label) != key and read_cells(demo_copy, label, key) is None  # the old entry is gone
+    got = read_cells(demo_copy, label, s2.cellstore.key(label))  # add stored the new wave's
     assert got is not None and got.stats["base"][0].max() <= len(table) - 5
     text = (demo_copy / "codebook.yaml").read_text()
     (demo_copy / "codebook.yaml").write_text(text + "\n# a comment changes the codebook's SHA-256\n")
     s3 = Study(demo_copy)
-    assert read_cells(demo_copy, label, s3._cache_key(label)) is None
+    assert read_cells(demo_copy, label, s3.cellstore.key(label)) is None
 
 
 def test_a_damaged_entry_is_ignored_and_rewritten(demo_copy):
@@ -62,7 +62,7 @@ def test_a_damaged_entry_is_ignored_and_rewritten(demo_copy):
     got = Study(demo_copy).estimates(detail=True)
     pd.testing.assert_frame_equal(expected, got)
     s = Study(demo_copy)
-    assert all(read_cells(demo_copy, w, s._cache_key(w)) is not None for w in s.labels)
+    assert all(read_cells(demo_copy, w, s.cellstore.key(w)) is not None for w in s.labels)
 
 
 def test_a_busy_study_is_read_without_writing_the_cache(demo_copy):
@@ -102,12 +102,12 @@ def test_verify_leaves_the_cache_alone_and_sweeps_its_leftovers(demo_copy):
 def test_add_stores_the_new_waves_statistics(demo_copy, tmp_path):
     s = Study(demo_copy)
     label = s.labels[-1]
-    assert read_cells(demo_copy, label, s._cache_key(label)) is None
+    assert read_cells(demo_copy, label, s.cellstore.key(label)) is None
     table = s.load(label)
     path = tmp_path / "again.parquet"
     table.to_parquet(path)
     s.add(path, label, s.dates()[label], replace=True, allow_duplicate=True)
     s2 = Study(demo_copy)
-    cells = read_cells(demo_copy, label, s2._cache_key(label))
+    cells = read_cells(demo_copy, label, s2.cellstore.key(label))
     assert cells is not None
-    assert np.allclose(cells.stats["value"], s2._cells(label).stats["value"], equal_nan=True)
+    assert np.allclose(cells.stats["value"], s2.cellstore.cells(label).stats["value"], equal_nan=True)

@@ -76,7 +76,7 @@ def test_the_demo_expected_ranges(demo_study):
             & (shares["expected"] < shares["high"])).all()
     assert t.attrs["date"] > demo_study.dates()[demo_study.labels[-1]]
     # a sample twice the size: the sampling part shrinks by sqrt(2), the rest stays
-    rows = np.mean([demo_study._entry(w)["rows"] for w in demo_study.labels[-3:]])
+    rows = np.mean([demo_study.entry(w)["rows"] for w in demo_study.labels[-3:]])
     big = demo_study.expected(base=2 * rows)
     a = t.set_index(["metric", "group", "subgroup"])
     b = big.set_index(["metric", "group", "subgroup"])
@@ -108,9 +108,10 @@ def test_check_and_add_report_the_surprises_of_an_incoming_wave(demo_study, tmp_
     s = Study(root)
     source = tmp_path / "q3.parquet"
     s.load("2024-Q3").to_parquet(source)
-    ledger = s._ledger
-    keep = [w for w in ledger["waves"] if w["date"] < s.dates()["2024-Q3"]]
     from tracker import store
+
+    ledger = store.read_ledger(root)
+    keep = [w for w in ledger["waves"] if w["date"] < s.dates()["2024-Q3"]]
 
     store.write_ledger(root, {**ledger, "waves": keep})
     shutil.rmtree(root / "cache", ignore_errors=True)

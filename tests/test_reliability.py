@@ -57,7 +57,7 @@ def test_concurrent_adds_store_every_wave_once_or_refuse(study_dir, wave_csv):
             if same:
                 winner = a if ra.returncode == 0 else b
                 stored = study.load(la)
-                assert study._entry(la)["source"] == winner.name
+                assert study.entry(la)["source"] == winner.name
                 assert len(stored) == 40
     assert len(Study(study_dir).labels) == 30
 

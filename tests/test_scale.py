@@ -48,7 +48,7 @@ def test_duckdb_gives_the_in_process_statistics(clustered_study, demo_study):
         keep = bool(book.clusters)
         for label in study.labels:
             mine = cell_arrays(book, study.load(label), list(book.metrics.values()), list(book.groups), keep_psu=keep)
-            other = duckdb_cells(book, study.root / study._entry(label)["file"], keep_psu=keep)
+            other = duckdb_cells(book, study.root / study.entry(label)["file"], keep_psu=keep)
             same(mine, other)
             if keep:  # the same clusters, named alike, with the same totals of linearized values
                 order_a, order_b = np.argsort(mine.psu_names), np.argsort(other.psu_names)
@@ -65,7 +65,7 @@ def test_the_grouping_sets_query_for_overlapping_levels_gives_the_same(clustered
     book = clustered_study.codebook
     label = clustered_study.labels[0]
     mine = cell_arrays(book, clustered_study.load(label), list(book.metrics.values()), list(book.groups))
-    same(mine, scale.duckdb_cells(book, clustered_study.root / clustered_study._entry(label)["file"]))
+    same(mine, scale.duckdb_cells(book, clustered_study.root / clustered_study.entry(label)["file"]))
 
 
 def test_a_local_dask_cluster_of_two_workers_fills_the_cache_alike(clustered_study, tmp_path):

@@ -505,7 +505,7 @@ def _sample_notes(study, analysis) -> list[Item]:
     broken = set(t.loc[why == "wording break", "metric"])
     for metric in sorted(broken):
         m = book.metrics[metric]
-        for vname, at in study._breaks(m):
+        for vname, at in study.breaks(m):
             notes.append(Item(f"{m.label}: the question ({book.variables[vname].label}) changed at {at}, so it is not "
                               f"compared across that wave.", "note", metric))
     for r in trends[(trends["group"] == "total") & trends["restarts_at"].notna()].itertuples():

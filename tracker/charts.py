@@ -81,7 +81,7 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
                       lambda: _chart_table(study, labels, adjust, level))
     m = study.codebook.metrics[metric]
     if by is not None and by not in study.codebook.groups:
-        study._pick_groups([by])  # the usual message for an unknown split
+        study.pick_groups([by])  # the usual message for an unknown split
     out = base[(base["metric"] == metric) & (base["group"] == (by or "total"))].reset_index(drop=True)
     starts = study.segment_starts([m], labels)
     out["segment"] = "series"

@@ -321,12 +321,12 @@ def wave_task(root: str, label: str, engine: str = "pandas", threads: int | None
 
     study = Study(root)
     book = study.codebook
-    key = study._cache_key(label)
+    key = study.cellstore.key(label)
     if engine == "duckdb":
         path = study.stored_path(label)
         keep = bool(book.clusters and book.waves_share_clusters)
         return label, key, duckdb_cells(book, path, keep_psu=keep, threads=threads), id_hashes(book, path)
-    return (label, key, *study._wave_cells(study.load(label)))
+    return (label, key, *study.cellstore.compute(study.load(label)))
 
 
 @dataclass(frozen=True)
@@ -362,8 +362,8 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
         raise TrackerError("give --workers or --scheduler, not both")
     if workers is not None and workers < 1:
         raise TrackerError(f"--workers {workers}: give 1 or more")
-    labels = study._pick_waves(waves)
-    todo = [w for w in labels if rebuild or read_cells(study.root, w, study._cache_key(w)) is None]
+    labels = study.pick_waves(waves)
+    todo = [w for w in labels if rebuild or read_cells(study.root, w, study.cellstore.key(w)) is None]
     current = tuple(w for w in labels if w not in todo)
     root = str(study.root.resolve())
     if not todo:
@@ -395,8 +395,8 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
             if cluster is not None:
                 cluster.close()
     for label, key, cells, ids in results:
-        if key != study._cache_key(label):
+        if key != study.cellstore.key(label):
             continue  # the wave changed while it was being computed: leave it to the next reader
         write_cells(study.root, label, key, cells, ids)
-    study._cache = {}
+    study.forget()
     return PrepareReport(tuple(todo), current, engine, where)

@@ -12,6 +12,7 @@ import pandas as pd
 from . import store
 from .codebook import LABEL_RE, Codebook, load_codebook
 from .errors import TrackerError
+from .cellstore import CellStore
 from .intake import Problem, check_wave, read_wave_file, wave_in_span
 
 
@@ -125,8 +126,9 @@ class Study:
             raise TrackerError(f"{self.root}: not a study folder (no {store.LEDGER}); make one with 'tracker new'")
         self.codebook: Codebook = load_codebook(self.root / store.CODEBOOK)
         self._ledger = store.read_ledger(self.root)
-        self._cache: dict[str, pd.DataFrame] = {}
+        self._cache: dict = {}
         self._files = store.StoredFiles(self.root)  # each stored file checked against its SHA-256
+        self.cellstore = CellStore(self.root, self.codebook, self.entry, self.stored_path, self.load)
 
     # -- making and reading ------------------------------------------------------------
     @classmethod
@@ -188,9 +190,10 @@ class Study:
     def stored_path(self, label: str) -> Path:
         """The stored file of a wave, once it is known to be the file the ledger recorded (its
         SHA-256); a changed, swapped or damaged file is refused with a pointer to verify."""
-        return self._files.check(self._entry(label))
+        return self._files.check(self.entry(label))
 
-    def _entry(self, label: str) -> dict:
+    def entry(self, label: str) -> dict:
+        """The ledger entry of a stored wave (refuses a label that is not stored)."""
         for w in self._ledger["waves"]:
             if w["label"] == label:
                 return w
@@ -327,7 +330,7 @@ class Study:
         sw, sw2 = float(weights.sum()), float((weights**2).sum())
         neff = sw * sw / sw2
         metrics = list(book.metrics.values())
-        cells, ids = self._wave_cells(table)  # computed once: the presence of each metric and the cache
+        cells, ids = self.cellstore.compute(table)  # computed once: the presence of each metric and the cache
         answered = cells.stats["base"][0] > 0  # the total's base of each metric
         present = tuple(m.name for j, m in enumerate(metrics) if answered[j])
         absent = tuple(m.name for j, m in enumerate(metrics) if not answered[j])
@@ -379,16 +382,10 @@ class Study:
             raise
         self._ledger = ledger
         self._files.remember(fname, store._stamp(self.root / fname, sha), locked=True)
-        self._cache = {}  # a replaced wave changes what was derived from it
-        if cells is not None:  # the new wave's cell statistics, ready for the next command (derived)
-            from dataclasses import replace as _replace
-
-            from .cache import write_cells
-
-            write_cells(self.root, wave, self._cache_key(wave), cells, ids, locked=True)
-            # and for the judging below, without reading back what was just written
-            self._cache[("cells", wave)] = _replace(cells, psu=None, psu_names=None)
-            self._cache[("ids", wave)] = ids
+        self.forget()  # a replaced wave changes what was derived from it
+        # the new wave's cell statistics, ready for the next command (derived) and for the judging
+        # below, without reading back what was just written
+        self.cellstore.store(wave, cells, ids, locked=True)
         warnings = tuple(p.describe(Path(file).name) for p in report.problems) + tuple(extra_lines)
         step(f"adding {wave}", 3, 4, "judging against the earlier waves")
         try:
@@ -406,8 +403,10 @@ class Study:
 
 
     # -- estimates and changes ----------------------------------------------------------
-    def _pick_metrics(self, names=None) -> list:
+    def pick_metrics(self, names=None) -> list:
+        """The metrics named (all when none), refusing a name the codebook does not know."""
         book = self.codebook
+        names = [names] if isinstance(names, str) else names
         if not names:
             return list(book.metrics.values())
         unknown = [n for n in names if n not in book.metrics]
@@ -415,8 +414,10 @@ class Study:
             raise TrackerError(f"--metric {unknown[0]}: not a metric of this study ({', '.join(book.metrics)})")
         return [book.metrics[n] for n in names]
 
-    def _pick_groups(self, names=None) -> list[str]:
+    def pick_groups(self, names=None) -> list[str]:
+        """The splits named (all when None; [] or total for totals only), refusing unknown ones."""
         book = self.codebook
+        names = [names] if isinstance(names, str) else names
         if names is None:
             return list(book.groups)
         names = [n for n in names if n not in ("total", "none")]
@@ -425,91 +426,16 @@ class Study:
             raise TrackerError(f"--by {unknown[0]}: not a group of this study ({', '.join(book.groups) or 'none declared'})")
         return list(dict.fromkeys(names))
 
-    def _pick_waves(self, labels=None) -> list[str]:
+    def pick_waves(self, labels=None) -> list[str]:
+        """The stored waves named, in fieldwork order (all when none)."""
+        labels = [labels] if isinstance(labels, str) else labels
         if not self.labels:
             raise TrackerError(f"{self.root}: no waves stored yet; add one with 'tracker add'")
         if not labels:
             return self.labels
         for lab in labels:
-            self._entry(lab)
+            self.entry(lab)
         return [lab for lab in self.labels if lab in labels]
-
-    # -- per-wave statistics (tracker.cache keeps them on disk) ----------------------------
-    def _cache_key(self, label: str) -> str:
-        from .cache import cache_key
-
-        return cache_key(self.root, self._entry(label), self.codebook.sha256)
-
-    def _wave_cells(self, table: pd.DataFrame):
-        """Every cell's statistics of a wave table (all metrics, every split) and the hashes
-        of its respondent ids."""
-        from .estimates import cell_arrays
-
-        book = self.codebook
-        cells = cell_arrays(book, table, list(book.metrics.values()), list(book.groups),
-                            keep_psu=bool(book.clusters and book.waves_share_clusters))
-        from .cache import hash_ids
-
-        ids = hash_ids(table[book.id]) if book.id and book.id in table.columns else None
-        return cells, ids
-
-    def _compute_cells(self, label: str, table: pd.DataFrame | None = None, locked: bool = False):
-        """Every cell's statistics of a stored wave, computed from its respondents and saved
-        in the study's cache."""
-        from .cache import write_cells
-
-        cells, ids = self._wave_cells(self.load(label) if table is None else table)
-        # the cluster totals are written when a comparison first needs them (Study._psu)
-        write_cells(self.root, label, self._cache_key(label), cells, ids, locked=locked, psu=False)
-        return cells, ids
-
-    def _cells(self, label: str):
-        """Every cell's statistics of a wave: from memory, the study's cache, or computed."""
-        key = ("cells", label)
-        if key not in self._cache:
-            from .cache import read_entry
-
-            self.stored_path(label)  # what the cache holds is derived from this file: it must be sound
-
-            got = read_entry(self.root, label, self._cache_key(label))
-            cells = None if got is None else got[0]
-            if cells is not None:
-                self._cache[("ids", label)] = got[1]
-            if cells is None or cells.metrics != tuple(self.codebook.metrics):
-                cells, ids = self._compute_cells(label)
-                if cells.psu is not None:  # saved if a comparison asks for them (Study._psu)
-                    self._cache[("psu fresh", label)] = cells
-                self._cache[("ids", label)] = ids
-                from dataclasses import replace
-
-                cells = replace(cells, psu=None, psu_names=None)
-            self._cache[key] = cells
-        return self._cache[key]
-
-    def _psu(self, label: str):
-        """(cluster totals of every cell's linearized values, cluster names) of a wave."""
-        key = ("psu", label)
-        if key not in self._cache:
-            from .cache import read_psu
-
-            self.stored_path(label)
-
-            got = read_psu(self.root, label, self._cache_key(label))
-            if got is None:
-                from .cache import write_psu
-
-                cells = self._cache.pop(("psu fresh", label), None) or self._wave_cells(self.load(label))[0]
-                write_psu(self.root, label, self._cache_key(label), cells)
-                got = (cells.psu, cells.psu_names)
-            self._cache[key] = got
-        return self._cache[key]
-
-    def _id_hashes(self, label: str):
-        """Sorted 64-bit hashes of a wave's respondent ids (None when the study has no ids)."""
-        if not self.codebook.id:
-            return None
-        self._cells(label)  # the ids come with the cells, read or computed
-        return self._cache.get(("ids", label))
 
     def _wave_rows(self, label: str, metrics: list, groups: list[str], level: float,
                    interval: str = "wilson") -> pd.DataFrame:
@@ -517,7 +443,7 @@ class Study:
 
         key = ("est", label, tuple(m.name for m in metrics), tuple(groups), level, interval)
         if key not in self._cache:
-            cells = self._cells(label).select([m.name for m in metrics], groups)
+            cells = self.cellstore.cells(label).select([m.name for m in metrics], groups)
             self._cache[key] = estimates_frame([(label, self.dates()[label], cells)], metrics, level, interval)
         return self._cache[key]
 
@@ -544,11 +470,11 @@ class Study:
         check_level(level)
         from .estimates import estimates_frame
 
-        ms, gs, ws = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
+        ms, gs, ws = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves(waves)
         dates, names = self.dates(), [m.name for m in ms]
         key = ("estimates", tuple(ws), tuple(names), tuple(gs), level, interval)
         if key not in self._cache:  # trends, surprises and charts ask for the same table again
-            out = estimates_frame([(w, dates[w], self._cells(w).select(names, gs)) for w in ws], ms, level, interval)
+            out = estimates_frame([(w, dates[w], self.cellstore.cells(w).select(names, gs)) for w in ws], ms, level, interval)
             self._cache[key] = out[out["base"] > 0].reset_index(drop=True)
         out = self._cache[key]
         return out.copy() if detail else out[COLUMNS]
@@ -567,7 +493,7 @@ class Study:
                 out[m.name] = given / KINDS[m.kind].scale
         return out
 
-    def _breaks(self, metric):
+    def breaks(self, metric):
         """(variable, wave) for each wording break of the metric's variable and base variable."""
         for vname in filter(None, (metric.variable, metric.base_variable)):
             b = self.codebook.variables[vname].break_before
@@ -579,7 +505,7 @@ class Study:
         order = self.dates()
         out = {}
         for m in metrics:
-            for vname, b in self._breaks(m):
+            for vname, b in self.breaks(m):
                 after = [wave_in_span(w, b, None, order) for w in [*wave_from, wave_to]]
                 if len(set(after)) > 1:
                     out[m.name] = f"not compared: {vname} changed at {b} (wording break)"
@@ -601,14 +527,14 @@ class Study:
 
         if family not in ("brief", "asked"):
             raise TrackerError(f"--family {family}: use brief (every metric and subgroup) or asked")
-        labels = self._pick_waves()
+        labels = self.pick_waves()
         wave = wave or labels[-1]
         check_level(level)
-        ms, gs = self._pick_metrics(metrics), self._pick_groups(by)
+        ms, gs = self.pick_metrics(metrics), self.pick_groups(by)
         baseline = resolve_against(labels, self.dates(), wave, against)
         others, note = list(baseline.waves), baseline.note
         if family == "brief":
-            table, notes, size = self._compare(wave, others, self._pick_metrics(), self._pick_groups(), adjust, level)
+            table, notes, size = self._compare(wave, others, self.pick_metrics(), self.pick_groups(), adjust, level)
             keep = table["metric"].isin([m.name for m in ms]) & table["group"].isin(["total", *gs])
             table = table[keep].reset_index(drop=True)
             notes.append(f"p-values adjusted across the {size:,} comparisons of {wave} against {others[-1] if len(others) == 1 else 'the pooled waves'} "
@@ -664,7 +590,7 @@ class Study:
         book = self.codebook
         out = []
         if used != "respondents" and book.id:
-            ha, hb = self._id_hashes(wave), self._id_hashes(other)
+            ha, hb = self.cellstore.id_hashes(wave), self.cellstore.id_hashes(other)
             if ha is not None and hb is not None:
                 k = int(np.intersect1d(ha, hb).size)
                 if k and k >= 0.05 * min(ha.size, hb.size):  # a large overlap: row numbers, or a panel not declared
@@ -689,16 +615,16 @@ class Study:
         book = self.codebook
         names = [m.name for m in ms]
         if book.clusters and book.waves_share_clusters:
-            (ta, ka), (tb, kb) = self._psu(wave), self._psu(other)
+            (ta, ka), (tb, kb) = self.cellstore.psu(wave), self.cellstore.psu(other)
             if ta is not None and tb is not None:
-                pick = self._cells(wave).select(names, gs)
-                cols = _cell_columns(self._cells(wave), pick)
+                pick = self.cellstore.cells(wave).select(names, gs)
+                cols = _cell_columns(self.cellstore.cells(wave), pick)
                 pa = PsuTotals(ta.totals[:, cols], ta.stratum, ta.n_strata, ta.factor)
                 pb = PsuTotals(tb.totals[:, cols], tb.stratum, tb.n_strata, tb.factor)
                 cov, shared = cross_wave_covariance(pa, ka, pb, kb, book.single_cluster_rule)
                 if shared:
                     return cov, shared, "clusters", shared_per_cell(pa, ka, pb, kb)
-        ha, hb = self._id_hashes(wave), self._id_hashes(other)
+        ha, hb = self.cellstore.id_hashes(wave), self.cellstore.id_hashes(other)
         if not book.panel or ha is None or hb is None or not np.intersect1d(ha, hb).size:
             return np.zeros(len(now)), 0, "", np.zeros(len(now))
         return wave_covariance(book, self.load(wave), self.load(other), ms, gs, now, then, by_cluster=False)
@@ -724,12 +650,12 @@ class Study:
         from .changes import resolve_against
         from .composition import compare_composition
 
-        labels = self._pick_waves()
+        labels = self.pick_waves()
         wave = wave or labels[-1]
         if against.startswith("pooled:"):
             raise TrackerError("composition compares two single waves; give previous, year-ago or a wave label")
         others = list(resolve_against(labels, self.dates(), wave, against).waves)
-        gs = list(self.codebook.profile) if groups is None else self._pick_groups(groups)
+        gs = list(self.codebook.profile) if groups is None else self.pick_groups(groups)
         if not gs:
             raise TrackerError("codebook: profile: no profile groups to compare (add 'profile: [...]' to the codebook)")
         key = ("composition", wave, others[0], tuple(gs), adjust, level)
@@ -740,9 +666,9 @@ class Study:
 
     # -- trends ---------------------------------------------------------------------------
     def _window(self, last: int | None, since: str | None, until: str | None = None) -> list[str]:
-        labels = self._pick_waves()
+        labels = self.pick_waves()
         if until is not None:
-            self._entry(until)
+            self.entry(until)
             labels = labels[:labels.index(until) + 1]
         if since is not None:
             if since not in labels:
@@ -759,7 +685,7 @@ class Study:
         order = self.dates()
         out = {}
         for m in metrics:
-            for _, b in self._breaks(m):
+            for _, b in self.breaks(m):
                 after = [w for w in labels if wave_in_span(w, b, None, order)]
                 if after and after[0] != labels[0]:
                     if m.name not in out or labels.index(after[0]) > labels.index(out[m.name]):
@@ -781,10 +707,10 @@ class Study:
         check_adjust(adjust)
         if family not in ("brief", "asked"):
             raise TrackerError(f"--family {family}: use brief (every metric and subgroup) or asked")
-        ms = self._pick_metrics(metrics)
-        gs = self._pick_groups(by)
+        ms = self.pick_metrics(metrics)
+        gs = self.pick_groups(by)
         labels = self._window(last, since, until)
-        fam_ms, fam_by = (self._pick_metrics(), None) if family == "brief" else (ms, by)
+        fam_ms, fam_by = (self.pick_metrics(), None) if family == "brief" else (ms, by)
         key = ("trends", tuple(m.name for m in fam_ms), None if fam_by is None else tuple(gs), tuple(labels), adjust,
                level)
         if key not in self._cache:
@@ -821,7 +747,7 @@ class Study:
             raise TrackerError(f"--base {base}: give the expected number of respondents, above 0")
         from .expected import WINDOW
 
-        labels = self._pick_waves()
+        labels = self.pick_waves()
         date = parse_date(date) if date else self.next_date()
         if date <= self.dates()[labels[-1]]:
             raise TrackerError(f"--date {date}: the next wave must come after the latest, {labels[-1]} "
@@ -840,11 +766,11 @@ class Study:
             vb = np.where(last3, v * bases, 0.0).sum(axis=1) / last3.sum(axis=1)
         n_new = n_recent
         if base is not None:  # each series keeps its recent share of the respondents
-            rows = np.mean([self._entry(w)["rows"] for w in labels[-3:]])
+            rows = np.mean([self.entry(w)["rows"] for w in labels[-3:]])
             n_new = base * n_recent / rows
         with np.errstate(invalid="ignore", divide="ignore"):
             v_new = pd.Series(vb / n_new, index=pd.MultiIndex.from_frame(series))
-        pred = predict(hist, patterns, date, v_new, self.segment_starts(self._pick_metrics(), labels), level)
+        pred = predict(hist, patterns, date, v_new, self.segment_starts(self.pick_metrics(), labels), level)
         pred["expected_base"] = n_new
         book = self.codebook
         pred["metric_label"] = pred["metric"].map({m.name: m.label for m in book.metrics.values()})
@@ -856,7 +782,7 @@ class Study:
         for col in ("expected", "low", "high"):  # a value cannot leave its kind's range
             pred[col] = np.clip(pred[col].to_numpy(float), lo_edge.to_numpy(float), hi_edge.to_numpy(float))
         pred["basis"] = [basis_text(r) for r in pred.itertuples()]
-        ms, gs = self._pick_metrics(metrics), self._pick_groups(by)
+        ms, gs = self.pick_metrics(metrics), self.pick_groups(by)
         keep = pred["metric"].isin([m.name for m in ms]) & pred["group"].isin(["total", *gs])
         out = pred[keep][RANGE_COLUMNS].reset_index(drop=True)
         out.attrs.update(date=date, after=labels[-1], level=level)
@@ -873,12 +799,12 @@ class Study:
         from .trends import MIN_WAVES
 
         check_level(level)
-        labels = self._pick_waves()
-        ms = self._pick_metrics()
+        labels = self.pick_waves()
+        ms = self.pick_metrics()
         order = self.dates()
         if table is None:
             wave = wave or labels[-1]
-            self._entry(wave)
+            self.entry(wave)
             date = order[wave]
             new = self.estimates(waves=[wave], level=level)
         else:
@@ -898,7 +824,7 @@ class Study:
         pred = predict(hist, patterns, date, None, self.segment_starts(ms, before), level)
         # a wording break between the last wave fitted and this one restarts the series: no prediction
         for m in ms:
-            for vname, b in self._breaks(m):
+            for vname, b in self.breaks(m):
                 if wave_in_span(wave, b, None, order) and not wave_in_span(before[-1], b, None, order):
                     pred.loc[pred["metric"] == m.name, ["expected", "prediction_sd", "fit_sd"]] = np.nan
         return surprise_table(pred, new, adjust, level)
@@ -919,7 +845,7 @@ class Study:
         key = ("smoothed", level, tuple(upto))
         if key not in self._cache:
             est = self.estimates(level=level, waves=upto)
-            series, labels, y, v, ok, _ = _series_arrays(est, self.segment_starts(self._pick_metrics(), upto))
+            series, labels, y, v, ok, _ = _series_arrays(est, self.segment_starts(self.pick_metrics(), upto))
             ok = ok & np.isfinite(y) & (v > 0)
             fit = smooth_over_q(y, v, ok)
             q = fit["q_ml"]
@@ -935,9 +861,14 @@ class Study:
             })
             self._cache[key] = est.merge(frame, on=["metric", "group", "subgroup", "wave"], how="left")
         out = self._cache[key]
-        ms, gs, ws = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
+        ms, gs, ws = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves(waves)
         keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs]) & out["wave"].isin(ws)
         return out[keep].reset_index(drop=True)
+
+    def forget(self) -> None:
+        """Drop every result held in memory (the stored waves and the cache are untouched)."""
+        self._cache = {}
+        self.cellstore.forget()
 
     def memo(self, key: tuple, make):
         """``make()`` computed once per Study object (for values derived from the stored
@@ -954,7 +885,7 @@ class Study:
         from .analysis import analyse
 
         check_level(level)
-        wave = wave or self._pick_waves()[-1]
+        wave = wave or self.pick_waves()[-1]
         key = ("analysis", wave, against, adjust, level)
         if key not in self._cache:
             self._cache[key] = analyse(self, wave, against, adjust, level)
@@ -967,7 +898,7 @@ class Study:
         check_level(level)
         if k < 2:
             raise TrackerError(f"--pool {k}: pool at least 2 waves")
-        ms, gs, labels = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves()
+        ms, gs, labels = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves()
         if len(labels) < k:
             raise TrackerError(f"--pool {k}: only {len(labels)} waves are stored")
         rows = []
@@ -985,8 +916,8 @@ class Study:
         """Every wave against the one before it, for the given metrics and subgroups. Each step
         keeps the p-values and verdicts of its own wave's comparison family (every metric in
         total and in every subgroup, as ``changes`` and the brief of that wave report them)."""
-        ms, gs, labels = self._pick_metrics(metrics), self._pick_groups(by), self._pick_waves(waves)
-        every, groups = self._pick_metrics(), self._pick_groups()
+        ms, gs, labels = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves(waves)
+        every, groups = self.pick_metrics(), self.pick_groups()
         key = ("steps", tuple(labels), adjust, level)
         if key not in self._cache:
             parts = []
