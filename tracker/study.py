@@ -12,109 +12,11 @@ import pandas as pd
 from . import store
 from .codebook import LABEL_RE, Codebook, load_codebook
 from .errors import TrackerError
+from . import adding
+from .options import check_adjust, check_level, parse_date  # noqa: F401 - part of the API
+from .adding import AddReport, CheckReport, content_fingerprint  # noqa: F401 - the API's result types
 from .cellstore import CellStore
-from .intake import Problem, check_wave, read_wave_file, wave_in_span
-
-
-@dataclass(frozen=True)
-class CheckReport:
-    """What ``check`` found: the problems, and whether the wave can be added."""
-
-    file: str
-    rows: int
-    problems: tuple[Problem, ...]
-    surprises: tuple[str, ...] = ()
-
-    @property
-    def errors(self) -> list[Problem]:
-        return [p for p in self.problems if p.severity == "error"]
-
-    @property
-    def ok(self) -> bool:
-        return not self.errors
-
-    def lines(self) -> list[str]:
-        return [p.describe(self.file) for p in self.problems] + list(self.surprises)
-
-
-@dataclass(frozen=True)
-class AddReport:
-    """Summary of a stored wave."""
-
-    label: str
-    date: str
-    rows: int
-    weighted_base: float
-    effective_base: float
-    efficiency: float
-    metrics_present: tuple[str, ...]
-    metrics_absent: tuple[str, ...]
-    variables_missing: tuple[str, ...]
-    warnings: tuple[str, ...]
-    exclusions: dict[str, dict[str, int]] = field(default_factory=dict)
-    replaced: bool = False
-    weighting: dict = field(default_factory=dict)
-    make_up: tuple[str, ...] = ()
-    surprises: tuple[str, ...] = ()
-
-    def lines(self) -> list[str]:
-        out = [
-            f"stored wave {self.label} (fieldwork {self.date}){' replacing the earlier version' if self.replaced else ''}",
-            f"  respondents (base): {self.rows:,}",
-            f"  weighted base: {self.weighted_base:,.1f}",
-            f"  effective base: {self.effective_base:,.1f}  (weighting efficiency {self.efficiency:.1%})",
-            f"  metrics present: {', '.join(self.metrics_present) or 'none'}",
-        ]
-        if self.metrics_absent:
-            out.append(f"  metrics not in this wave: {', '.join(self.metrics_absent)}")
-        if self.variables_missing:
-            out.append(f"  variables not in this wave: {', '.join(self.variables_missing)}")
-        for metric, reasons in self.exclusions.items():
-            if reasons:
-                parts = ", ".join(f"{v:,} {k}" for k, v in reasons.items())
-                out.append(f"  left out of {metric}: {parts}")
-        out.extend(f"  {w}" for w in self.warnings)
-        out.extend(f"  {line}" for line in self.make_up)
-        out.extend(f"  {line}" for line in self.surprises)
-        return out
-
-
-def check_level(level: float) -> None:
-    """Refuse a confidence level outside (0.5, 1)."""
-    if not 0.5 < level < 1:
-        raise TrackerError(f"--level {level}: give a confidence level between 0.5 and 1, e.g. 0.95")
-
-
-def check_adjust(adjust: str) -> None:
-    """Refuse an adjustment the tool does not know (one list: tracker.names.ADJUST_METHODS)."""
-    from .names import ADJUST_METHODS
-
-    if adjust not in ADJUST_METHODS:
-        raise TrackerError(f"--adjust {adjust}: use one of {', '.join(ADJUST_METHODS)}")
-
-
-def parse_date(text: str) -> str:
-    try:
-        return dt.date.fromisoformat(str(text).strip()).isoformat()
-    except ValueError:
-        raise TrackerError(f"fieldwork date {text!r} is not an ISO date (YYYY-MM-DD)") from None
-
-
-#: Fieldwork dates before this (or over a year ahead) are warned about at check and add.
-EARLIEST_DATE = dt.date(1950, 1, 1)
-
-
-def content_fingerprint(table: pd.DataFrame) -> str:
-    """SHA-256 of a harmonized table that ignores row order (and so line ends, quoting and
-    any other detail of the delivered file): the sorted per-row hashes of its columns in
-    name order."""
-    import hashlib
-
-    cols = sorted(table.columns)
-    rows = pd.util.hash_pandas_object(table[cols], index=False).to_numpy()
-    h = hashlib.sha256(",".join(cols).encode("utf-8"))
-    h.update(np.sort(rows).tobytes())
-    return h.hexdigest()
+from .intake import wave_in_span
 
 
 class Study:
@@ -199,208 +101,54 @@ class Study:
                 return w
         raise TrackerError(f"{self.root}: no wave labelled {label!r} (stored: {', '.join(self.labels) or 'none'})")
 
-    # -- intake -----------------------------------------------------------------------
+    # -- intake (tracker.adding) ----------------------------------------------------------
     def check(self, file: str | Path, wave: str | None = None, date: str | None = None,
               encoding: str | None = None, replace: bool = False, allow_duplicate: bool = False,
               sheet: str | None = None, header_row: int | None = None) -> CheckReport:
-        """Check a wave file against the codebook without changing anything. With the wave's
-        date, its cells are also judged against the ranges the stored waves predict."""
-        report, table, _ = self._check(file, wave, date, encoding, replace, allow_duplicate=allow_duplicate,
-                                       sheet=sheet, header_row=header_row)
-        if report.ok and date and len(table):
-            from dataclasses import replace as _replace
+        """Check a wave file against the codebook without changing anything.
 
-            report = _replace(report, surprises=tuple(self._surprise_lines(table, wave, parse_date(date))))
-        return report
+        Parameters
+        ----------
+        file : path
+            The wave file (CSV, Parquet or XLSX).
+        wave, date : str, optional
+            Its label and fieldwork date (ISO); with the date its cells are also judged against
+            the ranges the stored waves predict.
+        encoding, sheet, header_row : optional
+            How to read the file (a text encoding; a workbook's sheet and header row).
+        replace, allow_duplicate : bool
+            Check it as a replacement of the stored wave of that label; accept data identical
+            to a stored wave's.
 
-    def _surprise_lines(self, table, wave, date) -> list[str]:
-        from .expected import surprise_lines
-
-        try:
-            return surprise_lines(self.surprises(wave=wave, table=table, date=date))
-        except (TrackerError, ValueError):  # judging is a courtesy: it never stops a wave
-            return []
-
-    def _check(self, file, wave, date, encoding, replace, rake=False, allow_duplicate=False, sheet=None,
-               header_row=None):
-        wf = read_wave_file(file, encoding, sheet=sheet, header_row=header_row)
-        problems: list[Problem] = list(wf.problems)
-        label = wave
-        if label is not None:
-            if not LABEL_RE.fullmatch(label):
-                problems.append(Problem("error", "", f"wave label {label!r} is not valid (a letter or digit, then "
-                                        f"letters, digits, '.', '_', '-'; at most 40 characters, no spaces)"))
-            elif label in self.labels and not replace:
-                problems.append(Problem("error", "", f"a wave labelled {label} is already stored; use --replace to replace it"))
-            elif replace and label not in self.labels:
-                problems.append(Problem("error", "", f"--replace: no wave labelled {label} is stored (stored: "
-                                        f"{', '.join(self.labels) or 'none'}); leave out --replace to add it"))
-        if date is not None:
-            try:
-                iso = parse_date(date)
-            except TrackerError as exc:
-                problems.append(Problem("error", "", str(exc)))
-            else:
-                clash = [w["label"] for w in self.wave_entries if w["date"] == iso and w["label"] != label]
-                if clash:
-                    problems.append(Problem("error", "", f"wave {clash[0]} already has fieldwork date {iso}"))
-                latest = dt.date.today() + dt.timedelta(days=366)
-                if not EARLIEST_DATE <= dt.date.fromisoformat(iso) <= latest:
-                    problems.append(Problem("warning", "", f"fieldwork date {iso} lies outside {EARLIEST_DATE} to "
-                                            f"{latest} (a year from today); is it a typing slip?"))
-        if label is not None and LABEL_RE.fullmatch(label):
-            from .codebook import reference_problems
-
-            problems += [Problem("error", "", p) for p in reference_problems(self.codebook, self.labels, label)]
-        for w in self.wave_entries:
-            if w["source_sha256"] == wf.sha256 and not (replace and w["label"] == label):
-                problems.append(Problem("error", "", f"this file is already stored as wave {w['label']}"
-                                        + ("" if replace else "; use --replace with that label to store it again")))
-        order = self.dates()
-        if label and date:
-            try:
-                order[label] = parse_date(date)
-            except TrackerError:
-                pass
-        table, found = check_wave(self.codebook, wf, label or "", order, rake=rake)
-        problems.extend(found)
-        wf.content_sha256 = mark = content_fingerprint(table) if len(table) else ""
-        if mark and not allow_duplicate:
-            for w in self.wave_entries:
-                if w.get("content_sha256") == mark and not (replace and w["label"] == label):
-                    problems.append(Problem("error", "", f"the data are the same as stored wave {w['label']} "
-                                            f"(same respondents and answers, in any row order); a re-delivery? "
-                                            f"Use --allow-duplicate if the two waves really are identical"))
-        if not any(p.severity == "error" for p in found) and len(table):
-            problems.extend(self._design_problems(table))
-        report = CheckReport(str(file), len(wf.table), tuple(problems))
-        return report, table, wf
-
-    def _design_problems(self, table: pd.DataFrame) -> list[Problem]:
-        """Strata holding a single cluster, in total and in each subgroup: a warning, or an
-        error under the rule single_cluster_strata: refuse."""
-        from .estimates import population_problems, single_cluster_lines
-
-        book = self.codebook
-        column = book.strata or ""
-        out = [Problem("error", column, line) for line in population_problems(book, table)]
-        for finding in single_cluster_lines(book, table):
-            refused = finding.scope == "total" and book.single_cluster_rule == "refuse"
-            out.append(Problem("error" if refused else "warning", column, finding.text))
-        return out
+        Returns
+        -------
+        CheckReport
+            The problems found (errors and warnings) and the surprises.
+        """
+        return adding.check(self, file, wave, date, encoding, replace, allow_duplicate, sheet, header_row)
 
     def add(self, file: str | Path, wave: str, date: str, encoding: str | None = None,
             replace: bool = False, rake: bool = False, cap: tuple[float, float] | None = None,
             allow_duplicate: bool = False, sheet: str | None = None, header_row: int | None = None) -> AddReport:
         """Validate, harmonize and store a wave; raise TrackerError (study unchanged) if it cannot be.
 
-        The whole add runs under the study's write lock, against the ledger as it stands
-        once the lock is held, so two adds at once are serialised, never interleaved."""
-        if not wave:
-            raise TrackerError("a wave label is required (--wave)")
-        iso = parse_date(date)
-        with store.study_lock(self.root):
-            self._ledger = store.read_ledger(self.root)
-            return self._add_locked(file, wave, iso, encoding, replace, rake, cap, allow_duplicate, sheet, header_row)
+        The whole add runs under the study's write lock, against the ledger as it stands once
+        the lock is held (tracker.adding). ``rake`` rakes the weights to the codebook's targets
+        (within ``cap``, LOW:HIGH times the starting weight); the other parameters are as
+        :meth:`check`'s. Returns an :class:`AddReport`."""
+        return adding.add(self, file, wave, date, encoding, replace, rake, cap, allow_duplicate, sheet, header_row)
 
-    def _add_locked(self, file, wave, iso, encoding, replace, rake, cap, allow_duplicate, sheet,
-                    header_row) -> AddReport:
-        from .progress import step
+    def reload_ledger(self) -> dict:
+        """Read the ledger again (under the lock, before a change) and return it."""
+        self._ledger = store.read_ledger(self.root)
+        return self._ledger
 
-        step(f"adding {wave}", 0, 4, "reading and checking")
-        rake = rake or bool(self.codebook.rake.get("always"))
-        report, table, wf = self._check(file, wave, iso, encoding, replace, rake, allow_duplicate, sheet, header_row)
-        if not report.ok:
-            raise TrackerError("\n".join(["cannot add " + str(file) + ":"] + report.lines()))
-        wf.table = None  # the file's cells as text are no longer needed (the largest object of a big wave)
-        book = self.codebook
-        weighting: dict = {"kind": "file", "column": book.weight} if book.weight else {"kind": "none"}
-        extra_lines: list[str] = []
-        if rake:
-            from .weighting import rake_table
-
-            table, result = rake_table(book, table, cap=cap)
-            weighting = result.ledger_entry()
-            extra_lines = result.lines()
-        from .cells import exclusions
-        from .estimates import weights_of
-
-        step(f"adding {wave}", 1, 4, "summarising")
-        weights = weights_of(book, table)
-        sw, sw2 = float(weights.sum()), float((weights**2).sum())
-        neff = sw * sw / sw2
-        metrics = list(book.metrics.values())
-        cells, ids = self.cellstore.compute(table)  # computed once: the presence of each metric and the cache
-        answered = cells.stats["base"][0] > 0  # the total's base of each metric
-        present = tuple(m.name for j, m in enumerate(metrics) if answered[j])
-        absent = tuple(m.name for j, m in enumerate(metrics) if not answered[j])
-        missing_vars = tuple(v for v in book.variables if not set(book.column_for(v)) <= set(table.columns))
-        excl = {m.name: exclusions(book, table, m) for m in metrics if m.name in present}
-        earlier = [w for w in self.wave_entries if w["date"] < iso and w["label"] != wave]
-        make_up: tuple[str, ...] = ()
-        if earlier and book.profile:
-            from .composition import compare_composition
-
-            prev = earlier[-1]["label"]
-            comp = compare_composition(book, self.load(prev), table, prev, wave)
-            step(f"adding {wave}", 2, 4, "checking the make-up")
-            make_up = (f"sample make-up against {prev}:", *(f"  {line}" for line in comp.lines()))
-
-        step(f"adding {wave}", 3, 4, "storing")
-        # Store: new Parquet under a fresh name, then the ledger rename commits it. Under the
-        # lock no other writer is at work, so what earlier killed writers left can go.
-        store.sweep_incoming(self.root)
-        for orphan in store.orphans(self.root, self._ledger):
-            orphan.unlink(missing_ok=True)
-        fname = store.free_wave_file(self.root, wave)
-        try:
-            store.write_parquet_atomic(self.root / fname, table)
-        except OSError as exc:
-            raise store.fs_problem(exc, self.root / fname, "store the wave") from None
-        sha = store.sha256_of(self.root / fname)
-        entry = {
-            "label": wave, "date": iso, "file": fname, "sha256": sha,
-            "source": Path(file).name,
-            "source_sha256": wf.sha256, "content_sha256": wf.content_sha256, "rows": int(len(table)), "codebook_sha256": book.sha256,
-            "added": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
-            "weighting": weighting,
-        }
-        ledger = {**self._ledger, "waves": [dict(w) for w in self._ledger["waves"]]}
-        old = [w for w in ledger["waves"] if w["label"] == wave]
-        if old:
-            prev = old[0]
-            history = prev.pop("history", [])
-            entry["history"] = history + [prev]  # the old file stays on disk, named here
-            ledger["waves"] = [w for w in ledger["waves"] if w["label"] != wave]
-        ledger["waves"].append(entry)
-        try:
-            store.write_ledger(self.root, ledger)
-        except BaseException as exc:  # not committed: the new file must not stay behind as an orphan
-            (self.root / fname).unlink(missing_ok=True)
-            if isinstance(exc, OSError):
-                raise store.fs_problem(exc, self.root / store.LEDGER, "record the wave in the ledger") from None
-            raise
+    def committed(self, ledger: dict, fname: str, sha: str) -> None:
+        """After the ledger rename committed a wave: hold the new ledger, remember the stored
+        file as checked, and drop what was derived from the old state."""
         self._ledger = ledger
         self._files.remember(fname, store._stamp(self.root / fname, sha), locked=True)
-        self.forget()  # a replaced wave changes what was derived from it
-        # the new wave's cell statistics, ready for the next command (derived) and for the judging
-        # below, without reading back what was just written
-        self.cellstore.store(wave, cells, ids, locked=True)
-        warnings = tuple(p.describe(Path(file).name) for p in report.problems) + tuple(extra_lines)
-        step(f"adding {wave}", 3, 4, "judging against the earlier waves")
-        try:
-            from .expected import surprise_lines
-
-            judged = tuple(surprise_lines(self.surprises(wave=wave)))
-        except (TrackerError, ValueError):
-            judged = ()
-        return AddReport(
-            label=wave, date=iso, rows=len(table), weighted_base=sw, effective_base=neff,
-            efficiency=neff / len(table), metrics_present=present, metrics_absent=absent,
-            variables_missing=missing_vars, warnings=warnings, exclusions=excl,
-            replaced=bool(old), weighting=weighting, make_up=make_up, surprises=judged,
-        )
-
+        self.forget()
 
     # -- estimates and changes ----------------------------------------------------------
     def pick_metrics(self, names=None) -> list:
