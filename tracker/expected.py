@@ -31,7 +31,8 @@ from .methods.distributions import t_ppf, t_sf
 from .methods.tests import adjust_pvalues
 from .trends import MIN_WAVES, _series_arrays, meta_regression
 
-__all__ = ["MODELS", "RANGE_COLUMNS", "SURPRISE_COLUMNS", "WINDOW", "basis_text", "predict", "recent_mask", "shown",
+__all__ = ["MODELS", "RANGE_COLUMNS", "SURPRISE_COLUMNS", "WINDOW", "basis_text", "next_ranges", "predict",
+           "recent_mask", "shown",
            "surprise_lines", "surprise_table"]
 
 KEYS = ["metric", "group", "subgroup"]
@@ -211,3 +212,40 @@ def surprise_table(pred: pd.DataFrame, new: pd.DataFrame, adjust: str = "bh", le
     m["z"], m["p_raw"], m["p_adjusted"] = z, p, p_adj
     m["surprise"] = np.nan_to_num(p_adj, nan=1.0) <= 1 - level
     return m[SURPRISE_COLUMNS].reset_index(drop=True)
+
+
+def next_ranges(book, hist: pd.DataFrame, patterns: pd.DataFrame, labels: list[str], date: str,
+                base: float | None, rows: float, segment_starts: dict[str, str], level: float = 0.95
+                ) -> pd.DataFrame:
+    """The expected range of the next wave, fielded at ``date``, for every series of ``hist``
+    (the estimates of the waves ``labels``, with their sufficient statistics) given their
+    ``patterns`` (tracker.trends): the prediction interval plus the sampling variance at the
+    expected base. Each series' base is its mean over the last three reliable waves, or, with
+    ``base`` (the next wave's respondents in total), its recent share of ``base`` (``rows``:
+    the mean respondents of the last three waves). Values stay within their kind's range."""
+    from .kinds import KINDS
+
+    series, _, _, v, ok, _ = _series_arrays(hist)
+    # recent bases and variance x base (unit variance x design effect) per series
+    wide = hist.pivot_table(index=["metric", "group", "subgroup"], columns="wave", values="base", aggfunc="first")
+    wide = wide.reindex(pd.MultiIndex.from_frame(series))[[w for w in labels if w in wide.columns]]
+    bases = wide.to_numpy(float)
+    last3 = recent_mask(ok)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        n_recent = np.where(last3, bases, 0.0).sum(axis=1) / last3.sum(axis=1)
+        vb = np.where(last3, v * bases, 0.0).sum(axis=1) / last3.sum(axis=1)
+    n_new = n_recent
+    if base is not None:  # each series keeps its recent share of the respondents
+        n_new = base * n_recent / rows
+    with np.errstate(invalid="ignore", divide="ignore"):
+        v_new = pd.Series(vb / n_new, index=pd.MultiIndex.from_frame(series))
+    pred = predict(hist, patterns, date, v_new, segment_starts, level)
+    pred["expected_base"] = n_new
+    pred["metric_label"] = pred["metric"].map({m.name: m.label for m in book.metrics.values()})
+    pred["kind"] = pred["metric"].map({m.name: m.kind for m in book.metrics.values()})
+    lo_edge = pred["kind"].map({k: (kind.bounds or (-np.inf, np.inf))[0] for k, kind in KINDS.items()})
+    hi_edge = pred["kind"].map({k: (kind.bounds or (-np.inf, np.inf))[1] for k, kind in KINDS.items()})
+    for col in ("expected", "low", "high"):  # a value cannot leave its kind's range
+        pred[col] = np.clip(pred[col].to_numpy(float), lo_edge.to_numpy(float), hi_edge.to_numpy(float))
+    pred["basis"] = [basis_text(r) for r in pred.itertuples()]
+    return pred

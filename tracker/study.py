@@ -487,8 +487,7 @@ class Study:
         sampling variance at the expected base (tracker.expected). ``base``: the next
         wave's expected respondents in total (default: the mean of the last three waves);
         subgroups get their recent share of it."""
-        from .expected import RANGE_COLUMNS, basis_text, predict, recent_mask
-        from .trends import _series_arrays
+        from .expected import RANGE_COLUMNS, next_ranges
 
         check_level(level)
         if base is not None and not base > 0:
@@ -503,33 +502,9 @@ class Study:
         labels = labels[-WINDOW:]
         hist = self.estimates(level=level, detail=True, waves=labels)
         patterns = self.trends(adjust=adjust, level=level, last=len(labels))
-        series, _, _, v, ok, _ = _series_arrays(hist)
-        # recent bases and variance x base (unit variance x design effect) per series
-        wide = hist.pivot_table(index=["metric", "group", "subgroup"], columns="wave", values="base", aggfunc="first")
-        wide = wide.reindex(pd.MultiIndex.from_frame(series))[[w for w in labels if w in wide.columns]]
-        bases = wide.to_numpy(float)
-        last3 = recent_mask(ok)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            n_recent = np.where(last3, bases, 0.0).sum(axis=1) / last3.sum(axis=1)
-            vb = np.where(last3, v * bases, 0.0).sum(axis=1) / last3.sum(axis=1)
-        n_new = n_recent
-        if base is not None:  # each series keeps its recent share of the respondents
-            rows = np.mean([self.entry(w)["rows"] for w in labels[-3:]])
-            n_new = base * n_recent / rows
-        with np.errstate(invalid="ignore", divide="ignore"):
-            v_new = pd.Series(vb / n_new, index=pd.MultiIndex.from_frame(series))
-        pred = predict(hist, patterns, date, v_new, self.segment_starts(self.pick_metrics(), labels), level)
-        pred["expected_base"] = n_new
-        book = self.codebook
-        pred["metric_label"] = pred["metric"].map({m.name: m.label for m in book.metrics.values()})
-        pred["kind"] = pred["metric"].map({m.name: m.kind for m in book.metrics.values()})
-        from .kinds import KINDS
-
-        lo_edge = pred["kind"].map({k: (kind.bounds or (-np.inf, np.inf))[0] for k, kind in KINDS.items()})
-        hi_edge = pred["kind"].map({k: (kind.bounds or (-np.inf, np.inf))[1] for k, kind in KINDS.items()})
-        for col in ("expected", "low", "high"):  # a value cannot leave its kind's range
-            pred[col] = np.clip(pred[col].to_numpy(float), lo_edge.to_numpy(float), hi_edge.to_numpy(float))
-        pred["basis"] = [basis_text(r) for r in pred.itertuples()]
+        rows = float(np.mean([self.entry(w)["rows"] for w in labels[-3:]]))
+        pred = next_ranges(self.codebook, hist, patterns, labels, date, base, rows,
+                           self.segment_starts(self.pick_metrics(), labels), level)
         ms, gs = self.pick_metrics(metrics), self.pick_groups(by)
         keep = pred["metric"].isin([m.name for m in ms]) & pred["group"].isin(["total", *gs])
         out = pred[keep][RANGE_COLUMNS].reset_index(drop=True)
@@ -584,30 +559,14 @@ class Study:
         ``smoothed_high`` and ``signal_sd`` (the random walk's SD per wave); a wording break
         restarts the series, and cells before the current segment get no smoothed value.
         ``until`` fits only the waves up to that one (as a brief of that wave sees them)."""
-        from .methods.distributions import norm_ppf
-        from .methods.statespace import smooth_over_q
-        from .trends import _series_arrays
+        from .smoothing import smooth_estimates
 
         check_level(level)
         upto = self._window(None, None, until)
         key = ("smoothed", level, tuple(upto))
         if key not in self._cache:
             est = self.estimates(level=level, waves=upto)
-            series, labels, y, v, ok, _ = _series_arrays(est, self.segment_starts(self.pick_metrics(), upto))
-            ok = ok & np.isfinite(y) & (v > 0)
-            fit = smooth_over_q(y, v, ok)
-            q = fit["q_ml"]
-            z = norm_ppf(0.5 + level / 2)
-            sd = np.sqrt(fit["var"])
-            frame = pd.DataFrame({
-                "metric": np.repeat(series["metric"].to_numpy(), len(labels)),
-                "group": np.repeat(series["group"].to_numpy(), len(labels)),
-                "subgroup": np.repeat(series["subgroup"].to_numpy(), len(labels)),
-                "wave": np.tile(labels, len(series)),
-                "smoothed": fit["mean"].ravel(), "smoothed_low": (fit["mean"] - z * sd).ravel(),
-                "smoothed_high": (fit["mean"] + z * sd).ravel(), "signal_sd": np.repeat(np.sqrt(q), len(labels)),
-            })
-            self._cache[key] = est.merge(frame, on=["metric", "group", "subgroup", "wave"], how="left")
+            self._cache[key] = smooth_estimates(est, self.segment_starts(self.pick_metrics(), upto), level)
         out = self._cache[key]
         ms, gs, ws = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves(waves)
         keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs]) & out["wave"].isin(ws)
