@@ -2,7 +2,7 @@
 
 from .errors import TrackerError
 
-__all__ = ["Codebook", "load_codebook", "parse_codebook", "TrackerError", "Study", "AddReport", "CheckReport"]
+__all__ = ["AddReport", "CheckReport", "Codebook", "Study", "TrackerError", "load_codebook", "parse_codebook"]
 __version__ = "0.1.0"
 
 _LAZY = {"Codebook": "codebook", "load_codebook": "codebook", "parse_codebook": "codebook",

@@ -278,9 +278,9 @@ def _store(study, file, wave: str, iso: str, table: pd.DataFrame, wf, weighting:
     entry = {
         "label": wave, "date": iso, "file": fname, "sha256": sha,
         "source": Path(file).name,
-        "source_sha256": wf.sha256, "content_sha256": wf.content_sha256, "rows": int(len(table)),
+        "source_sha256": wf.sha256, "content_sha256": wf.content_sha256, "rows": len(table),
         "codebook_sha256": book.sha256,
-        "added": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+        "added": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
         "weighting": weighting,
     }
     current = study.reload_ledger()

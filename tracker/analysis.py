@@ -140,8 +140,8 @@ def _mix_notes(study, result, comp, metrics: list[str]) -> dict[str, tuple[str, 
             verdict = "still significant" if r.standardised_significant else "not significant"
             g = study.codebook.groups[group]
             var = study.codebook.variables.get(g.variable)
-            out[r.metric] = (f"Most of this change ({r.mix_share_of_change:.0%}) comes from the shift in the sample's "
+            out[r.metric] = ((f"Most of this change ({r.mix_share_of_change:.0%}) comes from the shift in the sample's "
                              f"mix on {var.label if var is not None else group}; within its groups the change is {k.fmt_change(r.within_part)}, and "
                              f"at the earlier wave's mix the change is {k.fmt_change(r.standardised_change, True)} "
-                             f"({verdict}).", not r.standardised_significant)
+                             f"({verdict})."), not r.standardised_significant)
     return out

@@ -24,13 +24,13 @@ from .methods.tests import ADJUST_METHODS
 from .wording import count, fixed, p_text, plural
 
 CAUTIONS = (
-    "Significance is not importance: a significant change can be too small to matter, and a change "
-    "that matters can miss significance on a small base. Read the size and its interval.",
-    "The intervals cover sampling error only, not coverage gaps, non-response, or changes in how "
-    "questions were asked or answered.",
+    ("Significance is not importance: a significant change can be too small to matter, and a change "
+    "that matters can miss significance on a small base. Read the size and its interval."),
+    ("The intervals cover sampling error only, not coverage gaps, non-response, or changes in how "
+    "questions were asked or answered."),
     "A change in the sample's make-up can move a measure even when nothing changed within any group.",
-    "Small bases are flagged and never reported as significant; pooled or longer-run figures are "
-    "safer for thin subgroups.",
+    ("Small bases are flagged and never reported as significant; pooled or longer-run figures are "
+    "safer for thin subgroups."),
 )
 
 
@@ -238,11 +238,11 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     n_sig = result.n_significant
     adj_level = float(t["adjusted_level"].iloc[0]) if len(t) else level
     intro = (
-        f"Compared: {wave} with {result.against}. {count(family, 'comparison')} (every measure in total and in every "
+        (f"Compared: {wave} with {result.against}. {count(family, 'comparison')} (every measure in total and in every "
         f"subgroup) were judged together, and {count(n_sig, 'change')} {plural(n_sig, 'was', 'were')} found "
-        f"significant.",
-        "Each change is shown with its interval adjusted for all the comparisons made together: a change is called "
-        "significant exactly when that interval leaves out zero.",
+        f"significant."),
+        ("Each change is shown with its interval adjusted for all the comparisons made together: a change is called "
+        "significant exactly when that interval leaves out zero."),
     )
     method = _method_lines(adjust, level, adj_level, family, n_sig, bool(matters)) + _design_lines(result)
 
@@ -323,27 +323,27 @@ def _method_lines(adjust: str, level: float, adj_level: float, family: int, n_si
         words[-1] = ("'Held within the margin' is never said here: the codebook declares no smallest change that "
                      "matters, and without one a change that is not significant is only that.")
     return (
-        f"Significance: {ADJUST_METHODS[adjust]} adjustment across the {count(family, 'comparison')} at the "
+        (f"Significance: {ADJUST_METHODS[adjust]} adjustment across the {count(family, 'comparison')} at the "
         f"{1 - level:g} level; only adjusted results are called significant. The interval beside each change is "
-        f"the one that agrees with that verdict: {interval}.",
+        f"the one that agrees with that verdict: {interval}."),
         *words,
-        "Every change is tested with t on its design-based variance (Taylor linearization with the study's weights, "
+        ("Every change is tested with t on its design-based variance (Taylor linearization with the study's weights, "
         "strata and clusters; minus the covariance of shared clusters or respondents) on the design's degrees of "
         "freedom. The figures in sentences are rounded; a change in a sentence is the difference of the two values "
-        "as printed, and intervals are computed from the unrounded figures.",
-        "Minimum detectable change: the change each comparison would find with 80% power at the unadjusted level "
-        "(for shares, the larger of a rise and a fall, with the variance the changed share would have).",
-        "Series: each one (sampling error plus the variation between waves) is tested once for a trend, a step at "
+        "as printed, and intervals are computed from the unrounded figures."),
+        ("Minimum detectable change: the change each comparison would find with 80% power at the unadjusted level "
+        "(for shares, the larger of a rise and a fall, with the variance the changed share would have)."),
+        ("Series: each one (sampling error plus the variation between waves) is tested once for a trend, a step at "
         "any wave or a one-wave blip at any wave, with the search accounted for; those tests are adjusted together "
         "across every series, and a series that moved gets the shape that fits it best ('moved up/down' when its "
         "waves cannot tell a trend from a step). 'No pattern found' is not a claim that nothing moved; 'flat' is "
         "said only where the codebook declares the smallest change that matters. Slopes are per year of fieldwork "
-        "time.",
-        "Reliability: cells below an effective base of 30, with too wide a Korn-Graubard interval or resting on "
+        "time."),
+        ("Reliability: cells below an effective base of 30, with too wide a Korn-Graubard interval or resting on "
         "fewer than 15 respondents on the rarer side (after the NCHS presentation standard for proportions, 2017) "
-        "are flagged and not tested.",
-        "Thin subgroups' smoothed lines: a local-level model with each wave's known sampling error (signal "
-        "extraction for repeated surveys, Scott and Smith 1974).",
+        "are flagged and not tested."),
+        ("Thin subgroups' smoothed lines: a local-level model with each wave's known sampling error (signal "
+        "extraction for repeated surveys, Scott and Smith 1974)."),
         "The make-up of the sample is compared with a Rao-Scott corrected test on the weighted shares.",
     )
 
@@ -405,12 +405,12 @@ def first_wave_brief(study, wave: str, level: float = 0.95, charts: bool = True)
     return Brief(
         title=study.codebook.title, wave=wave, against="", headline=(), subgroup_moves=(), held=(), trends=(),
         sample_notes=tuple(sample), method=(
-            f"Levels are weighted estimates with {level:.0%} intervals from the design-based variance (Taylor "
+            (f"Levels are weighted estimates with {level:.0%} intervals from the design-based variance (Taylor "
             f"linearization with the study's weights, strata and clusters): Wilson intervals on the design's "
-            f"effective base for shares, t intervals for means and balances.",
-            "Reliability: cells below an effective base of 30, with too wide a Korn-Graubard interval or resting on "
+            f"effective base for shares, t intervals for means and balances."),
+            ("Reliability: cells below an effective base of 30, with too wide a Korn-Graubard interval or resting on "
             "fewer than 15 respondents on the rarer side (after the NCHS presentation standard for proportions, "
-            "2017) are flagged."),
+            "2017) are flagged.")),
         tables={"Estimates": est}, charts=tuple(chart_list), data=data, intro=(statement,), first_wave=True,
         levels=tuple(levels),
     )

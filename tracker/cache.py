@@ -179,6 +179,5 @@ def _write(folder: Path, label: str, parts: dict[str, dict]) -> None:
     # to match, and is computed again; the cost of syncing the cache is not worth it
     for part, arrays in parts.items():
         arrays = {**arrays, "digest": np.array(_digest(arrays))}
-        with store.incoming(folder / f"{label}{part}.npz", durable=False) as tmp:
-            with open(tmp, "wb") as fh:
-                np.savez(fh, **arrays)
+        with store.incoming(folder / f"{label}{part}.npz", durable=False) as tmp, open(tmp, "wb") as fh:
+            np.savez(fh, **arrays)

@@ -510,13 +510,13 @@ def _few_clusters(rng, reps: int, out: list[Rate]) -> None:
         for _ in range(reps):
             *_, ch = _pair(rng, book, d, SHARES, SHARES, 0.0, recurring, metrics, [], reuse_labels=reuse)
             tot = ch[ch["group"] == "total"].set_index("metric")
-            for m in reject:
+            for m, rejected in reject.items():
                 r = tot.loc[m]
-                reject[m].append(float(r["p_raw"] <= 1 - LEVEL) if np.isfinite(r["p_raw"]) else np.nan)
+                rejected.append(float(r["p_raw"] <= 1 - LEVEL) if np.isfinite(r["p_raw"]) else np.nan)
                 inside[m].append(float(r["change_low"] <= 0 <= r["change_high"]))
         setting = f"{d.strata} strata x {d.clusters} clusters x {d.size}; {name}"
-        for m in reject:
-            x = np.asarray(reject[m])
+        for m, rejected in reject.items():
+            x = np.asarray(rejected)
             # every cell has 5 df here, and the reliability rule refuses a share whose interval is
             # 30 points wide: mostly those whose variance came out large, so the tested ones lean to
             # small variances. The promise is the reader's: no-change comparisons called a move,
@@ -662,11 +662,11 @@ RARE_N, RARE_SD, RARE_TRUE, RARE_SUBS = 1500, 0.93, 0.05, np.array([0.10, 0.15, 
 
 
 def _rare_codebook() -> Codebook:
-    return parse_codebook("\n".join([
-        "title: rare shares", "id: rid", "weight: w", "variables:",
-        "  rare: {type: category, codes: {0: no, 1: yes}}",
-        "  sub: {type: category, codes: {1: a, 2: b, 3: c, 4: d}}",
-        "groups:", "  sub: {variable: sub}", "metrics:", "  rare: {variable: rare, share: [1]}"]) + "\n")
+    return parse_codebook(
+        "title: rare shares\nid: rid\nweight: w\nvariables:\n"
+        "  rare: {type: category, codes: {0: no, 1: yes}}\n"
+        "  sub: {type: category, codes: {1: a, 2: b, 3: c, 4: d}}\n"
+        "groups:\n  sub: {variable: sub}\nmetrics:\n  rare: {variable: rare, share: [1]}\n")
 
 
 def _rare_shares(rng, reps: int, out: list[Rate]) -> None:

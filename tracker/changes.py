@@ -15,8 +15,7 @@ import pandas as pd
 from .errors import TrackerError
 from .kinds import KINDS
 from .methods.intervals import t_interval
-from .methods.tests import (ADJUST_METHODS, adjust_pvalues, difference_test, family_level, paired_df,
-                            satterthwaite_df)
+from .methods.tests import ADJUST_METHODS, adjust_pvalues, difference_test, family_level, paired_df, satterthwaite_df
 
 KEYS = ["metric", "group", "subgroup"]
 
@@ -101,9 +100,9 @@ class ChangeResult:
         alpha = 1 - self.level
         family = self.family_size if self.family_size is not None else self.n_tests
         lines = [
-            f"{self.wave} against {self.against}: {self.n_tests} of these comparisons tested, {self.n_significant} "
+            (f"{self.wave} against {self.against}: {self.n_tests} of these comparisons tested, {self.n_significant} "
             f"significant after {ADJUST_METHODS[self.adjust]} adjustment across {family} comparisons at the "
-            f"{alpha:g} level ({len(self.table) - self.n_tests} not tested).",
+            f"{alpha:g} level ({len(self.table) - self.n_tests} not tested)."),
         ]
         lines.extend(self.notes)
         level = float(self.table["adjusted_level"].iloc[0]) if len(self.table) else self.level

@@ -256,8 +256,8 @@ def trend_spec(data: pd.DataFrame, by: str | None, adjust: str = "bh", level: fl
         title = {"text": a["label"], "anchor": "start", "fontSize": 14, "subtitleFontSize": 10, "subtitle": [
             f"Band: {level:.0%} interval (sampling error only). Numbers along the foot: base.",
             f"Triangles: change from the wave before significant at {1 - level:g}, after {ADJUST_METHODS[adjust]}",
-            "adjustment across every metric and subgroup of that wave (as in its brief). Dashed green: the fitted "
-            "trend or shift.",
+            ("adjustment across every metric and subgroup of that wave (as in its brief). Dashed green: the fitted "
+            "trend or shift."),
             *(["Dotted purple: smoothed (a local-level model damps the sampling noise; the dots stay the estimates)."]
               if "smoothed_shown" in data.columns else []),
         ]}
@@ -333,11 +333,11 @@ def change_overview(result, totals_only: bool = False, width: int = 520) -> dict
     family = result.family_size if getattr(result, "family_size", None) is not None else result.n_tests
     return {"vconcat": charts, "resolve": {"scale": {"x": "independent", "y": "independent"}}, "title": {
         "text": f"{result.wave} against {result.against}: every tested change", "anchor": "start", "fontSize": 14,
-        "subtitle": [f"Line: the interval adjusted for the {family:,} comparisons made together (zero lies "
+        "subtitle": [(f"Line: the interval adjusted for the {family:,} comparisons made together (zero lies "
                      f"outside it exactly when a change is significant). Grey band: the minimum detectable change "
-                     f"(80 % power).",
-                     f"Drawn: {len(t)} changes, {int(t['significant'].sum())} significant at {1 - result.level:g} "
-                     f"after {ADJUST_METHODS[result.adjust]} adjustment",
+                     f"(80 % power)."),
+                     (f"Drawn: {len(t)} changes, {int(t['significant'].sum())} significant at {1 - result.level:g} "
+                     f"after {ADJUST_METHODS[result.adjust]} adjustment"),
                      f"across the {family} tests of the comparison" + (
                          "." if len(t) == family else f" ({result.n_significant} significant in all).")],
         "subtitleFontSize": 10}}

@@ -16,11 +16,11 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 
 from .errors import TrackerError
 from .names import ADJUST_METHODS as ADJUST_NAMES
-from .wording import plural
 from .names import FORMATS
+from .wording import plural
 
 
-def Study(path):  # noqa: N802 - reads as the class it opens; imported here so --help starts at once
+def Study(path):
     from .study import Study as _Study
 
     return _Study(path)
@@ -412,8 +412,8 @@ def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, smooth,
     """
     s = Study(study)
     latest_only = fmt == "table" and not output and not waves and not all_waves
-    pick = dict(metrics=list(metrics) or None, by=list(by) if by else None,
-                waves=[s.labels[-1]] if latest_only and s.labels else (list(waves) or None), level=level)
+    pick = {"metrics": list(metrics) or None, "by": list(by) if by else None,
+            "waves": [s.labels[-1]] if latest_only and s.labels else (list(waves) or None), "level": level}
     if smooth:
         from .estimates import COLUMNS
 
@@ -457,8 +457,8 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fami
                                   metrics=list(metrics) or None, adjust=adjust, level=level, mix=mix, family=family)
     if mix:
         emit(result.mix, fmt, "mix", wide, output,
-             [f"Kitagawa split of each total change by the mix on {mix}; the standardised change re-weights "
-              f"{result.wave} to the mix of {result.against}, tested with {ADJUST_NAMES[adjust]} adjustment."])
+             [(f"Kitagawa split of each total change by the mix on {mix}; the standardised change re-weights "
+              f"{result.wave} to the mix of {result.against}, tested with {ADJUST_NAMES[adjust]} adjustment.")])
         return
     shown = result.shown(show_all)[COLUMNS]
     rest = len(result.table) - len(shown)
@@ -511,9 +511,9 @@ def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_o
              else "only the series asked for: a narrower family than the brief's, so patterns can differ from it")
     footer = [
         f"{len(table)} {plural(len(table), 'series', 'series')}: " + ", ".join(f"{v} {k}" for k, v in counts.items()),
-        f"Each series tested once for a trend, a step or a one-wave blip, after {ADJUST_NAMES[adjust]} adjustment "
+        (f"Each series tested once for a trend, a step or a one-wave blip, after {ADJUST_NAMES[adjust]} adjustment "
         f"across {size:,} {plural(size, 'series', 'series')} ({which}) at the {1 - level:g} level. Slopes are per "
-        f"year of fieldwork time.",
+        f"year of fieldwork time."),
         "Sampling error and the between-wave variation are both in the intervals; significance is not importance."]
     if fmt in ("table", "md") and not output and shown.empty:
         echo("No series moved: every one shows no pattern, is flat, or has too few waves." if moving_only
@@ -549,10 +549,10 @@ def expect_cmd(study, metrics, by, base, date, adjust, level, fmt, wide, output)
     table = s.expected(base=base, metrics=list(metrics) or None, by=list(by) if by else None, date=date,
                        adjust=adjust, level=level)
     emit(table, fmt, "expect", wide, output, [
-        f"Expected ranges ({level:.0%} prediction intervals) for a wave fielded on {table.attrs['date']}, after "
-        f"{table.attrs['after']}.",
-        "Each range holds the series' pattern, its wave-to-wave variation and the sampling error at the expected "
-        "base; a value outside it is worth a second look, not a finding by itself."])
+        (f"Expected ranges ({level:.0%} prediction intervals) for a wave fielded on {table.attrs['date']}, after "
+        f"{table.attrs['after']}."),
+        ("Each range holds the series' pattern, its wave-to-wave variation and the sampling error at the expected "
+        "base; a value outside it is worth a second look, not a finding by itself.")])
 
 
 @main.command("surprises", short_help="The cells of a wave out of line with their series.")
@@ -578,8 +578,8 @@ def surprises_cmd(study, wave, show_all, adjust, level, fmt, wide, output):
     lines = surprise_lines(table, level)
     emit(shown.reset_index(drop=True), fmt, "surprises", wide, output, [
         *(lines[:1] or ["too few earlier waves to predict this one (at least 4 are needed)"]),
-        "A surprise is out of line with its series' pattern and variation: it asks for a second look (fieldwork, "
-        "the sample's make-up, an event), not for a headline by itself."])
+        ("A surprise is out of line with its series' pattern and variation: it asks for a second look (fieldwork, "
+        "the sample's make-up, an event), not for a headline by itself.")])
 
 
 @main.command("composition", short_help="Compare the sample's make-up with another wave.")

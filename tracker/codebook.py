@@ -366,7 +366,7 @@ def load_codebook(path: str | Path) -> Codebook:
 def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
     _guard(text, name)
     try:
-        doc = yaml.load(text, Loader=_Loader)  # noqa: S506 - a SafeLoader subclass
+        doc = yaml.load(text, Loader=_Loader)
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         where = f"line {mark.line + 1}, column {mark.column + 1}" if mark else "unknown place"

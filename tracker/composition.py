@@ -13,11 +13,11 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from .methods.distributions import norm_ppf, norm_sf
 
 from .cells import group_labels
 from .codebook import Codebook
 from .estimates import cell_stats, design_labels, weights_of
+from .methods.distributions import norm_ppf, norm_sf
 from .methods.raoscott import rao_scott_table
 from .methods.tests import ADJUST_METHODS, adjust_pvalues
 from .methods.variance import taylor_covariance
@@ -46,7 +46,7 @@ def stacked_shares(labels: list[np.ndarray], levels: list[str], weights: list[np
         st_all.append(np.char.add(f"{k}|", (np.zeros(n_k, int) if st is None else np.asarray(st)).astype(str)))
         ps_all.append(np.char.add(f"{k}|", (np.arange(n_k) if ps is None else np.asarray(ps)).astype(str)))
         shares.append(np.array([(ww * (lab == lev)).sum() for lev in levels]) / max(ww.sum(), np.finfo(float).tiny))
-    R, C = len(labels), len(levels)
+    R = len(labels)
     w = np.concatenate(rows_w)
     wave = np.repeat(np.arange(R), [len(x) for x in labels])
     lab = np.concatenate(rows_lab)

@@ -22,7 +22,12 @@ from .errors import TrackerError
 from .kinds import INTERVALS, KINDS, flag_text
 from .methods.bases import design_base, design_effect, kish_base
 from .methods.variance import (
-    PsuTotals, SingleClusterError, combine_strata, cross_wave_covariance, psu_index, shared_per_cell,
+    PsuTotals,
+    SingleClusterError,
+    combine_strata,
+    cross_wave_covariance,
+    psu_index,
+    shared_per_cell,
     single_cluster_strata,
 )
 
@@ -186,7 +191,7 @@ class CellArrays:
     psu: PsuTotals | None = None
     psu_names: np.ndarray | None = None
 
-    def select(self, metrics: list[str], groups: list[str]) -> "CellArrays":
+    def select(self, metrics: list[str], groups: list[str]) -> CellArrays:
         """The cells of some metrics and subgroup splits, in the order a fresh computation
         for them would give (the total, then each split's levels in the order asked)."""
         col = {m: j for j, m in enumerate(self.metrics)}
@@ -339,7 +344,7 @@ def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule, pop=None, ca
     """Taylor variance with declared clusters: one sparse (PSU x level) by respondent
     product per wave gives every cell's PSU totals of w e y and w e at once, and
     :func:`clustered_from_totals` finishes. Also returns a respondent of each PSU (to name it)."""
-    N, L = D.shape
+    N, _L = D.shape
     psu_id, psu_stratum, n_strata = psu_index(strata, psu, N)
     P = psu_stratum.size
     (A, B), = _level_sums(D, psu_id, P, [w], [EY, Ef])
@@ -519,12 +524,12 @@ def wave_covariance(codebook: Codebook, a: pd.DataFrame, b: pd.DataFrame, metric
         ids_shared = np.intersect1d(a[codebook.id].astype(str).to_numpy(), b[codebook.id].astype(str).to_numpy())
         if ids_shared.size:
             tries.append(False)
-    for by_cluster in tries:
-        ta, ka = _cell_psu_totals(codebook, a, metrics, groups, est_a, by_cluster)
-        tb, kb = _cell_psu_totals(codebook, b, metrics, groups, est_b, by_cluster)
+    for clustered in tries:
+        ta, ka = _cell_psu_totals(codebook, a, metrics, groups, est_a, clustered)
+        tb, kb = _cell_psu_totals(codebook, b, metrics, groups, est_b, clustered)
         cov, shared = cross_wave_covariance(ta, ka, tb, kb, codebook.single_cluster_rule)
         if shared:
-            return cov, shared, "clusters" if by_cluster else "respondents", shared_per_cell(ta, ka, tb, kb)
+            return cov, shared, "clusters" if clustered else "respondents", shared_per_cell(ta, ka, tb, kb)
     return none
 
 

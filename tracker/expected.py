@@ -182,8 +182,8 @@ def surprise_lines(table: pd.DataFrame, level: float = 0.95) -> list[str]:
     rate = f"false discovery rate {1 - level:.0%}"
     if hits.empty:
         return [f"no cell lies outside its expected range ({tested:,} cells tested; {rate})"]
-    out = [f"{len(hits)} of {tested:,} cells lie outside their expected range ({rate}; a second look is due, "
-           f"not a conclusion):"]
+    out = [(f"{len(hits)} of {tested:,} cells lie outside their expected range ({rate}; a second look is due, "
+           f"not a conclusion):")]
     for r in hits.itertuples():
         who = "in total" if r.group == "total" else f"{r.group} = {r.subgroup}"
         out.append(f"  {r.metric_label}, {who}: {shown(r.kind, r.value)} against an expected "

@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 
-from .names import FORMATS  # noqa: E402
-
-
+from .names import FORMATS  # noqa: F401 - the formats this module renders, one list for the tool
 from .plain import FORMULA, FORMULA_START, safe_cell  # noqa: F401 - re-exported for older imports
 from .plain import md_cell as _md
 
@@ -57,11 +57,10 @@ def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
     return shown.to_string(index=False) + "\n"
 
 
-def write_table(frame: pd.DataFrame, path) -> "Path":
+def write_table(frame: pd.DataFrame, path) -> Path:
     """Write a result table to ``path`` by its suffix (.csv, .json, .md, .xlsx), every column
     at full precision, atomically; formula-like text cells are neutralised in CSV and XLSX."""
     import io
-    from pathlib import Path
 
     from .errors import TrackerError
     from .outputs import check_output, write_output

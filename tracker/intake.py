@@ -180,7 +180,7 @@ def _read_parquet(path: Path) -> tuple[pd.DataFrame, list[Problem]]:
 
     try:
         names = pq.read_schema(path).names
-    except Exception:  # pyarrow raises many types for a broken file; reading says which
+    except Exception:  # noqa: BLE001 - pyarrow raises many types for a broken file; reading says which
         names = []
     from .limits import MAX_COLUMNS
 
@@ -192,7 +192,7 @@ def _read_parquet(path: Path) -> tuple[pd.DataFrame, list[Problem]]:
         raise TrackerError(f"{path}, column {twice[0]}: the column name appears more than once")
     try:
         arrow = pq.read_table(path)
-    except Exception as exc:  # pyarrow raises many types for a broken file
+    except Exception as exc:  # noqa: BLE001 - pyarrow raises many types for a broken file
         text = str(exc)
         if "duplicate" in text.lower():
             raise TrackerError(f"{path}: a column name appears more than once; every column needs its own "
@@ -236,7 +236,7 @@ def _xlsx_within_bounds(path: Path, sheet: str | None) -> None:
                            f"{MAX_XLSX_UNPACKED >> 30} GiB; deliver a wave this large as CSV or Parquet")
     try:
         book = load_workbook(path, read_only=True, data_only=True)
-    except Exception as exc:  # openpyxl raises many types for a broken workbook
+    except Exception as exc:  # noqa: BLE001 - openpyxl raises many types for a broken workbook
         raise TrackerError(f"{path}: cannot be read as XLSX ({str(exc)[:200]})") from None
     try:
         sheets = [book[sheet]] if sheet in book.sheetnames else book.worksheets
@@ -264,7 +264,7 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     try:
         book = load_workbook(path, data_only=True)
         formulas = load_workbook(path, data_only=False)
-    except Exception as exc:
+    except Exception as exc:  # noqa: BLE001 - a foreign file's reader may raise any type; the message names it
         raise TrackerError(f"{path}: cannot be read as XLSX ({str(exc)[:200]})") from None
     filled = [ws.title for ws in book.worksheets if ws.max_row > 1 or ws.max_column > 1 or ws.cell(1, 1).value is not None]
     if sheet is None:
@@ -344,7 +344,7 @@ def _numbers(values: pd.Series) -> np.ndarray:
         arr = pa.array(values.to_numpy(dtype=object), type=pa.string())
         arr = pc.if_else(pc.equal(arr, ""), pa.scalar(None, pa.string()), arr)
         return pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False).astype(float)
-    except Exception:  # pyarrow raises several types; pandas then decides cell by cell
+    except Exception:  # noqa: BLE001 - pyarrow raises several types; pandas then decides cell by cell
         return pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
 
 
@@ -409,8 +409,7 @@ def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
     except LookupError:
         raise TrackerError(f"{path}: unknown encoding {enc!r}") from None
     del raw
-    if text.startswith("\ufeff"):
-        text = text[1:]
+    text = text.removeprefix("\ufeff")
     if not text.strip():
         raise TrackerError(f"{path}: the file is empty")
     if "\n" not in text and "\r" in text:
@@ -470,9 +469,7 @@ def wave_in_span(label: str, first: str | None, last: str | None, order: dict[st
 
     if first is not None and label != first and before(label, first):
         return False
-    if last is not None and label != last and before(last, label):
-        return False
-    return True
+    return not (last is not None and label != last and before(last, label))
 
 
 def _rows(mask: np.ndarray, first_row: int) -> tuple[tuple[int, ...], int]:

@@ -16,6 +16,7 @@ on local worker processes or on a Dask scheduler. Results equal the in-process p
 from __future__ import annotations
 
 from dataclasses import dataclass
+from itertools import pairwise
 from pathlib import Path
 
 import numpy as np
@@ -125,7 +126,7 @@ def _exclusive(book: Codebook, groups: list[str]) -> bool:
         g = book.groups[gname]
         if g.bands is not None:
             spans = sorted(g.bands.values())
-            if any(lo2 <= hi1 for (_, hi1), (lo2, _) in zip(spans, spans[1:])):
+            if any(lo2 <= hi1 for (_, hi1), (lo2, _) in pairwise(spans)):
                 return False
         else:
             codes = [c for cs in g.levels.values() for c in cs]
@@ -339,8 +340,8 @@ class PrepareReport:
     where: str
 
     def lines(self) -> list[str]:
-        return [f"computed the statistics of {len(self.computed)} wave(s) ({self.engine}, {self.where}); "
-                f"{len(self.current)} already up to date"]
+        return [(f"computed the statistics of {len(self.computed)} wave(s) ({self.engine}, {self.where}); "
+                f"{len(self.current)} already up to date")]
 
 
 def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler: str | None = None,

@@ -3,20 +3,19 @@
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass, field
+from itertools import pairwise
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from . import store
-from .codebook import LABEL_RE, Codebook, load_codebook
-from .errors import TrackerError
-from . import adding
-from .options import check_adjust, check_level, parse_date  # noqa: F401 - part of the API
+from . import adding, store
 from .adding import AddReport, CheckReport, content_fingerprint  # noqa: F401 - the API's result types
 from .cellstore import CellStore
+from .codebook import Codebook, load_codebook
+from .errors import TrackerError
 from .intake import wave_in_span
+from .options import check_adjust, check_level, parse_date
 
 
 class Study:
@@ -34,7 +33,7 @@ class Study:
 
     # -- making and reading ------------------------------------------------------------
     @classmethod
-    def create(cls, path: str | Path, codebook: str | Path) -> "Study":
+    def create(cls, path: str | Path, codebook: str | Path) -> Study:
         root = Path(path)
         book = load_codebook(codebook)  # validate before touching the disk
         if (root / store.LEDGER).exists():
@@ -84,7 +83,7 @@ class Study:
                     raise store.fs_problem(exc, path, f"read wave {label}") from None
                 raise TrackerError(f"{path}: the stored file of wave {label} is damaged ({exc}); "
                                    f"run 'tracker verify {self.root}'") from None
-            except Exception as exc:  # pyarrow's own errors for truncated or foreign files
+            except Exception as exc:  # noqa: BLE001 - pyarrow's own errors for truncated or foreign files
                 raise TrackerError(f"{path}: the stored file of wave {label} is damaged "
                                    f"({exc.__class__.__name__}); run 'tracker verify {self.root}'") from None
         return self._cache[label]
@@ -435,9 +434,9 @@ class Study:
         for m in metrics:
             for _, b in self.breaks(m):
                 after = [w for w in labels if wave_in_span(w, b, None, order)]
-                if after and after[0] != labels[0]:
-                    if m.name not in out or labels.index(after[0]) > labels.index(out[m.name]):
-                        out[m.name] = after[0]
+                if after and after[0] != labels[0] and (
+                        m.name not in out or labels.index(after[0]) > labels.index(out[m.name])):
+                    out[m.name] = after[0]
         return out
 
     def trends(self, metrics=None, by=None, last: int | None = None, since: str | None = None,
@@ -628,7 +627,7 @@ class Study:
         key = ("steps", tuple(labels), adjust, level)
         if key not in self._cache:
             parts = []
-            for before, after in zip(labels, labels[1:]):
+            for before, after in pairwise(labels):
                 table, _, _ = self._compare(after, [before], every, groups, adjust, level)
                 parts.append(table)
             self._cache[key] = pd.concat(parts, ignore_index=True) if parts else None

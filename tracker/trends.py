@@ -10,9 +10,9 @@ import datetime as dt
 
 import numpy as np
 import pandas as pd
-from .methods.distributions import chi2_sf, norm_ppf, t_ppf, t_sf
 from scipy.special import logsumexp
 
+from .methods.distributions import chi2_sf, norm_ppf, t_ppf, t_sf
 from .methods.tests import ADJUST_METHODS, adjust_pvalues, family_level
 
 MIN_WAVES = 4
@@ -361,7 +361,7 @@ def _pattern_tests(y, v, ok, X_trend):
 def _levels(y, v, ok, at):
     """The level before and from wave ``at`` of each series (two-level random-effects fit),
     with standard errors."""
-    S, K = y.shape
+    _S, K = y.shape
     step = (np.arange(K)[None, :] >= np.maximum(at, 0)[:, None]).astype(float)
     lv = meta_regression(y, v, np.stack([1 - step, step], axis=2), ok)
     return {"before": lv["beta"][:, 0], "after": lv["beta"][:, 1],

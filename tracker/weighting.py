@@ -37,8 +37,8 @@ class RakeResult:
     def lines(self) -> list[str]:
         w = self.weights
         return [
-            f"raked to {', '.join(self.targets)} in {self.iterations} iterations; "
-            f"largest margin error {self.max_margin_error:.2e}",
+            (f"raked to {', '.join(self.targets)} in {self.iterations} iterations; "
+            f"largest margin error {self.max_margin_error:.2e}"),
             f"weights from {w.min():.3f} to {w.max():.3f}; weighting efficiency {self.efficiency:.1%}; "
             f"effective base {w.sum() ** 2 / (w**2).sum():,.1f}"
             + (f"; weight ratio capped to {self.cap[0]:g}:{self.cap[1]:g}" if self.cap else ""),

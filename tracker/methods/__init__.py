@@ -17,8 +17,13 @@ from .power import min_detectable_change, min_detectable_share_change
 from .raoscott import RaoScott, rao_scott_table
 from .tests import ADJUST_METHODS, adjust_pvalues, difference_test, satterthwaite_df
 from .variance import (
-    SINGLE_CLUSTER_RULES, PsuTotals, cross_wave_covariance, psu_totals, single_cluster_strata,
-    taylor_covariance, taylor_variance,
+    SINGLE_CLUSTER_RULES,
+    PsuTotals,
+    cross_wave_covariance,
+    psu_totals,
+    single_cluster_strata,
+    taylor_covariance,
+    taylor_variance,
 )
 
 __all__ = [

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+
 from .distributions import beta_ppf, norm_ppf, t_ppf
 
 __all__ = ["critical", "korn_graubard_interval", "newcombe_interval", "t_interval", "wilson_interval"]

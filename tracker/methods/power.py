@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+
 from .distributions import norm_ppf, t_ppf
 from .intervals import by_unique
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from .distributions import chi2_sf, f_sf
 
 __all__ = ["RaoScott", "rao_scott_table"]

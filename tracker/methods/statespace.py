@@ -83,7 +83,7 @@ def fit_local_level(y: np.ndarray, v: np.ndarray, ok: np.ndarray, iterations: in
     golden-section search on log q between 1e-6 and 100 times the series' mean sampling
     variance (the likelihood is unimodal in practice for this model), then q = 0 where the
     likelihood at 0 is at least as high."""
-    S, K = y.shape
+    S, _K = y.shape
     with np.errstate(invalid="ignore", divide="ignore"):
         scale = np.where(ok, v, 0.0).sum(axis=1) / np.maximum(ok.sum(axis=1), 1)
     scale = np.where(scale > 0, scale, 1e-4)
@@ -115,7 +115,7 @@ def smooth_over_q(y: np.ndarray, v: np.ndarray, ok: np.ndarray, points: int = 25
     rarely (87 % for a 95 % interval in the setting of docs/validation.md), since q is often
     estimated near zero; averaging over q carries its uncertainty. Returns mean, var (the mixture's), and q_ml (the grid's
     likeliest q, refined by :func:`fit_local_level`)."""
-    S, K = y.shape
+    _S, _K = y.shape
     with np.errstate(invalid="ignore", divide="ignore"):
         scale = np.where(ok, v, 0.0).sum(axis=1) / np.maximum(ok.sum(axis=1), 1)
     scale = np.where(scale > 0, scale, 1e-4)

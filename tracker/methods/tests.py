@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 import numpy as np
+
 from .distributions import t_sf
 
 __all__ = ["ADJUST_METHODS", "adjust_pvalues", "difference_test", "family_level", "paired_df", "satterthwaite_df"]
 
-from ..names import ADJUST_METHODS  # noqa: E402 - one list of names for the whole tool
+from ..names import ADJUST_METHODS
 
 
 def adjust_pvalues(p, method: str = "bh") -> np.ndarray:

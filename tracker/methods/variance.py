@@ -15,15 +15,23 @@ import numpy as np
 import scipy.sparse as sp
 
 __all__ = [
-    "SINGLE_CLUSTER_RULES", "PsuTotals", "SingleClusterError", "combine_strata", "cross_wave_covariance",
+    "SINGLE_CLUSTER_RULES",
+    "PsuTotals",
+    "SingleClusterError",
+    "combine_strata",
+    "cross_wave_covariance",
+    "psu_index",
+    "psu_totals",
     "shared_per_cell",
-    "psu_index", "psu_totals", "single_cluster_strata", "taylor_covariance", "taylor_variance",
+    "single_cluster_strata",
+    "taylor_covariance",
+    "taylor_variance",
 ]
 
 #: What a stratum holding a single PSU contributes to the variance (codebook key
 #: ``single_cluster_strata``). Each rule is checked against the svy package's singleton
 #: rule named in brackets (tests/test_design_variance.py).
-from ..names import SINGLE_CLUSTER_RULES  # noqa: E402 - one list of names for the whole tool
+from ..names import SINGLE_CLUSTER_RULES
 
 
 class SingleClusterError(ValueError):
