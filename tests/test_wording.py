@@ -10,7 +10,6 @@ misleads a reader.
 
 from __future__ import annotations
 
-import doctest
 import html
 import io
 import json
@@ -43,14 +42,6 @@ def test_the_glossary_page_is_the_code():
     render = runpy.run_path(str(ROOT / "scripts" / "glossary.py"))["render"]
     assert (ROOT / "docs" / "glossary.md").read_text(encoding="utf-8") == render()
     assert not set(VERDICTS) & set(PATTERNS)  # no word names both a comparison and a series
-
-
-@pytest.mark.parametrize("module", ["tracker.wording", "tracker.methods.tests", "tracker.methods.intervals"])
-def test_the_worked_examples_in_the_docstrings(module):
-    import importlib
-
-    result = doctest.testmod(importlib.import_module(module))
-    assert result.attempted > 0 and result.failed == 0
 
 
 def test_the_agreeing_level_by_hand_on_the_published_example():

@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from .changes import VERDICTS, ChangeResult
+from .composition import CompositionResult
 
 __all__ = ["COMPARISON_FIELDS", "PATTERN_FIELDS", "Analysis", "analyse"]
 
@@ -44,7 +45,7 @@ class Analysis:
     level: float
     changes: ChangeResult          # the family: every metric in total and in every subgroup
     trends: pd.DataFrame           # one row per metric x subgroup series, up to this wave
-    composition: object | None     # CompositionResult, when one wave is compared and a profile is declared
+    composition: CompositionResult | None  # when one wave is compared and a profile is declared
     mix: dict[str, tuple[str, bool]] = field(default_factory=dict)  # metric -> (note, mostly make-up)
     surprises: pd.DataFrame | None = None  # every cell against its expected range (tracker.expected)
 

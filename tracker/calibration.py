@@ -208,11 +208,12 @@ def _coverage_and_size(rng, d: Design, tier: Tier, out: list[Rate], deffs: list[
     groups = ["sub"]
     scen = {"independent waves": (0.0, False), "30% shared respondents, recurring clusters": (0.3, True),
             "70% shared respondents, recurring clusters": (0.7, True)}
-    cover = {(m, g, iv): [] for m in MEASURES for g in ("total", "sub") for iv in ("wilson", "korn-graubard")}
-    cover_reliable = {m: [] for m in MEASURES}
+    cover: dict[tuple[str, str, str], list[float]] = {(m, g, iv): [] for m in MEASURES for g in ("total", "sub") for iv in ("wilson", "korn-graubard")}
+    cover_reliable: dict[str, list[float]] = {m: [] for m in MEASURES}
     rs_p = []
     for name, (shared, recurring) in scen.items():
-        reject, inside, change, se = ({m: [] for m in MEASURES} for _ in range(4))
+        lists: list[dict[str, list[float]]] = [{m: [] for m in MEASURES} for _ in range(4)]
+        reject, inside, change, se = lists
         for _ in range(tier.pairs):
             a, b, est_a, est_b, ch = _pair(rng, book, d, SHARES, SHARES, shared, recurring, metrics, groups)
             if not shared:
@@ -239,6 +240,7 @@ def _coverage_and_size(rng, d: Design, tier: Tier, out: list[Rate], deffs: list[
                             ratio / np.sqrt(2 * (len(se[m]) - 1)), len(se[m]), (0.95, 1.05), 1.0))
     for (m, g, iv), hits in cover.items():
         rate, mc, k = _prop(hits)
+        target: tuple[float, float] | None
         if g == "total":
             target = (0.94, 0.96)
         else:
@@ -279,7 +281,7 @@ def _power(rng, d: Design, tier: Tier, out: list[Rate]) -> None:
     book = _codebook(list(shares), rating=False, profile=False)
     metrics = list(book.metrics.values())
     # the detectable change the tool reports under no change (median over pairs)
-    reported = {m: [] for m in shares}
+    reported: dict[str, list[float]] = {m: [] for m in shares}
     for _ in range(max(40, tier.power_pairs // 3)):
         *_, ch = _pair(rng, book, d, shares, shares, 0.0, False, metrics, [])
         for r in ch.itertuples():
@@ -434,7 +436,9 @@ def _forecasts(rng, reps: int, out: list[Rate]) -> None:
         out.append(Rate(FORECAST_DESIGN, "95% expected-range coverage of the next wave", name, rate, mc, k,
                         (0.93, 0.97), 0.95))
     families = max(reps // FAMILY, 20)
-    any_false, found, found_se = [], [], []
+    any_false: list[float] = []
+    found: list[float] = []
+    found_se: list[float] = []
     # the SE of a surprise test is the prediction's SD: sampling, wave-to-wave variation and the fit
     pred_sd = np.sqrt(se**2 + tau**2 + (se**2 + tau**2) / K)
     for f in range(families):  # families of 100 cells, one wave each: a loop over families
@@ -566,7 +570,7 @@ def _lone_clusters(rng, reps: int, out: list[Rate]) -> None:
             "variables:", "  p50: {type: category, codes: {0: no, 1: yes}}",
             "  rating: {type: scale, codes: {1: a, 2: b, 3: c, 4: d, 5: e}}",
             "metrics:", "  p50: {variable: p50, share: [1]}", "  rating_mean: {variable: rating, mean: true}"]) + "\n")
-    reject = {(r, m): [] for r in books for m in ("p50", "rating_mean")}
+    reject: dict[tuple[str, str], list[float]] = {(r, m): [] for r in books for m in ("p50", "rating_mean")}
     for _ in range(reps):
         a, b = _lone_wave(rng, "a"), _lone_wave(rng, "b")
         for rule, book in books.items():
@@ -616,9 +620,9 @@ def _raked_items(rng, reps: int, out: list[Rate]) -> None:
     truth = {"related": float(RAKED_REGION @ RAKED_RELATED), "unrelated": 0.3, "region_a": float(RAKED_REGION[0])}
     draw = RAKED_REGION * np.array([0.5, 1.25, 1.25])
     draw /= draw.sum()
-    hits = {(m, v): [] for m in truth for v in ("calibrated", "fixed")}
+    hits: dict[tuple[str, str], list[float]] = {(m, v): [] for m in truth for v in ("calibrated", "fixed")}
     values: dict[str, list[float]] = {m: [] for m in truth}
-    ses = {(m, v): [] for m in truth for v in ("calibrated", "fixed")}
+    ses: dict[tuple[str, str], list[float]] = {(m, v): [] for m in truth for v in ("calibrated", "fixed")}
     for _ in range(reps):
         region = rng.choice(3, 1000, p=draw)
         age = rng.choice(2, 1000, p=RAKED_AGE)
@@ -717,9 +721,9 @@ def _one_design(args) -> tuple[list[Rate], tuple[float, float, float]]:
         if verbose:
             print(f"{d.name}: {step.__name__.strip('_').replace('_', ' ')}", file=sys.stderr, flush=True)
         if step is _coverage_and_size:
-            step(rng, d, t, rates, deffs)
+            _coverage_and_size(rng, d, t, rates, deffs)
         else:
-            step(rng, d, t, rates)
+            step(rng, d, t, rates)  # type: ignore[call-arg]  # the other steps take no design effects
     return rates, (float(np.min(deffs)), float(np.median(deffs)), float(np.max(deffs)))
 
 

@@ -109,8 +109,10 @@ def metric_matrix(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric]
             x = cols[m.variable]
             return x, ~np.isnan(x) & ~_isin(x, var.missing)
 
-        Y[:, j], answered = KINDS[m.kind].values(
-            lambda codes, m=m: _codes_mask(codebook, cols, m.variable, codes), numeric, m)
+        def codes_mask(codes, m=m):
+            return _codes_mask(codebook, cols, m.variable, codes)
+
+        Y[:, j], answered = KINDS[m.kind].values(codes_mask, numeric, m)
         if m.base_variable:
             inbase, _ = _codes_mask(codebook, cols, m.base_variable, m.base_codes)
             answered = answered & inbase
@@ -162,7 +164,7 @@ def group_matrix(codebook: Codebook, table: pd.DataFrame, groups: list[str],
             gnames.append(gname)
             lnames.append(label)
         if residual:
-            cols.append(~np.column_stack(cols[-len(g.levels):]).any(axis=1))
+            cols.append(np.asarray(~np.column_stack(cols[-len(g.levels):]).any(axis=1)))
             gnames.append(gname)
             lnames.append(NO_LABEL)
     return np.column_stack(cols), Levels(tuple(gnames), tuple(lnames))

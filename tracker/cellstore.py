@@ -82,7 +82,7 @@ class CellStore:
             self._stored_path(label)  # what the cache holds is derived from this file: it must be sound
             got = read_entry(self.root, label, self.key(label))
             cells = None if got is None else got[0]
-            if cells is not None:
+            if got is not None and cells is not None:
                 self._memory[("ids", label)] = got[1]
             if cells is None or cells.metrics != tuple(self.codebook.metrics):
                 cells, ids = self._compute_stored(label)
@@ -100,7 +100,7 @@ class CellStore:
             from .cache import read_psu, write_psu
 
             self._stored_path(label)
-            got = read_psu(self.root, label, self.key(label))
+            got: Any = read_psu(self.root, label, self.key(label))
             if got is None:
                 cells = self._memory.pop(("psu fresh", label), None) or self.compute(self._load(label))[0]
                 write_psu(self.root, label, self.key(label), cells)

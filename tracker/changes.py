@@ -134,7 +134,7 @@ def year_ago(labels: list[str], dates: dict[str, str], wave: str, tolerance_days
         g = abs((dt.date.fromisoformat(dates[lab]) - target).days)
         if gap is None or g < gap:
             best, gap = lab, g
-    if best is None or gap > tolerance_days:
+    if best is None or gap is None or gap > tolerance_days:
         return None, (f"no stored wave lies within {tolerance_days // 7} weeks of {target.isoformat()} "
                       f"(12 months before {wave})")
     return best, f"year-ago wave: {_year_ago_label(best, dates, wave, target)}"

@@ -22,10 +22,10 @@ TYPES = ("category", "scale", "number", "multi", "text")
 LABEL_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,39}")  # always used with fullmatch
 
 
-_Base = getattr(yaml, "CSafeLoader", yaml.SafeLoader)  # libyaml's parser when PyYAML has it: 10x faster
+_Base: Any = getattr(yaml, "CSafeLoader", yaml.SafeLoader)  # libyaml's parser when PyYAML has it: 10x faster
 
 
-class _Loader(_Base):
+class _Loader(_Base):  # type: ignore[misc]  # a base chosen at import time
     """SafeLoader that keeps dates as text and only true/false as booleans.
 
     Wave labels such as ``2025-09-30`` must stay the text written, and a code label such
@@ -717,19 +717,19 @@ def _codes_of(var: Variable, node: Any, path: str) -> tuple:
     if not isinstance(node, list) or not node:
         raise _err(path, "expected a list of codes")
     if var.type == "multi":
-        out = []
+        columns: list[str] = []
         for c in node:
             if str(c) not in var.options:
                 raise _err(path, f"{c!r} is not an option column of {var.name}")
-            out.append(str(c))
-        return tuple(out)
-    out = []
+            columns.append(str(c))
+        return tuple(columns)
+    codes: list[float] = []
     for c in node:
         code = _as_code(c, path)
         if code not in var.codes:
             raise _err(path, f"code {_fmt_code(code)} is not a code of {var.name}")
-        out.append(code)
-    return tuple(out)
+        codes.append(code)
+    return tuple(codes)
 
 
 def _parse_metric(name: str, node: Any, variables: dict[str, Variable]) -> Metric:

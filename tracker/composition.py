@@ -41,7 +41,9 @@ def stacked_shares(labels: list[np.ndarray], levels: list[str], weights: list[np
         scale = inside.sum() / max(float((w * inside).sum()), np.finfo(float).tiny)
         ww = w * inside * scale
         rows_w.append(ww)
-        rows_lab.append(np.where(inside, lab, None))
+        shown = np.asarray(lab, dtype=object).copy()
+        shown[~inside] = None
+        rows_lab.append(shown)
         n_k = len(lab)
         st_all.append(np.char.add(f"{k}|", (np.zeros(n_k, int) if st is None else np.asarray(st)).astype(str)))
         ps_all.append(np.char.add(f"{k}|", (np.arange(n_k) if ps is None else np.asarray(ps)).astype(str)))

@@ -150,6 +150,8 @@ def population_problems(codebook: Codebook, table: pd.DataFrame) -> list[str]:
     psu_id, psu_stratum, n_strata = psu_index(strata, clusters, len(table))
     n_h = np.bincount(psu_stratum, minlength=n_strata)
     factor = fpc_factor(pop, psu_stratum[psu_id], n_h)
+    if factor is None:
+        return []
     bad = np.flatnonzero(factor < 0)
     if not bad.size:
         return []
@@ -196,8 +198,7 @@ class CellArrays:
         for them would give (the total, then each split's levels in the order asked)."""
         col = {m: j for j, m in enumerate(self.metrics)}
         cols = np.array([col[m] for m in metrics], dtype=np.int64)
-        rows = [0] + [i for g in groups for i, gi in enumerate(self.group) if gi == g]
-        rows = np.array(rows, dtype=np.int64)
+        rows = np.array([0] + [i for g in groups for i, gi in enumerate(self.group) if gi == g], dtype=np.int64)
         if len(cols) == len(self.metrics) and np.array_equal(cols, np.arange(len(cols))) \
                 and np.array_equal(rows, np.arange(len(self.group))):
             return self
@@ -253,6 +254,7 @@ def cell_arrays(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], 
                                                                          codebook.single_cluster_rule, pop, cal)
             if keep_psu and codebook.clusters:
                 s_lab, c_lab = design_labels(codebook, table)
+                assert c_lab is not None  # clusters are declared
                 names = c_lab[first_row].astype(str)
                 if s_lab is not None:
                     names = np.char.add(np.char.add(s_lab[first_row].astype(str), SEP), names)
@@ -483,6 +485,7 @@ def _cell_psu_totals(codebook: Codebook, table: pd.DataFrame, metrics: list[Metr
     w = weights_of(codebook, table)
     strata, clusters = design_labels(codebook, table)
     unit = clusters if by_cluster else table[codebook.id].astype(str).to_numpy()
+    assert unit is not None  # asked only when clusters or ids are there
     keys = unit if strata is None else np.char.add(np.char.add(strata.astype(str), SEP), unit.astype(str))
     key_codes, key_names = pd.factorize(pd.Series(keys))
     N, L = D.shape

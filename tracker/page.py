@@ -68,7 +68,7 @@ def _bundle() -> str:
         return path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError):
         pass
-    text = vlc.javascript_bundle(vl_version="6.4")
+    text = vlc.javascript_bundle(vl_version="6.4")  # type: ignore[call-arg]  # snippet is optional at run time
     try:  # a cache only: a folder that cannot be written is no error
         folder.mkdir(parents=True, exist_ok=True)
         tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")

@@ -157,7 +157,7 @@ def duckdb_cells(book: Codebook, path: str | Path, keep_psu: bool = False, threa
              f"{'CAST(' + _q(clusters) + ' AS VARCHAR)' if clusters else 'NULL'} AS c_", f"{w} AS w_"]
     exclusive = _exclusive(book, groups)
     if exclusive:  # one column per split: the position of the respondent's level in it (0: none)
-        starts = {}
+        starts: dict[str, int] = {}
         for j, g in enumerate(gnames):
             starts.setdefault(g, j)
         for k, g in enumerate(groups):

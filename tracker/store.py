@@ -45,7 +45,7 @@ def fs_problem(exc: OSError, path: Path | str, doing: str) -> TrackerError:
     """One clear line for a file-system failure: which path, what went wrong, what to do."""
     hint = {errno.EACCES: "check the folder's permissions", errno.EPERM: "check the folder's permissions",
             errno.EROFS: "the file system is read-only", errno.ENOSPC: "free some disk space and try again",
-            errno.EDQUOT: "the disk quota is full; free some space and try again"}.get(exc.errno, "")
+            errno.EDQUOT: "the disk quota is full; free some space and try again"}.get(exc.errno or 0, "")
     reason = exc.strerror or exc.__class__.__name__
     return TrackerError(f"{path}: cannot {doing} ({reason.lower()})" + (f"; {hint}" if hint else "")
                         + "; nothing was changed")

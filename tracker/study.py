@@ -305,8 +305,8 @@ class Study:
 
         key = ("compare", wave, tuple(others), tuple(m.name for m in ms), tuple(gs), adjust, level)
         if key in self._cache:
-            table, notes, size = self._cache[key]
-            return table, list(notes), size
+            table, kept, size = self._cache[key]
+            return table, list(kept), size
         now = self._wave_rows(wave, ms, gs, level)
         then = (self._wave_rows(others[0], ms, gs, level) if len(others) == 1
                 else self._pooled_rows(others, ms, gs, level))
@@ -430,7 +430,7 @@ class Study:
     def segment_starts(self, metrics: list, labels: list[str]) -> dict[str, str]:
         """For metrics with a wording break inside ``labels``: the wave their current series starts at."""
         order = self.dates()
-        out = {}
+        out: dict[str, str] = {}
         for m in metrics:
             for _, b in self.breaks(m):
                 after = [w for w in labels if wave_in_span(w, b, None, order)]
@@ -530,6 +530,8 @@ class Study:
             date = order[wave]
             new = self.estimates(waves=[wave], level=level)
         else:
+            if date is None:
+                raise TrackerError("judging a wave not yet stored needs its fieldwork date")
             wave = wave or "new"
             cells = cell_arrays(self.codebook, table, ms, list(self.codebook.groups))
             new = estimates_frame([(wave, date, cells)], ms, level)
@@ -640,7 +642,7 @@ class Study:
 
 def _cell_columns(full, part) -> np.ndarray:
     """Positions (in the full level x metric order) of the cells of a selection."""
-    row = {}
+    row: dict[tuple[str, str], int] = {}
     for i, (g, lev) in enumerate(zip(full.group, full.level)):
         row.setdefault((g, lev), i)
     col = {m: j for j, m in enumerate(full.metrics)}

@@ -375,8 +375,8 @@ def fitted_values(trend_rows: pd.DataFrame, est: pd.DataFrame, t0: str | None = 
     Time zero is ``t0``, the fieldwork date of the first wave the trends were fitted on
     (default: the first date in ``est``)."""
     keys = ["metric", "group", "subgroup"]
-    t0 = dt.date.fromisoformat(t0 or est["fieldwork_date"].min())
-    years = est["fieldwork_date"].map(lambda d: (dt.date.fromisoformat(d) - t0).days / 365.25)
+    start = dt.date.fromisoformat(t0 or est["fieldwork_date"].min())
+    years = est["fieldwork_date"].map(lambda d: (dt.date.fromisoformat(d) - start).days / 365.25)
     m = est[keys].join(years.rename("years")).merge(trend_rows, on=keys, how="left")
     m.index = est.index
     rank = _rank(est)

@@ -128,6 +128,7 @@ def _column(how: str, a, kinds: np.ndarray, b=None) -> list[str]:
         elif how in ("size", "sd"):
             out[m] = _num(v, d) + pts
         elif how in ("span", "span_change"):
+            assert y is not None  # a span has two columns
             signed = how == "span_change"
             out[m] = _num(v, d, signed) + " to " + _num(y[m] * k.scale, d, signed)
         else:

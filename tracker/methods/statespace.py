@@ -64,7 +64,7 @@ def local_level(y: np.ndarray, v: np.ndarray, ok: np.ndarray, q: np.ndarray, smo
         cur_p = np.where(started, new_p, 0.0)
         a[:, t] = np.where(started, cur_a, np.nan)
         P[:, t] = np.where(started, cur_p, np.nan)
-    out = {"loglik": loglik}
+    out: dict[str, np.ndarray] = {"loglik": loglik}
     if not smooth:
         return out
     ms, vs = a.copy(), P.copy()
