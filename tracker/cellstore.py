@@ -9,7 +9,6 @@ This is the one owner of that concern: Study and the scale path (tracker.scale) 
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import replace
 from pathlib import Path
 from typing import Any
@@ -19,6 +18,7 @@ import pandas as pd
 
 from .codebook import Codebook
 from .estimates import CellArrays
+from .waves import StoredWaves
 
 __all__ = ["CellStore"]
 
@@ -32,18 +32,13 @@ class CellStore:
         The study folder.
     codebook : Codebook
         The study's codebook (its metrics and groups define the cells).
-    entry : callable
-        The ledger entry of a wave label (refuses an unknown label).
-    stored_path : callable
-        The stored file of a wave once it is checked against its SHA-256.
-    load : callable
-        The harmonized respondent table of a stored wave.
+    waves : StoredWaves
+        The study's stored waves (their ledger entries, checked files and tables).
     """
 
-    def __init__(self, root: Path, codebook: Codebook, entry: Callable[[str], dict],
-                 stored_path: Callable[[str], Path], load: Callable[[str], pd.DataFrame]):
-        self.root, self.codebook = root, codebook
-        self._entry, self._stored_path, self._load = entry, stored_path, load
+    def __init__(self, root: Path, codebook: Codebook, waves: StoredWaves):
+        self.root, self.codebook, self.waves = root, codebook, waves
+        self._entry, self._stored_path, self._load = waves.entry, waves.stored_path, waves.load
         self._memory: dict[tuple, Any] = {}
 
     def key(self, label: str) -> str:

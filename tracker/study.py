@@ -16,6 +16,7 @@ from .codebook import Codebook, load_codebook
 from .errors import TrackerError
 from .intake import wave_in_span
 from .options import check_adjust, check_level, parse_date
+from .waves import StoredWaves
 
 
 class Study:
@@ -26,10 +27,9 @@ class Study:
         if not (self.root / store.LEDGER).is_file():
             raise TrackerError(f"{self.root}: not a study folder (no {store.LEDGER}); make one with 'tracker new'")
         self.codebook: Codebook = load_codebook(self.root / store.CODEBOOK)
-        self._ledger = store.read_ledger(self.root)
+        self.waves_on_disk = StoredWaves(self.root, store.read_ledger(self.root))
         self._cache: dict = {}
-        self._files = store.StoredFiles(self.root)  # each stored file checked against its SHA-256
-        self.cellstore = CellStore(self.root, self.codebook, self.entry, self.stored_path, self.load)
+        self.cellstore = CellStore(self.root, self.codebook, self.waves_on_disk)
 
     # -- making and reading ------------------------------------------------------------
     @classmethod
@@ -59,46 +59,33 @@ class Study:
 
     @property
     def wave_entries(self) -> list[dict]:
-        return sorted(self._ledger["waves"], key=lambda w: w["date"])
+        """The ledger's wave entries in fieldwork order."""
+        return self.waves_on_disk.entries
 
     @property
     def labels(self) -> list[str]:
-        return [w["label"] for w in self.wave_entries]
+        """The stored waves' labels in fieldwork order."""
+        return self.waves_on_disk.labels
 
     def dates(self) -> dict[str, str]:
-        return {w["label"]: w["date"] for w in self.wave_entries}
+        """Each stored wave's fieldwork date (ISO)."""
+        return self.waves_on_disk.dates()
 
     def waves(self) -> pd.DataFrame:
         """The stored waves in fieldwork order."""
-        return pd.DataFrame(store.wave_rows(self._ledger), columns=store.WAVE_COLUMNS)
+        return pd.DataFrame(store.wave_rows(self.waves_on_disk.ledger), columns=store.WAVE_COLUMNS)
 
     def load(self, label: str) -> pd.DataFrame:
         """The harmonized respondent table of one stored wave."""
-        if label not in self._cache:
-            path = self.stored_path(label)
-            try:
-                self._cache[label] = pd.read_parquet(path)
-            except OSError as exc:
-                if isinstance(exc, PermissionError) or exc.errno is not None:
-                    raise store.fs_problem(exc, path, f"read wave {label}") from None
-                raise TrackerError(f"{path}: the stored file of wave {label} is damaged ({exc}); "
-                                   f"run 'tracker verify {self.root}'") from None
-            except Exception as exc:  # noqa: BLE001 - pyarrow's own errors for truncated or foreign files
-                raise TrackerError(f"{path}: the stored file of wave {label} is damaged "
-                                   f"({exc.__class__.__name__}); run 'tracker verify {self.root}'") from None
-        return self._cache[label]
+        return self.waves_on_disk.load(label)
 
     def stored_path(self, label: str) -> Path:
-        """The stored file of a wave, once it is known to be the file the ledger recorded (its
-        SHA-256); a changed, swapped or damaged file is refused with a pointer to verify."""
-        return self._files.check(self.entry(label))
+        """The stored file of a wave once checked against the SHA-256 the ledger recorded."""
+        return self.waves_on_disk.stored_path(label)
 
     def entry(self, label: str) -> dict:
         """The ledger entry of a stored wave (refuses a label that is not stored)."""
-        for w in self._ledger["waves"]:
-            if w["label"] == label:
-                return w
-        raise TrackerError(f"{self.root}: no wave labelled {label!r} (stored: {', '.join(self.labels) or 'none'})")
+        return self.waves_on_disk.entry(label)
 
     # -- intake (tracker.adding) ----------------------------------------------------------
     def check(self, file: str | Path, wave: str | None = None, date: str | None = None,
@@ -139,14 +126,14 @@ class Study:
 
     def reload_ledger(self) -> dict:
         """Read the ledger again (under the lock, before a change) and return it."""
-        self._ledger = store.read_ledger(self.root)
-        return self._ledger
+        self.waves_on_disk.update(store.read_ledger(self.root))
+        return self.waves_on_disk.ledger
 
     def committed(self, ledger: dict, fname: str, sha: str) -> None:
         """After the ledger rename committed a wave: hold the new ledger, remember the stored
         file as checked, and drop what was derived from the old state."""
-        self._ledger = ledger
-        self._files.remember(fname, store._stamp(self.root / fname, sha), locked=True)
+        self.waves_on_disk.update(ledger)
+        self.waves_on_disk.remember(fname, sha)
         self.forget()
 
     # -- estimates and changes ----------------------------------------------------------
@@ -174,15 +161,8 @@ class Study:
         return list(dict.fromkeys(names))
 
     def pick_waves(self, labels=None) -> list[str]:
-        """The stored waves named, in fieldwork order (all when none)."""
-        labels = [labels] if isinstance(labels, str) else labels
-        if not self.labels:
-            raise TrackerError(f"{self.root}: no waves stored yet; add one with 'tracker add'")
-        if not labels:
-            return self.labels
-        for lab in labels:
-            self.entry(lab)
-        return [lab for lab in self.labels if lab in labels]
+        """The stored waves named (one label or a list), in fieldwork order; all when none."""
+        return self.waves_on_disk.pick(labels)
 
     def _wave_rows(self, label: str, metrics: list, groups: list[str], level: float,
                    interval: str = "wilson") -> pd.DataFrame:
@@ -576,6 +556,7 @@ class Study:
     def forget(self) -> None:
         """Drop every result held in memory (the stored waves and the cache are untouched)."""
         self._cache = {}
+        self.waves_on_disk.forget()
         self.cellstore.forget()
 
     def memo(self, key: tuple, make):
