@@ -13,6 +13,7 @@ from . import adding, store
 from .adding import AddReport, CheckReport, content_fingerprint  # noqa: F401 - the API's result types
 from .cellstore import CellStore
 from .codebook import Codebook, load_codebook
+from .comparing import Comparisons, metric_breaks, smallest_changes
 from .errors import TrackerError
 from .intake import wave_in_span
 from .options import check_adjust, check_level, parse_date
@@ -30,6 +31,7 @@ class Study:
         self.waves_on_disk = StoredWaves(self.root, store.read_ledger(self.root))
         self._cache: dict = {}
         self.cellstore = CellStore(self.root, self.codebook, self.waves_on_disk)
+        self.comparisons = Comparisons(self.codebook, self.waves_on_disk, self.cellstore, self._cache)
 
     # -- making and reading ------------------------------------------------------------
     @classmethod
@@ -164,24 +166,13 @@ class Study:
         """The stored waves named (one label or a list), in fieldwork order; all when none."""
         return self.waves_on_disk.pick(labels)
 
-    def _wave_rows(self, label: str, metrics: list, groups: list[str], level: float,
-                   interval: str = "wilson") -> pd.DataFrame:
-        from .estimates import estimates_frame
+    def matters(self) -> dict[str, float]:
+        """The smallest change that matters per metric, in value units (tracker.comparing)."""
+        return smallest_changes(self.codebook)
 
-        key = ("est", label, tuple(m.name for m in metrics), tuple(groups), level, interval)
-        if key not in self._cache:
-            cells = self.cellstore.cells(label).select([m.name for m in metrics], groups)
-            self._cache[key] = estimates_frame([(label, self.dates()[label], cells)], metrics, level, interval)
-        return self._cache[key]
-
-    def _pooled_rows(self, labels: list[str], metrics: list, groups: list[str], level: float) -> pd.DataFrame:
-        from .estimates import wave_estimates
-
-        tables = [self.load(lab) for lab in labels]
-        table = pd.concat(tables, ignore_index=True)
-        sample = np.repeat(labels, [len(t) for t in tables])
-        name = f"{labels[0]}..{labels[-1]}" if len(labels) > 1 else labels[0]
-        return wave_estimates(self.codebook, table, metrics, groups, name, self.dates()[labels[-1]], level, sample)
+    def breaks(self, metric):
+        """(variable, wave) for each wording break of the metric's variable and base variable."""
+        return metric_breaks(self.codebook, metric)
 
     def estimates(self, metrics=None, by=None, waves=None, level: float = 0.95, detail: bool = False,
                   interval: str = "wilson") -> pd.DataFrame:
@@ -206,38 +197,6 @@ class Study:
         out = self._cache[key]
         return out.copy() if detail else out[COLUMNS]
 
-    def matters(self) -> dict[str, float]:
-        """The smallest change that matters per metric, in value units: the metric's own
-        ``smallest_change``, else the codebook's default for its kind; metrics with neither are
-        left out (nothing is then called held or flat)."""
-        from .kinds import KINDS
-
-        book = self.codebook
-        out = {}
-        for m in book.metrics.values():
-            given = m.smallest_change if m.smallest_change is not None else book.smallest_change.get(m.kind)
-            if given is not None:
-                out[m.name] = given / KINDS[m.kind].scale
-        return out
-
-    def breaks(self, metric):
-        """(variable, wave) for each wording break of the metric's variable and base variable."""
-        for vname in filter(None, (metric.variable, metric.base_variable)):
-            b = self.codebook.variables[vname].break_before
-            if b is not None:
-                yield vname, b
-
-    def break_reasons(self, metrics: list, wave_from: list[str], wave_to: str) -> dict[str, str]:
-        """Metrics whose series is split by a wording break between the waves compared."""
-        order = self.dates()
-        out = {}
-        for m in metrics:
-            for vname, b in self.breaks(m):
-                after = [wave_in_span(w, b, None, order) for w in [*wave_from, wave_to]]
-                if len(set(after)) > 1:
-                    out[m.name] = f"not compared: {vname} changed at {b} (wording break)"
-        return out
-
     def changes(self, wave: str | None = None, against: str = "previous", by=None, metrics=None,
                 adjust: str = "bh", level: float = 0.95, mix: str | None = None, family: str = "brief"):
         """Test what changed in ``wave`` (default: the latest) against another wave or pooled waves.
@@ -261,114 +220,23 @@ class Study:
         baseline = resolve_against(labels, self.dates(), wave, against)
         others, note = list(baseline.waves), baseline.note
         if family == "brief":
-            table, notes, size = self._compare(wave, others, self.pick_metrics(), self.pick_groups(), adjust, level)
+            table, notes, size = self.comparisons.family(wave, others, self.pick_metrics(), self.pick_groups(), adjust, level)
             keep = table["metric"].isin([m.name for m in ms]) & table["group"].isin(["total", *gs])
             table = table[keep].reset_index(drop=True)
             notes.append(f"p-values adjusted across the {size:,} comparisons of {wave} against {others[-1] if len(others) == 1 else 'the pooled waves'} "
                          f"(every metric in total and in every subgroup: the brief's family)")
         else:
-            table, notes, size = self._compare(wave, others, ms, gs, adjust, level)
+            table, notes, size = self.comparisons.family(wave, others, ms, gs, adjust, level)
             notes.append(f"p-values adjusted across only the {size:,} comparisons asked for: a narrower family than "
                          f"the brief's, so these verdicts can differ from the brief")
         notes = [note, *notes]
         mix_rows = None
         if mix is not None:
-            mix_rows = self._mix(ms, others, wave, mix, adjust, level)
+            mix_rows = self.comparisons.mix(ms, others, wave, mix, adjust, level)
             table = table.merge(mix_rows.drop(columns=["metric_label", "kind", "change"]).assign(group="total"),
                                 on=["metric", "group"], how="left")
         return ChangeResult(table, wave, baseline.label, adjust, level, tuple(notes), tuple(others), mix_rows,
                             size)
-
-    def _compare(self, wave: str, others: list[str], ms: list, gs: list[str], adjust: str, level: float):
-        """One family of comparisons: (table, notes, number of comparisons tested), cached."""
-        from .changes import compare
-
-        key = ("compare", wave, tuple(others), tuple(m.name for m in ms), tuple(gs), adjust, level)
-        if key in self._cache:
-            table, kept, size = self._cache[key]
-            return table, list(kept), size
-        now = self._wave_rows(wave, ms, gs, level)
-        then = (self._wave_rows(others[0], ms, gs, level) if len(others) == 1
-                else self._pooled_rows(others, ms, gs, level))
-        notes: list[str] = []
-        cov = both = None
-        unit = ""
-        if len(others) == 1:
-            c, shared, unit, both = self._covariance(wave, others[0], ms, gs, now, then)
-            if shared and unit == "respondents":
-                cov = c
-                notes.append(f"{shared:,} respondents answered both waves (the codebook declares a panel): their "
-                             f"covariance is taken into account, on the paired design's degrees of freedom")
-            elif shared:
-                cov = c
-                notes.append(f"{shared:,} clusters appear in both waves (the codebook says waves_share_clusters: "
-                             f"true): their covariance is taken into account, on the paired design's degrees of "
-                             f"freedom")
-            notes += self._overlap_notes(wave, others[0], unit)
-        table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level, self.matters(),
-                        shared=both if cov is not None else None, source=unit if cov is not None else "")
-        size = int(table["p_adjusted"].notna().sum())
-        self._cache[key] = (table, tuple(notes), size)
-        return table, list(notes), size
-
-    def _overlap_notes(self, wave: str, other: str, used: str) -> list[str]:
-        """Notes on ids or cluster labels two waves share that the codebook does not declare
-        as the same people or clusters (so the waves are compared as independent samples)."""
-        book = self.codebook
-        out = []
-        if used != "respondents" and book.id:
-            ha, hb = self.cellstore.id_hashes(wave), self.cellstore.id_hashes(other)
-            if ha is not None and hb is not None:
-                k = int(np.intersect1d(ha, hb).size)
-                if k and k >= 0.05 * min(ha.size, hb.size):  # a large overlap: row numbers, or a panel not declared
-                    out.append(f"{k:,} respondent ids appear in both waves; they are taken as different people "
-                               f"(independent samples), since the codebook does not declare panel: true")
-        if used != "clusters" and book.clusters and book.waves_share_clusters is None:
-            labels = [pd.read_parquet(self.stored_path(w), columns=[c for c in (book.strata, book.clusters) if c])
-                      .astype(str).agg("\x1f".join, axis=1).unique() for w in (wave, other)]
-            k = int(np.intersect1d(labels[0], labels[1]).size)
-            if k:
-                out.append(f"{k:,} cluster labels appear in both waves; they are taken as different clusters "
-                           f"(independent samples), since the codebook does not say waves_share_clusters: true")
-        return out
-
-    def _covariance(self, wave: str, other: str, ms: list, gs: list[str], now: pd.DataFrame, then: pd.DataFrame):
-        """Covariance of two waves' estimates (tracker.estimates.wave_covariance): from the
-        cached cluster totals when the waves share clusters, from the respondents when they
-        share respondents (found by the cached id hashes before any wave is read)."""
-        from .estimates import wave_covariance
-        from .methods.variance import PsuTotals, cross_wave_covariance, shared_per_cell
-
-        book = self.codebook
-        names = [m.name for m in ms]
-        if book.clusters and book.waves_share_clusters:
-            (ta, ka), (tb, kb) = self.cellstore.psu(wave), self.cellstore.psu(other)
-            if ta is not None and tb is not None:
-                pick = self.cellstore.cells(wave).select(names, gs)
-                cols = _cell_columns(self.cellstore.cells(wave), pick)
-                pa = PsuTotals(ta.totals[:, cols], ta.stratum, ta.n_strata, ta.factor)
-                pb = PsuTotals(tb.totals[:, cols], tb.stratum, tb.n_strata, tb.factor)
-                cov, shared = cross_wave_covariance(pa, ka, pb, kb, book.single_cluster_rule)
-                if shared:
-                    return cov, shared, "clusters", shared_per_cell(pa, ka, pb, kb)
-        ha, hb = self.cellstore.id_hashes(wave), self.cellstore.id_hashes(other)
-        if not book.panel or ha is None or hb is None or not np.intersect1d(ha, hb).size:
-            return np.zeros(len(now)), 0, "", np.zeros(len(now))
-        return wave_covariance(book, self.load(wave), self.load(other), ms, gs, now, then, by_cluster=False)
-
-    def _mix(self, ms, others, wave, var, adjust, level) -> pd.DataFrame:
-        from .composition import mix_table
-        from .methods.tests import adjust_pvalues
-
-        if var not in self.codebook.groups:
-            raise TrackerError(f"--mix {var}: not a group of this study ({', '.join(self.codebook.groups) or 'none'})")
-        before = pd.concat([self.load(w) for w in others], ignore_index=True)
-        out = mix_table(self.codebook, before, self.load(wave), ms, var, level)
-        out["standardised_p_adjusted"] = adjust_pvalues(out["standardised_p"].to_numpy(float), adjust)
-        out["standardised_significant"] = out["standardised_p_adjusted"] <= 1 - level
-        with np.errstate(divide="ignore", invalid="ignore"):
-            out["mix_share_of_change"] = out["mix_part"] / out["change"]
-        return out
 
     def composition(self, wave: str | None = None, against: str = "previous", groups=None,
                     adjust: str = "bh", level: float = 0.95):
@@ -555,7 +423,7 @@ class Study:
 
     def forget(self) -> None:
         """Drop every result held in memory (the stored waves and the cache are untouched)."""
-        self._cache = {}
+        self._cache.clear()  # in place: the comparisons share this memory
         self.waves_on_disk.forget()
         self.cellstore.forget()
 
@@ -593,7 +461,7 @@ class Study:
         rows = []
         for i in range(k - 1, len(labels)):
             window = labels[i - k + 1:i + 1]
-            part = self._pooled_rows(window, ms, gs, level)
+            part = self.comparisons.pooled_rows(window, ms, gs, level)
             part["wave"] = labels[i]
             part.insert(1, "pooled_waves", f"{window[0]}..{window[-1]}")
             rows.append(part)
@@ -611,7 +479,7 @@ class Study:
         if key not in self._cache:
             parts = []
             for before, after in pairwise(labels):
-                table, _, _ = self._compare(after, [before], every, groups, adjust, level)
+                table, _, _ = self.comparisons.family(after, [before], every, groups, adjust, level)
                 parts.append(table)
             self._cache[key] = pd.concat(parts, ignore_index=True) if parts else None
         out = self._cache[key]
@@ -619,14 +487,3 @@ class Study:
             return pd.DataFrame()
         keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
         return out[keep].reset_index(drop=True)
-
-
-def _cell_columns(full, part) -> np.ndarray:
-    """Positions (in the full level x metric order) of the cells of a selection."""
-    row: dict[tuple[str, str], int] = {}
-    for i, (g, lev) in enumerate(zip(full.group, full.level)):
-        row.setdefault((g, lev), i)
-    col = {m: j for j, m in enumerate(full.metrics)}
-    rows = np.array([row[(g, lev)] for g, lev in zip(part.group, part.level)], dtype=np.int64)
-    cols = np.array([col[m] for m in part.metrics], dtype=np.int64)
-    return (rows[:, None] * len(full.metrics) + cols[None, :]).ravel()
