@@ -17,7 +17,8 @@ import pandas as pd
 from .changes import VERDICTS, ChangeResult
 from .composition import CompositionResult
 
-__all__ = ["COMPARISON_FIELDS", "PATTERN_FIELDS", "Analysis", "analyse"]
+__all__ = ["COMPARISON_FIELDS", "PATTERN_FIELDS", "SMOOTH_BELOW", "Analysis", "SampleFacts", "analyse", "sample_facts",
+           "thin_subgroups"]
 
 #: The fields of each comparison in the machine-readable brief (stable names).
 COMPARISON_FIELDS = [
@@ -35,6 +36,44 @@ PATTERN_FIELDS = [
 
 
 @dataclass(frozen=True)
+class SampleFacts:
+    """One wave's sample: respondents, and the Kish effective base of its weights."""
+
+    wave: str
+    respondents: int
+    effective_base: float
+
+    @property
+    def efficiency(self) -> float:
+        return self.effective_base / self.respondents if self.respondents else float("nan")
+
+
+def sample_facts(study, wave: str) -> SampleFacts:
+    """The sample facts of a stored wave (Kish 1965: (sum w)^2 / sum w^2)."""
+    from .estimates import weights_of
+    from .methods.bases import kish_base
+
+    table = study.load(wave)
+    weights = weights_of(study.codebook, table)
+    return SampleFacts(wave, len(table), float(kish_base(weights.sum(), (weights**2).sum())))
+
+
+#: Subgroups under this effective base in the analysed wave get a smoothed line in their charts.
+SMOOTH_BELOW = 300
+
+
+def thin_subgroups(study, wave: str, level: float) -> tuple[tuple[str, str], ...]:
+    """(group, level) of the subgroups whose median effective base over the metrics in
+    ``wave`` is under SMOOTH_BELOW."""
+    est = study.estimates(waves=[wave], level=level)
+    sub = est[est["group"] != "total"]
+    if sub.empty:
+        return ()
+    med = sub.groupby(["group", "subgroup"], sort=False)["effective_base"].median()
+    return tuple(k for k, v in med.items() if v < SMOOTH_BELOW)
+
+
+@dataclass(frozen=True)
 class Analysis:
     """Everything said about one wave against its baseline."""
 
@@ -48,6 +87,8 @@ class Analysis:
     composition: CompositionResult | None  # when one wave is compared and a profile is declared
     mix: dict[str, tuple[str, bool]] = field(default_factory=dict)  # metric -> (note, mostly make-up)
     surprises: pd.DataFrame | None = None  # every cell against its expected range (tracker.expected)
+    samples: tuple[SampleFacts, ...] = ()  # the wave's and its baseline's samples
+    thin: tuple[tuple[str, str], ...] = ()  # (group, level) of thin subgroups in the wave
 
     @property
     def table(self) -> pd.DataFrame:
@@ -118,8 +159,9 @@ def analyse(study, wave: str | None = None, against: str = "previous", adjust: s
     moved = t[(t["group"] == "total") & t["significant"]]["metric"].tolist()
     mix = _mix_notes(study, result, comp, moved)
     surprises = study.surprises(wave=wave, adjust=adjust, level=level)
+    samples = tuple(sample_facts(study, w) for w in [wave, *result.compared_with])
     return Analysis(study.codebook.title, wave, result.against, adjust, level, result, trends, comp, mix,
-                    surprises if len(surprises) else None)
+                    surprises if len(surprises) else None, samples, thin_subgroups(study, wave, level))
 
 
 def _mix_notes(study, result, comp, metrics: list[str]) -> dict[str, tuple[str, bool]]:

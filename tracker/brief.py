@@ -15,11 +15,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from .analysis import SMOOTH_BELOW, sample_facts
 from .errors import TrackerError
 from .estimates import weights_of
 from .formatting import safe_cell
 from .kinds import KINDS
-from .methods.bases import kish_base
 from .methods.tests import ADJUST_METHODS
 from .wording import count, fixed, p_text, plural
 
@@ -255,7 +255,7 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     }
     chart_list: list[tuple[str, dict]] = []
     compact: list[tuple[str, dict]] = []
-    thin = _thin_subgroups(study, wave, level)
+    thin = analysis.thin
     thin_groups = {g for g, _ in thin}
     smoothed_drawn = charts and any(g in thin_groups for _, g in shown_sub_pairs(sub))  # the same words in every form
     if thin:
@@ -374,11 +374,11 @@ def first_wave_brief(study, wave: str, level: float = 0.95, charts: bool = True)
         flag = f" Flagged: {r.flags}." if isinstance(r.flags, str) and r.flags else ""
         levels.append(Item(f"{r.metric_label}: {k.fmt_value(r.value)} ({level:.0%} interval {k.fmt_value(r.ci_low)} "
                            f"to {k.fmt_value(r.ci_high)}; base {int(r.base):,}).{flag}", "note", r.metric))
+    facts = sample_facts(study, wave)
     table = study.load(wave)
     weights = weights_of(study.codebook, table)
-    eff = float(kish_base(weights.sum(), (weights**2).sum()))
-    sample = [Item(f"{wave}: {count(len(table), 'respondent')}; effective base {eff:,.0f} (weighting efficiency "
-                   f"{eff / len(table):.0%}).", "note")]
+    sample = [Item(f"{wave}: {count(facts.respondents, 'respondent')}; effective base {facts.effective_base:,.0f} "
+                   f"(weighting efficiency {facts.efficiency:.0%}).", "note")]
     from .cells import group_labels
 
     for g in study.codebook.profile or list(study.codebook.groups):
@@ -424,24 +424,9 @@ def _level_records(est: pd.DataFrame) -> list[dict]:
     return _records(est[cols])
 
 
-#: Subgroups under this effective base in the briefed wave get a smoothed line in their charts.
-SMOOTH_BELOW = 300
-
-
 def shown_sub_pairs(sub: pd.DataFrame) -> set[tuple[str, str]]:
     """(metric, group) of the subgroup moves that get their own chart."""
     return {(r.metric, g) for r, g in zip(sub.itertuples(), sub["group"])}
-
-
-def _thin_subgroups(study, wave: str, level: float) -> list[tuple[str, str]]:
-    """(group, level) of the subgroups whose median effective base over the metrics in
-    ``wave`` is under SMOOTH_BELOW."""
-    est = study.estimates(waves=[wave], level=level)
-    sub = est[est["group"] != "total"]
-    if sub.empty:
-        return []
-    med = sub.groupby(["group", "subgroup"], sort=False)["effective_base"].median()
-    return [k for k, v in med.items() if v < SMOOTH_BELOW]
 
 
 def _surprise_items(analysis) -> tuple[Item, ...]:
@@ -484,14 +469,10 @@ def _trend_mark(row) -> str:
 def _sample_notes(study, analysis) -> list[Item]:
     result, trends = analysis.changes, analysis.trends
     notes = []
-    waves = [result.wave, *result.compared_with]
     book = study.codebook
-    for w in waves:
-        table = study.load(w)
-        weights = weights_of(book, table)
-        eff = float(kish_base(weights.sum(), (weights**2).sum()))
-        notes.append(Item(f"{w}: {count(len(table), 'respondent')}; effective base {eff:,.0f} "
-                          f"(weighting efficiency {eff / len(table):.0%}).", "note"))
+    for f in analysis.samples:
+        notes.append(Item(f"{f.wave}: {count(f.respondents, 'respondent')}; effective base {f.effective_base:,.0f} "
+                          f"(weighting efficiency {f.efficiency:.0%}).", "note"))
     t = result.table
     why = t["not_tested_because"]
     untested = t[(t["group"] == "total") & (t["verdict"] == "not tested") & (why != "wording break")]
