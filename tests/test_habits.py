@@ -47,3 +47,13 @@ def test_no_study_private_name_is_used_outside_the_study_module():
             if private.search(line):
                 found.append(f"{path.relative_to(ROOT)}:{n}: {line.strip()}")
     assert not found, "\n".join(found)
+
+
+@pytest.mark.parametrize("method", ["changes", "composition", "trends", "expected", "surprises", "analysis",
+                                    "wave_steps"])
+def test_every_adjustment_is_checked_once_with_one_error_type(demo_study, method):
+    """An unknown adjustment is a TrackerError naming the choices, from every method that takes one."""
+    from tracker import TrackerError
+
+    with pytest.raises(TrackerError, match="xx: use one of bh, holm, by, none"):
+        getattr(demo_study, method)(adjust="xx")

@@ -16,6 +16,7 @@ from .errors import TrackerError
 from .kinds import KINDS
 from .methods.intervals import t_interval
 from .methods.tests import ADJUST_METHODS, adjust_pvalues, difference_test, family_level, paired_df, satterthwaite_df
+from .options import check_adjust
 
 KEYS = ["metric", "group", "subgroup"]
 
@@ -200,8 +201,7 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     family, adjusted by ``adjust``. ``matters`` maps a metric to the smallest change that
     matters, in value units (see :func:`verdict_of`).
     """
-    if adjust not in ADJUST_METHODS:
-        raise TrackerError(f"--adjust {adjust}: use one of {', '.join(ADJUST_METHODS)}")
+    check_adjust(adjust)
     m = now.merge(then, on=KEYS, suffixes=("_to", "_from"))
     kind = m["kind_to"].to_numpy()
     p1, p0 = m["value_to"].to_numpy(float), m["value_from"].to_numpy(float)

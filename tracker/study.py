@@ -209,6 +209,7 @@ class Study:
         With ``mix=GROUP``, each total change is also split into the part due to the sample's
         mix on that group and the part within its levels, with the change standardised to
         the earlier wave's mix and its test (``result.mix``; see docs/methods.md)."""
+        check_adjust(adjust)
         from .changes import ChangeResult, resolve_against
 
         if family not in ("brief", "asked"):
@@ -241,6 +242,7 @@ class Study:
     def composition(self, wave: str | None = None, against: str = "previous", groups=None,
                     adjust: str = "bh", level: float = 0.95):
         """Compare the sample's make-up on the profile groups with another wave."""
+        check_adjust(adjust)
         check_level(level)
         from .changes import resolve_against
         from .composition import compare_composition
@@ -334,6 +336,7 @@ class Study:
         sampling variance at the expected base (tracker.expected). ``base``: the next
         wave's expected respondents in total (default: the mean of the last three waves);
         subgroups get their recent share of it."""
+        check_adjust(adjust)
         from .expected import RANGE_COLUMNS, next_ranges
 
         check_level(level)
@@ -364,6 +367,7 @@ class Study:
         predict, with the surprises marked under false discovery control across all cells
         (tracker.expected). With ``table`` and ``date``, a wave not yet stored is judged
         against every stored wave fielded before it (``check`` and ``add`` do this)."""
+        check_adjust(adjust)
         from .estimates import cell_arrays, estimates_frame
         from .expected import SURPRISE_COLUMNS, WINDOW, predict, surprise_table
         from .trends import MIN_WAVES
@@ -439,6 +443,7 @@ class Study:
                  level: float = 0.95):
         """The one analysis of ``wave`` (tracker.analysis.Analysis) that the brief, the charts and
         the JSON brief render: computed once per wave, baseline, adjustment and level."""
+        check_adjust(adjust)
         from .analysis import analyse
 
         check_level(level)
@@ -473,6 +478,7 @@ class Study:
         """Every wave against the one before it, for the given metrics and subgroups. Each step
         keeps the p-values and verdicts of its own wave's comparison family (every metric in
         total and in every subgroup, as ``changes`` and the brief of that wave report them)."""
+        check_adjust(adjust)
         ms, gs, labels = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves(waves)
         every, groups = self.pick_metrics(), self.pick_groups()
         key = ("steps", tuple(labels), adjust, level)
