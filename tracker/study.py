@@ -2,11 +2,9 @@
 
 from __future__ import annotations
 
-import datetime as dt
 from itertools import pairwise
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 from . import adding, store
@@ -15,8 +13,9 @@ from .cellstore import CellStore
 from .codebook import Codebook, load_codebook
 from .comparing import Comparisons, metric_breaks, smallest_changes
 from .errors import TrackerError
-from .intake import wave_in_span
-from .options import check_adjust, check_level, parse_date
+from .options import check_adjust, check_level
+from .selection import pick_groups, pick_metrics
+from .series import Series
 from .waves import StoredWaves
 
 
@@ -32,6 +31,7 @@ class Study:
         self._cache: dict = {}
         self.cellstore = CellStore(self.root, self.codebook, self.waves_on_disk)
         self.comparisons = Comparisons(self.codebook, self.waves_on_disk, self.cellstore, self._cache)
+        self.series = Series(self.codebook, self.waves_on_disk, self.estimates, self._cache)
 
     # -- making and reading ------------------------------------------------------------
     @classmethod
@@ -140,27 +140,12 @@ class Study:
 
     # -- estimates and changes ----------------------------------------------------------
     def pick_metrics(self, names=None) -> list:
-        """The metrics named (all when none), refusing a name the codebook does not know."""
-        book = self.codebook
-        names = [names] if isinstance(names, str) else names
-        if not names:
-            return list(book.metrics.values())
-        unknown = [n for n in names if n not in book.metrics]
-        if unknown:
-            raise TrackerError(f"--metric {unknown[0]}: not a metric of this study ({', '.join(book.metrics)})")
-        return [book.metrics[n] for n in names]
+        """The metrics named (one name or a list; all when none), refusing unknown ones."""
+        return pick_metrics(self.codebook, names)
 
     def pick_groups(self, names=None) -> list[str]:
         """The splits named (all when None; [] or total for totals only), refusing unknown ones."""
-        book = self.codebook
-        names = [names] if isinstance(names, str) else names
-        if names is None:
-            return list(book.groups)
-        names = [n for n in names if n not in ("total", "none")]
-        unknown = [n for n in names if n not in book.groups]
-        if unknown:
-            raise TrackerError(f"--by {unknown[0]}: not a group of this study ({', '.join(book.groups) or 'none declared'})")
-        return list(dict.fromkeys(names))
+        return pick_groups(self.codebook, names)
 
     def pick_waves(self, labels=None) -> list[str]:
         """The stored waves named (one label or a list), in fieldwork order; all when none."""
@@ -262,168 +247,47 @@ class Study:
         return self._cache[key]
 
     # -- trends ---------------------------------------------------------------------------
-    def _window(self, last: int | None, since: str | None, until: str | None = None) -> list[str]:
-        labels = self.pick_waves()
-        if until is not None:
-            self.entry(until)
-            labels = labels[:labels.index(until) + 1]
-        if since is not None:
-            if since not in labels:
-                raise TrackerError(f"--since {since}: no stored wave has that label")
-            labels = labels[labels.index(since):]
-        if last is not None:
-            if last < 1:
-                raise TrackerError(f"--last {last}: give a number of waves of 1 or more")
-            labels = labels[-last:]
-        return labels
+    def window(self, last: int | None = None, since: str | None = None, until: str | None = None) -> list[str]:
+        """The stored waves from ``since`` to ``until``, the last ``last`` of them."""
+        return self.series.window(last, since, until)
 
     def segment_starts(self, metrics: list, labels: list[str]) -> dict[str, str]:
         """For metrics with a wording break inside ``labels``: the wave their current series starts at."""
-        order = self.dates()
-        out: dict[str, str] = {}
-        for m in metrics:
-            for _, b in self.breaks(m):
-                after = [w for w in labels if wave_in_span(w, b, None, order)]
-                if after and after[0] != labels[0] and (
-                        m.name not in out or labels.index(after[0]) > labels.index(out[m.name])):
-                    out[m.name] = after[0]
-        return out
+        return self.series.segment_starts(metrics, labels)
 
     def trends(self, metrics=None, by=None, last: int | None = None, since: str | None = None,
                adjust: str = "bh", level: float = 0.95, until: str | None = None, family: str = "brief"):
         """Slope per year, extra variation, and the pattern (tracker.trends.PATTERNS) of every
-        metric x subgroup series; see docs/methods.md.
+        metric x subgroup series (tracker.series.Series.trends; docs/methods.md).
 
         The pattern tests are adjusted in one family: by default (``family="brief"``) every
-        metric in total and in every subgroup over the same waves, the family the brief uses,
-        whatever ``metrics`` and ``by`` narrow the rows to; ``family="asked"`` adjusts across
-        only the series asked for (``df.attrs["family"]`` says which, and its size)."""
-        from .trends import fit_trends
+        metric in total and in every subgroup over the same waves, whatever ``metrics`` and
+        ``by`` narrow the rows to; ``family="asked"`` adjusts across only the series asked for
+        (``df.attrs["family"]`` says which, and its size)."""
+        return self.series.trends(metrics, by, last, since, adjust, level, until, family)
 
-        check_level(level)
-        check_adjust(adjust)
-        if family not in ("brief", "asked"):
-            raise TrackerError(f"--family {family}: use brief (every metric and subgroup) or asked")
-        ms = self.pick_metrics(metrics)
-        gs = self.pick_groups(by)
-        labels = self._window(last, since, until)
-        fam_ms, fam_by = (self.pick_metrics(), None) if family == "brief" else (ms, by)
-        key = ("trends", tuple(m.name for m in fam_ms), None if fam_by is None else tuple(gs), tuple(labels), adjust,
-               level)
-        if key not in self._cache:
-            est = self.estimates(metrics=[m.name for m in fam_ms], by=fam_by, waves=labels, level=level)
-            self._cache[key] = fit_trends(est, self.segment_starts(fam_ms, labels), adjust, level,
-                                          matters=self.matters())
-        out = self._cache[key]
-        size = int(out["pattern_p_adjusted"].notna().sum())
-        keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
-        out = out[keep].reset_index(drop=True)
-        out.attrs.update(family=family, family_size=size)
-        return out
-
-    # -- before and after a wave (tracker.expected) -----------------------------------------
     def next_date(self) -> str:
         """The expected fieldwork date of the next wave: the latest plus the median gap."""
-        dates = [dt.date.fromisoformat(d) for d in self.dates().values()]
-        days = [(b - a).days for a, b in zip(sorted(dates), sorted(dates)[1:])]
-        gap = int(np.median(days)) if days else 91
-        return (max(dates) + dt.timedelta(days=max(gap, 1))).isoformat()
+        return self.series.next_date()
 
     def expected(self, base: float | None = None, metrics=None, by=None, date: str | None = None,
                  adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
-        """The expected range of the next wave for every metric x subgroup series: the
-        prediction interval from the series' pattern, its wave-to-wave variation and the
-        sampling variance at the expected base (tracker.expected). ``base``: the next
-        wave's expected respondents in total (default: the mean of the last three waves);
-        subgroups get their recent share of it."""
-        check_adjust(adjust)
-        from .expected import RANGE_COLUMNS, next_ranges
-
-        check_level(level)
-        if base is not None and not base > 0:
-            raise TrackerError(f"--base {base}: give the expected number of respondents, above 0")
-        from .expected import WINDOW
-
-        labels = self.pick_waves()
-        date = parse_date(date) if date else self.next_date()
-        if date <= self.dates()[labels[-1]]:
-            raise TrackerError(f"--date {date}: the next wave must come after the latest, {labels[-1]} "
-                               f"({self.dates()[labels[-1]]})")
-        labels = labels[-WINDOW:]
-        hist = self.estimates(level=level, detail=True, waves=labels)
-        patterns = self.trends(adjust=adjust, level=level, last=len(labels))
-        rows = float(np.mean([self.entry(w)["rows"] for w in labels[-3:]]))
-        pred = next_ranges(self.codebook, hist, patterns, labels, date, base, rows,
-                           self.segment_starts(self.pick_metrics(), labels), level)
-        ms, gs = self.pick_metrics(metrics), self.pick_groups(by)
-        keep = pred["metric"].isin([m.name for m in ms]) & pred["group"].isin(["total", *gs])
-        out = pred[keep][RANGE_COLUMNS].reset_index(drop=True)
-        out.attrs.update(date=date, after=labels[-1], level=level)
-        return out
+        """The expected range of the next wave for every metric x subgroup series
+        (tracker.series.Series.expected). ``base``: the next wave's expected respondents in
+        total (default: the mean of the last three waves); ``date`` its fieldwork date."""
+        return self.series.expected(base, metrics, by, date, adjust, level)
 
     def surprises(self, wave: str | None = None, adjust: str = "bh", level: float = 0.95,
                   table: pd.DataFrame | None = None, date: str | None = None) -> pd.DataFrame:
         """Every cell of ``wave`` (default: the latest) against the range the waves before it
-        predict, with the surprises marked under false discovery control across all cells
-        (tracker.expected). With ``table`` and ``date``, a wave not yet stored is judged
-        against every stored wave fielded before it (``check`` and ``add`` do this)."""
-        check_adjust(adjust)
-        from .estimates import cell_arrays, estimates_frame
-        from .expected import SURPRISE_COLUMNS, WINDOW, predict, surprise_table
-        from .trends import MIN_WAVES
-
-        check_level(level)
-        labels = self.pick_waves()
-        ms = self.pick_metrics()
-        order = self.dates()
-        if table is None:
-            wave = wave or labels[-1]
-            self.entry(wave)
-            date = order[wave]
-            new = self.estimates(waves=[wave], level=level)
-        else:
-            if date is None:
-                raise TrackerError("judging a wave not yet stored needs its fieldwork date")
-            wave = wave or "new"
-            cells = cell_arrays(self.codebook, table, ms, list(self.codebook.groups))
-            new = estimates_frame([(wave, date, cells)], ms, level)
-            new = new[new["base"] > 0].reset_index(drop=True)
-            order = {**order, wave: date}
-        before = [w for w in labels if order[w] < date and w != wave][-WINDOW:]
-        if len(before) < MIN_WAVES:
-            return pd.DataFrame(columns=SURPRISE_COLUMNS)
-        key = ("surprise history", tuple(before), adjust, level)
-        if key not in self._cache:
-            self._cache[key] = (self.estimates(waves=before, level=level),
-                                self.trends(adjust=adjust, level=level, until=before[-1], last=len(before)))
-        hist, patterns = self._cache[key]
-        pred = predict(hist, patterns, date, None, self.segment_starts(ms, before), level)
-        # a wording break between the last wave fitted and this one restarts the series: no prediction
-        for m in ms:
-            for vname, b in self.breaks(m):
-                if wave_in_span(wave, b, None, order) and not wave_in_span(before[-1], b, None, order):
-                    pred.loc[pred["metric"] == m.name, ["expected", "prediction_sd", "fit_sd"]] = np.nan
-        return surprise_table(pred, new, adjust, level)
+        predict, surprises marked under false discovery control (tracker.series.Series.surprises).
+        With ``table`` and ``date``, a wave not yet stored is judged (``check`` and ``add``)."""
+        return self.series.surprises(wave, adjust, level, table, date)
 
     def smoothed(self, metrics=None, by=None, waves=None, level: float = 0.95, until: str | None = None) -> pd.DataFrame:
-        """The estimates with a smoothed value beside each direct one: signal extraction in a
-        local-level model with each wave's known sampling variance, fitted per series over
-        every stored wave (tracker.methods.statespace). Adds ``smoothed``, ``smoothed_low``,
-        ``smoothed_high`` and ``signal_sd`` (the random walk's SD per wave); a wording break
-        restarts the series, and cells before the current segment get no smoothed value.
-        ``until`` fits only the waves up to that one (as a brief of that wave sees them)."""
-        from .smoothing import smooth_estimates
-
-        check_level(level)
-        upto = self._window(None, None, until)
-        key = ("smoothed", level, tuple(upto))
-        if key not in self._cache:
-            est = self.estimates(level=level, waves=upto)
-            self._cache[key] = smooth_estimates(est, self.segment_starts(self.pick_metrics(), upto), level)
-        out = self._cache[key]
-        ms, gs, ws = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves(waves)
-        keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs]) & out["wave"].isin(ws)
-        return out[keep].reset_index(drop=True)
+        """The estimates with a smoothed value beside each direct one (tracker.smoothing), fitted
+        over every stored wave, or those up to ``until``."""
+        return self.series.smoothed(metrics, by, waves, level, until)
 
     def forget(self) -> None:
         """Drop every result held in memory (the stored waves and the cache are untouched)."""
