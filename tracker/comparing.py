@@ -7,6 +7,7 @@ the Study."""
 from __future__ import annotations
 
 from collections.abc import Iterator
+from itertools import pairwise
 from typing import Any
 
 import numpy as np
@@ -16,6 +17,8 @@ from .cellstore import CellStore
 from .codebook import Codebook
 from .errors import TrackerError
 from .intake import wave_in_span
+from .options import check_adjust, check_level
+from .selection import pick_groups, pick_metrics
 from .waves import StoredWaves
 
 __all__ = ["Comparisons", "metric_breaks", "smallest_changes"]
@@ -178,6 +181,89 @@ class Comparisons:
         with np.errstate(divide="ignore", invalid="ignore"):
             out["mix_share_of_change"] = out["mix_part"] / out["change"]
         return out
+
+    def changes(self, wave: str | None = None, against: str = "previous", by=None, metrics=None,
+                adjust: str = "bh", level: float = 0.95, mix: str | None = None, family: str = "brief"):
+        """Test what changed in ``wave`` (default: the latest) against another wave or pooled waves.
+
+        The p-values are adjusted in one family. By default (``family="brief"``) that is
+        every metric in total and in every subgroup of the comparison, the family the brief
+        tests, whatever ``metrics`` and ``by`` narrow the rows to; ``family="asked"`` adjusts
+        only across the comparisons asked for (and says that it differs from the brief).
+
+        With ``mix=GROUP``, each total change is also split into the part due to the sample's
+        mix on that group and the part within its levels, with the change standardised to
+        the earlier wave's mix and its test (``result.mix``; see docs/methods.md)."""
+        check_adjust(adjust)
+        from .changes import ChangeResult, resolve_against
+
+        if family not in ("brief", "asked"):
+            raise TrackerError(f"--family {family}: use brief (every metric and subgroup) or asked")
+        labels = self.waves.pick()
+        wave = wave or labels[-1]
+        check_level(level)
+        ms, gs = pick_metrics(self.codebook, metrics), pick_groups(self.codebook, by)
+        baseline = resolve_against(labels, self.waves.dates(), wave, against)
+        others, note = list(baseline.waves), baseline.note
+        if family == "brief":
+            table, notes, size = self.family(wave, others, pick_metrics(self.codebook), pick_groups(self.codebook), adjust, level)
+            keep = table["metric"].isin([m.name for m in ms]) & table["group"].isin(["total", *gs])
+            table = table[keep].reset_index(drop=True)
+            notes.append(f"p-values adjusted across the {size:,} comparisons of {wave} against {others[-1] if len(others) == 1 else 'the pooled waves'} "
+                         f"(every metric in total and in every subgroup: the brief's family)")
+        else:
+            table, notes, size = self.family(wave, others, ms, gs, adjust, level)
+            notes.append(f"p-values adjusted across only the {size:,} comparisons asked for: a narrower family than "
+                         f"the brief's, so these verdicts can differ from the brief")
+        notes = [note, *notes]
+        mix_rows = None
+        if mix is not None:
+            mix_rows = self.mix(ms, others, wave, mix, adjust, level)
+            table = table.merge(mix_rows.drop(columns=["metric_label", "kind", "change"]).assign(group="total"),
+                                on=["metric", "group"], how="left")
+        return ChangeResult(table, wave, baseline.label, adjust, level, tuple(notes), tuple(others), mix_rows,
+                            size)
+
+    def pooled(self, k: int, metrics=None, by=None, level: float = 0.95) -> pd.DataFrame:
+        """Rolling estimates pooling each wave with the k - 1 waves before it (for thin subgroups)."""
+        from .estimates import COLUMNS
+
+        check_level(level)
+        if k < 2:
+            raise TrackerError(f"--pool {k}: pool at least 2 waves")
+        ms, gs, labels = pick_metrics(self.codebook, metrics), pick_groups(self.codebook, by), self.waves.pick()
+        if len(labels) < k:
+            raise TrackerError(f"--pool {k}: only {len(labels)} waves are stored")
+        rows = []
+        for i in range(k - 1, len(labels)):
+            window = labels[i - k + 1:i + 1]
+            part = self.pooled_rows(window, ms, gs, level)
+            part["wave"] = labels[i]
+            part.insert(1, "pooled_waves", f"{window[0]}..{window[-1]}")
+            rows.append(part)
+        out = pd.concat(rows, ignore_index=True)
+        out = out[out["base"] > 0].reset_index(drop=True)
+        return out[["wave", "pooled_waves", *COLUMNS[1:]]]
+
+    def steps(self, metrics=None, by=None, waves=None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+        """Every wave against the one before it, for the given metrics and subgroups. Each step
+        keeps the p-values and verdicts of its own wave's comparison family (every metric in
+        total and in every subgroup, as ``changes`` and the brief of that wave report them)."""
+        check_adjust(adjust)
+        ms, gs, labels = pick_metrics(self.codebook, metrics), pick_groups(self.codebook, by), self.waves.pick(waves)
+        every, groups = pick_metrics(self.codebook), pick_groups(self.codebook)
+        key = ("steps", tuple(labels), adjust, level)
+        if key not in self.memory:
+            parts = []
+            for before, after in pairwise(labels):
+                table, _, _ = self.family(after, [before], every, groups, adjust, level)
+                parts.append(table)
+            self.memory[key] = pd.concat(parts, ignore_index=True) if parts else None
+        out = self.memory[key]
+        if out is None:
+            return pd.DataFrame()
+        keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
+        return out[keep].reset_index(drop=True)
 
 
 def _cell_columns(full, part) -> np.ndarray:

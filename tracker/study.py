@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from itertools import pairwise
 from pathlib import Path
 
 import pandas as pd
@@ -194,35 +193,7 @@ class Study:
         With ``mix=GROUP``, each total change is also split into the part due to the sample's
         mix on that group and the part within its levels, with the change standardised to
         the earlier wave's mix and its test (``result.mix``; see docs/methods.md)."""
-        check_adjust(adjust)
-        from .changes import ChangeResult, resolve_against
-
-        if family not in ("brief", "asked"):
-            raise TrackerError(f"--family {family}: use brief (every metric and subgroup) or asked")
-        labels = self.pick_waves()
-        wave = wave or labels[-1]
-        check_level(level)
-        ms, gs = self.pick_metrics(metrics), self.pick_groups(by)
-        baseline = resolve_against(labels, self.dates(), wave, against)
-        others, note = list(baseline.waves), baseline.note
-        if family == "brief":
-            table, notes, size = self.comparisons.family(wave, others, self.pick_metrics(), self.pick_groups(), adjust, level)
-            keep = table["metric"].isin([m.name for m in ms]) & table["group"].isin(["total", *gs])
-            table = table[keep].reset_index(drop=True)
-            notes.append(f"p-values adjusted across the {size:,} comparisons of {wave} against {others[-1] if len(others) == 1 else 'the pooled waves'} "
-                         f"(every metric in total and in every subgroup: the brief's family)")
-        else:
-            table, notes, size = self.comparisons.family(wave, others, ms, gs, adjust, level)
-            notes.append(f"p-values adjusted across only the {size:,} comparisons asked for: a narrower family than "
-                         f"the brief's, so these verdicts can differ from the brief")
-        notes = [note, *notes]
-        mix_rows = None
-        if mix is not None:
-            mix_rows = self.comparisons.mix(ms, others, wave, mix, adjust, level)
-            table = table.merge(mix_rows.drop(columns=["metric_label", "kind", "change"]).assign(group="total"),
-                                on=["metric", "group"], how="left")
-        return ChangeResult(table, wave, baseline.label, adjust, level, tuple(notes), tuple(others), mix_rows,
-                            size)
+        return self.comparisons.changes(wave, against, by, metrics, adjust, level, mix, family)
 
     def composition(self, wave: str | None = None, against: str = "previous", groups=None,
                     adjust: str = "bh", level: float = 0.95):
@@ -319,41 +290,9 @@ class Study:
 
     def pooled(self, k: int, metrics=None, by=None, level: float = 0.95) -> pd.DataFrame:
         """Rolling estimates pooling each wave with the k - 1 waves before it (for thin subgroups)."""
-        from .estimates import COLUMNS
-
-        check_level(level)
-        if k < 2:
-            raise TrackerError(f"--pool {k}: pool at least 2 waves")
-        ms, gs, labels = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves()
-        if len(labels) < k:
-            raise TrackerError(f"--pool {k}: only {len(labels)} waves are stored")
-        rows = []
-        for i in range(k - 1, len(labels)):
-            window = labels[i - k + 1:i + 1]
-            part = self.comparisons.pooled_rows(window, ms, gs, level)
-            part["wave"] = labels[i]
-            part.insert(1, "pooled_waves", f"{window[0]}..{window[-1]}")
-            rows.append(part)
-        out = pd.concat(rows, ignore_index=True)
-        out = out[out["base"] > 0].reset_index(drop=True)
-        return out[["wave", "pooled_waves", *COLUMNS[1:]]]
+        return self.comparisons.pooled(k, metrics, by, level)
 
     def wave_steps(self, metrics=None, by=None, waves=None, adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
-        """Every wave against the one before it, for the given metrics and subgroups. Each step
-        keeps the p-values and verdicts of its own wave's comparison family (every metric in
-        total and in every subgroup, as ``changes`` and the brief of that wave report them)."""
-        check_adjust(adjust)
-        ms, gs, labels = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves(waves)
-        every, groups = self.pick_metrics(), self.pick_groups()
-        key = ("steps", tuple(labels), adjust, level)
-        if key not in self._cache:
-            parts = []
-            for before, after in pairwise(labels):
-                table, _, _ = self.comparisons.family(after, [before], every, groups, adjust, level)
-                parts.append(table)
-            self._cache[key] = pd.concat(parts, ignore_index=True) if parts else None
-        out = self._cache[key]
-        if out is None:
-            return pd.DataFrame()
-        keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
-        return out[keep].reset_index(drop=True)
+        """Every wave against the one before it, each step keeping its own wave's family
+        (tracker.comparing.Comparisons.steps)."""
+        return self.comparisons.steps(metrics, by, waves, adjust, level)
