@@ -477,30 +477,60 @@ def _rows(mask: np.ndarray, first_row: int) -> tuple[tuple[int, ...], int]:
     return tuple(int(i) + first_row for i in idx[:MAX_EXAMPLES]), int(idx.size)
 
 
+class _Found:
+    """The problems found in one wave file, each with its rows (as the file numbers them)."""
+
+    def __init__(self, first_row: int):
+        self.first_row = first_row
+        self.problems: list[Problem] = []
+
+    def __call__(self, sev: str, col: str, msg: str, mask=None) -> None:
+        rows, count = _rows(mask, self.first_row) if mask is not None else ((), 0)
+        self.problems.append(Problem(sev, col, msg, rows, count))
+
+
 def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, str],
                rake: bool = False) -> tuple[pd.DataFrame, list[Problem]]:
     """Apply aliases and recodes, check every rule, and return (harmonized table, problems).
 
     The harmonized table has one column per codebook variable (one per option of a multi
     variable) under its codebook name, codes as floats (blank = NaN), plus the id, weight,
-    strata and clusters columns.
+    strata and clusters columns. The rules, in the order their messages come: the header
+    (:func:`_header_rules`), the columns each variable reads (:func:`_sources`), the design
+    columns (:func:`_design_rules`), the variables (:func:`_variable_rules`).
     """
-    problems: list[Problem] = []
     table = _by_position(wf.table)
-    fr = wf.first_row
-    cols = list(table.columns)
+    add = _Found(wf.first_row)
+    if not _header_rules(list(table.columns), add):
+        return pd.DataFrame(), add.problems
+    source, claimed = _sources(codebook, table, add)
+    out: dict[str, pd.Series] = {}
+    if len(table.columns) == 1:
+        add("error", table.columns[0], "the header was read as a single column; is the delimiter right?")
+    _design_rules(codebook, table, rake, out, add)
+    known = set(source.values()) | set(codebook.design_columns())
+    known |= {c for found in claimed.values() for c in found}
+    extra = [c for c in table.columns if c not in known]
+    present = _variable_rules(codebook, table, label, order, source, extra, out, add)
+    if extra:
+        shown = ", ".join(extra[:10]) + (" ..." if len(extra) > 10 else "")
+        add.problems.append(Problem("warning", "", f"{len(extra)} column(s) not in the codebook are left out: {shown}"))
+    design = [c for c in codebook.design_columns() if c in out]
+    harmonized = pd.DataFrame({c: out[c] for c in design + present}, index=table.index).reset_index(drop=True)
+    return harmonized, add.problems
 
-    def add(sev, col, msg, mask=None):
-        rows, count = _rows(mask, fr) if mask is not None else ((), 0)
-        problems.append(Problem(sev, col, msg, rows, count))
 
+def _header_rules(cols: list, add: _Found) -> bool:
+    """Each column name once in the header; False when the file cannot be read on."""
     dupes = _twice(cols)
     for c in dupes:
         add("error", c, "the column name appears more than once in the header")
-    if dupes:
-        return pd.DataFrame(), problems
+    return not dupes
 
-    # Which file column feeds each codebook column (aliases resolved).
+
+def _sources(codebook: Codebook, table: pd.DataFrame, add: _Found) -> tuple[dict[str, str], dict[str, list[str]]]:
+    """Which file column feeds each codebook column (aliases resolved), and the variables
+    that more than one present column claims (an error)."""
     source: dict[str, str] = {}
     claimed: dict[str, list[str]] = {}
     for v in codebook.variables.values():
@@ -516,13 +546,11 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
             source[v.name] = found[0]
     for vname, found in claimed.items():
         add("error", ", ".join(found), f"these columns all map to variable {vname} (its name and aliases); keep one")
+    return source, claimed
 
-    out: dict[str, pd.Series] = {}
 
-    if len(cols) == 1:
-        add("error", cols[0], "the header was read as a single column; is the delimiter right?")
-
-    # Design columns.
+def _design_rules(codebook: Codebook, table: pd.DataFrame, rake: bool, out: dict, add: _Found) -> None:
+    """The id, weight, strata and clusters columns: present and well formed."""
     for role, col in (("id", codebook.id), ("weight", codebook.weight),
                       ("strata", codebook.strata), ("clusters", codebook.clusters)):
         if col is None:
@@ -534,53 +562,75 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
         values = table[col].astype(str).str.strip()
         blank = (values == "").to_numpy()
         if role == "weight":
-            num = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
-            if blank.any():
-                add("error", col, "blank weight", blank)
-            bad_text = np.isnan(num) & ~blank
-            if bad_text.any():
-                add("error", col, f"weight is not a number (e.g. {values[bad_text].iloc[0]!r})", bad_text)
-            nonpos = ~np.isnan(num) & ~(num > 0)
-            if nonpos.any():
-                add("error", col, "weight is zero or negative", nonpos)
-            inf = np.isinf(num)
-            if inf.any():
-                add("error", col, "weight is not finite", inf)
-            huge = np.isfinite(num) & (num > MAX_WEIGHT)
-            if huge.any():
-                add("error", col, f"weight above {MAX_WEIGHT:.0e} (sums of squares would overflow)", huge)
-            fine = np.isfinite(num) & (num > 0) & ~huge
-            if fine.any() and num[fine].max() > MAX_WEIGHT_RATIO * num[fine].min():
-                ratio = num[fine].max() / num[fine].min()
-                add("error", col, f"the largest weight is {ratio:,.3g} times the smallest (over "
-                                  f"{MAX_WEIGHT_RATIO:,.0f}): a scaling slip or a broken weight; the rows are the "
-                                  f"largest", fine & (num == num[fine].max()))
-            out[col] = pd.Series(num, index=table.index)
+            out[col] = _weight_rules(col, values, blank, add)
         else:
-            if blank.any():
-                add("error", col, f"blank {role}", blank)
-            control = values.str.contains(_CONTROL, regex=True).to_numpy(dtype=bool)
-            if control.any():
-                code = next(c for c in values[control].iloc[0] if _CONTROL.match(c))
-                add("error", col, f"{role} value(s) hold the control character U+{ord(code):04X} (a NUL byte, "
-                                  f"an escape sequence or the like): a damaged export?", control)
-            if role in ("strata", "clusters"):
-                word = values.str.lower().str.lstrip("+-")
-                endless = word.isin(["inf", "infinity", "nan"]).to_numpy(dtype=bool)
-                if endless.any():
-                    add("error", col, f"{role} {values[endless].iloc[0]!r} is not a finite number", endless)
-            if role == "id":
-                dup = values.duplicated(keep=False).to_numpy() & ~blank
-                if dup.any():
-                    add("error", col, f"{values[dup].nunique()} id(s) appear more than once (e.g. {values[dup].iloc[0]!r})", dup)
-            out[col] = values
+            out[col] = _label_column_rules(role, col, values, blank, add)
 
-    known = set(source.values()) | set(codebook.design_columns())
-    known |= {c for found in claimed.values() for c in found}
-    extra = [c for c in cols if c not in known]
 
-    # Variables.
-    order_present = []
+def _weight_rules(col: str, values: pd.Series, blank: np.ndarray, add: _Found) -> pd.Series:
+    """A weight: present, a positive finite number, within bounds; the numbers."""
+    num = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
+    if blank.any():
+        add("error", col, "blank weight", blank)
+    bad_text = np.isnan(num) & ~blank
+    if bad_text.any():
+        add("error", col, f"weight is not a number (e.g. {values[bad_text].iloc[0]!r})", bad_text)
+    nonpos = ~np.isnan(num) & ~(num > 0)
+    if nonpos.any():
+        add("error", col, "weight is zero or negative", nonpos)
+    inf = np.isinf(num)
+    if inf.any():
+        add("error", col, "weight is not finite", inf)
+    huge = np.isfinite(num) & (num > MAX_WEIGHT)
+    if huge.any():
+        add("error", col, f"weight above {MAX_WEIGHT:.0e} (sums of squares would overflow)", huge)
+    fine = np.isfinite(num) & (num > 0) & ~huge
+    if fine.any() and num[fine].max() > MAX_WEIGHT_RATIO * num[fine].min():
+        ratio = num[fine].max() / num[fine].min()
+        add("error", col, f"the largest weight is {ratio:,.3g} times the smallest (over "
+                          f"{MAX_WEIGHT_RATIO:,.0f}): a scaling slip or a broken weight; the rows are the "
+                          f"largest", fine & (num == num[fine].max()))
+    return pd.Series(num, index=values.index)
+
+
+def _label_column_rules(role: str, col: str, values: pd.Series, blank: np.ndarray, add: _Found) -> pd.Series:
+    """An id, stratum or cluster column: no blanks, no control characters, finite strata and
+    clusters, each id once; the values as text."""
+    if blank.any():
+        add("error", col, f"blank {role}", blank)
+    control = values.str.contains(_CONTROL, regex=True).to_numpy(dtype=bool)
+    if control.any():
+        code = next(c for c in values[control].iloc[0] if _CONTROL.match(c))
+        add("error", col, f"{role} value(s) hold the control character U+{ord(code):04X} (a NUL byte, "
+                          f"an escape sequence or the like): a damaged export?", control)
+    if role in ("strata", "clusters"):
+        word = values.str.lower().str.lstrip("+-")
+        endless = word.isin(["inf", "infinity", "nan"]).to_numpy(dtype=bool)
+        if endless.any():
+            add("error", col, f"{role} {values[endless].iloc[0]!r} is not a finite number", endless)
+    if role == "id":
+        dup = values.duplicated(keep=False).to_numpy() & ~blank
+        if dup.any():
+            add("error", col, f"{values[dup].nunique()} id(s) appear more than once (e.g. {values[dup].iloc[0]!r})",
+                dup)
+    return values
+
+
+def _missing_hint(v: Variable, extra: list[str]) -> str:
+    """For a missing column: a present column that may be it under a new name."""
+    if v.type == "multi":
+        return ""
+    near = ([c for c in extra if v.name.lower() in c.lower() or c.lower() in v.name.lower()]
+            or (difflib.get_close_matches(v.name, extra, n=1, cutoff=0.6) if len(extra) <= 5000 else []))
+    return (f"; is column {near[0]!r} this variable under a new name? then add it to the "
+            f"variable's aliases") if near else ""
+
+
+def _variable_rules(codebook: Codebook, table: pd.DataFrame, label: str, order: dict[str, str],
+                    source: dict[str, str], extra: list[str], out: dict, add: _Found) -> list[str]:
+    """Every variable: present when the codebook expects it in this wave, each column's
+    values checked and recoded (:func:`_check_column`); the harmonized columns in order."""
+    present_cols: list[str] = []
     hinted = 0
     for v in codebook.variables.values():
         expected = wave_in_span(label, v.first_wave, v.last_wave, order)
@@ -591,12 +641,7 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
                 hinted += 1
                 what = f"option columns {', '.join(v.options)}" if v.type == "multi" else "column"
                 alias = f" (or an alias: {', '.join(v.aliases)})" if v.aliases else ""
-                near = ([c for c in extra if v.name.lower() in c.lower() or c.lower() in v.name.lower()]
-                        or (difflib.get_close_matches(v.name, extra, n=1, cutoff=0.6) if len(extra) <= 5000
-                            else [])) if (
-                    v.type != "multi" and hinted <= 10) else []  # hints for the first few: a wide file stays fast
-                hint = (f"; is column {near[0]!r} this variable under a new name? then add it to the "
-                        f"variable's aliases") if near else ""
+                hint = _missing_hint(v, extra) if hinted <= 10 else ""  # hints for the first few: a wide file stays fast
                 add("error", v.name, f"required {what}{alias} is missing for variable {v.name}{hint}")
             continue
         if v.type == "multi" and len(present) < len(file_cols):
@@ -610,15 +655,8 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
             if source[c] != c:
                 add("warning", source[c], f"read as {c} (an alias in the codebook)")
             out[c] = _check_column(v, c, table[source[c]].astype(str).str.strip(), label, add)
-            order_present.append(c)
-
-    if extra:
-        shown = ", ".join(extra[:10]) + (" ..." if len(extra) > 10 else "")
-        problems.append(Problem("warning", "", f"{len(extra)} column(s) not in the codebook are left out: {shown}"))
-
-    design = [c for c in codebook.design_columns() if c in out]
-    harmonized = pd.DataFrame({c: out[c] for c in design + order_present}, index=table.index).reset_index(drop=True)
-    return harmonized, problems
+            present_cols.append(c)
+    return present_cols
 
 
 def _check_column(v: Variable, col: str, values: pd.Series, label: str, add) -> pd.Series:
