@@ -258,7 +258,6 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     """One sheet of a workbook as text cells, refusing what would silently lose data:
     merged cells, formulas with no stored result, data on a sheet not chosen."""
     from openpyxl import load_workbook
-    from openpyxl.utils import get_column_letter
 
     _xlsx_within_bounds(path, sheet)
     try:
@@ -266,34 +265,11 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
         formulas = load_workbook(path, data_only=False)
     except Exception as exc:  # noqa: BLE001 - a foreign file's reader may raise any type; the message names it
         raise TrackerError(f"{path}: cannot be read as XLSX ({str(exc)[:200]})") from None
-    filled = [ws.title for ws in book.worksheets if ws.max_row > 1 or ws.max_column > 1 or ws.cell(1, 1).value is not None]
-    if sheet is None:
-        if len(filled) > 1:
-            raise TrackerError(f"{path}: {len(filled)} sheets hold data ({', '.join(filled)}); choose one with --sheet")
-        if not filled:
-            raise TrackerError(f"{path}: every sheet is empty")
-        sheet = filled[0]
-    elif sheet not in book.sheetnames:
-        raise TrackerError(f"{path}: no sheet named {sheet!r} (sheets: {', '.join(book.sheetnames)})")
-    ws, wf = book[sheet], formulas[sheet]
-    if ws.merged_cells.ranges:
-        shown = ", ".join(str(r) for r in list(ws.merged_cells.ranges)[:5])
-        raise TrackerError(f"{path}, sheet {sheet}: merged cells ({shown}); unmerge them so that every respondent "
-                           f"has their own value")
+    sheet = _xlsx_sheet(path, book, sheet)
+    ws = book[sheet]
     rows = [list(r) for r in ws.iter_rows(values_only=True)]
-    lost = [f"{get_column_letter(c.column)}{c.row}" for r in wf.iter_rows() for c in r
-            if c.data_type == "f" and ws.cell(c.row, c.column).value is None]
-    if lost:
-        raise TrackerError(f"{path}, sheet {sheet}: {len(lost)} formula cell(s) have no stored value (e.g. "
-                           f"{', '.join(lost[:5])}); open the file in a spreadsheet program and save it, or paste "
-                           f"the values")
-    width = max((sum(v is not None for v in r) for r in rows), default=0)
-    if header_row is None:
-        header_row = next((i + 1 for i, r in enumerate(rows)
-                           if sum(isinstance(v, str) and v.strip() != "" for v in r) >= max(1, width / 2)
-                           and all(v is None or isinstance(v, str) for v in r)), 1)
-    elif not 1 <= header_row <= len(rows):
-        raise TrackerError(f"{path}, sheet {sheet}: --header-row {header_row} is outside rows 1 to {len(rows)}")
+    _xlsx_refusals(path, sheet, ws, formulas[sheet])
+    header_row = _xlsx_header_row(path, sheet, rows, header_row)
     header = rows[header_row - 1] if rows else []
     keep = [j for j, v in enumerate(header) if v is not None and str(v).strip() != ""]
     body = [[r[j] if j < len(r) else None for j in keep] for r in rows[header_row:]]
@@ -306,15 +282,64 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     table = table.where(table.notna(), "").map(lambda v: v if isinstance(v, str) else _plain(v))
     problems = [Problem("warning", "", f"sheet {sheet}: column names read from row {header_row}; rows above it "
                                        f"left out")] if header_row > 1 else []
+    problems += _xlsx_hidden_rows(sheet, ws, rows, header_row)
+    return table, header_row + 1, problems
+
+
+def _xlsx_sheet(path: Path, book, sheet: str | None) -> str:
+    """The sheet to read: the one named, or the only one holding data."""
+    filled = [ws.title for ws in book.worksheets if ws.max_row > 1 or ws.max_column > 1 or ws.cell(1, 1).value is not None]
+    if sheet is None:
+        if len(filled) > 1:
+            raise TrackerError(f"{path}: {len(filled)} sheets hold data ({', '.join(filled)}); choose one with --sheet")
+        if not filled:
+            raise TrackerError(f"{path}: every sheet is empty")
+        return filled[0]
+    if sheet not in book.sheetnames:
+        raise TrackerError(f"{path}: no sheet named {sheet!r} (sheets: {', '.join(book.sheetnames)})")
+    return sheet
+
+
+def _xlsx_refusals(path: Path, sheet: str, ws, formulas) -> None:
+    """Merged cells, and formulas whose result the file does not store, are refused."""
+    from openpyxl.utils import get_column_letter
+
+    if ws.merged_cells.ranges:
+        shown = ", ".join(str(r) for r in list(ws.merged_cells.ranges)[:5])
+        raise TrackerError(f"{path}, sheet {sheet}: merged cells ({shown}); unmerge them so that every respondent "
+                           f"has their own value")
+    lost = [f"{get_column_letter(c.column)}{c.row}" for r in formulas.iter_rows() for c in r
+            if c.data_type == "f" and ws.cell(c.row, c.column).value is None]
+    if lost:
+        raise TrackerError(f"{path}, sheet {sheet}: {len(lost)} formula cell(s) have no stored value (e.g. "
+                           f"{', '.join(lost[:5])}); open the file in a spreadsheet program and save it, or paste "
+                           f"the values")
+
+
+def _xlsx_header_row(path: Path, sheet: str, rows: list[list], header_row: int | None) -> int:
+    """The header's row: the one given, or the first row of text at least half as wide as the
+    widest row (titles and notes above a table are skipped)."""
+    width = max((sum(v is not None for v in r) for r in rows), default=0)
+    if header_row is None:
+        return next((i + 1 for i, r in enumerate(rows)
+                     if sum(isinstance(v, str) and v.strip() != "" for v in r) >= max(1, width / 2)
+                     and all(v is None or isinstance(v, str) for v in r)), 1)
+    if not 1 <= header_row <= len(rows):
+        raise TrackerError(f"{path}, sheet {sheet}: --header-row {header_row} is outside rows 1 to {len(rows)}")
+    return header_row
+
+
+def _xlsx_hidden_rows(sheet: str, ws, rows: list[list], header_row: int) -> list[Problem]:
+    """Rows hidden in the sheet are read like any other: a warning names them."""
     hidden = [r for r, dim in ws.row_dimensions.items() if dim.hidden and header_row < r <= len(rows)
               and any(v is not None and str(v).strip() != "" for v in rows[r - 1])]
-    if hidden:
-        shown = ", ".join(str(r) for r in sorted(hidden)[:MAX_EXAMPLES])
-        more = f" (and {len(hidden) - MAX_EXAMPLES} more)" if len(hidden) > MAX_EXAMPLES else ""
-        problems.append(Problem("warning", "", f"sheet {sheet}: {len(hidden)} row(s) are hidden in the sheet "
-                                               f"(rows {shown}{more}); they are read like every other row: if the "
-                                               f"sender hid respondents to leave them out, delete those rows"))
-    return table, header_row + 1, problems
+    if not hidden:
+        return []
+    shown = ", ".join(str(r) for r in sorted(hidden)[:MAX_EXAMPLES])
+    more = f" (and {len(hidden) - MAX_EXAMPLES} more)" if len(hidden) > MAX_EXAMPLES else ""
+    return [Problem("warning", "", f"sheet {sheet}: {len(hidden)} row(s) are hidden in the sheet "
+                                   f"(rows {shown}{more}); they are read like every other row: if the "
+                                   f"sender hid respondents to leave them out, delete those rows")]
 
 
 def _by_position(table: pd.DataFrame) -> pd.DataFrame:
