@@ -419,8 +419,39 @@ def _twice(names: list[str]) -> list[str]:
 
 
 def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
-    from .limits import MAX_COLUMNS
+    """A delimited text file as text cells: decoded (:func:`_decode`), its delimiter sniffed,
+    its header checked (:func:`_csv_header`), every row as wide as the header."""
+    text = _decode(path, encoding)
+    first = text[: text.find("\n")] if "\n" in text else text
+    sample = text[: max(65536, len(first) + 1)]
+    try:
+        delimiter = csv.Sniffer().sniff(sample[:65536], delimiters=",;\t|").delimiter
+    except csv.Error:
+        delimiter = ","
+    names, blank_tail = _csv_header(path, first, sample, delimiter)
+    widths = [(i, len(r)) for i, r in enumerate(csv.reader(io.StringIO(text), delimiter=delimiter), 1) if r]
+    want = widths[0][1] if widths else 0
+    odd = [(i, n) for i, n in widths if n != want]
+    if odd:
+        shown = ", ".join(f"line {i} ({n})" for i, n in odd[:5])
+        raise TrackerError(f"{path}: {len(odd)} row(s) do not have the header's {want} fields: {shown}; a row cut "
+                           f"short or a stray delimiter would shift answers between columns")
+    try:
+        table = pd.read_csv(io.StringIO(text), sep=delimiter, dtype=str, keep_default_na=False,
+                            skip_blank_lines=True)
+    except (pd.errors.ParserError, csv.Error) as exc:
+        raise TrackerError(f"{path}: cannot be read as CSV ({str(exc)[:200]})") from None
+    if blank_tail:  # empty columns after the last named one (a spreadsheet's export): ignored when empty
+        tail = list(table.columns[len(names) - blank_tail:])
+        if (table[tail] == "").all().all():
+            table = table.drop(columns=tail)
+    return table
 
+
+def _decode(path: Path, encoding: str | None) -> str:
+    """The file's text in the encoding given (UTF-8 by default, its byte-order mark dropped),
+    with old Mac line ends (CR alone) read as line ends; a byte that does not decode is named
+    by its line."""
     raw = path.read_bytes()
     enc = encoding or "utf-8-sig"
     try:
@@ -439,12 +470,14 @@ def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
         raise TrackerError(f"{path}: the file is empty")
     if "\n" not in text and "\r" in text:
         text = text.replace("\r", "\n")  # line ends of old Mac software: CR alone
-    first = text[: text.find("\n")] if "\n" in text else text
-    sample = text[: max(65536, len(first) + 1)]
-    try:
-        delimiter = csv.Sniffer().sniff(sample[:65536], delimiters=",;\t|").delimiter
-    except csv.Error:
-        delimiter = ","
+    return text
+
+
+def _csv_header(path: Path, first: str, sample: str, delimiter: str) -> tuple[list[str], int]:
+    """The header's names and how many empty names end it; refuses too many columns, columns
+    separated by spaces, and a name given twice."""
+    from .limits import MAX_COLUMNS
+
     if first.count(delimiter) + 1 > MAX_COLUMNS:
         raise TrackerError(f"{path}: the header has more than {MAX_COLUMNS:,} columns; is this a wave file?")
     csv.field_size_limit(1 << 30)  # a long free-text answer is an answer, not an error
@@ -458,27 +491,11 @@ def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
     blank_tail = 0
     while blank_tail < len(names) and names[len(names) - 1 - blank_tail] == "":
         blank_tail += 1
-    dupes = _twice([n for n in names[: len(names) - blank_tail]])
+    dupes = _twice(names[: len(names) - blank_tail])
     if dupes:
         shown = dupes[0] or "(a blank name)"
         raise TrackerError(f"{path}, column {shown}: the column name appears more than once in the header")
-    widths = [(i, len(r)) for i, r in enumerate(csv.reader(io.StringIO(text), delimiter=delimiter), 1) if r]
-    want = widths[0][1] if widths else 0
-    odd = [(i, n) for i, n in widths if n != want]
-    if odd:
-        shown = ", ".join(f"line {i} ({n})" for i, n in odd[:5])
-        raise TrackerError(f"{path}: {len(odd)} row(s) do not have the header's {want} fields: {shown}; a row cut "
-                           f"short or a stray delimiter would shift answers between columns")
-    try:
-        table = pd.read_csv(io.StringIO(text), sep=delimiter, dtype=str, keep_default_na=False,
-                            skip_blank_lines=True)
-    except (pd.errors.ParserError, csv.Error) as exc:
-        raise TrackerError(f"{path}: cannot be read as CSV ({str(exc)[:200]})") from None
-    if blank_tail:  # empty columns after the last named one (a spreadsheet's export): ignored when empty
-        tail = list(table.columns[len(names) - blank_tail:])
-        if (table[tail] == "").all().all():
-            table = table.drop(columns=tail)
-    return table
+    return names, blank_tail
 
 
 def wave_in_span(label: str, first: str | None, last: str | None, order: dict[str, str]) -> bool:
