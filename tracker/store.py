@@ -170,45 +170,54 @@ def _version_problems(v, where: str) -> list[str]:
 
 def ledger_problems(ledger) -> list[str]:
     """What is structurally wrong with a parsed ledger (empty when nothing): the waves list,
-    every entry's keys and their types, the stored files' names, labels given twice."""
+    every entry's keys and their types (:func:`_entry_problems`), the stored files' names,
+    labels given twice (:func:`_shared_problems`)."""
     if not isinstance(ledger, dict) or not isinstance(ledger.get("waves"), list):
         return ["no waves list"]
     out = []
     for i, w in enumerate(ledger["waves"], 1):
-        if not isinstance(w, dict):
-            out.append(f"wave entry {i} is not an object")
-            continue
-        label = w.get("label")
-        where = f"wave entry {i} ({label if isinstance(label, str) else 'no label'})"
-        missing = [k for k in ENTRY_KEYS if k not in w]
-        if missing:
-            out.append(f"{where} lacks {', '.join(missing)}")
-            continue
-        if not isinstance(label, str) or not _LABEL.fullmatch(label):
-            out.append(f"{where}: label {str(label)[:40]!r} is not a wave label")
-        if not isinstance(w["date"], str) or not _is_iso_date(w["date"]):
-            out.append(f"{where}: date {str(w['date'])[:40]!r} is not an ISO date (YYYY-MM-DD)")
-        if not isinstance(w["source"], str):
-            out.append(f"{where}: source is not a file name")
-        out += _version_problems(w, where)
-        history = w.get("history", [])
-        if not isinstance(history, list) or not all(isinstance(h, dict) for h in history):
-            out.append(f"{where}: history is not a list of earlier versions")
-            continue
-        out += [p for j, h in enumerate(history, 1) for p in _version_problems(h, f"{where}, replaced version {j}")]
+        out += _entry_problems(i, w)
+    return out + _shared_problems(ledger["waves"])
+
+
+def _entry_problems(i: int, w) -> list[str]:
+    """One wave entry: an object with every key, a wave label, an ISO date, a file name, and
+    its earlier versions of the same shape."""
+    if not isinstance(w, dict):
+        return [f"wave entry {i} is not an object"]
+    label = w.get("label")
+    where = f"wave entry {i} ({label if isinstance(label, str) else 'no label'})"
+    missing = [k for k in ENTRY_KEYS if k not in w]
+    if missing:
+        return [f"{where} lacks {', '.join(missing)}"]
+    out = []
+    if not isinstance(label, str) or not _LABEL.fullmatch(label):
+        out.append(f"{where}: label {str(label)[:40]!r} is not a wave label")
+    if not isinstance(w["date"], str) or not _is_iso_date(w["date"]):
+        out.append(f"{where}: date {str(w['date'])[:40]!r} is not an ISO date (YYYY-MM-DD)")
+    if not isinstance(w["source"], str):
+        out.append(f"{where}: source is not a file name")
+    out += _version_problems(w, where)
+    history = w.get("history", [])
+    if not isinstance(history, list) or not all(isinstance(h, dict) for h in history):
+        return [*out, f"{where}: history is not a list of earlier versions"]
+    return out + [p for j, h in enumerate(history, 1) for p in _version_problems(h, f"{where}, replaced version {j}")]
+
+
+def _shared_problems(waves: list) -> list[str]:
+    """Across entries: a label given twice, a stored file named by two entries or versions."""
     from collections import Counter
 
-    labels = Counter(w["label"] for w in ledger["waves"] if isinstance(w, dict) and isinstance(w.get("label"), str))
-    out += [f"wave {label} appears more than once" for label in sorted(x for x, k in labels.items() if k > 1)]
+    labels = Counter(w["label"] for w in waves if isinstance(w, dict) and isinstance(w.get("label"), str))
+    out = [f"wave {label} appears more than once" for label in sorted(x for x, k in labels.items() if k > 1)]
     files: Counter[str] = Counter()
-    for w in ledger["waves"]:
+    for w in waves:
         earlier: list = w["history"] if isinstance(w, dict) and isinstance(w.get("history"), list) else []
         for v in [w, *earlier] if isinstance(w, dict) else []:
             name = stored_file_name(v.get("file")) if isinstance(v, dict) else None
             if name:
                 files[name] += 1
-    out += [f"file {f} is named by more than one entry" for f in sorted(f for f, k in files.items() if k > 1)]
-    return out
+    return out + [f"file {f} is named by more than one entry" for f in sorted(f for f, k in files.items() if k > 1)]
 
 
 def _is_iso_date(text: str) -> bool:
