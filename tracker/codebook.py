@@ -364,6 +364,48 @@ def load_codebook(path: str | Path) -> Codebook:
 
 
 def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
+    """The codebook in ``text`` (docs/codebook.md), every rule checked; a TrackerError names
+    the key and what is wrong. The parts: the YAML (:func:`_load_yaml`), the design keys,
+    the variables and the columns they own (:func:`_owned_columns`), groups, metrics,
+    targets (:func:`_parse_targets`), the settings, and one form for every wave label named
+    (:func:`_one_label_form`)."""
+    doc = _load_yaml(text, name)
+    for key in ("title", "id", "variables", "metrics"):
+        if key not in doc:
+            raise _err(key, "is required")
+    title = _text(doc["title"], "title")
+    id_col = _text(doc["id"], "id")
+    weight, strata, clusters = (_text(doc[k], k) if doc.get(k) is not None else None
+                                for k in ("weight", "strata", "clusters"))
+    variables = {str(vname): _parse_variable(str(vname), node)
+                 for vname, node in _mapping(doc["variables"], "variables").items()}
+    if not variables:
+        raise _err("variables", "no variables are declared")
+    _owned_columns(variables, id_col, weight, strata, clusters)
+    groups = {str(gname): _parse_group(str(gname), node, variables, {strata: "strata", clusters: "clusters"})
+              for gname, node in _mapping(doc.get("groups"), "groups", required=False).items()}
+    metrics = {str(mname): _parse_metric(str(mname), node, variables)
+               for mname, node in _mapping(doc["metrics"], "metrics").items()}
+    if not metrics:
+        raise _err("metrics", "no metrics are declared")
+    single_rule, share_clusters, panel = _design_options(doc)
+    book = Codebook(
+        title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
+        variables=variables, groups=groups, metrics=metrics, profile=_group_list(doc, "profile", groups),
+        targets=_parse_targets(doc.get("targets"), groups), rake=dict(_parse_rake(doc.get("rake"))), source=text,
+        sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
+        single_cluster_rule=single_rule, waves_share_clusters=share_clusters, panel=panel,
+        population=_parse_population(doc.get("population"), strata),
+        raked_to=_group_list(doc, "weights_raked_to", groups),
+        smallest_change=_parse_smallest_defaults(doc.get("smallest_change")),
+    )
+    _one_label_form(book)
+    return book
+
+
+def _load_yaml(text: str, name: str) -> dict:
+    """The codebook's YAML as a mapping with only known top-level keys; broken YAML named by
+    its line and column."""
     _guard(text, name)
     try:
         doc = yaml.load(text, Loader=_Loader)
@@ -376,22 +418,13 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
     if not isinstance(doc, dict):
         raise TrackerError(f"codebook: {name}: expected a mapping at the top level")
     _unknown_keys(doc)
+    return doc
 
-    for key in ("title", "id", "variables", "metrics"):
-        if key not in doc:
-            raise _err(key, "is required")
-    title = _text(doc["title"], "title")
-    id_col = _text(doc["id"], "id")
-    weight = _text(doc["weight"], "weight") if doc.get("weight") is not None else None
-    strata = _text(doc["strata"], "strata") if doc.get("strata") is not None else None
-    clusters = _text(doc["clusters"], "clusters") if doc.get("clusters") is not None else None
 
-    variables = {}
-    for vname, node in _mapping(doc["variables"], "variables").items():
-        variables[str(vname)] = _parse_variable(str(vname), node)
-    if not variables:
-        raise _err("variables", "no variables are declared")
-
+def _owned_columns(variables: dict, id_col: str, weight: str | None, strata: str | None,
+                   clusters: str | None) -> None:
+    """Each file column feeds one thing: the design columns differ, no variable reads the id
+    or the weight, a design column is a variable only under its own name, no column twice."""
     design = [c for c in (id_col, weight, strata, clusters) if c]
     if len(set(design)) != len(design):
         raise _err("id", "id, weight, strata and clusters must be different columns")
@@ -411,26 +444,17 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
                 raise _err(f"variables.{v.name}", f"column {col!r} is also used by variable {columns[col]}")
             columns[col] = v.name
 
-    groups = {}
-    for gname, node in _mapping(doc.get("groups"), "groups", required=False).items():
-        groups[str(gname)] = _parse_group(str(gname), node, variables, {strata: "strata", clusters: "clusters"})
 
-    metrics = {}
-    for mname, node in _mapping(doc["metrics"], "metrics").items():
-        metrics[str(mname)] = _parse_metric(str(mname), node, variables)
-    if not metrics:
-        raise _err("metrics", "no metrics are declared")
-
-    profile = _group_list(doc, "profile", groups)
-
+def _parse_targets(node: Any, groups: dict) -> dict[str, dict[str, float]]:
+    """The key targets: for groups in groups, every label's population share, summing to 1."""
     targets = {}
-    for gname, node in _mapping(doc.get("targets"), "targets", required=False).items():
+    for gname, shares_node in _mapping(node, "targets", required=False).items():
         gname = str(gname)
         path = f"targets.{gname}"
         if gname not in groups:
             raise _err(path, f"{gname!r} is not a group in groups")
         shares = {}
-        for label, share in _mapping(node, path).items():
+        for label, share in _mapping(shares_node, path).items():
             label = str(label)
             if label not in groups[gname].levels:
                 raise _err(f"{path}.{label}", f"{label!r} is not a label of group {gname}")
@@ -444,28 +468,19 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         if abs(total - 1) > 1e-6:
             raise _err(path, f"shares sum to {total:.4g}, not 1")
         targets[gname] = shares
+    return targets
 
-    rake = _parse_rake(doc.get("rake"))
-    population = _parse_population(doc.get("population"), strata)
-    raked_to = _group_list(doc, "weights_raked_to", groups)
-    smallest_default = _parse_smallest_defaults(doc.get("smallest_change"))
-    single_rule, share_clusters, panel = _design_options(doc)
-    book = Codebook(
-        title=title, id=id_col, weight=weight, strata=strata, clusters=clusters,
-        variables=variables, groups=groups, metrics=metrics, profile=profile,
-        targets=targets, rake=dict(rake), source=text,
-        sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
-        single_cluster_rule=single_rule, waves_share_clusters=share_clusters, panel=panel,
-        population=population, raked_to=raked_to, smallest_change=smallest_default,
-    )
+
+def _one_label_form(book: Codebook) -> None:
+    """Every wave label the codebook names is written in one form."""
     refs = wave_references(book)
-    if refs:
-        first = refs[0]
-        odd = next(((w, lab) for w, lab in refs if label_form(lab) != label_form(first[1])), None)
-        if odd is not None:
-            raise _err(odd[0], f"{shorten(odd[1])!r} is not written like {first[0]} ({shorten(first[1])!r}); "
-                               f"every wave label the codebook names must be of one form")
-    return book
+    if not refs:
+        return
+    first = refs[0]
+    odd = next(((w, lab) for w, lab in refs if label_form(lab) != label_form(first[1])), None)
+    if odd is not None:
+        raise _err(odd[0], f"{shorten(odd[1])!r} is not written like {first[0]} ({shorten(first[1])!r}); "
+                           f"every wave label the codebook names must be of one form")
 
 
 def _group_list(doc: dict, key: str, groups: dict) -> tuple[str, ...]:
@@ -603,7 +618,7 @@ def _parse_variable(name: str, node: Any) -> Variable:
     both = set(codes) & set(missing)
     if both:
         raise _err(f"{path}.missing", f"code {_fmt_code(min(both))} is also in codes")
-    options = {}
+    options: dict[str, str] = {}
     if vtype == "multi":
         options = {str(k): _text(v, f"{path}.options.{k}") for k, v in _mapping(node.get("options"), f"{path}.options").items()}
         if not options:
@@ -612,41 +627,48 @@ def _parse_variable(name: str, node: Any) -> Variable:
         raise _err(f"{path}.options", "only a multi variable has options")
     rng = None
     if "range" in node:
-        r = node["range"]
         if vtype != "number":
             raise _err(f"{path}.range", "only a number variable has a range")
-        if (not isinstance(r, list) or len(r) != 2 or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in r)):
-            raise _err(f"{path}.range", "expected [low, high]")
-        if not all(math.isfinite(x) for x in r):
-            raise _err(f"{path}.range", f"{r}: both ends must be finite numbers (not .nan or .inf)")
-        if r[0] > r[1]:
-            raise _err(f"{path}.range", f"low {r[0]} is above high {r[1]}")
-        rng = (float(r[0]), float(r[1]))
+        rng = _low_high(node["range"], f"{path}.range")
     aliases = node.get("aliases") or []
     if not isinstance(aliases, list):
         raise _err(f"{path}.aliases", "expected a list of column names")
-    recodes = []
-    for i, rc in enumerate(node.get("recode") or []):
-        rpath = f"{path}.recode[{i}]"
-        rc = _mapping(rc, rpath)
-        if vtype not in ("category", "scale"):
-            raise _err(rpath, "only category and scale variables can be recoded")
-        waves = rc.get("waves")
-        if not isinstance(waves, list) or not waves:
-            raise _err(f"{rpath}.waves", "expected a list of wave labels")
-        mapping = {}
-        for old, new in _mapping(rc.get("map"), f"{rpath}.map").items():
-            new_code = _as_code(new, f"{rpath}.map.{old}")
-            if new_code not in codes and new_code not in missing:
-                raise _err(f"{rpath}.map.{old}", f"code {_fmt_code(new_code)} is not a code of {name}")
-            mapping[_as_code(old, f"{rpath}.map.{old}")] = new_code
-        recodes.append(Recode(tuple(_wave_label(w, f"{rpath}.waves") for w in waves), mapping))
+    recodes = [_parse_recode(name, vtype, rc, f"{path}.recode[{i}]", codes, missing)
+               for i, rc in enumerate(node.get("recode") or [])]
     waves = {k: _wave_label(node[k], f"{path}.{k}") if node.get(k) is not None else None
              for k in ("break_before", "first_wave", "last_wave")}
     return Variable(
         name=name, label=label, type=vtype, codes=codes, missing=missing, options=options,
         range=rng, aliases=tuple(str(a) for a in aliases), recode=tuple(recodes), **waves,
     )
+
+
+def _low_high(r: Any, path: str) -> tuple[float, float]:
+    """[low, high]: two finite numbers, the first not above the second."""
+    if not isinstance(r, list) or len(r) != 2 or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in r):
+        raise _err(path, "expected [low, high]")
+    if not all(math.isfinite(x) for x in r):
+        raise _err(path, f"{r}: both ends must be finite numbers (not .nan or .inf)")
+    if r[0] > r[1]:
+        raise _err(path, f"low {r[0]} is above high {r[1]}")
+    return float(r[0]), float(r[1])
+
+
+def _parse_recode(name: str, vtype: str, node: Any, rpath: str, codes: dict, missing: dict) -> Recode:
+    """One recode of a category or scale variable: the waves it applies to and old -> new codes."""
+    rc = _mapping(node, rpath)
+    if vtype not in ("category", "scale"):
+        raise _err(rpath, "only category and scale variables can be recoded")
+    waves = rc.get("waves")
+    if not isinstance(waves, list) or not waves:
+        raise _err(f"{rpath}.waves", "expected a list of wave labels")
+    mapping = {}
+    for old, new in _mapping(rc.get("map"), f"{rpath}.map").items():
+        new_code = _as_code(new, f"{rpath}.map.{old}")
+        if new_code not in codes and new_code not in missing:
+            raise _err(f"{rpath}.map.{old}", f"code {_fmt_code(new_code)} is not a code of {name}")
+        mapping[_as_code(old, f"{rpath}.map.{old}")] = new_code
+    return Recode(tuple(_wave_label(w, f"{rpath}.waves") for w in waves), mapping)
 
 
 def _variable_of(node: dict, path: str, variables: dict[str, Variable], design: dict | None = None) -> Variable:
@@ -670,39 +692,12 @@ def _parse_group(name: str, node: Any, variables: dict[str, Variable], design: d
     if "bands" in node:
         if var.type != "number":
             raise _err(f"{path}.bands", f"{vname} is not a number variable")
-        bands: dict[str, tuple[float, float]] = {}
-        for label, rng in _mapping(node["bands"], f"{path}.bands").items():
-            bpath = f"{path}.bands.{label}"
-            if (not isinstance(rng, list) or len(rng) != 2
-                    or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in rng)):
-                raise _err(bpath, "expected [low, high]")
-            if not all(math.isfinite(x) for x in rng):
-                raise _err(bpath, f"{rng}: both ends must be finite numbers (not .nan or .inf)")
-            if rng[0] > rng[1]:
-                raise _err(bpath, f"low {rng[0]} is above high {rng[1]}")
-            for other, (lo, hi) in bands.items():
-                if rng[0] <= hi and lo <= rng[1]:
-                    raise _err(bpath, f"band [{rng[0]}, {rng[1]}] overlaps band {other} [{lo:g}, {hi:g}]")
-            bands[str(label)] = (float(rng[0]), float(rng[1]))
+        bands = _parse_bands(node["bands"], f"{path}.bands")
         return Group(name, vname, {k: () for k in bands}, bands)
     if var.type not in ("category", "scale"):
         raise _err(path, f"{vname} is a {var.type} variable: give bands (number) or use a coded variable")
     if "merge" in node:
-        levels: dict[str, tuple[float, ...]] = {}
-        seen: dict[float, str] = {}
-        for label, codes in _mapping(node["merge"], f"{path}.merge").items():
-            mpath = f"{path}.merge.{label}"
-            if not isinstance(codes, list) or not codes:
-                raise _err(mpath, "expected a list of codes")
-            cl = tuple(_as_code(c, mpath) for c in codes)
-            for c in cl:
-                if c not in var.codes:
-                    raise _err(mpath, f"code {_fmt_code(c)} is not a code of {vname}")
-                if c in seen:
-                    raise _err(mpath, f"code {_fmt_code(c)} is already in {seen[c]}")
-                seen[c] = str(label)
-            levels[str(label)] = cl
-        return Group(name, vname, levels)
+        return Group(name, vname, _parse_merge(node["merge"], f"{path}.merge", var))
     by_label: dict[str, float] = {}
     for code, label in var.codes.items():
         if label in by_label:  # one of the two would silently leave the split
@@ -711,6 +706,38 @@ def _parse_group(name: str, node: Any, variables: dict[str, Variable], design: d
                              f"with merge: {{{shorten(label, 40)}: [{_fmt_code(by_label[label])}, {_fmt_code(code)}]}})")
         by_label[label] = code
     return Group(name, vname, {label: (code,) for code, label in var.codes.items()})
+
+
+def _parse_bands(node: Any, path: str) -> dict[str, tuple[float, float]]:
+    """Bands of a number variable: label -> [low, high], no two overlapping."""
+    bands: dict[str, tuple[float, float]] = {}
+    for label, rng in _mapping(node, path).items():
+        bpath = f"{path}.{label}"
+        low, high = _low_high(rng, bpath)
+        for other, (lo, hi) in bands.items():
+            if low <= hi and lo <= high:
+                raise _err(bpath, f"band [{rng[0]}, {rng[1]}] overlaps band {other} [{lo:g}, {hi:g}]")
+        bands[str(label)] = (low, high)
+    return bands
+
+
+def _parse_merge(node: Any, path: str, var: Variable) -> dict[str, tuple[float, ...]]:
+    """Merged codes: label -> the variable's codes it holds, each code in one label."""
+    levels: dict[str, tuple[float, ...]] = {}
+    seen: dict[float, str] = {}
+    for label, codes in _mapping(node, path).items():
+        mpath = f"{path}.{label}"
+        if not isinstance(codes, list) or not codes:
+            raise _err(mpath, "expected a list of codes")
+        cl = tuple(_as_code(c, mpath) for c in codes)
+        for c in cl:
+            if c not in var.codes:
+                raise _err(mpath, f"code {_fmt_code(c)} is not a code of {var.name}")
+            if c in seen:
+                raise _err(mpath, f"code {_fmt_code(c)} is already in {seen[c]}")
+            seen[c] = str(label)
+        levels[str(label)] = cl
+    return levels
 
 
 def _codes_of(var: Variable, node: Any, path: str) -> tuple:
