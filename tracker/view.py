@@ -158,86 +158,103 @@ def human_table(frame: pd.DataFrame, view: str, width: int | None = None, wide: 
     """The table as text for a person, and the footer lines it needs (what was left out).
 
     Columns are dropped from the least needed (highest ``keep``) until the table fits
-    ``width`` (default: the terminal's, or DEFAULT_WIDTH), unless ``wide``."""
+    ``width`` (default: the terminal's, or DEFAULT_WIDTH), unless ``wide``; a flagged row
+    keeps its mark at any width."""
     if frame.empty:
         return "Nothing to show: no row matches what was asked.\n", []
     width = width or terminal_width()
-    kinds = frame["kind"] if "kind" in frame else pd.Series(kind_of(None).name, index=frame.index)
-    cols = [c for c in VIEWS[view] if all(s in frame for s in ((c.source,) if isinstance(c.source, str) else c.source))]
-    if "group" in frame and frame["group"].nunique() <= 1:
-        cols = [c for c in cols if c.source != "group"]
-    kinds = kinds.astype(str).to_numpy()
-    cells = {}
-    for c in cols:
-        if isinstance(c.source, tuple):
-            cells[c.title] = _column(c.how, frame[c.source[0]].to_numpy(), kinds, frame[c.source[1]].to_numpy())
-        else:
-            cells[c.title] = _column(c.how, frame[c.source].to_numpy(object), kinds)
-    marked = _flagged(frame)
-    if marked.any():  # a mark that no width drops, beside what it qualifies, with its legend in the footer
-        after = MARK_AFTER.get(view)
-        at = next((k + 1 for k, c in enumerate(cols) if c.title == after),
-                  next((k for k, c in enumerate(cols) if c.how != "text"), len(cols)))
-        cols.insert(at, Col("__mark__", "!", keep=0))
-        cells["!"] = ["!" if m else "" for m in marked]
+    cols, cells = _view_cells(frame, view)
     right = {c.title for c in cols if c.how not in ("text",)}
     widths = {t: max(len(t), *(len(x) for x in v)) for t, v in cells.items()}
-    shown = [c.title for c in cols]
-    dropped: list[str] = []
-
-    def total(ts):
-        return sum(widths[t] for t in ts) + 2 * (len(ts) - 1)
-
-    names_for_labels = False
-
-    def cut(t, to):
-        nonlocal names_for_labels
-        if t == "metric" and "metric" in frame and not names_for_labels:
-            # a cut label can make two metrics look alike; their short names never do
-            names = [str(x) for x in frame["metric"]]
-            if max(map(len, names)) < widths[t]:
-                cells[t], widths[t] = names, max(len(t), *map(len, names))
-                names_for_labels = True
-                return
-        to = max(len(t), to)
-        if to < widths[t]:
-            cells[t] = [x if len(x) <= to else x[: to - 1] + "…" for x in cells[t]]
-            widths[t] = to
-
+    fit = _Fit(frame, cols, cells, widths, right)
     if not wide:
-        # narrow in steps: drop the least needed columns, then shorten long labels to 24
-        # characters, then drop what is left to drop, then shorten labels further
-        order = sorted((c for c in cols if c.keep > 0), key=lambda c: -c.keep)
-        texts = [t for t in shown if t not in right]
-        while total(shown) > width:
-            if order and order[0].keep >= 2:
-                c = order.pop(0)
-            elif any(widths[t] > 24 for t in texts if t in shown):
-                t = max((t for t in texts if t in shown), key=lambda t: widths[t])
-                cut(t, max(24, widths[t] - (total(shown) - width)))
-                continue
-            elif order:
-                c = order.pop(0)
-            else:
-                t = max((t for t in texts if t in shown), key=lambda t: widths[t])
-                if widths[t] <= max(8, len(t)):
-                    break
-                cut(t, max(8, widths[t] - (total(shown) - width)))
-                continue
-            shown.remove(c.title)
-            dropped.append(c.title)
+        fit.narrow(width)
+    shown = fit.shown
     lines = ["  ".join(t.rjust(widths[t]) if t in right else t.ljust(widths[t]) for t in shown).rstrip()]
     for i in range(len(frame)):
         lines.append("  ".join(cells[t][i].rjust(widths[t]) if t in right else cells[t][i].ljust(widths[t])
                                for t in shown).rstrip())
     notes = []
+    marked = _flagged(frame)
     if marked.any():
         where = "the flags column" if "flags" in shown else "the flags column (--wide, or --format csv)"
         notes.append(f"! marks {int(marked.sum()):,} flagged {'row' if marked.sum() == 1 else 'rows'}: read them "
                      f"with care; {where} says why.")
-    if names_for_labels:
+    if fit.names_for_labels:
         notes.append("Metrics are shown by their short names to fit; --wide shows their labels.")
-    if dropped:
-        notes.append(f"Left out to fit {width} characters: {', '.join(dropped)}; --wide shows them, and --format csv "
-                     f"or json gives every column at full precision.")
+    if fit.dropped:
+        notes.append(f"Left out to fit {width} characters: {', '.join(fit.dropped)}; --wide shows them, and --format "
+                     f"csv or json gives every column at full precision.")
     return "\n".join(lines) + "\n", notes
+
+
+def _view_cells(frame: pd.DataFrame, view: str) -> tuple[list[Col], dict[str, list[str]]]:
+    """The view's columns present in ``frame`` (the split left out when there is one) and
+    their cells as text, with the flag mark beside what it qualifies."""
+    kinds = frame["kind"] if "kind" in frame else pd.Series(kind_of(None).name, index=frame.index)
+    cols = [c for c in VIEWS[view] if all(s in frame for s in ((c.source,) if isinstance(c.source, str) else c.source))]
+    if "group" in frame and frame["group"].nunique() <= 1:
+        cols = [c for c in cols if c.source != "group"]
+    kind_codes = kinds.astype(str).to_numpy()
+    cells = {}
+    for c in cols:
+        if isinstance(c.source, tuple):
+            cells[c.title] = _column(c.how, frame[c.source[0]].to_numpy(), kind_codes, frame[c.source[1]].to_numpy())
+        else:
+            cells[c.title] = _column(c.how, frame[c.source].to_numpy(object), kind_codes)
+    marked = _flagged(frame)
+    if marked.any():  # a mark that no width drops, beside what it qualifies
+        after = MARK_AFTER.get(view)
+        at = next((k + 1 for k, c in enumerate(cols) if c.title == after),
+                  next((k for k, c in enumerate(cols) if c.how != "text"), len(cols)))
+        cols.insert(at, Col("__mark__", "!", keep=0))
+        cells["!"] = ["!" if m else "" for m in marked]
+    return cols, cells
+
+
+class _Fit:
+    """Narrowing a table to a width, in steps: drop the least needed columns, then shorten
+    long labels to 24 characters, then drop what is left to drop, then shorten further."""
+
+    def __init__(self, frame: pd.DataFrame, cols: list[Col], cells: dict[str, list[str]], widths: dict[str, int],
+                 right: set[str]):
+        self.frame, self.cols, self.cells, self.widths, self.right = frame, cols, cells, widths, right
+        self.shown = [c.title for c in cols]
+        self.dropped: list[str] = []
+        self.names_for_labels = False
+
+    def total(self) -> int:
+        return sum(self.widths[t] for t in self.shown) + 2 * (len(self.shown) - 1)
+
+    def cut(self, t: str, to: int) -> None:
+        if t == "metric" and "metric" in self.frame and not self.names_for_labels:
+            # a cut label can make two metrics look alike; their short names never do
+            names = [str(x) for x in self.frame["metric"]]
+            if max(map(len, names)) < self.widths[t]:
+                self.cells[t], self.widths[t] = names, max(len(t), *map(len, names))
+                self.names_for_labels = True
+                return
+        to = max(len(t), to)
+        if to < self.widths[t]:
+            self.cells[t] = [x if len(x) <= to else x[: to - 1] + "…" for x in self.cells[t]]
+            self.widths[t] = to
+
+    def narrow(self, width: int) -> None:
+        order = sorted((c for c in self.cols if c.keep > 0), key=lambda c: -c.keep)
+        texts = [t for t in self.shown if t not in self.right]
+        while self.total() > width:
+            longest = max((t for t in texts if t in self.shown), key=lambda t: self.widths[t])
+            if order and order[0].keep >= 2:
+                c = order.pop(0)
+            elif any(self.widths[t] > 24 for t in texts if t in self.shown):
+                self.cut(longest, max(24, self.widths[longest] - (self.total() - width)))
+                continue
+            elif order:
+                c = order.pop(0)
+            else:
+                if self.widths[longest] <= max(8, len(longest)):
+                    break
+                self.cut(longest, max(8, self.widths[longest] - (self.total() - width)))
+                continue
+            self.shown.remove(c.title)
+            self.dropped.append(c.title)
