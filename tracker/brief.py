@@ -183,56 +183,17 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     result = analysis.changes
     wave = result.wave
     t = result.table
-    tested_sig = t[t["significant"]]
-    total_sig = tested_sig[tested_sig["group"] == "total"]
-    head = total_sig.reindex(total_sig["change"].abs().sort_values(ascending=False).index)
-    mixes = analysis.mix
-    by_mix = {m for m, (_, explained) in mixes.items() if explained}
-    headline = tuple(Item(change_sentence(r) + (" " + mixes[r.metric][0] if r.metric in mixes else ""),
-                          "fall" if r.change < 0 else "rise", r.metric, r.subgroup)
-                     for r in head.itertuples() if r.metric not in by_mix)
-    mix_moves = tuple(Item(change_sentence(r) + " " + mixes[r.metric][0], "note", r.metric, r.subgroup)
-                      for r in head.itertuples() if r.metric in by_mix)
-    if not headline and mix_moves:
-        headline = (Item("No measure moved in total beyond what the sample's changed make-up explains (next "
-                         "section).", "note"),)
-    moved_totals = set(total_sig["metric"])
-    sub = tested_sig[(tested_sig["group"] != "total") & ~tested_sig["metric"].isin(moved_totals)]
-    sub = sub.reindex(sub["change"].abs().sort_values(ascending=False).index)
-    subgroup_moves = tuple(Item(change_sentence(r) + " The total did not move significantly.",
-                                "fall" if r.change < 0 else "rise", r.metric, r.subgroup) for r in sub.itertuples())
-    totals = t[t["group"] == "total"]
+    moves = _move_sections(analysis)
     matters = study.matters()
+    totals = t[t["group"] == "total"]
     held = tuple(Item(held_sentence(r, matters[r.metric]), "flat", r.metric)
                  for r in totals[totals["verdict"] == "held"].itertuples())
     family = result.family_size or result.n_tests
     quiet_rows = totals[totals["verdict"] == "not significant"]
     quiet_rows = quiet_rows.reindex(quiet_rows["change"].abs().sort_values(ascending=False).index)
     not_significant = tuple(Item(not_significant_sentence(r), "note", r.metric) for r in quiet_rows.itertuples())
-
-    trends = analysis.trends
-    still_words = ["no pattern found", "flat", "too few waves"]
-    moving = trends[~trends["pattern"].isin(still_words)]
-    total_moving = moving[moving["group"] == "total"]
-    sub_moving = moving[(moving["group"] != "total") & ~moving["metric"].isin(set(total_moving["metric"]))]
-    trend_items = [Item(trend_sentence(r, level), _trend_mark(r), r.metric, r.subgroup)
-                   for r in pd.concat([total_moving, sub_moving]).itertuples()]
-    headline_metrics = {i.metric for i in headline}
-    quiet = trends[(trends["group"] == "total") & trends["pattern"].isin(["no pattern found", "flat"])]
-    for r in quiet[quiet["metric"].isin(headline_metrics)].itertuples():
-        trend_items.append(Item(f"{r.metric_label}: the move in {wave} is a single wave so far; before it the series "
-                                f"shows no trend or shift. A step needs later waves to confirm it, so brief it as the "
-                                f"latest wave's change, not yet as a new level.", "note", r.metric))
-    quiet = quiet[~quiet["metric"].isin(headline_metrics)]
-    for r in quiet[quiet["pattern"] == "flat"].itertuples():
-        trend_items.append(Item(trend_sentence(r, level), "flat", r.metric))
-    none_found = quiet[quiet["pattern"] == "no pattern found"]
-    if len(none_found):
-        trend_items.append(Item("No trend, step or blip found over the series (which is not to say nothing moved): "
-                                + "; ".join(none_found["metric_label"]) + ".", "note"))
-    short = trends[(trends["group"] == "total") & (trends["pattern"] == "too few waves")]
-    for r in short.itertuples():
-        trend_items.append(Item(f"{r.metric_label}: {r.note}.", "note", r.metric))
+    headline_metrics = {i.metric for i in moves["headline"]}
+    trend_items, moving = _pattern_items(analysis, headline_metrics, level)
 
     sample = _sample_notes(study, analysis)
     n_sig = result.n_significant
@@ -245,56 +206,118 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         "significant exactly when that interval leaves out zero."),
     )
     method = _method_lines(adjust, level, adj_level, family, n_sig, bool(matters)) + _design_lines(result)
-
+    sub = moves["sub_rows"]
     tables = {
-        "Headline": head[_TABLE_COLS].reset_index(drop=True),
+        "Headline": moves["head_rows"][_TABLE_COLS].reset_index(drop=True),
         "Subgroup moves": sub[_TABLE_COLS].reset_index(drop=True),
         "All changes": result.shown(True)[_TABLE_COLS].reset_index(drop=True),
-        "Trends": trends[[c for c in _TREND_COLS]].reset_index(drop=True),
+        "Trends": analysis.trends[[c for c in _TREND_COLS]].reset_index(drop=True),
         "Estimates": study.estimates(waves=[wave, *result.compared_with], level=level),
     }
-    chart_list: list[tuple[str, dict]] = []
-    compact: list[tuple[str, dict]] = []
-    thin = analysis.thin
-    thin_groups = {g for g, _ in thin}
+    thin_groups = {g for g, _ in analysis.thin}
     smoothed_drawn = charts and any(g in thin_groups for _, g in shown_sub_pairs(sub))  # the same words in every form
-    if thin:
+    if analysis.thin:
         where = (" In this brief's subgroup charts they also get a smoothed line, which damps that noise by "
                  "borrowing strength from the waves around each one; the figures reported stay the direct "
                  "estimates." if smoothed_drawn else "")
         sample.append(Item(
             f"Thin subgroups (effective base under {SMOOTH_BELOW} in {wave}): "
-            f"{', '.join(f'{lev} ({_group_label(study, g)})' for g, lev in thin[:8])}"
-            f"{' and more' if len(thin) > 8 else ''}; their estimates swing with sampling noise alone.{where}", "note"))
+            f"{', '.join(f'{lev} ({_group_label(study, g)})' for g, lev in analysis.thin[:8])}"
+            f"{' and more' if len(analysis.thin) > 8 else ''}; their estimates swing with sampling noise alone.{where}",
+            "note"))
+    chart_list: list[tuple[str, dict]] = []
+    compact: list[tuple[str, dict]] = []
     if charts:
-        from .charts import change_overview, chart_spec, trend_chart
-
-        chart_list.append(("Every tested change in total", chart_spec(change_overview(result, totals_only=True))))
-        shown_sub = shown_sub_pairs(sub)
-        drawn = [m for m in study.codebook.metrics if m in set(t["metric"])]
-        # a metric that neither moved this wave nor follows a pattern gets a small chart in a grid
-        moved = headline_metrics | {i.metric for i in subgroup_moves} | {i.metric for i in mix_moves} \
+        moved = headline_metrics | {i.metric for i in moves["subgroup_moves"]} | {i.metric for i in moves["mix_moves"]} \
             | set(moving["metric"])
-        for k, metric in enumerate(drawn):
-            step("drawing charts", k, len(drawn), metric)
-            label = study.codebook.metrics[metric].label
-            if metric not in moved:
-                compact.append((f"{label}: wave by wave", chart_spec(trend_chart(
-                    study, metric, adjust=adjust, level=level, until=wave, compact=True))))
-                continue
-            chart_list.append((f"{label}: wave by wave", chart_spec(trend_chart(study, metric, adjust=adjust,
-                                                                                level=level, until=wave))))
-            for m, g in sorted(shown_sub):
-                if m == metric:
-                    chart_list.append((f"{label} by {_group_label(study, g)}", chart_spec(trend_chart(
-                        study, metric, by=g, adjust=adjust, level=level, until=wave, smooth=g in thin_groups))))
+        chart_list, compact = _brief_charts(study, analysis, moved, sub, thin_groups)
     return Brief(
-        title=study.codebook.title, wave=wave, against=result.against, headline=headline,
-        subgroup_moves=subgroup_moves, held=held if matters else (), trends=tuple(trend_items),
+        title=study.codebook.title, wave=wave, against=result.against, headline=moves["headline"],
+        subgroup_moves=moves["subgroup_moves"], held=held if matters else (), trends=tuple(trend_items),
         sample_notes=tuple(sample), method=method, tables=tables, charts=tuple(chart_list),
-        compact_charts=tuple(compact), mix_moves=mix_moves, not_significant=not_significant,
+        compact_charts=tuple(compact), mix_moves=moves["mix_moves"], not_significant=not_significant,
         surprises=_surprise_items(analysis), data=analysis.to_dict(), intro=intro,
     )
+
+
+def _move_sections(analysis) -> dict:
+    """The significant moves: the headline (totals, largest first), those that came with the
+    sample's make-up, and subgroups that moved while their total did not."""
+    result, mixes = analysis.changes, analysis.mix
+    t = result.table
+    tested_sig = t[t["significant"]]
+    total_sig = tested_sig[tested_sig["group"] == "total"]
+    head = total_sig.reindex(total_sig["change"].abs().sort_values(ascending=False).index)
+    by_mix = {m for m, (_, explained) in mixes.items() if explained}
+    headline = tuple(Item(change_sentence(r) + (" " + mixes[r.metric][0] if r.metric in mixes else ""),
+                          "fall" if r.change < 0 else "rise", r.metric, r.subgroup)
+                     for r in head.itertuples() if r.metric not in by_mix)
+    mix_moves = tuple(Item(change_sentence(r) + " " + mixes[r.metric][0], "note", r.metric, r.subgroup)
+                      for r in head.itertuples() if r.metric in by_mix)
+    if not headline and mix_moves:
+        headline = (Item("No measure moved in total beyond what the sample's changed make-up explains (next "
+                         "section).", "note"),)
+    sub = tested_sig[(tested_sig["group"] != "total") & ~tested_sig["metric"].isin(set(total_sig["metric"]))]
+    sub = sub.reindex(sub["change"].abs().sort_values(ascending=False).index)
+    subgroup_moves = tuple(Item(change_sentence(r) + " The total did not move significantly.",
+                                "fall" if r.change < 0 else "rise", r.metric, r.subgroup) for r in sub.itertuples())
+    return {"headline": headline, "mix_moves": mix_moves, "subgroup_moves": subgroup_moves, "head_rows": head,
+            "sub_rows": sub}
+
+
+def _pattern_items(analysis, headline_metrics: set[str], level: float) -> tuple[list[Item], pd.DataFrame]:
+    """The series section: what moved over the series (totals, then subgroups whose total
+    did not), a single-wave move not yet a level, flat series, and those with no pattern."""
+    trends, wave = analysis.trends, analysis.wave
+    moving = trends[~trends["pattern"].isin(["no pattern found", "flat", "too few waves"])]
+    total_moving = moving[moving["group"] == "total"]
+    sub_moving = moving[(moving["group"] != "total") & ~moving["metric"].isin(set(total_moving["metric"]))]
+    items = [Item(trend_sentence(r, level), _trend_mark(r), r.metric, r.subgroup)
+             for r in pd.concat([total_moving, sub_moving]).itertuples()]
+    quiet = trends[(trends["group"] == "total") & trends["pattern"].isin(["no pattern found", "flat"])]
+    for r in quiet[quiet["metric"].isin(headline_metrics)].itertuples():
+        items.append(Item(f"{r.metric_label}: the move in {wave} is a single wave so far; before it the series "
+                          f"shows no trend or shift. A step needs later waves to confirm it, so brief it as the "
+                          f"latest wave's change, not yet as a new level.", "note", r.metric))
+    quiet = quiet[~quiet["metric"].isin(headline_metrics)]
+    for r in quiet[quiet["pattern"] == "flat"].itertuples():
+        items.append(Item(trend_sentence(r, level), "flat", r.metric))
+    none_found = quiet[quiet["pattern"] == "no pattern found"]
+    if len(none_found):
+        items.append(Item("No trend, step or blip found over the series (which is not to say nothing moved): "
+                          + "; ".join(none_found["metric_label"]) + ".", "note"))
+    short = trends[(trends["group"] == "total") & (trends["pattern"] == "too few waves")]
+    for r in short.itertuples():
+        items.append(Item(f"{r.metric_label}: {r.note}.", "note", r.metric))
+    return items, moving
+
+
+def _brief_charts(study, analysis, moved: set[str], sub: pd.DataFrame, thin_groups: set[str]):
+    """(full-width charts, small charts): the change overview, then each metric wave by wave,
+    full width when it moved (with its subgroups that moved), small in a grid otherwise."""
+    from .charts import change_overview, chart_spec, trend_chart
+    from .progress import step
+
+    result, adjust, level, wave = analysis.changes, analysis.adjust, analysis.level, analysis.wave
+    t = result.table
+    chart_list = [("Every tested change in total", chart_spec(change_overview(result, totals_only=True)))]
+    compact: list[tuple[str, dict]] = []
+    shown_sub = shown_sub_pairs(sub)
+    drawn = [m for m in study.codebook.metrics if m in set(t["metric"])]
+    for k, metric in enumerate(drawn):
+        step("drawing charts", k, len(drawn), metric)
+        label = study.codebook.metrics[metric].label
+        if metric not in moved:  # neither moved this wave nor follows a pattern: a small chart in a grid
+            compact.append((f"{label}: wave by wave", chart_spec(trend_chart(
+                study, metric, adjust=adjust, level=level, until=wave, compact=True))))
+            continue
+        chart_list.append((f"{label}: wave by wave", chart_spec(trend_chart(study, metric, adjust=adjust,
+                                                                            level=level, until=wave))))
+        for m, g in sorted(shown_sub):
+            if m == metric:
+                chart_list.append((f"{label} by {_group_label(study, g)}", chart_spec(trend_chart(
+                    study, metric, by=g, adjust=adjust, level=level, until=wave, smooth=g in thin_groups))))
+    return chart_list, compact
 
 
 def _group_label(study, group: str) -> str:
