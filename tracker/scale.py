@@ -152,12 +152,37 @@ def duckdb_cells(book: Codebook, path: str | Path, keep_psu: bool = False, threa
     gnames, lnames, conds = _levels_sql(book, columns, groups)
     strata = book.strata if book.strata and book.strata in columns else None
     clusters = book.clusters if book.clusters and book.clusters in columns else None
+    sql, exclusive, starts = _cells_sql(book, columns, metrics, groups, gnames, conds, strata, clusters)
+    con = duckdb.connect(config={"threads": threads} if threads else {})
+    try:
+        got = con.execute(sql, [str(path)]).fetchnumpy()
+    finally:
+        con.close()
+    got = {k: (v.filled(np.nan) if np.ma.isMaskedArray(v) and v.dtype.kind == "f" else v) for k, v in got.items()}
+    rows = len(got["n_rows"])
+    if exclusive:  # every row counts in the total and in its level of each split
+        pairs = [(np.arange(rows), np.zeros(rows, dtype=np.int64))]
+        for k, g in enumerate(groups):
+            pos = np.asarray(np.ma.getdata(got[f"k{k}"]), dtype=np.int64)
+            inside = np.flatnonzero(pos > 0)
+            pairs.append((inside, starts.get(g, 0) + pos[inside]))  # level j sits at j + 1 (the total first)
+    else:
+        pairs = _set_pairs(got, rows, len(conds))
+    return _finish(book, metrics, gnames, lnames, got, pairs, len(conds), strata, clusters, keep_psu)
+
+
+def _cells_sql(book: Codebook, columns: set[str], metrics: list, groups: list[str], gnames: list[str],
+               conds: list[str], strata: str | None, clusters: str | None) -> tuple[str, bool, dict[str, int]]:
+    """The one query of a wave's cell sums: (SQL, whether each split is one column of level
+    positions, the first level of each split). Each metric's base, weights, weighted values
+    and the squares the variance needs, per cluster (or stratum) and combination of the
+    splits' levels, or, when a split's levels overlap, per grouping set of each level."""
     w = _num(book.weight) if book.weight and book.weight in columns else "1.0"
     inner = [f"{'CAST(' + _q(strata) + ' AS VARCHAR)' if strata else chr(39) * 2} AS s_",
              f"{'CAST(' + _q(clusters) + ' AS VARCHAR)' if clusters else 'NULL'} AS c_", f"{w} AS w_"]
     exclusive = _exclusive(book, groups)
+    starts: dict[str, int] = {}
     if exclusive:  # one column per split: the position of the respondent's level in it (0: none)
-        starts: dict[str, int] = {}
         for j, g in enumerate(gnames):
             starts.setdefault(g, j)
         for k, g in enumerate(groups):
@@ -179,28 +204,11 @@ def duckdb_cells(book: Codebook, path: str | Path, keep_psu: bool = False, threa
     source = f"(SELECT {', '.join(inner)} FROM read_parquet(?))"
     if exclusive:
         keys = ", ".join([unit] + [f"k{k}" for k in range(len(groups))])
-        sql = f"SELECT {keys}, {', '.join(sums)} FROM {source} GROUP BY {keys}"
-    else:
-        sets = [f"({unit})"] + [f"({unit}, l{j})" for j in range(len(conds))]
-        levels_out = ", ".join(f"l{j}" for j in range(len(conds)))
-        sql = (f"SELECT {unit}{', ' + levels_out if conds else ''}, {', '.join(sums)} FROM {source} "
-               f"GROUP BY GROUPING SETS ({', '.join(sets)})")
-    con = duckdb.connect(config={"threads": threads} if threads else {})
-    try:
-        got = con.execute(sql, [str(path)]).fetchnumpy()
-    finally:
-        con.close()
-    got = {k: (v.filled(np.nan) if np.ma.isMaskedArray(v) and v.dtype.kind == "f" else v) for k, v in got.items()}
-    rows = len(got["n_rows"])
-    if exclusive:  # every row counts in the total and in its level of each split
-        pairs = [(np.arange(rows), np.zeros(rows, dtype=np.int64))]
-        for k, g in enumerate(groups):
-            pos = np.asarray(np.ma.getdata(got[f"k{k}"]), dtype=np.int64)
-            inside = np.flatnonzero(pos > 0)
-            pairs.append((inside, starts.get(g, 0) + pos[inside]))  # level j sits at j + 1 (the total first)
-    else:
-        pairs = _set_pairs(got, rows, len(conds))
-    return _finish(book, metrics, gnames, lnames, got, pairs, len(conds), strata, clusters, keep_psu)
+        return f"SELECT {keys}, {', '.join(sums)} FROM {source} GROUP BY {keys}", exclusive, starts
+    sets = [f"({unit})"] + [f"({unit}, l{j})" for j in range(len(conds))]
+    levels_out = ", ".join(f"l{j}" for j in range(len(conds)))
+    return (f"SELECT {unit}{', ' + levels_out if conds else ''}, {', '.join(sums)} FROM {source} "
+            f"GROUP BY GROUPING SETS ({', '.join(sets)})"), exclusive, starts
 
 
 def _set_pairs(got, rows: int, n_levels: int) -> list[tuple[np.ndarray, np.ndarray]]:
