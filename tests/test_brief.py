@@ -19,7 +19,8 @@ from openpyxl import load_workbook
 
 from tracker import Study
 from tracker.brief import build_brief, render_markdown, write_brief
-from tracker.charts import OKABE_ITO, change_overview, chart_spec, save_chart, trend_chart
+from tracker.chartdata import trend_chart
+from tracker.charts import OKABE_ITO, change_overview, chart_spec, save_chart
 from tracker.cli import main
 
 CHROME_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
@@ -174,12 +175,12 @@ def test_charts_use_the_palette_and_tell_rise_from_fall_by_shape(demo_study, tmp
     assert (STATUS_COLOUR[fall], STATUS_SHAPE[fall]) == (OKABE_ITO["vermillion"], "triangle-down")
     for red_green in ("#ff0000", "#00ff00", "red", "green"):
         assert f'"{red_green}"' not in spec.lower()
-    frame = __import__("tracker.charts", fromlist=["trend_frame"]).trend_frame(demo_study, "on_time_good")
+    frame = __import__("tracker.chartdata", fromlist=["trend_frame"]).trend_frame(demo_study, "on_time_good")
     row = frame.set_index("wave").loc["2025-Q2"]
     assert row["verdict"] == "fall" and row["base"] > 0
     assert frame.set_index("wave").loc["2023-Q1", "verdict"] == "first wave"
     assert not np.isnan(row["fitted"])  # the shift levels are drawn
-    safe = __import__("tracker.charts", fromlist=["trend_frame"]).trend_frame(demo_study, "safe")
+    safe = __import__("tracker.chartdata", fromlist=["trend_frame"]).trend_frame(demo_study, "safe")
     assert set(safe["segment"]) == {"before wording change", "after wording change"}
     for suffix in ("svg", "png", "json", "html"):
         out = save_chart(change_overview(demo_study.changes(wave="2025-Q2")), tmp_path / f"o.{suffix}")

@@ -10,8 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from tracker import Study
-from tracker import store
+from tracker import Study, store
 from tracker.cache import read_cells
 
 

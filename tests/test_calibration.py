@@ -10,8 +10,16 @@ from __future__ import annotations
 
 import pytest
 
-from tracker.calibration import (DESIGNS, FEW_DESIGN, FORECAST_DESIGN, LONE_DESIGN, RAKED_DESIGN, RARE_DESIGN,
-                                 TREND_DESIGN, run)
+from tracker.calibration import (
+    DESIGNS,
+    FEW_DESIGN,
+    FORECAST_DESIGN,
+    LONE_DESIGN,
+    RAKED_DESIGN,
+    RARE_DESIGN,
+    TREND_DESIGN,
+    run,
+)
 
 
 @pytest.fixture(scope="module")

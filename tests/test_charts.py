@@ -12,7 +12,8 @@ from importlib.resources import files
 
 import pytest
 
-from tracker.charts import SCHEMA, change_overview, chart_spec, trend_chart, trend_charts
+from tracker.chartdata import trend_chart, trend_charts
+from tracker.charts import SCHEMA, change_overview, chart_spec
 
 
 @lru_cache(maxsize=1)

@@ -3,10 +3,9 @@
 from __future__ import annotations
 
 import subprocess
-
-import pytest
 import sys
 
+import pytest
 from click.testing import CliRunner
 
 from tracker.cli import main
@@ -24,7 +23,9 @@ def test_the_names_the_command_line_offers_are_the_ones_the_methods_use():
     from tracker.formatting import FORMATS
     from tracker.methods.tests import ADJUST_METHODS
     from tracker.methods.variance import SINGLE_CLUSTER_RULES
-    from tracker.names import ADJUST_METHODS as A, FORMATS as F, SINGLE_CLUSTER_RULES as R
+    from tracker.names import ADJUST_METHODS as A
+    from tracker.names import FORMATS as F
+    from tracker.names import SINGLE_CLUSTER_RULES as R
 
     assert ADJUST_METHODS is A and FORMATS is F and SINGLE_CLUSTER_RULES is R
 
@@ -248,7 +249,8 @@ def test_progress_is_drawn_on_a_terminal_only_and_never_with_quiet():
 def test_trend_charts_name_waves_by_label_and_the_legend_only_what_is_drawn(demo_study):
     import json
 
-    from tracker.charts import FIT_COLOUR, OKABE_ITO, change_overview, chart_spec, trend_charts
+    from tracker.chartdata import trend_charts
+    from tracker.charts import FIT_COLOUR, OKABE_ITO, change_overview, chart_spec
 
     spec = chart_spec(trend_charts(demo_study, "on_time_good", by=["area"]))
     text = json.dumps(spec)

@@ -406,7 +406,7 @@ def test_the_complete_example_of_docs_codebook_makes_a_study(tmp_path):
     from tracker.study import Study
 
     doc = (Path(__file__).resolve().parent.parent / "docs" / "codebook.md").read_text()
-    block = re.search(r"## A complete example.*?```yaml\n(.*?)```", doc, re.S).group(1)
+    block = re.search(r"## A complete example.*?```yaml\n(.*?)```", doc, re.DOTALL).group(1)
     (tmp_path / "codebook.yaml").write_text(block)
     study = Study.create(tmp_path / "s", tmp_path / "codebook.yaml")
     book = study.codebook

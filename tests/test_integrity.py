@@ -165,7 +165,7 @@ def test_an_output_never_lands_on_the_study_or_an_input(small_study, name, args)
 
 def test_an_output_is_written_whole_or_not_at_all(small_study, monkeypatch):
     # the renaming write: a failure after the data is made leaves neither a partial file nor a temporary one
-    import tracker.store as store
+    from tracker import store
 
     t = small_study
     (t / "out.csv").write_text("earlier contents\n")
@@ -473,7 +473,7 @@ def test_a_field_over_128_kb_is_an_answer_not_an_error(tmp_path):
 
 
 def test_a_workbook_too_large_to_load_is_refused_while_streaming(tmp_path, monkeypatch):
-    import tracker.limits as limits
+    from tracker import limits
 
     frame = example_wave(n=40, seed=31)
     frame.to_excel(tmp_path / "w.xlsx", index=False)
@@ -491,7 +491,7 @@ def test_a_workbook_too_large_to_load_is_refused_while_streaming(tmp_path, monke
 def test_checking_a_wide_header_grows_with_its_width_not_its_square(tmp_path):
     """80,000 columns: the header checks are single passes (counted, not timed: the number of
     candidate columns for hints is bounded, names are counted once)."""
-    import tracker.intake as intake
+    from tracker import intake
 
     calls = {"n": 0}
     real = intake.difflib.get_close_matches

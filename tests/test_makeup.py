@@ -23,7 +23,6 @@ from tracker.weighting import rake
 
 from .conftest import EXAMPLE_CODEBOOK, example_wave, snapshot
 
-
 # -- raking ---------------------------------------------------------------------------------
 
 def test_raking_hits_every_margin_and_matches_ipfn():

@@ -15,7 +15,7 @@ from click.testing import CliRunner
 
 from tracker import Study
 from tracker.changes import VERDICTS
-from tracker.charts import trend_frame
+from tracker.chartdata import trend_frame
 from tracker.cli import main
 
 from .test_design_variance import clustered_wave, make

@@ -17,8 +17,7 @@ import pandas as pd
 import pytest
 from click.testing import CliRunner
 
-from tracker import Study
-from tracker import store
+from tracker import Study, store
 from tracker.cli import main
 
 from .conftest import snapshot
@@ -248,12 +247,12 @@ def test_the_codebook_schema_is_valid_and_agrees_with_the_parser():
     from pathlib import Path
 
     for book in (EXAMPLE_CODEBOOK, Path(__file__).parents[1] / "waves" / "codebook.yaml"):
-        doc = yaml.load(book.read_text(), Loader=_Loader)  # noqa: S506
+        doc = yaml.load(book.read_text(), Loader=_Loader)
         doc = json.loads(json.dumps(doc, default=str))  # YAML keys such as 1: become text, as in JSON
         errors = [e.message for e in validator.iter_errors(doc)]
         assert not errors, (book, errors)
     bad = json.loads(json.dumps(yaml.load(EXAMPLE_CODEBOOK.read_text().replace("weight: wt", "wieght: wt"),
-                                          Loader=_Loader), default=str))  # noqa: S506
+                                          Loader=_Loader), default=str))
     assert any("wieght" in e.message for e in validator.iter_errors(bad))
 
 

@@ -59,7 +59,7 @@ def test_duckdb_gives_the_in_process_statistics(clustered_study, demo_study):
 def test_the_grouping_sets_query_for_overlapping_levels_gives_the_same(clustered_study, monkeypatch):
     # a split whose levels overlap (a respondent in two levels) cannot use one column per
     # split; the query then groups each level on its own
-    import tracker.scale as scale
+    from tracker import scale
 
     monkeypatch.setattr(scale, "_exclusive", lambda book, groups: False)
     book = clustered_study.codebook

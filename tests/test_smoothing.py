@@ -101,7 +101,8 @@ def test_the_commands_and_the_chart_show_the_smoothed_series_labelled(demo_study
     from click.testing import CliRunner
 
     from tests.test_charts import errors
-    from tracker.charts import SMOOTH_COLOUR, chart_spec, trend_chart
+    from tracker.chartdata import trend_chart
+    from tracker.charts import SMOOTH_COLOUR, chart_spec
     from tracker.cli import main
 
     out = CliRunner().invoke(main, ["estimates", str(demo_study.root), "--smooth", "--by", "area", "--format", "csv"])

@@ -104,8 +104,8 @@ def _brief_texts(path: Path) -> str:
         return "\n".join(str(c.value) for row in ws.iter_rows() for c in row if c.value is not None)
     text = path.read_text()
     if suffix == ".html":
-        text = re.sub(r"<script.*?</script>", "", text, flags=re.S)
-        text = re.sub(r"<style.*?</style>", "", text, flags=re.S)
+        text = re.sub(r"<script.*?</script>", "", text, flags=re.DOTALL)
+        text = re.sub(r"<style.*?</style>", "", text, flags=re.DOTALL)
         text = html.unescape(re.sub(r"<[^>]+>", " ", text))
     return text
 

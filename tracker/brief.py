@@ -295,7 +295,8 @@ def _pattern_items(analysis, headline_metrics: set[str], level: float) -> tuple[
 def _brief_charts(study, analysis, moved: set[str], sub: pd.DataFrame, thin_groups: set[str]):
     """(full-width charts, small charts): the change overview, then each metric wave by wave,
     full width when it moved (with its subgroups that moved), small in a grid otherwise."""
-    from .charts import change_overview, chart_spec, trend_chart
+    from .chartdata import trend_chart
+    from .charts import change_overview, chart_spec
     from .progress import step
 
     result, adjust, level, wave = analysis.changes, analysis.adjust, analysis.level, analysis.wave
@@ -417,7 +418,8 @@ def first_wave_brief(study, wave: str, level: float = 0.95, charts: bool = True)
                  f"waves have a reliable value.")
     chart_list: list[tuple[str, dict]] = []
     if charts:
-        from .charts import chart_spec, trend_chart
+        from .chartdata import trend_chart
+        from .charts import chart_spec
 
         chart_list = [(f"{study.codebook.metrics[m].label}", chart_spec(trend_chart(study, m, level=level,
                                                                                     until=wave, compact=True)))

@@ -630,7 +630,8 @@ def chart_cmd(study, metric, by, overview, wave, against, adjust, level, smooth,
     \b
     Example:  tracker chart demo-study --metric satisfied --by area -o satisfied.html
     """
-    from .charts import change_overview, save_chart, trend_charts
+    from .chartdata import trend_charts
+    from .charts import change_overview, save_chart
     from .outputs import check_output
 
     check_output(output)
