@@ -17,8 +17,8 @@ import pandas as pd
 from .changes import VERDICTS, ChangeResult
 from .composition import CompositionResult
 
-__all__ = ["COMPARISON_FIELDS", "PATTERN_FIELDS", "SMOOTH_BELOW", "Analysis", "SampleFacts", "analyse", "sample_facts",
-           "thin_subgroups"]
+__all__ = ["COMPARISON_FIELDS", "PATTERN_FIELDS", "SMOOTH_BELOW", "Analysis", "SampleFacts", "analyse", "make_up_shares",
+           "sample_facts", "thin_subgroups"]
 
 #: The fields of each comparison in the machine-readable brief (stable names).
 COMPARISON_FIELDS = [
@@ -56,6 +56,25 @@ def sample_facts(study, wave: str) -> SampleFacts:
     table = study.load(wave)
     weights = weights_of(study.codebook, table)
     return SampleFacts(wave, len(table), float(kish_base(weights.sum(), (weights**2).sum())))
+
+
+def make_up_shares(study, wave: str) -> dict[str, pd.Series]:
+    """The weighted make-up of a stored wave on each profile group (every group when the
+    codebook declares no profile): each level's share of the weights, in the codebook's order,
+    respondents in no level as '(none)'."""
+    from .cells import group_labels
+    from .estimates import weights_of
+
+    book = study.codebook
+    table = study.load(wave)
+    weights = weights_of(book, table)
+    out = {}
+    for g in book.profile or list(book.groups):
+        lab = pd.Series(group_labels(book, table, g))
+        shares = pd.Series(weights).groupby(lab.fillna("(none)").to_numpy()).sum() / weights.sum()
+        levels = book.groups[g].levels
+        out[g] = shares.reindex([x for x in levels if x in shares.index] + [x for x in shares.index if x not in levels])
+    return out
 
 
 #: Subgroups under this effective base in the analysed wave get a smoothed line in their charts.

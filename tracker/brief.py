@@ -15,9 +15,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .analysis import SMOOTH_BELOW, sample_facts
+from .analysis import SMOOTH_BELOW, make_up_shares, sample_facts
 from .errors import TrackerError
-from .estimates import weights_of
 from .formatting import safe_cell
 from .kinds import KINDS
 from .methods.tests import ADJUST_METHODS
@@ -399,17 +398,9 @@ def first_wave_brief(study, wave: str, level: float = 0.95, charts: bool = True)
         levels.append(Item(f"{r.metric_label}: {k.fmt_value(r.value)} ({level:.0%} interval {k.fmt_value(r.ci_low)} "
                            f"to {k.fmt_value(r.ci_high)}; base {int(r.base):,}).{flag}", "note", r.metric))
     facts = sample_facts(study, wave)
-    table = study.load(wave)
-    weights = weights_of(study.codebook, table)
     sample = [Item(f"{wave}: {count(facts.respondents, 'respondent')}; effective base {facts.effective_base:,.0f} "
                    f"(weighting efficiency {facts.efficiency:.0%}).", "note")]
-    from .cells import group_labels
-
-    for g in study.codebook.profile or list(study.codebook.groups):
-        lab = pd.Series(group_labels(study.codebook, table, g))
-        shares = pd.Series(weights).groupby(lab.fillna("(none)").to_numpy()).sum() / weights.sum()
-        shares = shares.reindex([x for x in study.codebook.groups[g].levels if x in shares.index]
-                                + [x for x in shares.index if x not in study.codebook.groups[g].levels])
+    for g, shares in make_up_shares(study, wave).items():
         sample.append(Item(f"Make-up by {_group_label(study, g)}: "
                            + ", ".join(f"{k} {fixed(v * 100, 1)}%" for k, v in shares.items()) + " (weighted).",
                            "note"))
