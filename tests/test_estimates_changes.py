@@ -429,3 +429,21 @@ def test_estimates_command_json_agrees_with_the_api(tmp_path):
     assert list(shown["base"]) == list(api["base"])
     result = CliRunner().invoke(main, ["estimates", str(tmp_path / "s"), "--metric", "nope"])
     assert result.exit_code == 1 and "--metric nope: not a metric of this study" in result.output
+
+
+def test_intervals_at_another_level_come_from_the_kept_statistics(demo_study):
+    """at_level re-finishes the estimates at another level from their sufficient statistics;
+    the result equals asking for that level (common practice, no source: statsmodels' results
+    give conf_int(alpha) the same way)."""
+    from tracker.estimates import at_level
+
+    at95 = demo_study.estimates(detail=True, waves=demo_study.labels[-2:])
+    at90 = demo_study.estimates(detail=True, waves=demo_study.labels[-2:], level=0.90)
+    again = at_level(at95, 0.90)
+    for col in ("ci_low", "ci_high", "value", "se", "design_base", "reliable", "flags"):
+        if not pd.api.types.is_numeric_dtype(again[col]):
+            assert (again[col].astype(str) == at90[col].astype(str)).all(), col
+        else:
+            np.testing.assert_allclose(again[col].to_numpy(float), at90[col].to_numpy(float), rtol=0, atol=0,
+                                       err_msg=col)
+    assert (again["ci_high"] - again["ci_low"] < at95["ci_high"] - at95["ci_low"]).any()

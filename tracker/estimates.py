@@ -32,7 +32,7 @@ from .methods.variance import (
 )
 
 __all__ = ["COLUMNS", "STATS", "STATS_VERSION", "CellArrays", "cell_arrays", "cell_stats", "cells_frame", "design_of",
-           "finish", "fpc_factor", "population_of", "population_problems", "single_cluster_lines", "wave_covariance",
+           "at_level", "finish", "fpc_factor", "population_of", "population_problems", "single_cluster_lines", "wave_covariance",
            "wave_estimates", "weights_of"]
 
 # Columns of the estimates table, in order.
@@ -430,6 +430,20 @@ def finish(cells: pd.DataFrame, kinds: dict[str, str], level: float = 0.95, inte
     for k, v in derived({k: c[k].to_numpy() for k in STATS if k in c}, kind, level, interval).items():
         c[k] = v
     return c
+
+
+def at_level(est: pd.DataFrame, level: float, interval: str = "wilson") -> pd.DataFrame:
+    """The estimates ``est`` (asked with ``detail=True``: their sufficient statistics kept) with
+    every interval, design base and flag at another confidence ``level``, from those
+    statistics alone (as a statsmodels result's ``conf_int(alpha)``): no wave is read again.
+
+    >>> # study.estimates(detail=True) at 95 %, then at_level(est, 0.90): the 90 % intervals
+    """
+    from .options import check_level
+
+    check_level(level)
+    kinds = dict(zip(est["metric"], est["kind"]))
+    return finish(est, kinds, level, interval)
 
 
 def estimates_frame(parts: list[tuple[str, str, CellArrays]], metrics: list[Metric], level: float = 0.95,
