@@ -31,9 +31,25 @@ from .methods.variance import (
     single_cluster_strata,
 )
 
-__all__ = ["COLUMNS", "STATS", "STATS_VERSION", "CellArrays", "cell_arrays", "cell_stats", "cells_frame", "design_of",
-           "at_level", "finish", "fpc_factor", "population_of", "population_problems", "single_cluster_lines", "wave_covariance",
-           "wave_estimates", "weights_of"]
+__all__ = [
+    "COLUMNS",
+    "STATS",
+    "STATS_VERSION",
+    "CellArrays",
+    "at_level",
+    "cell_arrays",
+    "cell_stats",
+    "cells_frame",
+    "design_of",
+    "finish",
+    "fpc_factor",
+    "population_of",
+    "population_problems",
+    "single_cluster_lines",
+    "wave_covariance",
+    "wave_estimates",
+    "weights_of",
+]
 
 # Columns of the estimates table, in order.
 COLUMNS = [
