@@ -18,18 +18,19 @@ import pandas as pd
 from .analysis import SMOOTH_BELOW, make_up_shares, sample_facts
 from .errors import TrackerError
 from .formatting import safe_cell
-from .kinds import KINDS
-from .methods.tests import ADJUST_METHODS
-from .wording import count, fixed, p_text, plural
-
-CAUTIONS = (
-    ("Significance is not importance: a significant change can be too small to matter, and a change "
-    "that matters can miss significance on a small base. Read the size and its interval."),
-    ("The intervals cover sampling error only, not coverage gaps, non-response, or changes in how "
-    "questions were asked or answered."),
-    "A change in the sample's make-up can move a measure even when nothing changed within any group.",
-    ("Small bases are flagged and never reported as significant; pooled or longer-run figures are "
-    "safer for thin subgroups."),
+from .wording import (
+    CAUTIONS,
+    change_sentence,
+    count,
+    design_lines,
+    fixed,
+    held_sentence,
+    method_lines,
+    not_significant_sentence,
+    not_tested_sentence,
+    p_text,
+    plural,
+    trend_sentence,
 )
 
 
@@ -65,103 +66,6 @@ class Brief:
     intro: tuple[str, ...] = ()  # what the intervals and the words mean, in plain sentences
     first_wave: bool = False  # a study's first wave: levels only, nothing to compare with
     levels: tuple[Item, ...] = ()  # the first wave's levels
-
-
-# -- wording --------------------------------------------------------------------------------
-
-def fmt_value(kind: str, v: float) -> str:
-    return KINDS[kind].fmt_value(v)
-
-
-def fmt_size(kind: str, d: float) -> str:
-    return KINDS[kind].fmt_change(d)
-
-
-def _num(kind: str, d: float) -> str:
-    return KINDS[kind].fmt_number(d)
-
-
-def _who(row) -> str:
-    return row.metric_label if row.group == "total" else f"{row.metric_label}, {row.subgroup}"
-
-
-def _was(row) -> str:
-    """'61.0% (was 62.0%)'"""
-    return f"{fmt_value(row.kind, row.value_to)} (was {fmt_value(row.kind, row.value_from)})"
-
-
-def _printed(row) -> float:
-    """The change as the two printed values show it (tracker.wording.shown_change)."""
-    return KINDS[row.kind].shown_change(row.value_from, row.value_to)
-
-
-def change_sentence(row) -> str:
-    """'Punctuality rated good fell from 75.0% to 61.8%, down 13.2 points (adjusted interval 8.1
-    to 18.3 points; bases 1,020 and 998).' The interval is the one adjusted with the verdict."""
-    kind = row.kind
-    down = row.change < 0
-    lo, hi = (-row.adjusted_high, -row.adjusted_low) if down else (row.adjusted_low, row.adjusted_high)
-    verb, word = ("fell", "down") if down else ("rose", "up")
-    return (f"{_who(row)} {verb} from {fmt_value(kind, row.value_from)} to {fmt_value(kind, row.value_to)}, "
-            f"{word} {fmt_size(kind, _printed(row))} (adjusted interval {_num(kind, lo)} to "
-            f"{fmt_size(kind, hi)}; bases {int(row.base_from):,} and {int(row.base_to):,}).")
-
-
-def held_sentence(row, limit: float) -> str:
-    """'Information rated good: 61.0% (was 62.0%); held within the margin: the adjusted interval of
-    the change (-2.1 to +1.5 points) lies within 3.0 points either way, the smallest change that
-    matters for this measure.'"""
-    kind = row.kind
-    return (f"{_who(row)}: {_was(row)}; held within the margin: the adjusted interval of the change "
-            f"({_span(kind, row.adjusted_low, row.adjusted_high)}) lies within {fmt_size(kind, limit)} either way, "
-            f"the smallest change that matters for this measure.")
-
-
-def not_significant_sentence(row) -> str:
-    """A change that is not significant: its size, its adjusted interval, and what could have
-    been detected. Never a claim that the measure held."""
-    kind = row.kind
-    return (f"{_who(row)}: {_was(row)}, a change of {_signed(kind, _printed(row))}; not significant (adjusted "
-            f"interval {_span(kind, row.adjusted_low, row.adjusted_high)}). This comparison could have detected "
-            f"a change of about {fmt_size(kind, row.min_detectable_change)}.")
-
-
-def not_tested_sentence(row) -> str:
-    return f"{row.metric_label}: {_was(row)}; not tested: {row.flags}."
-
-
-def _per_year(kind: str, x: float) -> str:
-    """A slope in the kind's shown units: '+1.2 points' or '+0.05'."""
-    k = KINDS[kind]
-    return fixed(x * k.scale, k.decimals, signed=True) + (f" {k.change_unit}" if k.change_unit else "")
-
-
-def trend_sentence(row, level: float) -> str:
-    """One series' pattern in words (tracker.trends.PATTERNS)."""
-    kind = row.kind
-    who = _who(row)
-    span = f"over {row.waves} waves ({row.first_wave} to {row.last_wave})"
-    if str(row.pattern).startswith("shifted"):
-        return (f"{who} {row.pattern} at {row.shift_wave}: {fmt_value(kind, row.level_before)} "
-                f"({fmt_value(kind, row.level_before_low)} to {fmt_value(kind, row.level_before_high)}) before, "
-                f"{fmt_value(kind, row.level_after)} ({fmt_value(kind, row.level_after_low)} to "
-                f"{fmt_value(kind, row.level_after_high)}) since; the new level has held.")
-    if row.pattern in ("rising", "falling"):
-        return (f"{who} is {row.pattern}: {_per_year(kind, row.slope_per_year)} a year ({level:.0%} interval "
-                f"{_per_year(kind, row.slope_low)} to {_per_year(kind, row.slope_high)}) {span}.")
-    if row.pattern in ("moved up", "moved down"):
-        return (f"{who} {row.pattern} {span}: {_per_year(kind, row.slope_per_year)} a year on a straight-line "
-                f"reading, but the waves cannot tell a gradual trend from a one-off step; brief the move, not its "
-                f"shape.")
-    if row.pattern == "flat":
-        return (f"{who} is flat {span}: its slope, {_per_year(kind, row.slope_per_year)} a year, stays within the "
-                f"smallest change that matters per year.")
-    if row.pattern == "one-wave blip":
-        side = "below" if row.blip_size < 0 else "above"
-        return (f"{who}: {row.blip_wave} was a one-wave blip ({fmt_size(kind, row.blip_size)} {side} the rest "
-                f"of the series, which does not move with it). The series did not turn; do not brief it as a change "
-                f"of direction.")
-    return f"{who}: {row.pattern}."
 
 
 # -- assembling -----------------------------------------------------------------------------
@@ -204,7 +108,7 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         ("Each change is shown with its interval adjusted for all the comparisons made together: a change is called "
         "significant exactly when that interval leaves out zero."),
     )
-    method = _method_lines(adjust, level, adj_level, family, n_sig, bool(matters)) + _design_lines(result)
+    method = method_lines(adjust, level, adj_level, family, n_sig, bool(matters)) + design_lines(result)
     sub = moves["sub_rows"]
     tables = {
         "Headline": moves["head_rows"][_TABLE_COLS].reset_index(drop=True),
@@ -325,62 +229,6 @@ def _group_label(study, group: str) -> str:
     g = study.codebook.groups.get(group)
     var = study.codebook.variables.get(g.variable) if g is not None else None
     return var.label if var is not None else group
-
-
-def _method_lines(adjust: str, level: float, adj_level: float, family: int, n_sig: int,
-                  margins: bool) -> tuple[str, ...]:
-    """The method section: what the words mean and how the numbers were made, with sources."""
-    from .changes import VERDICTS
-
-    interval = {"bh": f"false-coverage-rate adjusted intervals (Benjamini and Yekutieli 2005) at the "
-                      f"{adj_level:.2%} level, which fits {count(n_sig, 'significant change')} among "
-                      f"{count(family, 'comparison')}",
-                "by": f"false-coverage-rate adjusted intervals at the {adj_level:.2%} level (the Benjamini-"
-                      f"Yekutieli form)",
-                "holm": f"intervals at the {adj_level:.2%} level, the last step of Holm's procedure",
-                "none": f"{level:.0%} intervals, with no adjustment"}[adjust]
-    words = [f"'{name}': {VERDICTS[code]}." for code, name in
-             (("rise", "Significant rise"), ("fall", "Significant fall"), ("not significant", "Not significant"),
-              ("held", "Held within the margin"))]
-    if not margins:
-        words[-1] = ("'Held within the margin' is never said here: the codebook declares no smallest change that "
-                     "matters, and without one a change that is not significant is only that.")
-    return (
-        (f"Significance: {ADJUST_METHODS[adjust]} adjustment across the {count(family, 'comparison')} at the "
-        f"{1 - level:g} level; only adjusted results are called significant. The interval beside each change is "
-        f"the one that agrees with that verdict: {interval}."),
-        *words,
-        ("Every change is tested with t on its design-based variance (Taylor linearization with the study's weights, "
-        "strata and clusters; minus the covariance of shared clusters or respondents) on the design's degrees of "
-        "freedom. The figures in sentences are rounded; a change in a sentence is the difference of the two values "
-        "as printed, and intervals are computed from the unrounded figures."),
-        ("Minimum detectable change: the change each comparison would find with 80% power at the unadjusted level "
-        "(for shares, the larger of a rise and a fall, with the variance the changed share would have)."),
-        ("Series: each one (sampling error plus the variation between waves) is tested once for a trend, a step at "
-        "any wave or a one-wave blip at any wave, with the search accounted for; those tests are adjusted together "
-        "across every series, and a series that moved gets the shape that fits it best ('moved up/down' when its "
-        "waves cannot tell a trend from a step). 'No pattern found' is not a claim that nothing moved; 'flat' is "
-        "said only where the codebook declares the smallest change that matters. Slopes are per year of fieldwork "
-        "time."),
-        ("Reliability: cells below an effective base of 30, with too wide a Korn-Graubard interval or resting on "
-        "fewer than 15 respondents on the rarer side (after the NCHS presentation standard for proportions, 2017) "
-        "are flagged and not tested."),
-        ("Thin subgroups' smoothed lines: a local-level model with each wave's known sampling error (signal "
-        "extraction for repeated surveys, Scott and Smith 1974)."),
-        "The make-up of the sample is compared with a Rao-Scott corrected test on the weighted shares.",
-    )
-
-
-def _design_lines(result) -> tuple[str, ...]:
-    """How the waves' sharing was treated, from the comparisons' typed covariance column."""
-    used = set(result.table["covariance_from"]) - {"none"}
-    out = []
-    if "shared respondents" in used:
-        out.append("Some respondents answered both waves (the study is a panel): the comparisons take the link "
-                   "between their answers into account.")
-    if "shared clusters" in used:
-        out.append("The waves share sampling clusters: the comparisons take the link between them into account.")
-    return tuple(out)
 
 
 def first_wave_brief(study, wave: str, level: float = 0.95, charts: bool = True) -> Brief:
@@ -508,7 +356,7 @@ def _sample_notes(study, analysis) -> list[Item]:
     for r in trends[(trends["group"] == "total") & trends["restarts_at"].notna()].itertuples():
         notes.append(Item(f"{r.metric_label}: its series starts again at {r.first_wave} after a change of wording; "
                           f"its pattern uses only the waves since.", "note", r.metric))
-    notes.extend(Item(line, "note") for line in _design_lines(result))
+    notes.extend(Item(line, "note") for line in design_lines(result))
     comp = analysis.composition
     if comp is not None:
         for r in comp.tests.itertuples():
@@ -520,16 +368,6 @@ def _sample_notes(study, analysis) -> list[Item]:
             names = [_group_label(study, g) for g in comp.tests["group"]]
             notes.append(Item(f"No shift in the weighted make-up on {', '.join(names)}.", "flat"))
     return notes
-
-
-def _signed(kind: str, d: float) -> str:
-    return KINDS[kind].fmt_change(d, signed=True)
-
-
-def _span(kind: str, lo: float, hi: float) -> str:
-    """'-4.5 to +3.7 points'"""
-    k = KINDS[kind]
-    return f"{lo * k.scale:+.{k.decimals}f} to {k.fmt_change(hi, signed=True)}"
 
 
 # -- rendering ------------------------------------------------------------------------------
