@@ -67,7 +67,8 @@ class AddReport:
 
     def lines(self) -> list[str]:
         out = [
-            f"stored wave {self.label} (fieldwork {self.date}){' replacing the earlier version' if self.replaced else ''}",
+            (f"stored wave {self.label} (fieldwork {self.date})"
+            f"{' replacing the earlier version' if self.replaced else ''}"),
             f"  respondents (base): {self.rows:,}",
             f"  weighted base: {self.weighted_base:,.1f}",
             f"  effective base: {self.effective_base:,.1f}  (weighting efficiency {self.efficiency:.1%})",

@@ -17,8 +17,8 @@ import pandas as pd
 from .changes import VERDICTS, ChangeResult
 from .composition import CompositionResult
 
-__all__ = ["COMPARISON_FIELDS", "PATTERN_FIELDS", "SMOOTH_BELOW", "Analysis", "SampleFacts", "analyse", "make_up_shares",
-           "sample_facts", "thin_subgroups"]
+__all__ = ["COMPARISON_FIELDS", "PATTERN_FIELDS", "SMOOTH_BELOW", "Analysis", "SampleFacts", "analyse",
+           "make_up_shares", "sample_facts", "thin_subgroups"]
 
 #: The fields of each comparison in the machine-readable brief (stable names).
 COMPARISON_FIELDS = [
@@ -203,7 +203,8 @@ def _mix_notes(study, result, comp, metrics: list[str]) -> dict[str, tuple[str, 
             g = study.codebook.groups[group]
             var = study.codebook.variables.get(g.variable)
             out[r.metric] = ((f"Most of this change ({r.mix_share_of_change:.0%}) comes from the shift in the sample's "
-                             f"mix on {var.label if var is not None else group}; within its groups the change is {k.fmt_change(r.within_part)}, and "
+                             f"mix on {var.label if var is not None else group}; within its groups the change is "
+                             f"{k.fmt_change(r.within_part)}, and "
                              f"at the earlier wave's mix the change is {k.fmt_change(r.standardised_change, True)} "
                              f"({verdict})."), not r.standardised_significant)
     return out

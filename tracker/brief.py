@@ -131,8 +131,8 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
     chart_list: list[tuple[str, dict]] = []
     compact: list[tuple[str, dict]] = []
     if charts:
-        moved = headline_metrics | {i.metric for i in moves["subgroup_moves"]} | {i.metric for i in moves["mix_moves"]} \
-            | set(moving["metric"])
+        moved = (headline_metrics | {i.metric for i in moves["subgroup_moves"]}
+                 | {i.metric for i in moves["mix_moves"]} | set(moving["metric"]))
         chart_list, compact = _brief_charts(study, analysis, moved, sub, thin_groups)
     return Brief(
         title=study.codebook.title, wave=wave, against=result.against, headline=moves["headline"],

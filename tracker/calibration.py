@@ -101,7 +101,9 @@ class Rate:
 
     def within_mc(self, k: float = 3.0) -> bool:
         """Inside the target widened by k Monte Carlo standard errors (what a small run can show)."""
-        return self.target is None or self.target[0] - k * self.mc_se <= self.measured <= self.target[1] + k * self.mc_se
+        if self.target is None:
+            return True
+        return self.target[0] - k * self.mc_se <= self.measured <= self.target[1] + k * self.mc_se
 
 
 def _codebook(shares: list[str], rating: bool = True, profile: bool = True, declared: bool = True) -> Codebook:
@@ -208,7 +210,8 @@ def _coverage_and_size(rng, d: Design, tier: Tier, out: list[Rate], deffs: list[
     groups = ["sub"]
     scen = {"independent waves": (0.0, False), "30% shared respondents, recurring clusters": (0.3, True),
             "70% shared respondents, recurring clusters": (0.7, True)}
-    cover: dict[tuple[str, str, str], list[float]] = {(m, g, iv): [] for m in MEASURES for g in ("total", "sub") for iv in ("wilson", "korn-graubard")}
+    cover: dict[tuple[str, str, str], list[float]] = {
+        (m, g, iv): [] for m in MEASURES for g in ("total", "sub") for iv in ("wilson", "korn-graubard")}
     cover_reliable: dict[str, list[float]] = {m: [] for m in MEASURES}
     rs_p = []
     for name, (shared, recurring) in scen.items():

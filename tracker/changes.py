@@ -244,7 +244,8 @@ def compare(now: pd.DataFrame, then: pd.DataFrame, blocked: dict[str, str] | Non
     # a cell with spread among its respondents but no sampling variance is held by the weighting
     # (a raked margin: its share is the target): its change is the targets', never tested
     spread = (m["unit_variance_to"].to_numpy(float) > 0) & (m["unit_variance_from"].to_numpy(float) > 0)
-    fixed = spread & (np.sqrt(v1) <= 1e-9 * np.maximum(1, np.abs(p1))) & (np.sqrt(v0) <= 1e-9 * np.maximum(1, np.abs(p0)))
+    fixed = (spread & (np.sqrt(v1) <= 1e-9 * np.maximum(1, np.abs(p1)))
+             & (np.sqrt(v0) <= 1e-9 * np.maximum(1, np.abs(p0))))
     detail = np.where(fixed, "fixed by the weighting (a raked margin: its share is the target)", detail)
     flags = _join(why_blocked, detail, " | ")
     testable = (why_blocked == "") & ~empty_to & ~empty_from & ~unreliable & ~fixed

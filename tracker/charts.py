@@ -165,7 +165,8 @@ def trend_spec(data: pd.DataFrame, by: str | None, adjust: str = "bh", level: fl
                                                          "detail": detail},
                        "transform": [{"filter": "isValid(datum.smoothed_shown)"}]})
         layers.append({"mark": {"type": "text", "align": "left", "dx": 4, "fontSize": 9, "color": SMOOTH_COLOUR},
-                       "encoding": {"x": x, "y": _field("smoothed_shown", "quantitative"), "text": {"value": "smoothed"}},
+                       "encoding": {"x": x, "y": _field("smoothed_shown", "quantitative"),
+                                    "text": {"value": "smoothed"}},
                        "transform": [{"filter": {"field": "wave", "equal": labels[-1]}},
                                      {"filter": "isValid(datum.smoothed_shown)"}]})
     layers += [points] if compact else [points, bases]

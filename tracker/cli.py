@@ -140,7 +140,8 @@ def level_option(fn):
 def adjust_option(fn):
     """--adjust, the same in every command (names that cannot be read as a subgroup split)."""
     return click.option("--adjust", type=click.Choice(list(ADJUST_NAMES)), default="bh", show_default=True,
-                        help="Control of the many comparisons: " + "; ".join(f"{k} = {v}" for k, v in ADJUST_NAMES.items())
+                        help="Control of the many comparisons: "
+                        + "; ".join(f"{k} = {v}" for k, v in ADJUST_NAMES.items())
                         + ".")(fn)
 
 
@@ -246,7 +247,8 @@ CHECK_COLUMNS = ["file", "severity", "column", "message", "rows", "count"]
 @click.option("--date", help="The fieldwork date it would get (ISO).")
 @click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
 @click.option("--sheet", help="XLSX: the sheet to read (needed when several sheets hold data).")
-@click.option("--header-row", type=click.IntRange(min=1), help="XLSX: the row holding the column names (default: found).")
+@click.option("--header-row", type=click.IntRange(min=1),
+              help="XLSX: the row holding the column names (default: found).")
 @_plain_fmt_option
 @user_errors
 def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output):
@@ -288,7 +290,8 @@ def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output)
 @click.option("--rake", is_flag=True, help="Compute raking weights to the codebook's targets.")
 @click.option("--cap", help="With --rake: keep each weight within LOW:HIGH times its starting weight, e.g. 0.2:5.")
 @click.option("--sheet", help="XLSX: the sheet to read (needed when several sheets hold data).")
-@click.option("--header-row", type=click.IntRange(min=1), help="XLSX: the row holding the column names (default: found).")
+@click.option("--header-row", type=click.IntRange(min=1),
+              help="XLSX: the row holding the column names (default: found).")
 @click.option("--format", "fmt", type=click.Choice(["table", "json"]), default="table", show_default=True,
               help="table: the summary in lines; json: the same as one document.")
 @user_errors

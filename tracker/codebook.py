@@ -620,7 +620,8 @@ def _parse_variable(name: str, node: Any) -> Variable:
         raise _err(f"{path}.missing", f"code {_fmt_code(min(both))} is also in codes")
     options: dict[str, str] = {}
     if vtype == "multi":
-        options = {str(k): _text(v, f"{path}.options.{k}") for k, v in _mapping(node.get("options"), f"{path}.options").items()}
+        options = {str(k): _text(v, f"{path}.options.{k}")
+                   for k, v in _mapping(node.get("options"), f"{path}.options").items()}
         if not options:
             raise _err(f"{path}.options", "a multi variable needs at least one option column")
     elif "options" in node:
@@ -703,7 +704,8 @@ def _parse_group(name: str, node: Any, variables: dict[str, Variable], design: d
         if label in by_label:  # one of the two would silently leave the split
             raise _err(path, f"codes {_fmt_code(by_label[label])} and {_fmt_code(code)} of {vname} share the label "
                              f"{shorten(label)!r}; a subgroup needs labels of its own (or put the codes together "
-                             f"with merge: {{{shorten(label, 40)}: [{_fmt_code(by_label[label])}, {_fmt_code(code)}]}})")
+                             f"with merge: {{{shorten(label, 40)}: "
+                             f"[{_fmt_code(by_label[label])}, {_fmt_code(code)}]}})")
         by_label[label] = code
     return Group(name, vname, {label: (code,) for code, label in var.codes.items()})
 

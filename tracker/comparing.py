@@ -78,7 +78,8 @@ class Comparisons:
         table = pd.concat(tables, ignore_index=True)
         sample = np.repeat(labels, [len(t) for t in tables])
         name = f"{labels[0]}..{labels[-1]}" if len(labels) > 1 else labels[0]
-        return wave_estimates(self.codebook, table, metrics, groups, name, self.waves.dates()[labels[-1]], level, sample)
+        date = self.waves.dates()[labels[-1]]
+        return wave_estimates(self.codebook, table, metrics, groups, name, date, level, sample)
 
     def break_reasons(self, metrics: list, wave_from: list[str], wave_to: str) -> dict[str, str]:
         """Metrics whose series is split by a wording break between the waves compared."""
@@ -117,7 +118,8 @@ class Comparisons:
                              f"true): their covariance is taken into account, on the paired design's degrees of "
                              f"freedom")
             notes += self.overlap_notes(wave, others[0], unit)
-        table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level, smallest_changes(self.codebook),
+        table = compare(now, then, self.break_reasons(ms, others, wave), cov, adjust, level,
+                        smallest_changes(self.codebook),
                         shared=both if cov is not None else None, source=unit if cov is not None else "")
         size = int(table["p_adjusted"].notna().sum())
         self.memory[key] = (table, tuple(notes), size)
@@ -206,10 +208,12 @@ class Comparisons:
         baseline = resolve_against(labels, self.waves.dates(), wave, against)
         others, note = list(baseline.waves), baseline.note
         if family == "brief":
-            table, notes, size = self.family(wave, others, pick_metrics(self.codebook), pick_groups(self.codebook), adjust, level)
+            table, notes, size = self.family(wave, others, pick_metrics(self.codebook), pick_groups(self.codebook),
+                                             adjust, level)
             keep = table["metric"].isin([m.name for m in ms]) & table["group"].isin(["total", *gs])
             table = table[keep].reset_index(drop=True)
-            notes.append(f"p-values adjusted across the {size:,} comparisons of {wave} against {others[-1] if len(others) == 1 else 'the pooled waves'} "
+            baseline_name = others[-1] if len(others) == 1 else "the pooled waves"
+            notes.append(f"p-values adjusted across the {size:,} comparisons of {wave} against {baseline_name} "
                          f"(every metric in total and in every subgroup: the brief's family)")
         else:
             table, notes, size = self.family(wave, others, ms, gs, adjust, level)

@@ -480,7 +480,8 @@ def estimates_frame(parts: list[tuple[str, str, CellArrays]], metrics: list[Metr
         for k in STATS:
             cols[k].append(cells.stats[k].ravel())
     if not parts:
-        out = {k: np.array([], dtype=object if k in ("wave", "fieldwork_date", "metric", "group", "subgroup") else float)
+        text_cols = ("wave", "fieldwork_date", "metric", "group", "subgroup")
+        out = {k: np.array([], dtype=object if k in text_cols else float)
                for k in cols}
     else:
         out = {k: np.concatenate(v) for k, v in cols.items()}

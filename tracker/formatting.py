@@ -46,7 +46,8 @@ def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
         if not pd.api.types.is_numeric_dtype(shown[col]) and not pd.api.types.is_bool_dtype(shown[col]):
             shown[col] = shown[col].astype(object).where(shown[col].notna(), "")
         elif pd.api.types.is_float_dtype(shown[col]):
-            shown[col] = shown[col].map(lambda v: "" if pd.isna(v) else (f"{v:.{digits}f}" if np.isfinite(v) else str(v)))
+            shown[col] = shown[col].map(
+                lambda v: "" if pd.isna(v) else (f"{v:.{digits}f}" if np.isfinite(v) else str(v)))
     if fmt == "md":
         head = "| " + " | ".join(shown.columns) + " |"
         rule = "|" + "|".join("---" for _ in shown.columns) + "|"

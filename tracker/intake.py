@@ -288,7 +288,8 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
 
 def _xlsx_sheet(path: Path, book, sheet: str | None) -> str:
     """The sheet to read: the one named, or the only one holding data."""
-    filled = [ws.title for ws in book.worksheets if ws.max_row > 1 or ws.max_column > 1 or ws.cell(1, 1).value is not None]
+    filled = [ws.title for ws in book.worksheets
+              if ws.max_row > 1 or ws.max_column > 1 or ws.cell(1, 1).value is not None]
     if sheet is None:
         if len(filled) > 1:
             raise TrackerError(f"{path}: {len(filled)} sheets hold data ({', '.join(filled)}); choose one with --sheet")
@@ -683,7 +684,8 @@ def _variable_rules(codebook: Codebook, table: pd.DataFrame, label: str, order: 
                 hinted += 1
                 what = f"option columns {', '.join(v.options)}" if v.type == "multi" else "column"
                 alias = f" (or an alias: {', '.join(v.aliases)})" if v.aliases else ""
-                hint = _missing_hint(v, extra) if hinted <= 10 else ""  # hints for the first few: a wide file stays fast
+                # hints for the first few: a wide file stays fast
+                hint = _missing_hint(v, extra) if hinted <= 10 else ""
                 add("error", v.name, f"required {what}{alias} is missing for variable {v.name}{hint}")
             continue
         if v.type == "multi" and len(present) < len(file_cols):

@@ -95,7 +95,8 @@ def page(title: str, body_html: str, specs: list[dict]) -> str:
         "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
         "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n"
         f"<title>{html.escape(title)}</title>\n<style>{STYLE}</style>\n</head>\n"
-        f"<body data-charts-expected=\"{len(specs)}\" data-charts-drawn=\"0\">\n{body_html}\n{scripts}\n</body>\n</html>\n"
+        f"<body data-charts-expected=\"{len(specs)}\" data-charts-drawn=\"0\">\n"
+        f"{body_html}\n{scripts}\n</body>\n</html>\n"
     )
 
 

@@ -27,5 +27,6 @@ def pick_groups(book: Codebook, names=None) -> list[str]:
     names = [n for n in names if n not in ("total", "none")]
     unknown = [n for n in names if n not in book.groups]
     if unknown:
-        raise TrackerError(f"--by {unknown[0]}: not a group of this study ({', '.join(book.groups) or 'none declared'})")
+        raise TrackerError(f"--by {unknown[0]}: not a group of this study "
+                           f"({', '.join(book.groups) or 'none declared'})")
     return list(dict.fromkeys(names))

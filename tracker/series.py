@@ -182,7 +182,8 @@ class Series:
                     pred.loc[pred["metric"] == m.name, ["expected", "prediction_sd", "fit_sd"]] = np.nan
         return surprise_table(pred, new, adjust, level)
 
-    def smoothed(self, metrics=None, by=None, waves=None, level: float = 0.95, until: str | None = None) -> pd.DataFrame:
+    def smoothed(self, metrics=None, by=None, waves=None, level: float = 0.95,
+                 until: str | None = None) -> pd.DataFrame:
         """The estimates with a smoothed value beside each direct one: signal extraction in a
         local-level model with each wave's known sampling variance, fitted per series over
         every stored wave (tracker.methods.statespace). Adds ``smoothed``, ``smoothed_low``,

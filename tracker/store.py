@@ -313,8 +313,8 @@ def _writer_alive(tmp: Path) -> bool:
 def leftovers(root: Path) -> list[Path]:
     """Temporary files a killed write left behind (never part of the study); a temporary
     file of a process still running is its own business and is not listed."""
-    return sorted(p for folder in (root, root / WAVES, root / CACHE) if folder.is_dir() for p in folder.glob(".incoming-*.tmp")
-                  if not _writer_alive(p))
+    return sorted(p for folder in (root, root / WAVES, root / CACHE) if folder.is_dir()
+                  for p in folder.glob(".incoming-*.tmp") if not _writer_alive(p))
 
 
 def sweep_incoming(root: Path) -> None:
@@ -433,8 +433,9 @@ def _verify_locked(root: Path) -> _Found:
     out.strays = orphans(root, ledger) + leftovers(root)
     for p in out.strays:
         rel = p.relative_to(root)
-        out.problems.append(f"{rel}: " + ("a temporary leftover of an interrupted write" if p.name.startswith(".incoming-")
-                                          else "not named by the ledger (an orphan of a failed write)"))
+        what = ("a temporary leftover of an interrupted write" if p.name.startswith(".incoming-")
+                else "not named by the ledger (an orphan of a failed write)")
+        out.problems.append(f"{rel}: {what}")
     return out
 
 

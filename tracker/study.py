@@ -176,7 +176,8 @@ class Study:
         dates, names = self.dates(), [m.name for m in ms]
         key = ("estimates", tuple(ws), tuple(names), tuple(gs), level, interval)
         if key not in self._cache:  # trends, surprises and charts ask for the same table again
-            out = estimates_frame([(w, dates[w], self.cellstore.cells(w).select(names, gs)) for w in ws], ms, level, interval)
+            parts = [(w, dates[w], self.cellstore.cells(w).select(names, gs)) for w in ws]
+            out = estimates_frame(parts, ms, level, interval)
             self._cache[key] = out[out["base"] > 0].reset_index(drop=True)
         out = self._cache[key]
         return out.copy() if detail else out[COLUMNS]
@@ -255,7 +256,8 @@ class Study:
         With ``table`` and ``date``, a wave not yet stored is judged (``check`` and ``add``)."""
         return self.series.surprises(wave, adjust, level, table, date)
 
-    def smoothed(self, metrics=None, by=None, waves=None, level: float = 0.95, until: str | None = None) -> pd.DataFrame:
+    def smoothed(self, metrics=None, by=None, waves=None, level: float = 0.95,
+                 until: str | None = None) -> pd.DataFrame:
         """The estimates with a smoothed value beside each direct one (tracker.smoothing), fitted
         over every stored wave, or those up to ``until``."""
         return self.series.smoothed(metrics, by, waves, level, until)

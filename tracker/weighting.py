@@ -172,7 +172,8 @@ def rake_table(book: Codebook, table: pd.DataFrame, cap: tuple[float, float] | N
         counts = pd.Series(lab).value_counts()
         empty = [k for k in tgt if counts.get(k, 0) == 0]
         if empty:
-            raise TrackerError(f"raking: targets.{gname}: no respondents in {', '.join(empty)}, so its target cannot be met")
+            raise TrackerError(f"raking: targets.{gname}: no respondents in {', '.join(empty)}, so its target "
+                               f"cannot be met")
         labels.append(lab)
         targets.append(tgt)
     base = table[book.weight].to_numpy(float) if book.weight and book.weight in table.columns else None

@@ -113,8 +113,8 @@ def smooth_over_q(y: np.ndarray, v: np.ndarray, ok: np.ndarray, points: int = 25
     variance), averaged with weights proportional to the likelihood (a flat prior on log q
     over the grid). Plugging in the maximum-likelihood q alone gives intervals that cover too
     rarely (87 % for a 95 % interval in the setting of docs/validation.md), since q is often
-    estimated near zero; averaging over q carries its uncertainty. Returns mean, var (the mixture's), and q_ml (the grid's
-    likeliest q, refined by :func:`fit_local_level`)."""
+    estimated near zero; averaging over q carries its uncertainty. Returns mean, var (the
+    mixture's), and q_ml (the grid's likeliest q, refined by :func:`fit_local_level`)."""
     _S, _K = y.shape
     with np.errstate(invalid="ignore", divide="ignore"):
         scale = np.where(ok, v, 0.0).sum(axis=1) / np.maximum(ok.sum(axis=1), 1)
