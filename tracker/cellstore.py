@@ -118,6 +118,24 @@ class CellStore:
         self._memory[("cells", label)] = replace(cells, psu=None, psu_names=None)
         self._memory[("ids", label)] = ids
 
+    def estimates(self, metrics: list, groups: list[str], waves: list[str], level: float = 0.95,
+                  detail: bool = False, interval: str = "wilson") -> pd.DataFrame:
+        """The estimates of ``metrics`` in ``waves``, in total and by ``groups``, finished from
+        the cell statistics (tracker.estimates.estimates_frame); cells nobody answered are left
+        out. Kept in memory: trends, surprises and charts ask for the same table again."""
+        from .estimates import COLUMNS, estimates_frame
+        from .options import check_level
+
+        check_level(level)
+        dates, names = self.waves.dates(), [m.name for m in metrics]
+        key = ("estimates", tuple(waves), tuple(names), tuple(groups), level, interval)
+        if key not in self._memory:
+            parts = [(w, dates[w], self.cells(w).select(names, groups)) for w in waves]
+            out = estimates_frame(parts, metrics, level, interval)
+            self._memory[key] = out[out["base"] > 0].reset_index(drop=True)
+        out = self._memory[key]
+        return out.copy() if detail else out[COLUMNS]
+
     def forget(self) -> None:
         """Drop what is held in memory (after a wave was added or the cache refilled)."""
         self._memory = {}

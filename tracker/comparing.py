@@ -269,6 +269,28 @@ class Comparisons:
         keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
         return out[keep].reset_index(drop=True)
 
+    def composition(self, wave: str | None = None, against: str = "previous", groups=None,
+                    adjust: str = "bh", level: float = 0.95):
+        """The sample's weighted make-up on the profile groups (or ``groups``) against another wave."""
+        check_adjust(adjust)
+        check_level(level)
+        from .changes import resolve_against
+        from .composition import compare_composition
+
+        labels = self.waves.pick()
+        wave = wave or labels[-1]
+        if against.startswith("pooled:"):
+            raise TrackerError("composition compares two single waves; give previous, year-ago or a wave label")
+        others = list(resolve_against(labels, self.waves.dates(), wave, against).waves)
+        gs = list(self.codebook.profile) if groups is None else pick_groups(self.codebook, groups)
+        if not gs:
+            raise TrackerError("codebook: profile: no profile groups to compare (add 'profile: [...]' to the codebook)")
+        key = ("composition", wave, others[0], tuple(gs), adjust, level)
+        if key not in self.memory:  # the brief asks twice (sample notes, mix notes)
+            self.memory[key] = compare_composition(self.codebook, self.waves.load(others[0]), self.waves.load(wave),
+                                                   others[0], wave, gs, adjust, level)
+        return self.memory[key]
+
 
 def _cell_columns(full, part) -> np.ndarray:
     """Positions (in the full level x metric order) of the cells of a selection."""

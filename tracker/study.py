@@ -35,6 +35,8 @@ class Study:
     # -- making and reading ------------------------------------------------------------
     @classmethod
     def create(cls, path: str | Path, codebook: str | Path) -> Study:
+        """Make a new study folder at ``path`` from the codebook file ``codebook`` (checked
+        first); refuses a folder that holds anything. Returns the new Study."""
         root = Path(path)
         book = load_codebook(codebook)  # validate before touching the disk
         if (root / store.LEDGER).exists():
@@ -160,63 +162,67 @@ class Study:
 
     def estimates(self, metrics=None, by=None, waves=None, level: float = 0.95, detail: bool = False,
                   interval: str = "wilson") -> pd.DataFrame:
-        """One row per wave x subgroup x metric: value, bases, SE, interval, reliability.
+        """Every metric's estimate in every wave, in total and in each subgroup.
 
-        ``by`` lists subgroup splits (default: every group in the codebook; [] for totals
-        only). Metrics not asked in a wave are left out of that wave. ``detail`` keeps the
-        sufficient statistics (variance, sum of squared weights, design df). ``interval``
-        chooses the interval of shares: 'wilson' or 'korn-graubard' (tracker.kinds.INTERVALS).
+        Parameters
+        ----------
+        metrics, by, waves : str or list, optional
+            The metrics, the subgroup splits ([] for totals only) and the waves; all by default.
+        level : float
+            The confidence level of the intervals.
+        detail : bool
+            Keep the sufficient statistics (variance, sum of squared weights, design df), from
+            which :func:`tracker.estimates.at_level` gives intervals at another level.
+        interval : {'wilson', 'korn-graubard'}
+            The interval of shares (means and balances use t).
+
+        Returns
+        -------
+        DataFrame
+            One row per wave x subgroup x metric: value, bases, SE, interval, reliability and
+            flags (docs/columns.md); metrics not asked in a wave are left out of it.
         """
-        from .estimates import COLUMNS
-
-        check_level(level)
-        from .estimates import estimates_frame
-
-        ms, gs, ws = self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves(waves)
-        dates, names = self.dates(), [m.name for m in ms]
-        key = ("estimates", tuple(ws), tuple(names), tuple(gs), level, interval)
-        if key not in self._cache:  # trends, surprises and charts ask for the same table again
-            parts = [(w, dates[w], self.cellstore.cells(w).select(names, gs)) for w in ws]
-            out = estimates_frame(parts, ms, level, interval)
-            self._cache[key] = out[out["base"] > 0].reset_index(drop=True)
-        out = self._cache[key]
-        return out.copy() if detail else out[COLUMNS]
+        return self.cellstore.estimates(self.pick_metrics(metrics), self.pick_groups(by), self.pick_waves(waves),
+                                        level, detail, interval)
 
     def changes(self, wave: str | None = None, against: str = "previous", by=None, metrics=None,
                 adjust: str = "bh", level: float = 0.95, mix: str | None = None, family: str = "brief"):
-        """Test what changed in ``wave`` (default: the latest) against another wave or pooled waves.
+        """Test what changed in ``wave`` against another wave or pooled waves.
 
-        The p-values are adjusted in one family. By default (``family="brief"``) that is
-        every metric in total and in every subgroup of the comparison, the family the brief
-        tests, whatever ``metrics`` and ``by`` narrow the rows to; ``family="asked"`` adjusts
-        only across the comparisons asked for (and says that it differs from the brief).
+        Parameters
+        ----------
+        wave : str, optional
+            The wave tested (default: the latest).
+        against : str
+            'previous', 'year-ago', 'pooled:K' or a stored wave's label.
+        by, metrics : str or list, optional
+            The rows shown (all by default); they do not narrow the family unless ``family``
+            is 'asked'.
+        adjust : {'bh', 'holm', 'by', 'none'}
+            The control of the many comparisons.
+        level : float
+            1 - the significance level; the unadjusted intervals' level.
+        mix : str, optional
+            A group: each total change also split into the part due to the sample's mix on it
+            and the part within its levels, with the change at the earlier wave's mix
+            (``result.mix``; docs/methods.md).
+        family : {'brief', 'asked'}
+            Adjust across every metric in total and in every subgroup (the brief's family), or
+            only across the comparisons asked for (the notes then say it differs from the brief).
 
-        With ``mix=GROUP``, each total change is also split into the part due to the sample's
-        mix on that group and the part within its levels, with the change standardised to
-        the earlier wave's mix and its test (``result.mix``; see docs/methods.md)."""
+        Returns
+        -------
+        ChangeResult
+            Every comparison (docs/columns.md: the verdict, the adjusted interval that agrees
+            with it, p-values, SE, df and the covariance used), the family and the notes.
+        """
         return self.comparisons.changes(wave, against, by, metrics, adjust, level, mix, family)
 
     def composition(self, wave: str | None = None, against: str = "previous", groups=None,
                     adjust: str = "bh", level: float = 0.95):
-        """Compare the sample's make-up on the profile groups with another wave."""
-        check_adjust(adjust)
-        check_level(level)
-        from .changes import resolve_against
-        from .composition import compare_composition
-
-        labels = self.pick_waves()
-        wave = wave or labels[-1]
-        if against.startswith("pooled:"):
-            raise TrackerError("composition compares two single waves; give previous, year-ago or a wave label")
-        others = list(resolve_against(labels, self.dates(), wave, against).waves)
-        gs = list(self.codebook.profile) if groups is None else self.pick_groups(groups)
-        if not gs:
-            raise TrackerError("codebook: profile: no profile groups to compare (add 'profile: [...]' to the codebook)")
-        key = ("composition", wave, others[0], tuple(gs), adjust, level)
-        if key not in self._cache:  # the brief asks twice (sample notes, mix notes)
-            self._cache[key] = compare_composition(self.codebook, self.load(others[0]), self.load(wave), others[0],
-                                                   wave, gs, adjust, level)
-        return self._cache[key]
+        """Compare the sample's weighted make-up on the profile groups (or ``groups``) with
+        another wave (Rao-Scott; tracker.composition.CompositionResult)."""
+        return self.comparisons.composition(wave, against, groups, adjust, level)
 
     # -- trends ---------------------------------------------------------------------------
     def window(self, last: int | None = None, since: str | None = None, until: str | None = None) -> list[str]:
@@ -229,13 +235,25 @@ class Study:
 
     def trends(self, metrics=None, by=None, last: int | None = None, since: str | None = None,
                adjust: str = "bh", level: float = 0.95, until: str | None = None, family: str = "brief"):
-        """Slope per year, extra variation, and the pattern (tracker.trends.PATTERNS) of every
-        metric x subgroup series (tracker.series.Series.trends; docs/methods.md).
+        """The pattern of every metric x subgroup series (tracker.trends.PATTERNS) with its slope.
 
-        The pattern tests are adjusted in one family: by default (``family="brief"``) every
-        metric in total and in every subgroup over the same waves, whatever ``metrics`` and
-        ``by`` narrow the rows to; ``family="asked"`` adjusts across only the series asked for
-        (``df.attrs["family"]`` says which, and its size)."""
+        Parameters
+        ----------
+        metrics, by : str or list, optional
+            The series shown (all by default).
+        last, since, until : optional
+            The waves: the last ``last``, from ``since``, up to ``until``.
+        adjust, level :
+            As :meth:`changes`.
+        family : {'brief', 'asked'}
+            Adjust the pattern tests across every metric and subgroup over the same waves (the
+            brief's family) or across only the series asked for.
+
+        Returns
+        -------
+        DataFrame
+            One row per series (docs/columns.md); ``attrs`` name the family and its size.
+        """
         return self.series.trends(metrics, by, last, since, adjust, level, until, family)
 
     def next_date(self) -> str:
@@ -244,16 +262,46 @@ class Study:
 
     def expected(self, base: float | None = None, metrics=None, by=None, date: str | None = None,
                  adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
-        """The expected range of the next wave for every metric x subgroup series
-        (tracker.series.Series.expected). ``base``: the next wave's expected respondents in
-        total (default: the mean of the last three waves); ``date`` its fieldwork date."""
+        """The expected range of the next wave for every metric x subgroup series.
+
+        Parameters
+        ----------
+        base : float, optional
+            The next wave's expected respondents in total (default: the mean of the last three
+            waves); each subgroup keeps its recent share of it.
+        metrics, by : str or list, optional
+            The series shown.
+        date : str, optional
+            The next wave's fieldwork date (default: the latest plus the usual gap).
+        adjust, level :
+            As :meth:`changes` (the patterns the ranges follow).
+
+        Returns
+        -------
+        DataFrame
+            Expected value, range, basis and model per series (tracker.expected.next_ranges).
+        """
         return self.series.expected(base, metrics, by, date, adjust, level)
 
     def surprises(self, wave: str | None = None, adjust: str = "bh", level: float = 0.95,
                   table: pd.DataFrame | None = None, date: str | None = None) -> pd.DataFrame:
-        """Every cell of ``wave`` (default: the latest) against the range the waves before it
-        predict, surprises marked under false discovery control (tracker.series.Series.surprises).
-        With ``table`` and ``date``, a wave not yet stored is judged (``check`` and ``add``)."""
+        """Every cell of a wave against the range the waves before it predict.
+
+        Parameters
+        ----------
+        wave : str, optional
+            The wave judged (default: the latest).
+        adjust, level :
+            The control of the many cells judged at once, and its level.
+        table, date : optional
+            A wave not yet stored (its harmonized table and fieldwork date), as ``check`` and
+            ``add`` judge it.
+
+        Returns
+        -------
+        DataFrame
+            Each cell's value, expected range and adjusted p; surprises marked.
+        """
         return self.series.surprises(wave, adjust, level, table, date)
 
     def smoothed(self, metrics=None, by=None, waves=None, level: float = 0.95,
