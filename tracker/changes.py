@@ -15,7 +15,7 @@ import pandas as pd
 from .errors import TrackerError
 from .kinds import KINDS
 from .methods.intervals import t_interval
-from .methods.tests import ADJUST_METHODS, adjust_pvalues, difference_test, family_level, paired_df, satterthwaite_df
+from .methods.tests import adjust_pvalues, difference_test, family_level, paired_df, satterthwaite_df
 from .options import check_adjust
 
 KEYS = ["metric", "group", "subgroup"]
@@ -98,22 +98,10 @@ class ChangeResult:
         return t.loc[keys.sort_values(["sig", "sub", "kind", "size"], kind="mergesort").index]
 
     def footer(self) -> list[str]:
-        alpha = 1 - self.level
-        family = self.family_size if self.family_size is not None else self.n_tests
-        lines = [
-            (f"{self.wave} against {self.against}: {self.n_tests} of these comparisons tested, {self.n_significant} "
-            f"significant after {ADJUST_METHODS[self.adjust]} adjustment across {family} comparisons at the "
-            f"{alpha:g} level ({len(self.table) - self.n_tests} not tested)."),
-        ]
-        lines.extend(self.notes)
-        level = float(self.table["adjusted_level"].iloc[0]) if len(self.table) else self.level
-        lines.append(f"The adjusted interval is at the {level:.2%} level, which agrees with the verdicts: zero lies "
-                     f"outside it exactly when a change is significant.")
-        used = [k for k in VERDICTS if k in set(self.table["verdict"])]
-        lines.append("Verdicts: " + "; ".join(f"{k}: {VERDICTS[k]}" for k in used) + ".")
-        lines.append("Significance is not importance; intervals cover sampling error only; a change in the "
-                     "sample's make-up can move a measure; small bases are flagged and never called significant.")
-        return lines
+        """The lines printed under the comparisons (tracker.wording.change_footer)."""
+        from .wording import change_footer
+
+        return change_footer(self)
 
 
 @dataclass(frozen=True)

@@ -19,10 +19,8 @@ from .codebook import Codebook
 from .estimates import cell_stats, design_labels, weights_of
 from .methods.distributions import norm_ppf, norm_sf
 from .methods.raoscott import rao_scott_table
-from .methods.tests import ADJUST_METHODS, adjust_pvalues
+from .methods.tests import adjust_pvalues
 from .methods.variance import taylor_covariance
-from .wording import count
-from .wording import p_text as wording_p
 
 
 def stacked_shares(labels: list[np.ndarray], levels: list[str], weights: list[np.ndarray], strata: list, psus: list,
@@ -86,15 +84,10 @@ class CompositionResult:
         return self.shares.merge(tests, on="group", how="left")
 
     def lines(self) -> list[str]:
-        out = []
-        for r in self.tests.itertuples():
-            verdict = "shifted" if r.shifted else "no significant shift"
-            out.append(f"{r.group}: {verdict} in the weighted mix (adjusted p {wording_p(r.p_adjusted)}); largest "
-                       f"move: {r.largest_move}")
-        out.append(f"{count(len(self.tests), 'profile group')} tested (Rao-Scott), "
-                   f"{int(self.tests['shifted'].sum())} shifted, after "
-                   f"{ADJUST_METHODS[self.adjust]} adjustment at the {1 - self.level:g} level.")
-        return out
+        """The make-up tests in lines (tracker.wording.composition_lines)."""
+        from .wording import composition_lines
+
+        return composition_lines(self)
 
 
 TEST_COLUMNS = ["group", "base_from", "base_to", "pearson_chi2", "design_effect", "df", "chi2_corrected", "p_chi2",

@@ -19,8 +19,9 @@ import math
 
 from .names import ADJUST_METHODS
 
-__all__ = ["CAUTIONS", "change_sentence", "count", "design_lines", "fixed", "held_sentence", "method_lines",
-           "not_significant_sentence", "not_tested_sentence", "p_text", "plural", "shown_change", "trend_sentence"]
+__all__ = ["CAUTIONS", "change_footer", "change_sentence", "composition_lines", "count", "design_lines",
+           "fixed", "held_sentence", "method_lines", "not_significant_sentence", "not_tested_sentence",
+           "p_text", "plural", "shown_change", "trend_sentence"]
 
 
 def _kinds():
@@ -252,3 +253,41 @@ def span(kind: str, lo: float, hi: float) -> str:
     """'-4.5 to +3.7 points'"""
     k = _kinds()[kind]
     return f"{lo * k.scale:+.{k.decimals}f} to {k.fmt_change(hi, signed=True)}"
+
+
+# -- lines under tables and in add / check ----------------------------------------------------
+
+def change_footer(result) -> list[str]:
+    """The lines under a table of comparisons (a tracker.changes.ChangeResult): what was
+    tested in which family, the notes, the agreeing level, the verdicts in use, the cautions."""
+    from .changes import VERDICTS
+
+    family = result.family_size if result.family_size is not None else result.n_tests
+    lines = [
+        (f"{result.wave} against {result.against}: {result.n_tests} of these comparisons tested, "
+         f"{result.n_significant} significant after {ADJUST_METHODS[result.adjust]} adjustment across {family} "
+         f"comparisons at the {1 - result.level:g} level ({len(result.table) - result.n_tests} not tested)."),
+        *result.notes,
+    ]
+    level = float(result.table["adjusted_level"].iloc[0]) if len(result.table) else result.level
+    lines.append(f"The adjusted interval is at the {level:.2%} level, which agrees with the verdicts: zero lies "
+                 f"outside it exactly when a change is significant.")
+    used = [k for k in VERDICTS if k in set(result.table["verdict"])]
+    lines.append("Verdicts: " + "; ".join(f"{k}: {VERDICTS[k]}" for k in used) + ".")
+    lines.append("Significance is not importance; intervals cover sampling error only; a change in the "
+                 "sample's make-up can move a measure; small bases are flagged and never called significant.")
+    return lines
+
+
+def composition_lines(result) -> list[str]:
+    """The make-up tests of two waves (a tracker.composition.CompositionResult) in lines, as
+    `composition`, `check` and `add` print them."""
+    out = []
+    for r in result.tests.itertuples():
+        verdict = "shifted" if r.shifted else "no significant shift"
+        out.append(f"{r.group}: {verdict} in the weighted mix (adjusted p {p_text(r.p_adjusted)}); largest "
+                   f"move: {r.largest_move}")
+    out.append(f"{count(len(result.tests), 'profile group')} tested (Rao-Scott), "
+               f"{int(result.tests['shifted'].sum())} shifted, after "
+               f"{ADJUST_METHODS[result.adjust]} adjustment at the {1 - result.level:g} level.")
+    return out
