@@ -200,7 +200,27 @@ def check_file(study, file, wave, date, encoding, replace, rake=False, allow_dup
                                         f"Use --allow-duplicate if the two waves really are identical"))
     if not any(p.severity == "error" for p in found) and len(table):
         problems.extend(design_problems(study.codebook, table))
+    problems.extend(_label_problems_of_file(study, wf, label, date))
     return CheckReport(str(file), len(wf.table), tuple(problems)), table, wf
+
+
+def _label_problems_of_file(study, wf, label: str | None, date: str | None) -> list[Problem]:
+    """A labelled file's value labels and missing codes against the codebook, and its labels
+    against those of the latest wave fielded before it (tracker.statfiles.label_problems)."""
+    if wf.labels is None:
+        return []
+    from .statfiles import label_problems
+
+    iso = None
+    if date:
+        try:
+            iso = parse_date(date)
+        except TrackerError:
+            iso = None
+    before = [w for w in study.wave_entries if w.get("value_labels") and w["label"] != label
+              and (iso is None or w["date"] < iso)]
+    earlier = (before[-1]["label"], before[-1]["value_labels"]) if before else None
+    return [Problem("warning", col, msg) for col, msg in label_problems(study.codebook, wf.labels, earlier)]
 
 
 def design_problems(book: Codebook, table: pd.DataFrame) -> list[Problem]:
@@ -284,6 +304,10 @@ def _store(study, file, wave: str, iso: str, table: pd.DataFrame, wf, weighting:
         "added": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
         "weighting": weighting,
     }
+    if wf.labels is not None:  # the file's value labels, for the next labelled wave to be compared with
+        from .statfiles import labels_for_ledger
+
+        entry["value_labels"] = labels_for_ledger(book, wf.labels)
     current = study.reload_ledger()
     ledger = {**current, "waves": [dict(w) for w in current["waves"]]}
     old = [w for w in ledger["waves"] if w["label"] == wave]

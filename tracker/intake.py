@@ -13,12 +13,15 @@ import io
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
 from .codebook import Codebook, Variable, _fmt_code
 from .errors import TrackerError
+from .statfiles import FORMATS as STAT_FORMATS
+from .statfiles import read_stat_file
 
 MAX_EXAMPLES = 5
 
@@ -53,6 +56,7 @@ class WaveFile:
     sha256: str
     problems: list[Problem] = field(default_factory=list)
     content_sha256: str = ""  # of the harmonized table, set by Study's check
+    labels: Any = None  # a statistics package's value labels and missing codes (tracker.statfiles.FileLabels)
 
 
 def file_sha256(path: Path) -> str:
@@ -70,6 +74,7 @@ MAX_WEIGHT_RATIO = 1e6
 
 #: What the first bytes of a file say it is, whatever its name.
 MAGIC = ((b"PAR1", "Parquet", ".parquet"), (b"PK\x03\x04", "XLSX (a zip archive)", ".xlsx"),
+         (b"$FL2", "an SPSS data file", ".sav"), (b"$FL3", "a compressed SPSS data file", ".zsav"),
          (b"\xff\xfe", "UTF-16 text", None), (b"\xfe\xff", "UTF-16 text", None))
 
 
@@ -95,6 +100,8 @@ def _sniff(path: Path, suffix: str) -> str | None:
     a CSV file of UTF-16 text without a byte-order mark, return that encoding."""
     with open(path, "rb") as fh:
         head = fh.read(4096)
+    if suffix in STAT_FORMATS and not head.startswith((b"PAR1", b"PK\x03\x04")):
+        return None  # pyreadstat checks the file's own signature and says what is wrong
     if head.startswith(_OLE2):
         raise TrackerError(f"{path}: the file is an old-style Excel workbook (.xls), which is not read; open it "
                            f"and save it as .xlsx, or as CSV (UTF-8)")
@@ -123,7 +130,9 @@ def _sniff(path: Path, suffix: str) -> str | None:
 def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | None = None,
                    header_row: int | None = None) -> WaveFile:
     """Read CSV (delimiter sniffed, UTF-8 with or without BOM by default, UTF-16 found
-    without one), Parquet or XLSX, within the bounds of :mod:`tracker.limits`.
+    without one), Parquet, XLSX, or a statistics package's file (SPSS .sav/.zsav/.por,
+    Stata .dta, SAS .sas7bdat/.xpt, with its value labels: tracker.statfiles), within the
+    bounds of :mod:`tracker.limits`.
 
     XLSX: ``sheet`` names the sheet (required when several hold data); ``header_row`` the
     spreadsheet row holding the column names (default: found as the first row that fills
@@ -140,11 +149,15 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
         raise TrackerError(f"{path}: cannot be read ({(exc.strerror or str(exc)).lower()})") from None
     suffix = path.suffix.lower()
     found_encoding = None
-    if not (encoding and suffix not in (".parquet", ".xlsx", ".xlsm")):
+    if not (encoding and suffix not in (".parquet", ".xlsx", ".xlsm", *STAT_FORMATS)):
         found_encoding = _sniff(path, suffix)
     problems: list[Problem] = []
+    labels = None
     if suffix == ".parquet":
         table, problems = _read_parquet(path)
+        first_row = 1
+    elif suffix in STAT_FORMATS:
+        table, labels = read_stat_file(path)
         first_row = 1
     elif suffix in (".xlsx", ".xlsm"):
         table, first_row, problems = _read_xlsx(path, sheet, header_row)
@@ -159,7 +172,7 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
         raise TrackerError(f"{path}: the file has no columns")
     if len(table) == 0:
         raise TrackerError(f"{path}: the file has a header but no respondents")
-    return WaveFile(path, table, first_row, sha, problems)
+    return WaveFile(path, table, first_row, sha, problems, labels=labels)
 
 
 #: Control characters (C0, DEL, C1): never part of an id or a design label.
@@ -544,6 +557,8 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
     """
     table = _by_position(wf.table)
     add = _Found(wf.first_row)
+    if wf.path.suffix.lower() == ".por":
+        table = _names_without_case(codebook, table, add)
     if not _header_rules(list(table.columns), add):
         return pd.DataFrame(), add.problems
     source, claimed = _sources(codebook, table, add)
@@ -561,6 +576,26 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
     design = [c for c in codebook.design_columns() if c in out]
     harmonized = pd.DataFrame({c: out[c] for c in design + present}, index=table.index).reset_index(drop=True)
     return harmonized, add.problems
+
+
+def _names_without_case(codebook: Codebook, table: pd.DataFrame, add: _Found) -> pd.DataFrame:
+    """An SPSS portable file stores its names in capitals (SPSS names ignore case): each
+    codebook name the file holds only in another case is read under the codebook's spelling."""
+    wanted = [*codebook.design_columns()]
+    for v in codebook.variables.values():
+        wanted += list(v.options) if v.type == "multi" else [v.name, *v.aliases]
+    by_upper: dict[str, list[str]] = {}
+    for c in table.columns:
+        by_upper.setdefault(str(c).upper(), []).append(c)
+    renames = {}
+    for name in wanted:
+        found = by_upper.get(name.upper(), [])
+        if name not in table.columns and len(found) == 1:
+            renames[found[0]] = name
+    if renames:
+        add("warning", "", f"{len(renames)} column name(s) matched to the codebook without regard to case (an SPSS "
+                           f"portable file stores names in capitals)")
+    return table.rename(columns=renames)
 
 
 def _header_rules(cols: list, add: _Found) -> bool:
