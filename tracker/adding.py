@@ -169,6 +169,16 @@ def _date_problems(study, label: str | None, date: str | None) -> list[Problem]:
     if not EARLIEST_DATE <= dt.date.fromisoformat(iso) <= latest:
         out.append(Problem("warning", "", f"fieldwork date {iso} lies outside {EARLIEST_DATE} to "
                                           f"{latest} (a year from today); is it a typing slip?"))
+    if label is not None:
+        pairs = [(w["label"], w["date"]) for w in study.wave_entries if w["label"] != label] + [(label, iso)]
+        for a, b in store.order_clashes(pairs):
+            if label in (a, b):
+                other = b if a == label else a
+                when = study.dates()[other]
+                side = "before" if iso < when else "after"
+                out.append(Problem("warning", "", f"fieldwork date {iso} puts wave {label} {side} wave {other} "
+                                                  f"({when}), though their labels sort the other way; is the date "
+                                                  f"or the label a slip?"))
     return out
 
 

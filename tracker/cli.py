@@ -335,12 +335,16 @@ def waves_cmd(study, fmt, output):
     if fmt == "table" and not output:
         from .plain import fit_rows
 
-        rows = [{"wave": r["wave"], "fieldwork": r["fieldwork_date"], "respondents": f"{r['respondents']:,}",
-                 "weighting": r["weighting"], "added": str(r["added_at"])[:10], "from file": r["source_file"]}
-                for r in rows]
+        marked = [r["wave"] for r in rows if r["order"]]
+        rows = [{"wave": r["wave"] + (" !" if r["order"] else ""), "fieldwork": r["fieldwork_date"],
+                 "respondents": f"{r['respondents']:,}", "weighting": r["weighting"],
+                 "added": str(r["added_at"])[:10], "from file": r["source_file"]} for r in rows]
         columns = ["wave", "fieldwork", "respondents", "weighting", "added", "from file"]
         echo(fit_rows(rows, columns, terminal_width_plain(), right=("respondents",),
                       shrink=("from file", "weighting")), nl=False)
+        if marked:
+            echo(f"! {', '.join(marked)}: the fieldwork dates put these waves in another order than their labels; "
+                 f"a date typed a year off? (tracker add --replace with the right date mends it)")
         return
     emit_rows(rows, store.WAVE_COLUMNS, fmt, output, right=("respondents",))
 

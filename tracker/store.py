@@ -266,7 +266,7 @@ def read_ledger(root: Path) -> dict:
     return _normalised(ledger)
 
 
-WAVE_COLUMNS = ["wave", "fieldwork_date", "respondents", "source_file", "added_at", "weighting"]
+WAVE_COLUMNS = ["wave", "fieldwork_date", "respondents", "source_file", "added_at", "weighting", "order"]
 
 
 def weighting_words(entry: dict) -> str:
@@ -282,11 +282,33 @@ def weighting_words(entry: dict) -> str:
     return kind
 
 
+def _sortable_form(label: str) -> str | None:
+    """The form of a label that sorts as time (a year first: 2025-Q1, 2025-03, 2025-03-31),
+    each digit 9 and each letter A; None for labels that need not sort (W7, spring)."""
+    form = re.sub(r"[A-Za-z]", "A", re.sub(r"[0-9]", "9", label))
+    return form if form.startswith("9999") else None
+
+
+def order_clashes(pairs: list[tuple[str, str]]) -> list[tuple[str, str]]:
+    """(label, other) for stored waves whose fieldwork dates put them in another order than
+    their labels, where both labels are of one form that sorts as time (``pairs``: (label,
+    ISO date)). A date typed a year off shows here."""
+    out = []
+    for a, da in pairs:
+        for b, db in pairs:
+            fa, fb = _sortable_form(a), _sortable_form(b)
+            if a < b and fa is not None and fa == fb and da > db:
+                out.append((a, b))
+    return out
+
+
 def wave_rows(ledger: dict) -> list[dict]:
     """The stored waves in fieldwork order, one plain row each (no pandas: `tracker waves`
     answers at once)."""
+    clash = {x for pair in order_clashes([(w["label"], w["date"]) for w in ledger["waves"]]) for x in pair}
     return [{"wave": w["label"], "fieldwork_date": w["date"], "respondents": w["rows"], "source_file": w["source"],
-             "added_at": w.get("added", ""), "weighting": weighting_words(w)}
+             "added_at": w.get("added", ""), "weighting": weighting_words(w),
+             "order": "date out of label order" if w["label"] in clash else ""}
             for w in sorted(ledger["waves"], key=lambda w: w["date"])]
 
 
