@@ -470,3 +470,11 @@ def test_a_population_smaller_than_the_sample_refuses_the_wave(tmp_path):
     assert result.exit_code == 1, result.output
     assert "population: stratum 1: the wave holds more clusters than the population declared" in result.output
     assert snapshot(tmp_path / "s") == before
+
+
+def test_a_column_and_its_alias_both_present_is_said_once(base):
+    """The message says which columns clash and to keep one, and does not also call the
+    variable's column missing (common practice, no source: a message must not contradict itself)."""
+    result = run("add", base / "study", both_names(base), "--wave", "2025-Q2", "--date", "2025-06-30")
+    assert result.exit_code == 1 and "all map to variable satisfaction" in result.output
+    assert "is missing for variable satisfaction" not in result.output

@@ -569,7 +569,7 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
     known = set(source.values()) | set(codebook.design_columns())
     known |= {c for found in claimed.values() for c in found}
     extra = [c for c in table.columns if c not in known]
-    present = _variable_rules(codebook, table, label, order, source, extra, out, add)
+    present = _variable_rules(codebook, table, label, order, source, extra, out, add, set(claimed))
     if extra:
         shown = ", ".join(extra[:10]) + (" ..." if len(extra) > 10 else "")
         add.problems.append(Problem("warning", "", f"{len(extra)} column(s) not in the codebook are left out: {shown}"))
@@ -705,12 +705,15 @@ def _missing_hint(v: Variable, extra: list[str]) -> str:
 
 
 def _variable_rules(codebook: Codebook, table: pd.DataFrame, label: str, order: dict[str, str],
-                    source: dict[str, str], extra: list[str], out: dict, add: _Found) -> list[str]:
+                    source: dict[str, str], extra: list[str], out: dict, add: _Found,
+                    claimed: frozenset[str] | set[str] = frozenset()) -> list[str]:
     """Every variable: present when the codebook expects it in this wave, each column's
     values checked and recoded (:func:`_check_column`); the harmonized columns in order."""
     present_cols: list[str] = []
     hinted = 0
     for v in codebook.variables.values():
+        if v.name in claimed:  # several columns map to it: said once, by _sources
+            continue
         expected = wave_in_span(label, v.first_wave, v.last_wave, order)
         file_cols = list(v.options) if v.type == "multi" else [v.name]
         present = [c for c in file_cols if c in source]
