@@ -36,3 +36,18 @@ def test_check_add_and_waves_name_a_date_out_of_label_order(tmp_path):
     listed = runner.invoke(main, ["waves", str(study.root)]).output
     assert "2024-Q4 !" in listed and "2024-Q3 !" in listed
     assert "the fieldwork dates put these waves in another order than their labels" in listed
+
+
+def test_a_recode_applied_at_add_is_reported_with_its_count(tmp_path):
+    """The demo codebook recodes ticket code 4 -> 3 in 2023-Q1; add says so, with the rows
+    counted from the file itself (common practice, no source: nothing changes data silently)."""
+    import pandas as pd
+
+    study = Study.create(tmp_path / "s", ROOT / "waves" / "codebook.yaml")
+    report = study.add(ROOT / "waves" / "riders-2023-Q1.csv", "2023-Q1", "2023-02-20")
+    fours = int((pd.read_csv(ROOT / "waves" / "riders-2023-Q1.csv")["ticket"] == 4).sum())
+    assert fours > 0
+    assert any(f"recoded as the codebook says for 2023-Q1: code 4 -> 3 in {fours:,} row(s)" in w
+               for w in report.warnings)
+    later = study.add(ROOT / "waves" / "riders-2023-Q3.csv", "2023-Q3", "2023-08-20")
+    assert not any("recoded" in w for w in later.warnings)  # the recode is scoped to its waves

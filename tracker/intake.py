@@ -768,8 +768,14 @@ def _check_column(v: Variable, col: str, values: pd.Series, label: str, add) -> 
     for rc in v.recode:
         if label in rc.waves:
             old = num.copy()
+            done = []
             for a, b in rc.map.items():
-                num[old == a] = b
+                hit = old == a
+                num[hit] = b
+                if hit.any():
+                    done.append(f"code {_fmt_code(a)} -> {_fmt_code(b)} in {int(hit.sum()):,} row(s)")
+            if done:  # said, so that a recode is never silent
+                add("warning", col, f"recoded as the codebook says for {label}: {'; '.join(done)}")
     allowed = np.array(sorted(set(v.codes) | set(v.missing)), dtype=float)
     unknown = ok & ~np.isin(num, allowed)
     if unknown.any():
