@@ -57,6 +57,7 @@ class WaveFile:
     problems: list[Problem] = field(default_factory=list)
     content_sha256: str = ""  # of the harmonized table, set by Study's check
     labels: Any = None  # a statistics package's value labels and missing codes (tracker.statfiles.FileLabels)
+    row_numbers: Any = None  # each respondent's line (CSV) or sheet row (XLSX) as the file numbers it
 
 
 def file_sha256(path: Path) -> str:
@@ -153,6 +154,7 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
         found_encoding = _sniff(path, suffix)
     problems: list[Problem] = []
     labels = None
+    row_numbers = None
     if suffix == ".parquet":
         table, problems = _read_parquet(path)
         first_row = 1
@@ -160,10 +162,11 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
         table, labels = read_stat_file(path)
         first_row = 1
     elif suffix in (".xlsx", ".xlsm"):
-        table, first_row, problems = _read_xlsx(path, sheet, header_row)
+        table, row_numbers, problems = _read_xlsx(path, sheet, header_row)
+        first_row = int(row_numbers[0]) if len(row_numbers) else 2
     else:
-        table = _read_csv(path, encoding or found_encoding)
-        first_row = 2
+        table, row_numbers = _read_csv(path, encoding or found_encoding)
+        first_row = int(row_numbers[0]) if len(row_numbers) else 2
         if found_encoding:
             problems.append(Problem("warning", "", f"read as {found_encoding.upper()} text (no byte-order mark)"))
     table.columns = [str(c).strip() for c in table.columns]
@@ -172,7 +175,9 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
         raise TrackerError(f"{path}: the file has no columns")
     if len(table) == 0:
         raise TrackerError(f"{path}: the file has a header but no respondents")
-    return WaveFile(path, table, first_row, sha, problems, labels=labels)
+    if row_numbers is not None and len(row_numbers) != len(table):
+        row_numbers = None  # numbered by position then, from first_row
+    return WaveFile(path, table, first_row, sha, problems, labels=labels, row_numbers=row_numbers)
 
 
 #: Control characters (C0, DEL, C1): never part of an id or a design label.
@@ -280,13 +285,16 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
         raise TrackerError(f"{path}: cannot be read as XLSX ({str(exc)[:200]})") from None
     sheet = _xlsx_sheet(path, book, sheet)
     ws = book[sheet]
-    rows = [list(r) for r in ws.iter_rows(values_only=True)]
+    # rows from the sheet's first row, so that rows[i] is sheet row i + 1
+    rows = [list(r) for r in ws.iter_rows(min_row=1, values_only=True)]
     _xlsx_refusals(path, sheet, ws, formulas[sheet])
     header_row = _xlsx_header_row(path, sheet, rows, header_row)
     header = rows[header_row - 1] if rows else []
     keep = [j for j, v in enumerate(header) if v is not None and str(v).strip() != ""]
-    body = [[r[j] if j < len(r) else None for j in keep] for r in rows[header_row:]]
-    body = [r for r in body if any(v is not None and str(v).strip() != "" for v in r)]
+    numbered = [(header_row + 1 + i, [r[j] if j < len(r) else None for j in keep])
+                for i, r in enumerate(rows[header_row:])]
+    numbered = [(n, r) for n, r in numbered if any(v is not None and str(v).strip() != "" for v in r)]
+    body = [r for _, r in numbered]
     names = [str(header[j]).strip() for j in keep]
     dupes = _twice(names)
     if dupes:
@@ -296,7 +304,7 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     problems = [Problem("warning", "", f"sheet {sheet}: column names read from row {header_row}; rows above it "
                                        f"left out")] if header_row > 1 else []
     problems += _xlsx_hidden_rows(sheet, ws, rows, header_row)
-    return table, header_row + 1, problems
+    return table, np.array([n for n, _ in numbered], dtype=np.int64), problems
 
 
 def _xlsx_sheet(path: Path, book, sheet: str | None) -> str:
@@ -432,7 +440,19 @@ def _twice(names: list[str]) -> list[str]:
     return sorted(n for n, k in Counter(names).items() if k > 1)
 
 
-def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
+def _record_lines(text: str, delimiter: str) -> list[tuple[int, int]]:
+    """(the line a record starts on, its number of fields) of every non-blank record: the file's
+    own line numbers, whatever blank lines or quoted line breaks come before."""
+    reader = csv.reader(io.StringIO(text), delimiter=delimiter)
+    out, start = [], 1
+    for record in reader:
+        if record:
+            out.append((start, len(record)))
+        start = reader.line_num + 1
+    return out
+
+
+def _read_csv(path: Path, encoding: str | None) -> tuple[pd.DataFrame, np.ndarray]:
     """A delimited text file as text cells: decoded (:func:`_decode`), its delimiter sniffed,
     its header checked (:func:`_csv_header`), every row as wide as the header."""
     text = _decode(path, encoding)
@@ -443,7 +463,7 @@ def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
     except csv.Error:
         delimiter = ","
     names, blank_tail = _csv_header(path, first, sample, delimiter)
-    widths = [(i, len(r)) for i, r in enumerate(csv.reader(io.StringIO(text), delimiter=delimiter), 1) if r]
+    widths = _record_lines(text, delimiter)
     want = widths[0][1] if widths else 0
     odd = [(i, n) for i, n in widths if n != want]
     if odd:
@@ -459,7 +479,7 @@ def _read_csv(path: Path, encoding: str | None) -> pd.DataFrame:
         tail = list(table.columns[len(names) - blank_tail:])
         if (table[tail] == "").all().all():
             table = table.drop(columns=tail)
-    return table
+    return table, np.array([line for line, _ in widths[1:]], dtype=np.int64)
 
 
 def _decode(path: Path, encoding: str | None) -> str:
@@ -528,20 +548,23 @@ def wave_in_span(label: str, first: str | None, last: str | None, order: dict[st
     return not (last is not None and label != last and before(last, label))
 
 
-def _rows(mask: np.ndarray, first_row: int) -> tuple[tuple[int, ...], int]:
+def _rows(mask: np.ndarray, first_row: int, row_numbers=None) -> tuple[tuple[int, ...], int]:
+    """The first rows of ``mask`` as the file numbers them, and how many there are."""
     idx = np.flatnonzero(mask)
+    if row_numbers is not None:
+        return tuple(int(row_numbers[i]) for i in idx[:MAX_EXAMPLES]), int(idx.size)
     return tuple(int(i) + first_row for i in idx[:MAX_EXAMPLES]), int(idx.size)
 
 
 class _Found:
     """The problems found in one wave file, each with its rows (as the file numbers them)."""
 
-    def __init__(self, first_row: int):
-        self.first_row = first_row
+    def __init__(self, first_row: int, row_numbers=None):
+        self.first_row, self.row_numbers = first_row, row_numbers
         self.problems: list[Problem] = []
 
     def __call__(self, sev: str, col: str, msg: str, mask=None) -> None:
-        rows, count = _rows(mask, self.first_row) if mask is not None else ((), 0)
+        rows, count = _rows(mask, self.first_row, self.row_numbers) if mask is not None else ((), 0)
         self.problems.append(Problem(sev, col, msg, rows, count))
 
 
@@ -556,7 +579,7 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
     columns (:func:`_design_rules`), the variables (:func:`_variable_rules`).
     """
     table = _by_position(wf.table)
-    add = _Found(wf.first_row)
+    add = _Found(wf.first_row, wf.row_numbers)
     if wf.path.suffix.lower() == ".por":
         table = _names_without_case(codebook, table, add)
     if not _header_rules(list(table.columns), add):
