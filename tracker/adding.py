@@ -108,11 +108,11 @@ def content_fingerprint(table: pd.DataFrame) -> str:
 
 
 def check(study, file, wave=None, date=None, encoding=None, replace=False, allow_duplicate=False, sheet=None,
-          header_row=None) -> CheckReport:
+          header_row=None, decimal=None) -> CheckReport:
     """Check a wave file against the codebook and the stored waves (Study.check); with its
     date, its cells are also judged against the ranges the stored waves predict."""
     report, table, _ = check_file(study, file, wave, date, encoding, replace, allow_duplicate=allow_duplicate,
-                                  sheet=sheet, header_row=header_row)
+                                  sheet=sheet, header_row=header_row, decimal=decimal)
     if report.ok and date and len(table):
         report = _replace(report, surprises=tuple(_surprise_lines(study, table, wave, parse_date(date))))
     return report
@@ -183,9 +183,9 @@ def _date_problems(study, label: str | None, date: str | None) -> list[Problem]:
 
 
 def check_file(study, file, wave, date, encoding, replace, rake=False, allow_duplicate=False, sheet=None,
-               header_row=None):
+               header_row=None, decimal=None):
     """(CheckReport, harmonized table, the file read) of a wave file against the study."""
-    wf = read_wave_file(file, encoding, sheet=sheet, header_row=header_row)
+    wf = read_wave_file(file, encoding, sheet=sheet, header_row=header_row, decimal=decimal)
     label = wave
     problems: list[Problem] = [*wf.problems, *_label_problems(study, label, replace),
                                *_date_problems(study, label, date), *_reference_problems(study, label)]
@@ -248,7 +248,7 @@ def design_problems(book: Codebook, table: pd.DataFrame) -> list[Problem]:
 
 
 def add(study, file, wave: str, date: str, encoding=None, replace=False, rake=False, cap=None,
-        allow_duplicate=False, sheet=None, header_row=None) -> AddReport:
+        allow_duplicate=False, sheet=None, header_row=None, decimal=None) -> AddReport:
     """Validate, harmonize and store a wave (Study.add); raise TrackerError, the study
     unchanged, if it cannot be. The whole add runs under the study's write lock, against the
     ledger as it stands once the lock is held, so two adds at once are serialised."""
@@ -257,7 +257,8 @@ def add(study, file, wave: str, date: str, encoding=None, replace=False, rake=Fa
     iso = parse_date(date)
     with store.study_lock(study.root):
         study.reload_ledger()
-        return _add_locked(study, file, wave, iso, encoding, replace, rake, cap, allow_duplicate, sheet, header_row)
+        return _add_locked(study, file, wave, iso, encoding, replace, rake, cap, allow_duplicate, sheet, header_row,
+                           decimal)
 
 
 def _summary(study, table: pd.DataFrame, cells) -> dict:
@@ -339,13 +340,14 @@ def _store(study, file, wave: str, iso: str, table: pd.DataFrame, wf, weighting:
 
 
 def _add_locked(study, file, wave, iso, encoding, replace, rake, cap, allow_duplicate, sheet,
-                header_row) -> AddReport:
+                header_row, decimal=None) -> AddReport:
     from .progress import step
 
     step(f"adding {wave}", 0, 4, "reading and checking")
     book = study.codebook
     rake = rake or bool(book.rake.get("always"))
-    report, table, wf = check_file(study, file, wave, iso, encoding, replace, rake, allow_duplicate, sheet, header_row)
+    report, table, wf = check_file(study, file, wave, iso, encoding, replace, rake, allow_duplicate, sheet, header_row,
+                                   decimal)
     if not report.ok:
         raise TrackerError("\n".join(["cannot add " + str(file) + ":"] + report.lines()))
     wf.table = None  # the file's cells as text are no longer needed (the largest object of a big wave)

@@ -246,12 +246,14 @@ CHECK_COLUMNS = ["file", "severity", "column", "message", "rows", "count"]
 @wave_option("The label the wave would get (checks it is free).")
 @click.option("--date", help="The fieldwork date it would get (ISO).")
 @click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
+@click.option("--decimal", type=click.Choice([".", ","]), default=None,
+              help="The decimal mark of a CSV file's numbers (',' for 1,25; default '.').")
 @click.option("--sheet", help="XLSX: the sheet to read (needed when several sheets hold data).")
 @click.option("--header-row", type=click.IntRange(min=1),
               help="XLSX: the row holding the column names (default: found).")
 @_plain_fmt_option
 @user_errors
-def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output):
+def check_cmd(study, file, wave, date, encoding, decimal, sheet, header_row, fmt, output):
     """List every problem of a wave file against the codebook; change nothing.
 
     Exit 0 when the file can be added (warnings allowed), 1 when it cannot.
@@ -263,7 +265,8 @@ def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output)
         from .outputs import check_output
 
         check_output(output, inputs=[file])
-    report = Study(study).check(file, wave=wave, date=date, encoding=encoding, sheet=sheet, header_row=header_row)
+    report = Study(study).check(file, wave=wave, date=date, encoding=encoding, sheet=sheet, header_row=header_row,
+                                decimal=decimal)
     n_err = len(report.errors)
     n_warn = len(report.problems) - n_err
     verdict = "can be added" if report.ok else "cannot be added"
@@ -284,6 +287,8 @@ def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output)
 @click.option("--wave", required=True, metavar="LABEL", help="Wave label, e.g. 2025-Q3.")
 @click.option("--date", required=True, help="Fieldwork date (ISO, e.g. 2025-09-30).")
 @click.option("--encoding", help="Text encoding of a CSV file (default UTF-8).")
+@click.option("--decimal", type=click.Choice([".", ","]), default=None,
+              help="The decimal mark of a CSV file's numbers (',' for 1,25; default '.').")
 @click.option("--replace", is_flag=True, help="Replace a stored wave of the same label (the old version is kept).")
 @click.option("--allow-duplicate", is_flag=True,
               help="Store the wave even though its data equal a stored wave's (refused by default: a re-delivery).")
@@ -295,7 +300,8 @@ def check_cmd(study, file, wave, date, encoding, sheet, header_row, fmt, output)
 @click.option("--format", "fmt", type=click.Choice(["table", "json"]), default="table", show_default=True,
               help="table: the summary in lines; json: the same as one document.")
 @user_errors
-def add_cmd(study, file, wave, date, encoding, replace, allow_duplicate, rake, cap, sheet, header_row, fmt):
+def add_cmd(study, file, wave, date, encoding, decimal, replace, allow_duplicate, rake, cap, sheet, header_row,
+            fmt):
     """Check, harmonize and store a wave.
 
     \b
@@ -305,7 +311,7 @@ def add_cmd(study, file, wave, date, encoding, replace, allow_duplicate, rake, c
 
     report = Study(study).add(file, wave=wave, date=date, encoding=encoding, replace=replace,
                               rake=rake, cap=parse_cap(cap) if cap else None, allow_duplicate=allow_duplicate,
-                              sheet=sheet, header_row=header_row)
+                              sheet=sheet, header_row=header_row, decimal=decimal)
     if fmt == "json":
         import dataclasses
         import json

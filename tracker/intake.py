@@ -129,7 +129,7 @@ def _sniff(path: Path, suffix: str) -> str | None:
 
 
 def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | None = None,
-                   header_row: int | None = None) -> WaveFile:
+                   header_row: int | None = None, decimal: str | None = None) -> WaveFile:
     """Read CSV (delimiter sniffed, UTF-8 with or without BOM by default, UTF-16 found
     without one), Parquet, XLSX, or a statistics package's file (SPSS .sav/.zsav/.por,
     Stata .dta, SAS .sas7bdat/.xpt, with its value labels: tracker.statfiles), within the
@@ -165,7 +165,7 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
         table, row_numbers, problems = _read_xlsx(path, sheet, header_row)
         first_row = int(row_numbers[0]) if len(row_numbers) else 2
     else:
-        table, row_numbers = _read_csv(path, encoding or found_encoding)
+        table, row_numbers = _read_csv(path, encoding or found_encoding, decimal)
         first_row = int(row_numbers[0]) if len(row_numbers) else 2
         if found_encoding:
             problems.append(Problem("warning", "", f"read as {found_encoding.upper()} text (no byte-order mark)"))
@@ -178,6 +178,17 @@ def read_wave_file(path: str | Path, encoding: str | None = None, sheet: str | N
     if row_numbers is not None and len(row_numbers) != len(table):
         row_numbers = None  # numbered by position then, from first_row
     return WaveFile(path, table, first_row, sha, problems, labels=labels, row_numbers=row_numbers)
+
+
+#: A number written with a decimal comma (1,25 or -0,5): read with --decimal ,.
+DECIMAL_COMMA = r"^\s*(-?\d+),(\d+)\s*$"
+
+
+def _decimal_hint(example: str) -> str:
+    """For a number that failed to read: the cause, when it is a decimal comma."""
+    if re.fullmatch(DECIMAL_COMMA, example):
+        return "; the file writes decimals with a comma: give --decimal , (or save the file with decimal points)"
+    return ""
 
 
 #: Control characters (C0, DEL, C1): never part of an id or a design label.
@@ -452,9 +463,12 @@ def _record_lines(text: str, delimiter: str) -> list[tuple[int, int]]:
     return out
 
 
-def _read_csv(path: Path, encoding: str | None) -> tuple[pd.DataFrame, np.ndarray]:
+def _read_csv(path: Path, encoding: str | None, decimal: str | None = None) -> tuple[pd.DataFrame, np.ndarray]:
     """A delimited text file as text cells: decoded (:func:`_decode`), its delimiter sniffed,
-    its header checked (:func:`_csv_header`), every row as wide as the header."""
+    its header checked (:func:`_csv_header`), every row as wide as the header. With
+    ``decimal=','`` a number written with a decimal comma (1,25) is read as 1.25."""
+    if decimal not in (None, ".", ","):
+        raise TrackerError(f"--decimal {decimal}: give . or ,")
     text = _decode(path, encoding)
     first = text[: text.find("\n")] if "\n" in text else text
     sample = text[: max(65536, len(first) + 1)]
@@ -479,6 +493,11 @@ def _read_csv(path: Path, encoding: str | None) -> tuple[pd.DataFrame, np.ndarra
         tail = list(table.columns[len(names) - blank_tail:])
         if (table[tail] == "").all().all():
             table = table.drop(columns=tail)
+    if decimal == ",":
+        if delimiter == ",":
+            raise TrackerError(f"{path}: --decimal ,: the columns are separated by commas too, so a comma cannot "
+                               f"also be the decimal mark")
+        table = table.apply(lambda col: col.str.replace(DECIMAL_COMMA, r"\1.\2", regex=True))
     return table, np.array([line for line, _ in widths[1:]], dtype=np.int64)
 
 
@@ -675,7 +694,8 @@ def _weight_rules(col: str, values: pd.Series, blank: np.ndarray, add: _Found) -
         add("error", col, "blank weight", blank)
     bad_text = np.isnan(num) & ~blank
     if bad_text.any():
-        add("error", col, f"weight is not a number (e.g. {values[bad_text].iloc[0]!r})", bad_text)
+        example = values[bad_text].iloc[0]
+        add("error", col, f"weight is not a number (e.g. {example!r}){_decimal_hint(example)}", bad_text)
     nonpos = ~np.isnan(num) & ~(num > 0)
     if nonpos.any():
         add("error", col, "weight is zero or negative", nonpos)
@@ -773,7 +793,8 @@ def _check_column(v: Variable, col: str, values: pd.Series, label: str, add) -> 
     num = _numbers(values)
     text = np.isnan(num) & ~blank
     if text.any():
-        add("error", col, f"text where a number belongs (e.g. {values[text].iloc[0]!r})", text)
+        example = values[text].iloc[0]
+        add("error", col, f"text where a number belongs (e.g. {example!r}){_decimal_hint(example)}", text)
     ok = ~np.isnan(num)
     if v.type == "multi":
         bad = ok & ~np.isin(num, (0.0, 1.0))

@@ -93,7 +93,7 @@ class Study:
     # -- intake (tracker.adding) ----------------------------------------------------------
     def check(self, file: str | Path, wave: str | None = None, date: str | None = None,
               encoding: str | None = None, replace: bool = False, allow_duplicate: bool = False,
-              sheet: str | None = None, header_row: int | None = None) -> CheckReport:
+              sheet: str | None = None, header_row: int | None = None, decimal: str | None = None) -> CheckReport:
         """Check a wave file against the codebook without changing anything.
 
         Parameters
@@ -103,8 +103,9 @@ class Study:
         wave, date : str, optional
             Its label and fieldwork date (ISO); with the date its cells are also judged against
             the ranges the stored waves predict.
-        encoding, sheet, header_row : optional
-            How to read the file (a text encoding; a workbook's sheet and header row).
+        encoding, sheet, header_row, decimal : optional
+            How to read the file (a CSV file's text encoding and decimal mark, ',' for a decimal
+            comma; a workbook's sheet and header row).
         replace, allow_duplicate : bool
             Check it as a replacement of the stored wave of that label; accept data identical
             to a stored wave's.
@@ -114,18 +115,20 @@ class Study:
         CheckReport
             The problems found (errors and warnings) and the surprises.
         """
-        return adding.check(self, file, wave, date, encoding, replace, allow_duplicate, sheet, header_row)
+        return adding.check(self, file, wave, date, encoding, replace, allow_duplicate, sheet, header_row, decimal)
 
     def add(self, file: str | Path, wave: str, date: str, encoding: str | None = None,
             replace: bool = False, rake: bool = False, cap: tuple[float, float] | None = None,
-            allow_duplicate: bool = False, sheet: str | None = None, header_row: int | None = None) -> AddReport:
+            allow_duplicate: bool = False, sheet: str | None = None, header_row: int | None = None,
+            decimal: str | None = None) -> AddReport:
         """Validate, harmonize and store a wave; raise TrackerError (study unchanged) if it cannot be.
 
         The whole add runs under the study's write lock, against the ledger as it stands once
         the lock is held (tracker.adding). ``rake`` rakes the weights to the codebook's targets
         (within ``cap``, LOW:HIGH times the starting weight); the other parameters are as
         :meth:`check`'s. Returns an :class:`AddReport`."""
-        return adding.add(self, file, wave, date, encoding, replace, rake, cap, allow_duplicate, sheet, header_row)
+        return adding.add(self, file, wave, date, encoding, replace, rake, cap, allow_duplicate, sheet, header_row,
+                          decimal)
 
     def reload_ledger(self) -> dict:
         """Read the ledger again (under the lock, before a change) and return it."""
