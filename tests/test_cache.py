@@ -50,6 +50,9 @@ def test_a_replaced_wave_or_a_changed_codebook_rebuilds_the_entry(demo_copy):
     assert got is not None and got.stats["base"][0].max() <= len(table) - 5
     text = (demo_copy / "codebook.yaml").read_text()
     (demo_copy / "codebook.yaml").write_text(text + "\n# a comment changes the codebook's SHA-256\n")
+    from tracker.amending import amend
+
+    amend(demo_copy, "a comment added")  # an edit in place is recorded before the study is used again
     s3 = Study(demo_copy)
     assert read_cells(demo_copy, label, s3.cellstore.key(label)) is None
 

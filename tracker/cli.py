@@ -355,6 +355,25 @@ def waves_cmd(study, fmt, output):
     emit_rows(rows, store.WAVE_COLUMNS, fmt, output, right=("respondents",))
 
 
+@main.command("amend", short_help="Record a new version of the study's codebook, with a note.")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--note", required=True, help="What changed (kept in the ledger with the version).")
+@click.option("--codebook", "codebook", type=click.Path(dir_okay=False),
+              help="A codebook file to take instead of the study's (default: the study's codebook.yaml as edited).")
+@user_errors
+def amend_cmd(study, note, codebook):
+    """Record the study's codebook as edited (or the file --codebook gives) as a new version, and
+    say which stored waves' results change.
+
+    \b
+    Example:  tracker amend demo-study --note "recommend balance now 9-10 minus 0-6"
+    """
+    from .amending import amend
+
+    for line in amend(Path(study), note, codebook).lines():
+        echo(line)
+
+
 @main.command("verify", short_help="Check a study on disk against its ledger.")
 @click.argument("study", type=click.Path(file_okay=False))
 @click.option("--repair", is_flag=True,

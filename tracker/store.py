@@ -461,6 +461,15 @@ def _verify_locked(root: Path) -> _Found:
     return out
 
 
+def codebook_version(book, note: str) -> dict:
+    """A ledger record of a codebook version: its SHA-256, when, a note, and its text (so that a
+    later amendment can tell which waves' results change)."""
+    import datetime as dt
+
+    return {"sha256": book.sha256, "recorded": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
+            "note": note, "text": book.source}
+
+
 def codebook_sha256(ledger: dict) -> str | None:
     """The SHA-256 of the codebook the study was made with, as the ledger records it (older
     ledgers: the codebook of the latest wave added)."""
@@ -489,7 +498,8 @@ def _codebook_problems(root: Path, ledger: dict) -> list[str]:
     want = codebook_sha256(ledger)
     if want is not None and book.sha256 != want:
         return [(f"{CODEBOOK}: changed since the study recorded it (SHA-256 differs); the stored waves were "
-                 f"checked against the recorded version")]
+                 f"checked against the recorded version: record the change with 'tracker amend {root} --note "
+                 f"\"what changed\"', or put the recorded version back")]
     return []
 
 

@@ -26,7 +26,13 @@ class Study:
         if not (self.root / store.LEDGER).is_file():
             raise TrackerError(f"{self.root}: not a study folder (no {store.LEDGER}); make one with 'tracker new'")
         self.codebook: Codebook = load_codebook(self.root / store.CODEBOOK)
-        self.waves_on_disk = StoredWaves(self.root, store.read_ledger(self.root))
+        ledger = store.read_ledger(self.root)
+        recorded = store.codebook_sha256(ledger)
+        if recorded is not None and recorded != self.codebook.sha256:  # an edit in place is never used silently
+            raise TrackerError(f"{self.root / store.CODEBOOK}: edited after the study recorded it; record the change "
+                               f"with 'tracker amend {self.root} --note \"what changed\"' (it says which waves' "
+                               f"results change), or put the recorded version back")
+        self.waves_on_disk = StoredWaves(self.root, ledger)
         self._cache: dict = {}
         self.cellstore = CellStore(self.root, self.codebook, self.waves_on_disk)
         self.comparisons = Comparisons(self.codebook, self.waves_on_disk, self.cellstore, self._cache)
@@ -49,7 +55,9 @@ class Study:
             (root / store.WAVES).mkdir(exist_ok=True)
             (root / store.LOCK).touch()
             store.write_atomic(root / store.CODEBOOK, book.source.encode("utf-8"))
-            store.write_ledger(root, {"format": 1, "title": book.title, "codebook_sha256": book.sha256, "waves": []})
+            store.write_ledger(root, {"format": 1, "title": book.title, "codebook_sha256": book.sha256, "waves": [],
+                                      "codebook_history": [store.codebook_version(book, "the codebook the study "
+                                                                                        "was made with")]})
         except (OSError, TrackerError) as exc:
             if made:  # leave no half-made study behind
                 import shutil
