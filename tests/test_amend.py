@@ -61,3 +61,44 @@ def test_a_note_is_required_and_a_broken_codebook_is_refused(copy, tmp_path):
     before = (copy / "ledger.json").read_bytes()
     result = CliRunner().invoke(main, ["amend", str(copy), "--note", "x", "--codebook", str(bad)])
     assert result.exit_code == 1 and (copy / "ledger.json").read_bytes() == before
+
+
+def test_a_wave_is_removed_with_its_file_kept_and_verify_clean(copy):
+    before = Study(copy)
+    label = before.labels[-1]
+    file = before.entry(label)["file"]
+    result = CliRunner().invoke(main, ["remove", str(copy), "--wave", label, "--note", "fieldwork rerun"])
+    assert result.exit_code == 0, result.output
+    after = Study(copy)
+    assert label not in after.labels and (copy / file).is_file()
+    ledger = json.loads((copy / "ledger.json").read_text())
+    assert ledger["removed"][-1]["label"] == label and ledger["removed"][-1]["note"] == "fieldwork rerun"
+    assert CliRunner().invoke(main, ["verify", str(copy)]).exit_code == 0  # the kept file is no orphan
+    assert after.changes().wave == after.labels[-1]
+
+
+def test_a_wave_is_renamed_and_its_results_stay(copy):
+    before = Study(copy)
+    est = before.estimates(waves=["2025-Q4"]).drop(columns=["wave"]).reset_index(drop=True)
+    result = CliRunner().invoke(main, ["rename", str(copy), "--wave", "2025-Q4", "--to", "2025-Q4b"])
+    assert result.exit_code == 0, result.output
+    after = Study(copy)
+    assert "2025-Q4b" in after.labels and "2025-Q4" not in after.labels
+    again = after.estimates(waves=["2025-Q4b"]).drop(columns=["wave"]).reset_index(drop=True)
+    import pandas as pd
+
+    pd.testing.assert_frame_equal(est, again)
+    assert after.entry("2025-Q4b")["renamed_from"][0]["label"] == "2025-Q4"
+    assert CliRunner().invoke(main, ["verify", str(copy)]).exit_code == 0
+
+
+def test_remove_and_rename_refuse_what_would_break_the_study(copy):
+    runner = CliRunner()
+    named = runner.invoke(main, ["remove", str(copy), "--wave", "2024-Q1", "--note", "x"])
+    assert named.exit_code == 1 and "the codebook names wave 2024-Q1" in named.output  # the demo's wording break
+    taken = runner.invoke(main, ["rename", str(copy), "--wave", "2025-Q3", "--to", "2025-Q4"])
+    assert taken.exit_code == 1 and "already stored" in taken.output
+    bad = runner.invoke(main, ["rename", str(copy), "--wave", "2025-Q3", "--to", "bad label"])
+    assert bad.exit_code == 1 and "not a valid wave label" in bad.output
+    missing = runner.invoke(main, ["remove", str(copy), "--wave", "1999-Q1", "--note", "x"])
+    assert missing.exit_code == 1 and "no wave labelled '1999-Q1'" in missing.output

@@ -374,6 +374,41 @@ def amend_cmd(study, note, codebook):
         echo(line)
 
 
+@main.command("remove", short_help="Take a stored wave out of the study (its file kept).")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--wave", required=True, metavar="LABEL", help="The wave to take out.")
+@click.option("--note", required=True, help="Why (kept in the ledger with the removed entry).")
+@user_errors
+def remove_cmd(study, wave, note):
+    """Take a stored wave out of the study; its file stays, named in the ledger's removed list.
+
+    \b
+    Example:  tracker remove demo-study --wave 2025-Q4 --note "fieldwork rerun"
+    """
+    from .managing import remove_wave
+
+    for line in remove_wave(Path(study), wave, note):
+        echo(line)
+
+
+@main.command("rename", short_help="Give a stored wave another label.")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--wave", required=True, metavar="LABEL", help="The wave to rename.")
+@click.option("--to", "new", required=True, metavar="LABEL", help="Its new label.")
+@user_errors
+def rename_cmd(study, wave, new):
+    """Give a stored wave another label (its file and results unchanged; the old label kept in
+    the ledger).
+
+    \b
+    Example:  tracker rename demo-study --wave 2026-Q1 --to 2026-Q1a
+    """
+    from .managing import rename_wave
+
+    for line in rename_wave(Path(study), wave, new):
+        echo(line)
+
+
 @main.command("verify", short_help="Check a study on disk against its ledger.")
 @click.argument("study", type=click.Path(file_okay=False))
 @click.option("--repair", is_flag=True,

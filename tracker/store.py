@@ -349,12 +349,18 @@ def named_files(ledger: dict) -> set[str]:
     """Every stored file the ledger names, replaced versions (history) included, each in its
     one spelling (``waves/<name>.parquet``)."""
     out: set[str] = set()
-    for w in ledger["waves"]:
+    for w in [*ledger["waves"], *removed_entries(ledger)]:
         for v in [w, *w.get("history", [])]:
             name = stored_file_name(v.get("file")) if isinstance(v, dict) else None
             if name:
                 out.add(name)
     return out
+
+
+def removed_entries(ledger: dict) -> list[dict]:
+    """The entries of waves taken out of the study (tracker.managing); their files are kept."""
+    removed = ledger.get("removed", [])
+    return [w for w in removed if isinstance(w, dict)] if isinstance(removed, list) else []
 
 
 def orphans(root: Path, ledger: dict) -> list[Path]:
@@ -438,11 +444,13 @@ def _verify_locked(root: Path) -> _Found:
     if structural:
         return out  # nothing is removed from a study whose ledger cannot be read
     out.problems += _codebook_problems(root, ledger)
-    for w in ledger["waves"]:
+    removed = [w for w in removed_entries(ledger) if stored_file_name(w.get("file"))]
+    for w in [*ledger["waves"], *removed]:
         for v in [w, *w.get("history", [])]:
             name = stored_file_name(v["file"]) or ""  # checked by ledger_problems above
             f = root / name
-            what = f"wave {w['label']}" + ("" if v is w else " (replaced version)")
+            what = (f"wave {w['label']}" + (" (removed)" if w in removed else "")
+                    + ("" if v is w else " (replaced version)"))
             if not f.is_file():
                 out.problems.append(f"{name}: missing ({what})")
                 continue
