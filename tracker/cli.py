@@ -220,6 +220,31 @@ def emit_rows(rows: list[dict], columns: list[str], fmt: str, output: str | None
     echo(render_rows(rows, columns, fmt, right), nl=False)
 
 
+@main.command("draft", short_help="Draft a codebook from a wave file, for review.")
+@click.argument("file", type=click.Path(dir_okay=False))
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False),
+              help="Where to write the draft (a new file: an existing one is never overwritten).")
+@click.option("--title", help="The study's title (default: the file's name).")
+@user_errors
+def draft_cmd(file, output, title):
+    """Draft a codebook from a wave file: from an SPSS or Stata file's labels and missing codes, or
+    from a CSV, Parquet or XLSX file's values. Every guess is marked '# review:'.
+
+    \b
+    Example:  tracker draft wave1.sav -o codebook.yaml
+    """
+    from .drafting import draft_codebook
+    from .outputs import write_output
+
+    if Path(output).exists():
+        raise TrackerError(f"{output}: the file exists; the draft never overwrites one (give a new name)")
+    draft = draft_codebook(file, title)
+    write_output(Path(output), draft.text.encode("utf-8"), inputs=(Path(file),))
+    for line in draft.lines():
+        echo(line)
+    echo(f"wrote {output}; review it, then: tracker new STUDY --codebook {output}")
+
+
 @main.command("new", short_help="Make a study folder from a codebook.")
 @click.argument("study", type=click.Path(file_okay=False))
 @click.option("--codebook", required=True, type=click.Path(), help="The study's codebook (YAML).")
