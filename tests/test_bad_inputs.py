@@ -305,6 +305,15 @@ WAVE_CASES = [
     ("an unbalanced quote", unbalanced_quote, "do not have the header's 14 fields"),
     ("XLSX sheet not there", lambda tmp: (xlsx(lambda wb, ws: None)(tmp), ["--sheet", "Data"]),
      "no sheet named 'Data'"),
+    ("a broken Stata file", raw(b"not a stata file at all" * 10, "w.dta"), "cannot be read as a Stata data file"),
+    ("a broken SPSS file", raw(b"$FL2" + bytes(300), "w.sav"), "cannot be read as an SPSS data file"),
+    ("an SPSS file named .csv", raw(b"$FL2" + bytes(300)), "the file is an SPSS data file although its name ends in "
+                                                              ".csv; rename it to end in .sav"),
+    ("decimal commas", csv_of(example_wave(n=60, seed=2), sep=";", decimal=","),
+     "the file writes decimals with a comma: give --decimal ,"),
+    ("--decimal , with commas between columns",
+     lambda tmp: (csv_of(example_wave(n=60, seed=2))(tmp), ["--decimal", ","]),
+     "a comma cannot also be the decimal mark"),
 ]
 
 
