@@ -420,6 +420,20 @@ def part_growth(tmp: Path, rows: list) -> None:
             study.add(path, label(k), date(k))
 
 
+def part_wide_header(tmp: Path, rows: list) -> None:
+    """`check` of a wave whose header holds 20,000, 40,000 and 80,000 columns the codebook does
+    not know (50 respondents): the time should grow in proportion to the columns."""
+    root = tmp / "wide"
+    empty_study(root, 10, 2)
+    for k in (20_000, 40_000, 80_000):
+        frame = make_wave(np.random.default_rng(3), 0, 50, 10, 2, 10, 5)
+        extra = pd.DataFrame(np.zeros((50, k), dtype=np.int8), columns=[f"extra_{i}" for i in range(k)])
+        path = root / f"w{k}.csv"
+        pd.concat([frame, extra], axis=1).to_csv(path, index=False)
+        sec, mb = run_cli(["check", str(root / "study"), str(path)])
+        rows.append((f"cli check of a header of {k:,} columns", f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
+
+
 class Rows(list):
     """The result rows, each printed as it comes (the whole run takes a while)."""
 
@@ -443,16 +457,21 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help="the clustered study only")
     ap.add_argument("--ten-million", action="store_true", help="also the 10,000,000-respondent study (scale extra)")
+    ap.add_argument("--wide-header", action="store_true", help="only the check of headers of 20,000 to 80,000 columns")
     args = ap.parse_args()
     print(f"machine: {machine()}; {time.strftime('%Y-%m-%d')}")
     print("| measurement | time | note |\n|---|---|---|", flush=True)
     rows = Rows()
     with tempfile.TemporaryDirectory() as tmp:
+        if args.wide_header:
+            part_wide_header(Path(tmp), rows)
+            return
         part_clustered(Path(tmp), rows, args.quick)
         if not args.quick:
             part_cost(rows)
             part_million(Path(tmp), rows)
             part_growth(Path(tmp), rows)
+            part_wide_header(Path(tmp), rows)
             if args.ten_million:
                 part_ten_million(Path(tmp), rows)
 

@@ -485,8 +485,9 @@ def _read_csv(path: Path, encoding: str | None, decimal: str | None = None) -> t
         raise TrackerError(f"{path}: {len(odd)} row(s) do not have the header's {want} fields: {shown}; a row cut "
                            f"short or a stray delimiter would shift answers between columns")
     try:
+        # in one piece: read in chunks, a wide file becomes one text array per column per chunk
         table = pd.read_csv(io.StringIO(text), sep=delimiter, dtype=str, keep_default_na=False,
-                            skip_blank_lines=True)
+                            skip_blank_lines=True, low_memory=False)
     except (pd.errors.ParserError, csv.Error) as exc:
         raise TrackerError(f"{path}: cannot be read as CSV ({str(exc)[:200]})") from None
     if blank_tail:  # empty columns after the last named one (a spreadsheet's export): ignored when empty
