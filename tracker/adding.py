@@ -299,7 +299,8 @@ def _store(study, file, wave: str, iso: str, table: pd.DataFrame, wf, weighting:
     root, book = study.root, study.codebook
     # Under the lock no other writer is at work, so what earlier killed writers left can go.
     store.sweep_incoming(root)
-    for orphan in store.orphans(root, study.reload_ledger()):
+    current = study.waves_on_disk.ledger  # read once, under the lock, when the add began
+    for orphan in store.orphans(root, current):
         orphan.unlink(missing_ok=True)
     fname = store.free_wave_file(root, wave)
     try:
@@ -319,7 +320,6 @@ def _store(study, file, wave: str, iso: str, table: pd.DataFrame, wf, weighting:
         from .statfiles import labels_for_ledger
 
         entry["value_labels"] = labels_for_ledger(book, wf.labels)
-    current = study.reload_ledger()
     ledger = {**current, "waves": [dict(w) for w in current["waves"]]}
     old = [w for w in ledger["waves"] if w["label"] == wave]
     if old:
