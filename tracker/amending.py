@@ -93,19 +93,27 @@ def _compare(root: Path, ledger: dict, old: Codebook | None, new: Codebook, note
 
 
 def _differ(a, b, added: tuple[str, ...], removed: tuple[str, ...]) -> bool:
-    cells_a = {(g, lev, m): (a.stats["value"][i, j], a.stats["variance"][i, j], a.stats["base"][i, j])
-               for i, (g, lev) in enumerate(zip(a.group, a.level)) for j, m in enumerate(a.metrics)}
-    cells_b = {(g, lev, m): (b.stats["value"][i, j], b.stats["variance"][i, j], b.stats["base"][i, j])
-               for i, (g, lev) in enumerate(zip(b.group, b.level)) for j, m in enumerate(b.metrics)}
-    for key in set(cells_a) | set(cells_b):
-        if key[2] in added or key[2] in removed:  # reported apart: they are new or gone, not changed
-            continue
-        x, y = cells_a.get(key), cells_b.get(key)
-        if x is None or y is None:  # a split's level came or went: a change where it had answers
-            only = x if x is not None else y
-            if only is not None and only[2] > 0:
-                return True
-            continue
-        if not np.allclose(np.array(x, float), np.array(y, float), rtol=1e-12, atol=1e-15, equal_nan=True):
+    """Whether a wave's results differ between two versions' cell statistics (``a``, ``b``):
+    for the metrics both define, a value, variance or base of a level both hold, or a level
+    held by one version only that has answers. Whole arrays at once, no loop per cell."""
+    del added, removed  # they are defined by one version only: reported apart
+    both = [m for m in a.metrics if m in b.metrics]
+    if not both:
+        return False
+    ja = np.array([a.metrics.index(m) for m in both])
+    jb = np.array([b.metrics.index(m) for m in both])
+    rows_a = {key: i for i, key in enumerate(zip(a.group, a.level))}
+    rows_b = {key: i for i, key in enumerate(zip(b.group, b.level))}
+    common = [k for k in rows_a if k in rows_b]
+    ia = np.array([rows_a[k] for k in common], dtype=np.int64)
+    ib = np.array([rows_b[k] for k in common], dtype=np.int64)
+    for stat in ("value", "variance", "base"):
+        x = np.asarray(a.stats[stat], float)[np.ix_(ia, ja)]
+        y = np.asarray(b.stats[stat], float)[np.ix_(ib, jb)]
+        if not np.allclose(x, y, rtol=1e-12, atol=1e-15, equal_nan=True):
             return True
-    return False
+    only_a = np.array([i for k, i in rows_a.items() if k not in rows_b], dtype=np.int64)
+    only_b = np.array([i for k, i in rows_b.items() if k not in rows_a], dtype=np.int64)
+    answered_a = only_a.size and (np.asarray(a.stats["base"])[np.ix_(only_a, ja)] > 0).any()
+    answered_b = only_b.size and (np.asarray(b.stats["base"])[np.ix_(only_b, jb)] > 0).any()
+    return bool(answered_a or answered_b)
