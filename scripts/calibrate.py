@@ -109,7 +109,7 @@ def render(report: Report) -> str:
         "coverage counts every wave of every series against its true value."))] + [(TREND_DESIGN, (
         f"One series of 14 quarterly waves at a time ({TREND_REPS[report.tier]:,} per setting), sampling SE 1.6 "
         "points and between-wave SD 1.5 points, through the pattern classifier of tracker/trends.py: one test per "
-        "series of 'not steady' against a straight line, a step at any wave and a one-wave blip at any wave "
+        "series for a trend, a step or a blip: a straight line, a step at any wave and a one-wave blip at any wave "
         "(Sidak over the effective number of candidate waves, weighted Bonferroni across the three), then the "
         "shape that fits best, or 'moved up/down' when the waves cannot tell a trend from a step. " + _limits()))]
     sections += [(RARE_DESIGN, (

@@ -7,8 +7,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .charts import _scale_factor, trend_spec
+from .charts import trend_spec
 from .errors import TrackerError
+from .kinds import KINDS
 
 __all__ = ["chart_table", "trend_chart", "trend_charts", "trend_frame"]
 
@@ -55,7 +56,7 @@ def trend_frame(study, metric: str, by: str | None = None, adjust: str = "bh", l
         start_rank = labels.index(starts[metric])
         out["segment"] = np.where(out["wave"].map(labels.index) >= start_rank, "after wording change",
                                   "before wording change")
-    f = _scale_factor(m.kind)
+    f = KINDS[m.kind].scale
     for col in ("value", "ci_low", "ci_high", "fitted"):
         out[col + "_shown"] = out[col] * f
     out["change_shown"] = out["change"] * f

@@ -452,8 +452,7 @@ def at_level(est: pd.DataFrame, level: float, interval: str = "wilson") -> pd.Da
     """The estimates ``est`` (asked with ``detail=True``: their sufficient statistics kept) with
     every interval, design base and flag at another confidence ``level``, from those
     statistics alone (as a statsmodels result's ``conf_int(alpha)``): no wave is read again.
-
-    >>> # study.estimates(detail=True) at 95 %, then at_level(est, 0.90): the 90 % intervals
+    tests/test_estimates_changes.py checks it equals asking the study for that level.
     """
     from .options import check_level
 
