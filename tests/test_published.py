@@ -21,32 +21,12 @@ import pytest
 
 from tracker import Study
 
+from .test_against_r import CODEBOOK
+
 DATA = Path(__file__).parent / "data" / "api"
-BOOK = """title: California schools ({name}, R survey package data)
-id: snum
-weight: pw
-{design}variables:
-  stype:
-    label: School type
-    type: category
-    codes: {{1: E, 2: H, 3: M}}
-  sch_wide:
-    label: Met the school-wide growth target
-    type: category
-    codes: {{1: "Yes", 2: "No"}}
-  api:
-    label: Academic performance index
-    type: number
-    range: [0, 1000]
-groups:
-  stype: {{variable: stype}}
-  sch_wide: {{variable: sch_wide}}
-metrics:
-  api_mean:
-    label: Mean API
-    variable: api
-    mean: true
-"""
+# the codebook of the tests against R, with the school-wide target as a split (the raked
+# design's second margin)
+BOOK = CODEBOOK.replace("groups:\n", "groups:\n  sch_wide: {{variable: sch_wide}}\n")
 
 
 def _study(tmp_path: Path, name: str, design: str, years=("1999", "2000"), rake: bool = False) -> Study:
@@ -55,7 +35,7 @@ def _study(tmp_path: Path, name: str, design: str, years=("1999", "2000"), rake:
     study = Study.create(tmp_path / name, tmp_path / "book.yaml")
     for year in years:
         path = tmp_path / f"{name}-{year}.csv"
-        data.drop(columns=["api00", "api99", "fpc", "awards"]).assign(api=data[f"api{year[2:]}"]).to_csv(path, index=False)
+        data.drop(columns=["api00", "api99", "fpc"]).assign(api=data[f"api{year[2:]}"]).to_csv(path, index=False)
         study.add(path, year, f"{year}-06-30", rake=rake)
     return study
 
@@ -95,7 +75,7 @@ def test_raked_cluster_sample(tmp_path, fpc):
     data = pd.read_csv(DATA / "apiclus1.csv")
     (tmp_path / "book.yaml").write_text(book)
     study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
-    data.drop(columns=["api99", "fpc", "awards"]).rename(columns={"api00": "api"}).to_csv(tmp_path / "w.csv", index=False)
+    data.drop(columns=["api99", "fpc"]).rename(columns={"api00": "api"}).to_csv(tmp_path / "w.csv", index=False)
     study.add(tmp_path / "w.csv", "2000", "2000-06-30", rake=True)
     total = _total(study)
     assert round(total["value"], 2) == 641.23
