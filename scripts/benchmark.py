@@ -356,6 +356,37 @@ def part_million(tmp: Path, rows: list) -> None:
     rows.append(("1,000,000 respondents: prepare --engine duckdb", f"{sec:.1f} s", f"peak {mb:,.0f} MB"))
 
 
+def part_intake(tmp: Path, rows: list) -> None:
+    """`tracker add` of a 1,000,000-row wave (30 share metrics, 3 splits, 10 strata x 200
+    clusters) as CSV and as Parquet, side by side with the floor: pyarrow reading the CSV and
+    the plain numpy pass of :func:`floor_wave` computing every cell's value and SE. Memory
+    is set against the harmonized table's size in memory (pandas' deep memory usage)."""
+    from tracker import Study
+
+    root = tmp / "intake"
+    empty_study(root, 30, 3)
+    frame = make_wave(np.random.default_rng(5), 0, 1_000_000, 30, 3, 10, 200)
+    csv, parquet = root / "big.csv", root / "big.parquet"
+    frame.to_csv(csv, index=False)
+    frame.to_parquet(parquet)
+    del frame
+    f_sec, f_mb, _ = run_python(
+        "import benchmark as b, pyarrow.csv as c; t = c.read_csv(" + repr(str(csv)) + ").to_pandas(); "
+        "b.floor_wave(t, [x for x in t.columns if x.startswith('q')], [x for x in t.columns if x.startswith('g')])")
+    rows.append(("1,000,000 x 30 metrics: floor (pyarrow reads the CSV, numpy computes)", f"{f_sec:.1f} s",
+                 f"peak {f_mb:,.0f} MB"))
+    for name, path in (("CSV", csv), ("Parquet", parquet)):
+        study = root / f"study_{name}"
+        Study.create(study, root / "codebook.yaml")
+        sec, mb = run_cli(["add", str(study), str(path), "--wave", "W000", "--date", "2000-01-15", "-q"])
+        if name == "CSV":
+            ledger = json.loads((study / "ledger.json").read_text())
+            table_mb = pd.read_parquet(study / ledger["waves"][0]["file"]).memory_usage(deep=True).sum() / 1e6
+        note = (f"{sec / f_sec:.2f}x the floor's time; peak {mb:,.0f} MB = 2 x the table ({table_mb:,.0f} MB) "
+                f"+ {mb - 2 * table_mb:,.0f} MB")
+        rows.append((f"1,000,000 x 30 metrics: cli add ({name})", f"{sec:.1f} s", note))
+
+
 def part_cost(rows: list) -> None:
     """How one wave's statistics cost grows with respondents, metrics and splits (the
     computation alone, on tables in memory); waves add their costs one by one."""
@@ -458,6 +489,7 @@ def main() -> None:
     ap.add_argument("--quick", action="store_true", help="the clustered study only")
     ap.add_argument("--ten-million", action="store_true", help="also the 10,000,000-respondent study (scale extra)")
     ap.add_argument("--wide-header", action="store_true", help="only the check of headers of 20,000 to 80,000 columns")
+    ap.add_argument("--intake", action="store_true", help="only the add of a 1,000,000-row wave against its floor")
     args = ap.parse_args()
     print(f"machine: {machine()}; {time.strftime('%Y-%m-%d')}")
     print("| measurement | time | note |\n|---|---|---|", flush=True)
@@ -466,10 +498,14 @@ def main() -> None:
         if args.wide_header:
             part_wide_header(Path(tmp), rows)
             return
+        if args.intake:
+            part_intake(Path(tmp), rows)
+            return
         part_clustered(Path(tmp), rows, args.quick)
         if not args.quick:
             part_cost(rows)
             part_million(Path(tmp), rows)
+            part_intake(Path(tmp), rows)
             part_growth(Path(tmp), rows)
             part_wide_header(Path(tmp), rows)
             if args.ten_million:

@@ -99,10 +99,37 @@ def content_fingerprint(table: pd.DataFrame) -> str:
     import hashlib
 
     cols = sorted(table.columns)
-    rows = pd.util.hash_pandas_object(table[cols], index=False).to_numpy()
+    hashes = (pd.util.hash_pandas_object(table[c], index=False).to_numpy() for c in cols)
+    rows = combined_hashes(hashes, len(cols), len(table))
     h = hashlib.sha256(",".join(cols).encode("utf-8"))
     h.update(np.sort(rows).tobytes())
     return h.hexdigest()
+
+
+def _release_arrow_memory() -> None:
+    """Hand the memory Arrow's pool keeps after a file's cells are dropped back to the system
+    (the pool would keep it for reuse, adding the file's size to the peak of an add)."""
+    import pyarrow as pa
+
+    pa.default_memory_pool().release_unused()
+
+
+def combined_hashes(columns, k: int, length: int = 0) -> np.ndarray:
+    """The row hashes ``pd.util.hash_pandas_object(frame, index=False)`` gives a frame of ``k``
+    columns, from the columns' hashes one at a time (so the frame is never copied whole):
+    pandas' own way of combining them (pandas.core.util.hashing.combine_hash_arrays, after
+    CPython's tuple hash)."""
+    out: np.ndarray | None = None
+    mult = np.uint64(1000003)
+    for i, a in enumerate(columns):
+        if out is None:
+            out = np.zeros_like(a) + np.uint64(0x345678)
+        out ^= a
+        out *= mult
+        mult += np.uint64(82520 + 2 * (k - i))
+    if out is None:  # no columns: each row hashes as an empty tuple (as pandas does)
+        return np.full(length, 0x345678 + 97531, dtype=np.uint64)
+    return out + np.uint64(97531)
 
 
 
@@ -200,6 +227,9 @@ def check_file(study, file, wave, date, encoding, replace, rake=False, allow_dup
         except TrackerError:
             pass
     table, found = check_wave(study.codebook, wf, label or "", order, rake=rake)
+    rows = len(wf.table)
+    wf.table = None  # the file's cells are no longer needed (the largest object of a big wave)
+    _release_arrow_memory()
     problems.extend(found)
     wf.content_sha256 = mark = content_fingerprint(table) if len(table) else ""
     if mark and not allow_duplicate:
@@ -211,7 +241,7 @@ def check_file(study, file, wave, date, encoding, replace, rake=False, allow_dup
     if not any(p.severity == "error" for p in found) and len(table):
         problems.extend(design_problems(study.codebook, table))
     problems.extend(_label_problems_of_file(study, wf, label, date))
-    return CheckReport(str(file), len(wf.table), tuple(problems)), table, wf
+    return CheckReport(str(file), rows, tuple(problems)), table, wf
 
 
 def _label_problems_of_file(study, wf, label: str | None, date: str | None) -> list[Problem]:
@@ -350,7 +380,6 @@ def _add_locked(study, file, wave, iso, encoding, replace, rake, cap, allow_dupl
                                    decimal)
     if not report.ok:
         raise TrackerError("\n".join(["cannot add " + str(file) + ":"] + report.lines()))
-    wf.table = None  # the file's cells as text are no longer needed (the largest object of a big wave)
     weighting: dict = {"kind": "file", "column": book.weight} if book.weight else {"kind": "none"}
     extra_lines: list[str] = []
     if rake:

@@ -64,8 +64,10 @@ def draft_codebook(path: str | Path, title: str | None = None) -> Draft:
     from .intake import read_wave_file
 
     path = Path(path)
+    from .filecolumns import text_table
+
     wf = read_wave_file(path)
-    table, labels = wf.table, wf.labels
+    table, labels = text_table(wf.table), wf.labels
     column_labels = _column_labels(path) if labels is not None else {}
     guesses: list[str] = []
     id_col, weight, strata, clusters = _design_columns(path, table)

@@ -237,7 +237,6 @@ def cell_arrays(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], 
     per wave): they act as extra strata. ``keep_psu`` keeps the clusters' totals of the
     linearized values (when clusters are declared).
     """
-    Y, E = metric_matrix(codebook, table, metrics)
     D, levels = group_matrix(codebook, table, groups, residual)
     w = weights_of(codebook, table)
     strata, psu = design_of(codebook, table)
@@ -247,43 +246,69 @@ def cell_arrays(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], 
         psu = np.arange(len(table))  # each respondent its own PSU: the residuals are per respondent
     if sample is not None:
         strata = _codes(pd.Series(sample).astype(str) + "|" + ("" if strata is None else pd.Series(strata).astype(str)))
+    # metrics a block at a time: a large wave's respondent x metric arrays stay within BLOCK_CELLS
+    step = max(1, BLOCK_CELLS // max(len(table), 1))
+    # who is in each subgroup level (as 32-bit positions while they fit: a large wave's biggest index)
+    memo = {"nonzero": tuple(a.astype(np.int32) if D.shape[0] < 2**31 else a for a in np.nonzero(D))}
+    rows, lev = memo["nonzero"]
+    members = sp.csr_matrix((np.ones(rows.size), (lev, rows)), shape=(D.shape[1], D.shape[0]))
+    del rows, lev
+    design = (D, w, strata, psu, pop, cal, members, memo)  # memo: what the blocks share (_level_sums)
+    try:
+        parts = [_block_stats(codebook, table, metrics[i:i + step], design, keep_psu)
+                 for i in range(0, max(len(metrics), 1), step)]
+    except SingleClusterError as exc:
+        raise _refuse(codebook, table, exc) from None
+    stats = {k: np.concatenate([p[0][k] for p in parts], axis=1) for k in parts[0][0]}
+    psu_totals = names = None
+    if keep_psu and parts[0][1] is not None:
+        t0 = parts[0][1]
+        P, L = t0.totals.shape[0], len(levels.group)
+        totals = np.concatenate([p[1].totals.reshape(P, L, -1) for p in parts], axis=2).reshape(P, -1)
+        psu_totals = PsuTotals(totals, t0.stratum, t0.n_strata, t0.factor)
+        if codebook.clusters:
+            s_lab, c_lab = design_labels(codebook, table)
+            assert c_lab is not None  # clusters are declared
+            first_row = parts[0][2]
+            names = c_lab[first_row].astype(str)
+            if s_lab is not None:
+                names = np.char.add(np.char.add(s_lab[first_row].astype(str), SEP), names)
+    return CellArrays(tuple(m.name for m in metrics), levels.group, levels.level, stats, psu_totals, names)
+
+
+#: Respondents x metrics held at once by :func:`cell_arrays` (4 million: 32 MB per float array).
+BLOCK_CELLS = 4_000_000
+
+
+def _block_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], design: tuple, keep_psu: bool):
+    """(statistics, PSU totals, a respondent of each PSU) of the cells of some metrics."""
+    D, w, strata, psu, pop, cal, members, memo = design
+    Y, E = metric_matrix(codebook, table, metrics)
     Ef = E.astype(float)
     EY = np.where(E, Y, 0.0)  # a respondent outside the base contributes nothing
-    Df = D.astype(float)
-    # weights go on the narrow membership side, so no respondent x metric array is weighted
-    Dw = Df * w[:, None]
-    first = np.concatenate([Df, Dw, Dw * w[:, None]], axis=1).T @ Ef
-    L = Df.shape[1]
-    n, sw, sw2 = first[:L], first[L:2 * L], first[2 * L:]
-    swy = Dw.T @ EY
-    swy2 = Dw.T @ (EY * EY)
+    del Y, E
+    wE = Ef * w[:, None]
+    wEY = EY * w[:, None]
+    # each level's sums over its members: a sparse (level x respondent) product each
+    n, sw, sw2, swy, swy2 = (np.asarray(members @ X) for X in (Ef, wE, wE * w[:, None], wEY, wEY * EY))
+    del wE, wEY
     with np.errstate(divide="ignore", invalid="ignore"):
         value = swy / sw
         unit_var = np.maximum(swy2 / sw - value**2, 0.0)
-    psu_totals = names = None
-    try:
-        if psu is None:
-            var, n_psu, df = _unclustered_variance(D, Ef, EY, w, value, sw, n, strata, codebook.single_cluster_rule,
-                                                   pop)
-        else:
-            var, n_psu, df, psu_totals, first_row = _clustered_variance(D, Ef, EY, w, value, sw, strata, psu,
-                                                                         codebook.single_cluster_rule, pop, cal)
-            if keep_psu and codebook.clusters:
-                s_lab, c_lab = design_labels(codebook, table)
-                assert c_lab is not None  # clusters are declared
-                names = c_lab[first_row].astype(str)
-                if s_lab is not None:
-                    names = np.char.add(np.char.add(s_lab[first_row].astype(str), SEP), names)
-    except SingleClusterError as exc:
-        raise _refuse(codebook, table, exc) from None
+    psu_totals = first_row = None
+    if psu is None:
+        var, n_psu, df = _unclustered_variance(D, Ef, EY, w, value, sw, n, strata, codebook.single_cluster_rule, pop,
+                                               memo)
+    else:
+        var, n_psu, df, psu_totals, first_row = _clustered_variance(D, Ef, EY, w, value, sw, strata, psu,
+                                                                     codebook.single_cluster_rule, pop, cal, memo)
     with np.errstate(divide="ignore", invalid="ignore"):
         # the largest base the design base may take: the Kish base of fixed weights; for raked
         # weights the respondents themselves (the calibration's gain is real, the weighting's loss is in V)
         cap = n.astype(float) if cal is not None else sw * sw / sw2
     stats = {"base": n, "weighted_base": sw, "sum_w2": sw2, "value": value, "variance": var,
              "unit_variance": unit_var, "n_psu": n_psu.astype(float), "design_df": df.astype(float), "base_cap": cap}
-    return CellArrays(tuple(m.name for m in metrics), levels.group, levels.level, stats,
-                      psu_totals if keep_psu else None, names)
+    return stats, (psu_totals if keep_psu else None), first_row
 
 
 def cells_frame(cells: CellArrays) -> pd.DataFrame:
@@ -306,23 +331,33 @@ def cell_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], g
 
 
 def _level_sums(D: np.ndarray, unit: np.ndarray, n_units: int, weights: list[np.ndarray],
-                *mats: list[np.ndarray]) -> list[list[np.ndarray]]:
+                *mats: list[np.ndarray], tags: tuple[str, ...] = (),
+                memo: dict | None = None) -> list[list[np.ndarray]]:
     """For the k-th weight vector u and each respondent x metric matrix X of the k-th list,
     the (units, levels, metrics) sums of u X over the respondents of each unit (a stratum
     or a PSU) and subgroup level: one sparse (unit x level) by respondent product per
-    pair, or dense when there is one unit."""
+    pair, or dense when there is one unit. With ``memo`` (one per table) and a tag naming
+    each weight vector, each sparse matrix is built once for all blocks of metrics."""
     N, L = D.shape
     if n_units == 1:
         return [[((D * u[:, None]).T @ X)[None] for X in xs] for u, xs in zip(weights, mats)]
-    rows, lev = np.nonzero(D)
+    memo = {} if memo is None else memo
     out = []
-    for u, xs in zip(weights, mats):
-        S = sp.csr_matrix((u[rows], (unit[rows] * L + lev, rows)), shape=(n_units * L, N))
+    for k, (u, xs) in enumerate(zip(weights, mats)):
+        key = ("units", tags[k] if k < len(tags) else None, n_units)
+        S = memo.get(key) if key[1] else None
+        if S is None:
+            if "nonzero" not in memo:
+                memo["nonzero"] = np.nonzero(D)
+            rows, lev = memo["nonzero"]
+            S = sp.csr_matrix((u[rows], (unit[rows] * L + lev, rows)), shape=(n_units * L, N))
+            if key[1]:
+                memo[key] = S
         out.append([np.asarray(S @ X).reshape(n_units, L, -1) for X in xs])
     return out
 
 
-def _unclustered_variance(D, Ef, EY, w, value, sw, members, strata, rule, pop=None):
+def _unclustered_variance(D, Ef, EY, w, value, sw, members, strata, rule, pop=None, memo=None):
     """Taylor variance when each respondent is a PSU.
 
     Within stratum h, with z_i = d_i w_i (y_i - value) e_i / sw: sum z and sum z^2 expand
@@ -330,14 +365,19 @@ def _unclustered_variance(D, Ef, EY, w, value, sw, members, strata, rule, pop=No
     x cell array is built; :func:`unclustered_from_sums` finishes. Degrees of freedom:
     respondents in the cell minus strata holding them.
     """
+    memo = {} if memo is None else memo
     n = D.shape[0]
-    h = np.zeros(n, dtype=np.int64) if strata is None else np.unique(strata, return_inverse=True)[1].ravel()
+    if "strata" not in memo:
+        memo["strata"] = (np.zeros(n, dtype=np.int64) if strata is None
+                          else np.unique(strata, return_inverse=True)[1].ravel())
+    h = memo["strata"]
     n_strata = int(h.max()) + 1 if n else 1
-    (a, b), (a2, ab, b2) = _level_sums(D, h, n_strata, [w, w * w], [EY, Ef], [EY * EY, EY, Ef])
+    (a, b), (a2, ab, b2) = _level_sums(D, h, n_strata, [w, w * w], [EY, Ef], [EY * EY, EY, Ef], tags=("w", "w2"),
+                                       memo=memo)
     if n_strata == 1:
         held = (members > 0)[None]
     else:
-        held = _level_sums(D, h, n_strata, [np.ones(n)], [Ef])[0][0] > 0
+        held = _level_sums(D, h, n_strata, [np.ones(n)], [Ef], tags=("1",), memo=memo)[0][0] > 0
     n_h = np.bincount(h, minlength=n_strata)
     return unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule, fpc_factor(pop, h, n_h))
 
@@ -358,16 +398,20 @@ def unclustered_from_sums(a, b, a2, ab, b2, held, members, value, sw, n_h, rule,
     return var, members, members - held.sum(axis=0).reshape(L, M)
 
 
-def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule, pop=None, cal=None):
+def _clustered_variance(D, Ef, EY, w, value, sw, strata, psu, rule, pop=None, cal=None, memo=None):
     """Taylor variance with declared clusters: one sparse (PSU x level) by respondent
     product per wave gives every cell's PSU totals of w e y and w e at once, and
     :func:`clustered_from_totals` finishes. Also returns a respondent of each PSU (to name it)."""
     N, _L = D.shape
-    psu_id, psu_stratum, n_strata = psu_index(strata, psu, N)
+    memo = {} if memo is None else memo
+    if "psu" not in memo:
+        memo["psu"] = psu_index(strata, psu, N)
+    psu_id, psu_stratum, n_strata = memo["psu"]
     P = psu_stratum.size
-    (A, B), = _level_sums(D, psu_id, P, [w], [EY, Ef])
+    (A, B), = _level_sums(D, psu_id, P, [w], [EY, Ef], tags=("w",), memo=memo)
     # with every weight positive a PSU holds a cell's respondents exactly when its weight total is positive
-    counts = (B > 0) if bool((w > 0).all()) else (_level_sums(D, psu_id, P, [np.ones(N)], [Ef])[0][0] > 0)
+    counts = (B > 0) if bool((w > 0).all()) else (
+        _level_sums(D, psu_id, P, [np.ones(N)], [Ef], tags=("1",), memo=memo)[0][0] > 0)
     fpc = fpc_factor(pop, psu_stratum[psu_id], np.bincount(psu_stratum, minlength=n_strata))
     correction = None if cal is None else _calibration_correction(cal, D, Ef, EY, w, value, sw, psu_id, P)
     var, n_psu, df, totals = clustered_from_totals(A, B, counts, value, sw, psu_stratum, n_strata, rule, fpc,

@@ -20,6 +20,7 @@ import pandas as pd
 
 from .codebook import Codebook, Variable, _fmt_code
 from .errors import TrackerError
+from .filecolumns import FileColumn, plain, plain_text, read_column
 from .statfiles import FORMATS as STAT_FORMATS
 from .statfiles import read_stat_file
 
@@ -240,10 +241,31 @@ def _read_parquet(path: Path) -> tuple[pd.DataFrame, list[Problem]]:
             except Exception:  # noqa: BLE001 - pyarrow says ArrowInvalid for bytes that are not UTF-8
                 raise TrackerError(f"{path}, column {name}: binary data that is not UTF-8 text; store the "
                                    f"column as text (string) or numbers") from None
-    # by name and position only: ignore_metadata keeps pandas from restoring the stored index
-    table = arrow.to_pandas(ignore_metadata=True)
-    table = pd.DataFrame({c: _plain_column(table[c]) for c in table.columns}, columns=table.columns)
-    return table, problems
+    return _typed_frame(arrow), problems
+
+
+def _typed_frame(arrow) -> pd.DataFrame:
+    """An Arrow table as the checks read it, never through text where the type allows: whole
+    numbers, floats and booleans (with no missing cells) as numpy numbers, text as Arrow text
+    (missing as ''), anything else (dates, decimals, binary text) as plain text."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    columns = {}
+    for name, col in zip(arrow.column_names, arrow.columns):
+        kind = col.type
+        if pa.types.is_floating(kind) or ((pa.types.is_integer(kind) or pa.types.is_boolean(kind))
+                                          and col.null_count == 0):
+            values = col.to_numpy()
+            columns[name] = pd.Series(values.astype(np.int64) if pa.types.is_boolean(kind) else values)
+        elif pa.types.is_integer(kind):
+            columns[name] = pd.Series(col.to_numpy().astype(float))  # with missing cells: floats, NaN where blank
+        elif pa.types.is_string(kind) or pa.types.is_large_string(kind):
+            columns[name] = pd.Series(pd.arrays.ArrowExtensionArray(pc.fill_null(col, "").cast(pa.string())))
+        else:
+            # by name and position only: ignore_metadata keeps pandas from restoring a stored index
+            columns[name] = plain_text(pa.table({name: col}).to_pandas(ignore_metadata=True)[name])
+    return pd.DataFrame(columns, columns=arrow.column_names, copy=False)
 
 
 def _xlsx_within_bounds(path: Path, sheet: str | None) -> None:
@@ -311,11 +333,20 @@ def _read_xlsx(path: Path, sheet: str | None, header_row: int | None):
     if dupes:
         raise TrackerError(f"{path}, sheet {sheet}, column {dupes[0]}: the column name appears more than once")
     table = pd.DataFrame(body, columns=names, dtype=object)
-    table = table.where(table.notna(), "").map(lambda v: v if isinstance(v, str) else _plain(v))
+    table = pd.DataFrame({c: _xlsx_column(table[c]) for c in table.columns}, columns=table.columns)
     problems = [Problem("warning", "", f"sheet {sheet}: column names read from row {header_row}; rows above it "
                                        f"left out")] if header_row > 1 else []
     problems += _xlsx_hidden_rows(sheet, ws, rows, header_row)
     return table, np.array([n for n, _ in numbered], dtype=np.int64), problems
+
+
+def _xlsx_column(values: pd.Series) -> pd.Series:
+    """A sheet's column: floats when every filled cell holds a number (never through text),
+    else every cell as text ('' where empty)."""
+    filled = values[values.notna()]
+    if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in filled):
+        return values.astype(float)
+    return values.where(values.notna(), "").map(lambda v: v if isinstance(v, str) else plain(v))
 
 
 def _xlsx_sheet(path: Path, book, sheet: str | None) -> str:
@@ -383,67 +414,6 @@ def _by_position(table: pd.DataFrame) -> pd.DataFrame:
     return table.reset_index(drop=True)
 
 
-def _int_text(x: np.ndarray) -> np.ndarray:
-    """Whole numbers (int64) as their decimal text, an object array of str (Arrow's cast: one
-    C pass, four times numpy's)."""
-    import pyarrow as pa
-
-    return pa.array(x.astype(np.int64)).cast(pa.string()).to_numpy(zero_copy_only=False)
-
-
-def _numbers(values: pd.Series) -> np.ndarray:
-    """``pd.to_numeric(values, errors="coerce")`` as floats. Arrow's parser first: it takes a
-    subset of what pandas takes (no surrounding spaces, for one) with the same values, and
-    on any other cell the whole column goes to pandas."""
-    try:
-        import pyarrow as pa
-        import pyarrow.compute as pc
-
-        arr = pa.array(values.to_numpy(dtype=object), type=pa.string())
-        arr = pc.if_else(pc.equal(arr, ""), pa.scalar(None, pa.string()), arr)
-        return pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False).astype(float)
-    except Exception:  # noqa: BLE001 - pyarrow raises several types; pandas then decides cell by cell
-        return pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
-
-
-def _plain_column(col: pd.Series) -> pd.Series:
-    """:func:`_plain` of every cell of a typed column, a column at once where its type allows
-    (numbers, booleans, text); other cells one by one. Missing cells become ''."""
-    values = col.to_numpy()
-    missing = col.isna().to_numpy()
-    if pd.api.types.is_bool_dtype(col) and not missing.any():
-        return pd.Series(_int_text(values), index=col.index)
-    if pd.api.types.is_integer_dtype(col) and not missing.any():
-        return pd.Series(_int_text(values), index=col.index)
-    if pd.api.types.is_float_dtype(col):
-        x = col.to_numpy(dtype=float)
-        whole = np.isfinite(x) & (x == np.round(x)) & (np.abs(x) < 2.0**53)
-        out = _int_text(np.where(whole, x, 0))
-        if not whole.all():
-            out[~whole] = x[~whole].astype(str)
-        out[np.isnan(x)] = ""
-        big = np.isfinite(x) & (x == np.round(x)) & ~whole  # whole numbers past 2^53: exact digits
-        out[big] = [str(int(v)) for v in x[big]]
-        return pd.Series(out, index=col.index)
-    obj = col.astype(object)
-    if pd.api.types.is_string_dtype(col) and col.dtype != object:
-        return obj.where(~missing, "")
-    return obj.where(~missing, "").map(lambda v: v if isinstance(v, str) else _plain(v))
-
-
-def _plain(v) -> str:
-    """Text of a cell read from a typed file: 3.0 -> '3', so codes compare as written."""
-    if isinstance(v, bytes):
-        return v.decode("utf-8")  # binary Parquet columns were checked to be UTF-8 on reading
-    if isinstance(v, (bool, np.bool_)):
-        return str(int(v))
-    if isinstance(v, (int, np.integer)):
-        return str(int(v))
-    if isinstance(v, (float, np.floating)):
-        return "" if np.isnan(v) else (str(int(v)) if float(v).is_integer() else repr(float(v)))
-    return str(v)
-
-
 def _twice(names: list[str]) -> list[str]:
     """The names that appear more than once (in one pass: headers can be wide)."""
     from collections import Counter
@@ -469,6 +439,9 @@ def _read_csv(path: Path, encoding: str | None, decimal: str | None = None) -> t
     ``decimal=','`` a number written with a decimal comma (1,25) is read as 1.25."""
     if decimal not in (None, ".", ","):
         raise TrackerError(f"--decimal {decimal}: give . or ,")
+    fast = _read_csv_arrow(path, encoding, decimal)
+    if fast is not None:
+        return fast
     text = _decode(path, encoding)
     first = text[: text.find("\n")] if "\n" in text else text
     sample = text[: max(65536, len(first) + 1)]
@@ -500,6 +473,100 @@ def _read_csv(path: Path, encoding: str | None, decimal: str | None = None) -> t
                                f"also be the decimal mark")
         table = table.apply(lambda col: col.str.replace(DECIMAL_COMMA, r"\1.\2", regex=True))
     return table, np.array([line for line, _ in widths[1:]], dtype=np.int64)
+
+
+#: Wider files go to the careful reader: a table of tens of thousands of Arrow columns costs
+#: more to build than the careful reader spends on a wide file's few rows. Also the width up
+#: to which check_wave takes each checked column out of the file's table.
+ARROW_MAX_COLUMNS = 2000
+
+
+def _read_csv_arrow(path: Path, encoding: str | None, decimal: str | None) -> tuple[pd.DataFrame, np.ndarray] | None:
+    """The common case at the speed of the file: UTF-8 text with LF or CRLF line ends parsed
+    by pyarrow, every column as Arrow text (so the checks see what the file says, as with
+    the careful reader), rows numbered by the file's own lines. None when the file needs the
+    careful reader of :func:`_read_csv`, which then says what is wrong: another encoding,
+    lone CR line ends, bytes that are not UTF-8, a row of another width than the header."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.csv as pcsv
+
+    if encoding not in (None, "utf-8", "utf8", "utf-8-sig"):
+        return None
+    raw = path.read_bytes()
+    if raw.count(b"\r") != raw.count(b"\r\n") or not raw.strip():
+        return None
+    end = raw.find(b"\n")
+    first_raw = raw[: end if end >= 0 else len(raw)].rstrip(b"\r")
+    if not first_raw.strip() or first_raw.count(b'"') % 2:
+        return None  # no header on the first line, or a header broken over lines: the careful reader
+    try:
+        first = first_raw.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        return None
+    sample = raw[: max(65536, len(first_raw) + 1)].decode("utf-8", errors="ignore").removeprefix("\ufeff")
+    try:
+        delimiter = csv.Sniffer().sniff(sample[:65536], delimiters=",;\t|").delimiter
+    except csv.Error:
+        delimiter = ","
+    names, blank_tail = _csv_header(path, first, sample, delimiter)
+    if len(names) > ARROW_MAX_COLUMNS:
+        return None
+    if decimal == "," and delimiter == ",":
+        raise TrackerError(f"{path}: --decimal ,: the columns are separated by commas too, so a comma cannot "
+                           f"also be the decimal mark")
+    keys = [f"c{i}" for i in range(len(names))]
+    odd: list = []
+
+    def wrong_width(row) -> str:
+        odd.append(row)
+        return "skip"
+
+    quoted = b'"' in raw
+    try:
+        arrow = pcsv.read_csv(
+            pa.BufferReader(raw),
+            read_options=pcsv.ReadOptions(skip_rows=1, column_names=keys, block_size=max(1 << 24, 4 * len(first_raw))),
+            parse_options=pcsv.ParseOptions(delimiter=delimiter, newlines_in_values=quoted,
+                                            invalid_row_handler=wrong_width),
+            convert_options=pcsv.ConvertOptions(column_types={k: pa.string() for k in keys}, strings_can_be_null=False,
+                                                quoted_strings_can_be_null=False))
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        return None
+    if odd:
+        return None
+    columns = {}
+    for key, name in zip(keys, names):
+        col = arrow[key]
+        if decimal == ",":
+            col = pc.replace_substring_regex(col, pattern=DECIMAL_COMMA, replacement=r"\1.\2")
+        columns[name or key] = pd.Series(pd.arrays.ArrowExtensionArray(col))
+    table = pd.DataFrame(columns)
+    if blank_tail:  # empty columns after the last named one (a spreadsheet's export): ignored when empty
+        tail = list(table.columns[len(names) - blank_tail:])
+        if all(bool(pc.all(pc.equal(arrow[keys[len(names) - blank_tail + j]], "")).as_py() is not False)
+               for j in range(blank_tail)):
+            table = table.drop(columns=tail)
+        else:
+            return None
+    lines = _filled_lines(raw)
+    if len(lines) - 1 != len(table):
+        # a quoted answer holds a line break: each record's first line, by the careful reader
+        lines = np.array([line for line, _ in _record_lines(raw.decode("utf-8-sig"), delimiter)], dtype=np.int64)
+    return table, lines[1:]
+
+
+def _filled_lines(raw: bytes) -> np.ndarray:
+    """The numbers (from 1) of the lines of ``raw`` that hold anything (LF or CRLF line ends).
+    Where no answer holds a line break, these are the header's line and each record's."""
+    buf = np.frombuffer(raw, dtype=np.uint8)
+    breaks = np.flatnonzero(buf == 10)
+    starts = np.concatenate([[0], breaks + 1])
+    ends = np.append(breaks, buf.size)
+    cr = np.zeros(ends.size, dtype=bool)
+    inside = ends > starts
+    cr[inside] = buf[ends[inside] - 1] == 13
+    return np.flatnonzero(ends - starts - cr > 0) + 1
 
 
 def _decode(path: Path, encoding: str | None) -> str:
@@ -596,7 +663,8 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
     variable) under its codebook name, codes as floats (blank = NaN), plus the id, weight,
     strata and clusters columns. The rules, in the order their messages come: the header
     (:func:`_header_rules`), the columns each variable reads (:func:`_sources`), the design
-    columns (:func:`_design_rules`), the variables (:func:`_variable_rules`).
+    columns (:func:`_design_rules`), the variables (:func:`_variable_rules`). The variables'
+    columns are taken out of ``wf.table`` as they are checked (a large wave is not held twice).
     """
     table = _by_position(wf.table)
     add = _Found(wf.first_row, wf.row_numbers)
@@ -617,7 +685,9 @@ def check_wave(codebook: Codebook, wf: WaveFile, label: str, order: dict[str, st
         shown = ", ".join(extra[:10]) + (" ..." if len(extra) > 10 else "")
         add.problems.append(Problem("warning", "", f"{len(extra)} column(s) not in the codebook are left out: {shown}"))
     design = [c for c in codebook.design_columns() if c in out]
-    harmonized = pd.DataFrame({c: out[c] for c in design + present}, index=table.index).reset_index(drop=True)
+    # copy=False: the columns are not copied into one block (a large wave would be held twice)
+    harmonized = pd.DataFrame({c: out[c] for c in design + present}, index=table.index, copy=False)
+    harmonized = harmonized.reset_index(drop=True)
     return harmonized, add.problems
 
 
@@ -680,22 +750,21 @@ def _design_rules(codebook: Codebook, table: pd.DataFrame, rake: bool, out: dict
             if not (role == "weight" and (rake or codebook.rake.get("always"))):
                 add("error", col, f"the {role} column is missing")
             continue
-        values = table[col].astype(str).str.strip()
-        blank = (values == "").to_numpy()
+        cells = read_column(table[col])
         if role == "weight":
-            out[col] = _weight_rules(col, values, blank, add)
+            out[col] = _weight_rules(col, cells, add)
         else:
-            out[col] = _label_column_rules(role, col, values, blank, add)
+            out[col] = _label_column_rules(role, col, cells, add)
 
 
-def _weight_rules(col: str, values: pd.Series, blank: np.ndarray, add: _Found) -> pd.Series:
+def _weight_rules(col: str, cells: FileColumn, add: _Found) -> pd.Series:
     """A weight: present, a positive finite number, within bounds; the numbers."""
-    num = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
+    num, blank = cells.numbers, cells.blank
     if blank.any():
         add("error", col, "blank weight", blank)
-    bad_text = np.isnan(num) & ~blank
+    bad_text = cells.not_numbers
     if bad_text.any():
-        example = values[bad_text].iloc[0]
+        example = cells.example(bad_text)
         add("error", col, f"weight is not a number (e.g. {example!r}){_decimal_hint(example)}", bad_text)
     nonpos = ~np.isnan(num) & ~(num > 0)
     if nonpos.any():
@@ -712,22 +781,28 @@ def _weight_rules(col: str, values: pd.Series, blank: np.ndarray, add: _Found) -
         add("error", col, f"the largest weight is {ratio:,.3g} times the smallest (over "
                           f"{MAX_WEIGHT_RATIO:,.0f}): a scaling slip or a broken weight; the rows are the "
                           f"largest", fine & (num == num[fine].max()))
-    return pd.Series(num, index=values.index)
+    return pd.Series(num)
 
 
-def _label_column_rules(role: str, col: str, values: pd.Series, blank: np.ndarray, add: _Found) -> pd.Series:
+def _label_column_rules(role: str, col: str, cells: FileColumn, add: _Found) -> pd.Series:
     """An id, stratum or cluster column: no blanks, no control characters, finite strata and
-    clusters, each id once; the values as text."""
+    clusters, each id once; the values as text. Searched by Arrow, a column at a time."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    values, blank = cells.text, cells.blank
     if blank.any():
         add("error", col, f"blank {role}", blank)
-    control = values.str.contains(_CONTROL, regex=True).to_numpy(dtype=bool)
+    arr = pa.array(values, type=pa.string())
+    control = pc.match_substring_regex(arr, _CONTROL.pattern).to_numpy(zero_copy_only=False).astype(bool)
     if control.any():
         code = next(c for c in values[control].iloc[0] if _CONTROL.match(c))
         add("error", col, f"{role} value(s) hold the control character U+{ord(code):04X} (a NUL byte, "
                           f"an escape sequence or the like): a damaged export?", control)
     if role in ("strata", "clusters"):
-        word = values.str.lower().str.lstrip("+-")
-        endless = word.isin(["inf", "infinity", "nan"]).to_numpy(dtype=bool)
+        word = pc.utf8_ltrim(pc.utf8_lower(arr), characters="+-")
+        endless = pc.is_in(word, value_set=pa.array(["inf", "infinity", "nan"])).to_numpy(
+            zero_copy_only=False).astype(bool)
         if endless.any():
             add("error", col, f"{role} {values[endless].iloc[0]!r} is not a finite number", endless)
     if role == "id":
@@ -780,21 +855,24 @@ def _variable_rules(codebook: Codebook, table: pd.DataFrame, label: str, order: 
         for c in file_cols:
             if source[c] != c:
                 add("warning", source[c], f"read as {c} (an alias in the codebook)")
-            out[c] = _check_column(v, c, table[source[c]].astype(str).str.strip(), label, add)
+            # taken out of the file's table once read, so a long wave is not held twice (a pop
+            # costs a pass over the columns: a very wide file keeps its few rows instead)
+            cells = table.pop(source[c]) if table.shape[1] <= ARROW_MAX_COLUMNS else table[source[c]]
+            out[c] = _check_column(v, c, read_column(cells), label, add)
             present_cols.append(c)
     return present_cols
 
 
-def _check_column(v: Variable, col: str, values: pd.Series, label: str, add) -> pd.Series:
-    blank = (values == "").to_numpy()
+def _check_column(v: Variable, col: str, cells: FileColumn, label: str, add) -> pd.Series:
+    blank = cells.blank
     if blank.all() and v.type != "multi":  # a multi option nobody ticked may be all blank
         add("error", col, "the column is blank in every row (a lost export or a wrong sheet?)")
     if v.type == "text":
-        return values
-    num = _numbers(values)
-    text = np.isnan(num) & ~blank
+        return cells.text
+    num = cells.numbers.copy() if any(label in rc.waves for rc in v.recode) else cells.numbers
+    text = cells.not_numbers
     if text.any():
-        example = values[text].iloc[0]
+        example = cells.example(text)
         add("error", col, f"text where a number belongs (e.g. {example!r}){_decimal_hint(example)}", text)
     ok = ~np.isnan(num)
     if v.type == "multi":

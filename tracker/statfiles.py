@@ -1,8 +1,8 @@
 """Wave files from statistics packages: SPSS (.sav, .zsav, .por), Stata (.dta) and SAS
 (.sas7bdat, .xpt), read through pyreadstat with their metadata.
 
-The cells go to intake as the text they stand for (a code 3.0 as '3', a date as
-2025-03-31), so every check of the codebook applies as to a CSV file; the file's value
+Numbers go to intake as numbers, dates as ISO text (2025-03-31) and text as text, so every
+check of the codebook applies as to a CSV file (tracker.filecolumns); the file's value
 labels and user-missing codes come along (:class:`FileLabels`) so that they can be compared
 with the codebook's codes and with the labels of the wave before (:func:`label_problems`).
 """
@@ -41,7 +41,7 @@ class FileLabels:
 
 
 def read_stat_file(path: Path) -> tuple[pd.DataFrame, FileLabels]:
-    """The file's columns as text cells (missing as '') and its labels."""
+    """The file's columns (numbers as numbers, the rest as text, missing as '') and its labels."""
     try:
         import pyreadstat
     except ImportError:  # a dependency; only a broken install lacks it
@@ -53,7 +53,7 @@ def read_stat_file(path: Path) -> tuple[pd.DataFrame, FileLabels]:
         frame, meta = getattr(pyreadstat, reader)(str(path), **kwargs)
     except Exception as exc:  # noqa: BLE001 - pyreadstat raises its own types for a broken file
         raise TrackerError(f"{path}: cannot be read as {what} ({str(exc).splitlines()[0][:200]})") from None
-    table = pd.DataFrame({str(c): _text(frame[c]) for c in frame.columns}, columns=[str(c) for c in frame.columns])
+    table = pd.DataFrame({str(c): _cells(frame[c]) for c in frame.columns}, columns=[str(c) for c in frame.columns])
     values = {str(col): {float(k): str(v) for k, v in labels.items() if _is_number(k)}
               for col, labels in (meta.variable_value_labels or {}).items()}
     missing: dict[str, tuple[float, ...]] = {}
@@ -69,18 +69,20 @@ def _is_number(x) -> bool:
     return isinstance(x, (int, float, np.integer, np.floating)) and not isinstance(x, bool) and np.isfinite(x)
 
 
-def _text(col: pd.Series) -> pd.Series:
-    """A typed column as the text it stands for: whole numbers without '.0', dates and times
-    in ISO form, missing as ''."""
-    from .intake import _plain_column
+def _cells(col: pd.Series) -> pd.Series:
+    """A column as intake reads it: numbers as they are (never through text); dates and times
+    as ISO text; other cells as text, missing as ''."""
+    from .filecolumns import plain_text
 
+    if pd.api.types.is_numeric_dtype(col.dtype):
+        return col
     if col.dtype == object:
         first = next((v for v in col if v is not None and not (isinstance(v, float) and np.isnan(v))), None)
         if isinstance(first, (dt.date, dt.datetime, dt.time)):
             return col.map(lambda v: v.isoformat() if isinstance(v, (dt.date, dt.datetime, dt.time)) else "")
     if pd.api.types.is_datetime64_any_dtype(col):
         return col.map(lambda v: "" if pd.isna(v) else v.isoformat())
-    return _plain_column(col)
+    return plain_text(col)
 
 
 def labels_for_ledger(book, labels: FileLabels) -> dict[str, dict[str, str]]:
