@@ -78,3 +78,36 @@ def test_a_draft_from_a_csv_file_by_inspection(tmp_path):
     a = study.estimates(metrics=["punctuality_top2"], by=[]).iloc[0]
     b = hand.estimates(metrics=["on_time_good"], by=[]).iloc[0]
     assert a["value"] == pytest.approx(b["value"], rel=1e-12) and a["se"] == pytest.approx(b["se"], rel=1e-12)
+
+
+def _with_set(path: Path, line: bytes) -> None:
+    """Write a multiple-response set into an SPSS file (pyreadstat reads sets but does not
+    write them): an extension record of type 7, subtype 7, before the dictionary's end (record
+    999), as the SPSS system-file layout has it (PSPP's documentation of the format, "Multiple
+    Response Sets Records")."""
+    import struct
+
+    raw = path.read_bytes()
+    end = raw.find(struct.pack("<ii", 999, 0), 176)  # after the 176-byte file header
+    path.write_bytes(raw[:end] + struct.pack("<iiii", 7, 7, 1, len(line)) + line + raw[end:])
+
+
+def test_the_files_multiple_response_sets_become_multi_questions(tmp_path):
+    sav = tmp_path / "wave.sav"
+    _labelled_sav(sav)
+    _with_set(sav, b"$modes=D1 1 11 Modes used mode_bus mode_tram\n$other=D1 2 5 Other sat_overall punctuality\n")
+    assert pyreadstat.read_sav(str(sav), metadataonly=True)[1].mr_sets["modes"]["variable_list"] == [
+        "mode_bus", "mode_tram"]  # the record as written is read back (pyreadstat)
+    done = CliRunner().invoke(main, ["draft", str(sav), "-o", str(tmp_path / "draft.yaml")])
+    assert done.exit_code == 0, done.output
+    text = (tmp_path / "draft.yaml").read_text()
+    assert "  modes:  # the file's multiple-response set modes\n    label: \"Modes used\"\n    type: multi" in text
+    assert "modes_any:" in text and "share: [mode_bus, mode_tram]" in text
+    assert "set other (sat_overall, punctuality) is drafted as separate columns: it counts the value 2" in text
+    drafted = Study.create(tmp_path / "d", tmp_path / "draft.yaml")
+    drafted.add(sav, "2023-Q3", "2023-08-20")
+    got = drafted.estimates(metrics=["modes_any"], by=[])
+    frame = pd.read_csv(WAVE)
+    ticked = (frame[["mode_bus", "mode_tram"]] == 1).any(axis=1)
+    # reference: numpy's weighted mean of "either ticked" (common practice, no source)
+    assert got["value"].iloc[0] == pytest.approx(np.average(ticked, weights=frame["wt"]), rel=1e-12)

@@ -1,9 +1,10 @@
 """A first codebook drafted from a wave file, for the analyst to review.
 
 From an SPSS or Stata file the draft takes the metadata (variable labels, value labels,
-user-missing codes); from a CSV, Parquet or XLSX file it inspects the values (numbers or
-text, their codes and ranges). It proposes the id, weight, strata and cluster columns by name
-and content, option columns of a multi-response question (0/1 columns sharing a stem), the
+user-missing codes, an SPSS file's multiple-response sets); from a CSV, Parquet or XLSX file
+it inspects the values (numbers or text, their codes and ranges). It proposes the id, weight,
+strata and cluster columns by name and content, option columns of a multi-response question
+(the file's sets, else 0/1 columns sharing a stem), the
 subgroup splits, and a metric for every rating scale (top-2 box) and yes/no item. Every
 guess carries a ``# review:`` comment. The draft passes the codebook's own checks before it
 is written, and never overwrites a file.
@@ -68,12 +69,14 @@ def draft_codebook(path: str | Path, title: str | None = None) -> Draft:
 
     wf = read_wave_file(path)
     table, labels = text_table(wf.table), wf.labels
-    column_labels = _column_labels(path) if labels is not None else {}
+    column_labels, sets = _file_metadata(path) if labels is not None else ({}, {})
     guesses: list[str] = []
     id_col, weight, strata, clusters = _design_columns(path, table)
     design = {id_col, weight, strata, clusters} - {None}
-    multi = _multi_groups([c for c in map(str, table.columns) if c not in design], table)
-    in_multi = {c for opts in multi.values() for c in opts}
+    from_file, set_notes = _file_sets(sets, table, design)
+    taken = {c for opts in from_file.values() for c in opts[1]}
+    multi = _multi_groups([c for c in map(str, table.columns) if c not in design | taken], table)
+    in_multi = {c for opts in multi.values() for c in opts} | taken
     variables: list[str] = []
     groups: list[str] = []
     metrics: list[str] = []
@@ -85,6 +88,13 @@ def draft_codebook(path: str | Path, title: str | None = None) -> Draft:
         if kind == "category" and 2 <= len(codes) <= 8:
             groups.append(f"  {c}: {{variable: {c}}}  # review: a split for subgroup results")
         metrics += _metrics_of(c, kind, codes, column_labels.get(c) or c)
+    for name, (title_, options) in from_file.items():
+        opts = "\n".join(f"      {o}: {_q(column_labels.get(o) or o)}" for o in options)
+        variables.append(f"  {name}:  # the file's multiple-response set {name}\n    label: {_q(title_ or name)}\n"
+                         f"    type: multi\n    options:\n{opts}")
+        metrics.append(f"  {name}_any:\n    label: {_q((title_ or name) + ': any option')}\n    variable: {name}\n"
+                       f"    share: [{', '.join(options)}]")
+    variables += set_notes
     for stem, options in multi.items():
         opts = "\n".join(f"      {o}: {_q(column_labels.get(o) or o)}" for o in options)
         variables.append(f"  {stem}:  # review: 0/1 columns sharing the stem {stem}_, read as one multi-response "
@@ -134,15 +144,37 @@ def _metrics_of(c: str, kind: str, codes: dict, title: str) -> list[str]:
     return []
 
 
-def _column_labels(path: Path) -> dict[str, str]:
-    """A labelled file's variable labels (its questions' wording)."""
+def _file_metadata(path: Path) -> tuple[dict[str, str], dict]:
+    """A labelled file's variable labels (its questions' wording) and its multiple-response
+    sets (SPSS files carry them: pyreadstat's ``mr_sets``)."""
     import pyreadstat
 
     from .statfiles import FORMATS
 
     reader = FORMATS[path.suffix.lower()][1]
     _, meta = getattr(pyreadstat, reader)(str(path), metadataonly=True)
-    return {str(k): str(v) for k, v in (meta.column_names_to_labels or {}).items() if v}
+    labels = {str(k): str(v) for k, v in (meta.column_names_to_labels or {}).items() if v}
+    return labels, dict(getattr(meta, "mr_sets", None) or {})
+
+
+def _file_sets(sets: dict, table: pd.DataFrame, design: set) -> tuple[dict[str, tuple[str, list[str]]], list[str]]:
+    """The file's multiple-response sets the codebook can read as multi questions (dichotomy
+    sets counting the value 1 over 0/1 columns), and a review comment for each other set."""
+    out: dict[str, tuple[str, list[str]]] = {}
+    notes: list[str] = []
+    for name, spec in sets.items():
+        cols = [str(c) for c in spec.get("variable_list", [])]
+        usable = (spec.get("is_dichotomy") and float(spec.get("counted_value", 1)) == 1.0 and len(cols) >= 2
+                  and all(c in table.columns and c not in design for c in cols)
+                  and all(set(np.unique(x[np.isfinite(x)])) <= {0.0, 1.0} for x in (_numbers(table[c]) for c in cols)))
+        if usable:
+            out[str(name)] = (str(spec.get("label") or ""), cols)
+        else:
+            why = ("a category set (each column holds a code)" if not spec.get("is_dichotomy") else
+                   f"it counts the value {spec.get('counted_value')!r}, and a multi question's options hold 0/1")
+            notes.append(f"  # review: the file's multiple-response set {name} ({', '.join(cols)}) is drafted as "
+                         f"separate columns: {why}")
+    return out, notes
 
 
 def _multi_groups(columns: list[str], table: pd.DataFrame) -> dict[str, list[str]]:
