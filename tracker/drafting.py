@@ -88,19 +88,16 @@ def draft_codebook(path: str | Path, title: str | None = None) -> Draft:
         if kind == "category" and 2 <= len(codes) <= 8:
             groups.append(f"  {c}: {{variable: {c}}}  # review: a split for subgroup results")
         metrics += _metrics_of(c, kind, codes, column_labels.get(c) or c)
-    for name, (title_, options) in from_file.items():
+    questions = {name: (title_ or name, options, f"the file's multiple-response set {name}")
+                 for name, (title_, options) in from_file.items()}
+    questions |= {stem: (stem, options, (f"review: 0/1 columns sharing the stem {stem}_, read as one "
+                                         f"multi-response question")) for stem, options in multi.items()}
+    for name, (title_, options, why) in questions.items():
         opts = "\n".join(f"      {o}: {_q(column_labels.get(o) or o)}" for o in options)
-        variables.append(f"  {name}:  # the file's multiple-response set {name}\n    label: {_q(title_ or name)}\n"
-                         f"    type: multi\n    options:\n{opts}")
-        metrics.append(f"  {name}_any:\n    label: {_q((title_ or name) + ': any option')}\n    variable: {name}\n"
+        variables.append(f"  {name}:  # {why}\n    label: {_q(title_)}\n    type: multi\n    options:\n{opts}")
+        metrics.append(f"  {name}_any:\n    label: {_q(title_ + ': any option')}\n    variable: {name}\n"
                        f"    share: [{', '.join(options)}]")
     variables += set_notes
-    for stem, options in multi.items():
-        opts = "\n".join(f"      {o}: {_q(column_labels.get(o) or o)}" for o in options)
-        variables.append(f"  {stem}:  # review: 0/1 columns sharing the stem {stem}_, read as one multi-response "
-                         f"question\n    label: {_q(stem)}\n    type: multi\n    options:\n{opts}")
-        metrics.append(f"  {stem}_any:\n    label: {_q(stem + ': any option')}\n    variable: {stem}\n"
-                       f"    share: [{', '.join(options)}]")
     if not metrics:
         raise TrackerError(f"{path}: no rating scale or yes/no item found to draft a metric from; write the "
                            f"metrics by hand (docs/codebook.md)")
