@@ -80,6 +80,9 @@ def reference(tmp_path_factory):
     out = tmp_path_factory.mktemp("r")
     done = subprocess.run(["Rscript", str(HERE / "r" / "api_reference.R"), str(out)], capture_output=True,
                           text=True, timeout=600, check=False)
+    if done.returncode == 0:  # then the distributions and within-wave comparisons, on the files it wrote
+        done = subprocess.run(["Rscript", str(HERE / "r" / "within_reference.R"), str(out)], capture_output=True,
+                              text=True, timeout=600, check=False)
     if done.returncode != 0:
         if os.environ.get("CI"):
             pytest.fail(f"R's survey package did not run: {done.stderr[-2000:]}")
@@ -402,3 +405,65 @@ def test_an_independent_change_equals_r_two_designs(two_samples):
         np.testing.assert_allclose(row["statistic"], t, rtol=1e-10, err_msg=str(key))
         if np.isfinite(row["p_raw"]):  # cells the reliability rule refuses (most here: 15 and 40 clusters) are not tested
             np.testing.assert_allclose(row["p_raw"], 2 * stats.t.sf(abs(t), df), rtol=1e-8, err_msg=str(key))
+
+
+# -- whole distributions and subgroups compared within a wave (tests/r/within_reference.R) -------------
+
+WITHIN = ["apistrat", "apiclus1"]
+CODES = {"1": "E", "2": "H", "3": "M"}
+
+
+@pytest.mark.parametrize("design", WITHIN)
+def test_every_code_of_a_question_equals_r(reference, design):
+    # reference: R's svymean(~factor(stype)) in total and in subset(awards == 1)
+    from tracker.answers import answer_shares
+
+    want = pd.read_csv(_data_dir(reference) / "codes.csv")
+    want = want[want["design"] == design]
+    got = answer_shares(reference[1][design], "stype", waves=["2000"], by=["awards"])
+    got = got[got["in_base"] == "valid answers"].set_index(["group", "subgroup", "code"])
+    for r in want.itertuples():
+        mine = got.loc[(r.group, r.subgroup, str(r.code))]
+        assert mine["value"] == pytest.approx(r.value, rel=1e-12, abs=1e-12)
+        assert mine["se"] == pytest.approx(r.se, rel=1e-8, abs=1e-8)
+
+
+@pytest.mark.parametrize("design", WITHIN)
+def test_quartiles_and_their_woodruff_intervals_equal_r(reference, design):
+    # reference: R's svyquantile(~api00, quantiles = c(.25, .5, .75), ci = TRUE) (qrule "math",
+    # interval.type "mean": Woodruff), in total and in subset(awards == 1)
+    from tracker.answers import number_summary
+
+    want = pd.read_csv(_data_dir(reference) / "quartiles.csv")
+    want = want[want["design"] == design]
+    got = number_summary(reference[1][design], "api", waves=["2000"], by=["awards"])
+    names = {0.25: "lower quartile", 0.5: "median", 0.75: "upper quartile"}
+    got = got.set_index(["group", "subgroup", "statistic"])
+    for r in want.itertuples():
+        mine = got.loc[(r.group, r.subgroup, names[r.p])]
+        assert (mine["value"], mine["low"], mine["high"]) == (r.value, r.low, r.high)
+        assert mine["se"] == pytest.approx(r.se, rel=1e-10)
+
+
+@pytest.mark.parametrize("design", WITHIN)
+def test_subgroups_compared_within_a_wave_equal_r(reference, design):
+    # reference: R's svyby(covmat = TRUE) + svycontrast for each pair of school types and each type
+    # against the rest; regTermTest(svyglm(y ~ stype), ~stype) for the test across the three
+    from tracker.within import compare_within
+
+    folder = _data_dir(reference)
+    got = compare_within(reference[1][design], wave="2000", by=["stype"]).table
+    metric = {"api00": "api_mean", "yes": "target_met"}
+    pairs = pd.read_csv(folder / "within_pairs.csv")
+    for r in pairs[pairs["design"] == design].itertuples():
+        second = "rest of the sample" if r.b == 0 else CODES[str(r.b)]
+        row = got[(got["metric"] == metric[r.metric]) & (got["first"] == CODES[str(r.a)]) & (got["second"] == second)]
+        assert len(row) == 1
+        assert row["difference"].iloc[0] == pytest.approx(r.diff, rel=1e-10, abs=1e-12)
+        assert row["se"].iloc[0] == pytest.approx(r.se, rel=1e-8)
+    overall = pd.read_csv(folder / "within_overall.csv")
+    for r in overall[overall["design"] == design].itertuples():
+        row = got[(got["metric"] == metric[r.metric]) & (got["comparison"] == "across all levels")]
+        assert row["statistic"].iloc[0] == pytest.approx(r.F, rel=1e-8)
+        assert row["df"].iloc[0] == r.df2
+        assert row["p_raw"].iloc[0] == pytest.approx(r.p, rel=1e-8)

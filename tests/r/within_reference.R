@@ -1,0 +1,52 @@
+# Reference values from R's survey package (Lumley) for whole distributions and subgroups
+# compared within a wave, on the California school data it ships (data(api)), for
+# tests/test_against_r.py. Usage: Rscript within_reference.R OUTDIR (after api_reference.R
+# wrote the coded samples there).
+suppressMessages(library(survey))
+out <- commandArgs(trailingOnly = TRUE)[1]
+options(survey.lonely.psu = "fail")
+designs <- list(
+  apistrat = function(d) svydesign(id = ~1, strata = ~stype, weights = ~pw, data = d),
+  apiclus1 = function(d) svydesign(id = ~dnum, weights = ~pw, data = d))
+codes <- list(); quart <- list(); pairs <- list(); overall <- list()
+for (name in names(designs)) {
+  d <- read.csv(file.path(out, paste0(name, ".csv")))
+  des <- designs[[name]](d)
+  des <- update(des, stype_f = factor(stype), awards_f = factor(awards), yes = as.numeric(sch_wide == 1))
+  # every code of stype, in total and among award schools
+  for (cell in list(c("total", "Total"), c("awards", "Yes"))) {
+    sub <- if (cell[1] == "total") des else subset(des, awards == 1)
+    m <- svymean(~stype_f, sub)
+    codes[[length(codes) + 1]] <- data.frame(design = name, group = cell[1], subgroup = cell[2],
+      code = sub("stype_f", "", names(coef(m))), value = as.vector(coef(m)), se = as.vector(SE(m)))
+    q <- svyquantile(~api00, sub, c(0.25, 0.5, 0.75), ci = TRUE)[[1]]
+    quart[[length(quart) + 1]] <- data.frame(design = name, group = cell[1], subgroup = cell[2],
+      p = c(0.25, 0.5, 0.75), value = q[, 1], low = q[, 2], high = q[, 3], se = q[, 4])
+  }
+  # the levels of stype compared pairwise and each against the rest, for the mean API and the share
+  for (v in c("api00", "yes")) {
+    f <- as.formula(paste0("~", v))
+    by <- svyby(f, ~stype_f, des, svymean, covmat = TRUE)
+    for (pr in list(c(1, 2), c(1, 3), c(2, 3))) {
+      w <- rep(0, 3); w[pr[1]] <- 1; w[pr[2]] <- -1
+      k <- svycontrast(by, w)
+      pairs[[length(pairs) + 1]] <- data.frame(design = name, metric = v, a = pr[1], b = pr[2],
+        diff = as.vector(coef(k)), se = as.vector(SE(k)))
+    }
+    for (lv in 1:3) {
+      des2 <- update(des, rest = factor(ifelse(stype == lv, "in", "out"), levels = c("in", "out")))
+      by2 <- svyby(f, ~rest, des2, svymean, covmat = TRUE)
+      k <- svycontrast(by2, c(1, -1))
+      pairs[[length(pairs) + 1]] <- data.frame(design = name, metric = v, a = lv, b = 0,
+        diff = as.vector(coef(k)), se = as.vector(SE(k)))
+    }
+    g <- svyglm(as.formula(paste0(v, " ~ stype_f")), des)
+    t <- regTermTest(g, ~stype_f, method = "Wald")
+    overall[[length(overall) + 1]] <- data.frame(design = name, metric = v, F = as.vector(t$Ftest),
+      df1 = t$df, df2 = t$ddf, p = as.vector(t$p))
+  }
+}
+write.csv(do.call(rbind, codes), file.path(out, "codes.csv"), row.names = FALSE)
+write.csv(do.call(rbind, quart), file.path(out, "quartiles.csv"), row.names = FALSE)
+write.csv(do.call(rbind, pairs), file.path(out, "within_pairs.csv"), row.names = FALSE)
+write.csv(do.call(rbind, overall), file.path(out, "within_overall.csv"), row.names = FALSE)

@@ -1,0 +1,277 @@
+"""Subgroups compared within one wave: each level against the rest of the sample, the levels
+of a split pairwise, and a test across all levels of a split, in one family of tests.
+
+Every estimate is a domain ratio (the share, mean or balance of a metric among a subgroup's
+respondents) and is linearized as in tracker.estimates: z_i = d_i w_i e_i (y_i - value) /
+sum(d w e). The two sides of a comparison come from the same sample, so their covariance is
+not zero where they share clusters or strata: each side's PSU totals of z are compared within
+strata, the covariance of the two from the same totals (the with-replacement estimator,
+Wolter 2007, *Introduction to Variance Estimation*, ch. 6; R's ``svyby(covmat=TRUE)`` with
+``svycontrast``). A level against the rest is two disjoint domains; two levels of a split
+likewise. The test across a split's K levels is the design-based Wald test that their
+values are equal, W = (C v)' (C V C')^-1 (C v) with C the K - 1 contrasts against the last
+level, F = W / (K - 1) on (K - 1, df + 1 - K) degrees of freedom, df the wave's design
+degrees of freedom (as R's ``regTermTest`` on ``svyglm(y ~ split)``).
+
+All comparisons of a call (every metric, split and pair, and the tests across levels) form
+one family: their p-values are adjusted together (tracker.methods.tests.adjust_pvalues) and
+each verdict agrees with the adjusted interval beside it. Computed from the wave's
+respondents (one read of the stored wave).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .errors import TrackerError
+from .methods.distributions import f_sf
+from .methods.intervals import critical
+from .methods.tests import adjust_pvalues, difference_test, family_level
+from .methods.variance import PsuTotals, cross_wave_covariance, psu_index
+from .options import check_adjust, check_level
+
+__all__ = ["GAP_VERDICTS", "WithinResult", "compare_within"]
+
+#: The verdict of a comparison within a wave: its code and its one definition. A comparison
+#: of two waves (tracker.changes.VERDICTS) and a series (tracker.trends.PATTERNS) have their own.
+GAP_VERDICTS = {
+    "higher": "significant after adjustment: the first side's whole adjusted interval of the difference lies "
+              "above zero",
+    "lower": "significant after adjustment: the first side's whole adjusted interval of the difference lies "
+             "below zero",
+    "differ": "the test across all levels of a split is significant after adjustment: the levels are not all "
+              "alike (the pairwise rows say which differ)",
+    "no difference found": "not significant after adjustment: the data do not show the sides apart (which does "
+                           "not show them alike)",
+    "not tested": "a side with no respondents, no sampling variance, or too few degrees of freedom",
+}
+
+COLUMNS = ["wave", "metric", "metric_label", "kind", "group", "comparison", "first", "second", "value_first",
+           "value_second", "difference", "se", "df", "statistic", "p_raw", "p_adjusted", "adjusted_low",
+           "adjusted_high", "adjusted_level", "base_first", "base_second", "verdict"]
+
+REST = "rest of the sample"
+
+
+@dataclass(frozen=True)
+class WithinResult:
+    """Every comparison of one call within a wave, and the family they were adjusted in."""
+
+    table: pd.DataFrame
+    wave: str
+    adjust: str
+    level: float
+
+    @property
+    def n_tests(self) -> int:
+        return int(self.table["p_adjusted"].notna().sum())
+
+
+def _domains(book, table, groups: list[str]):
+    """The domains compared: for each split, its levels and each level's rest of the sample.
+    Returns (membership N x J, [(split, level name, is rest)])."""
+    from .cells import group_matrix
+
+    D, levels = group_matrix(book, table, groups)
+    cols, names = [], []
+    for j in range(1, D.shape[1]):
+        cols += [D[:, j], ~D[:, j]]
+        names += [(levels.group[j], levels.level[j], False), (levels.group[j], levels.level[j], True)]
+    if not cols:
+        return np.zeros((len(table), 0), bool), names
+    return np.column_stack(cols), names
+
+
+def _linearized(book, table, metrics, Dm, psu_id, P):
+    """Per metric: each domain's value, base, and PSU totals of its linearized values (P x J x M),
+    and which PSUs hold each domain's base (P x J x M)."""
+    import scipy.sparse as sp
+
+    from .cells import metric_matrix
+    from .estimates import weights_of
+
+    Y, E = metric_matrix(book, table, metrics)
+    w = weights_of(book, table)
+    N, J = Dm.shape
+    M = len(metrics)
+    Df = Dm.astype(float)
+    we = E * w[:, None]
+    sw = Df.T @ we
+    with np.errstate(divide="ignore", invalid="ignore"):
+        value = (Df.T @ (we * Y)) / sw
+    base = Df.T @ E.astype(float)
+    S = sp.csr_matrix((np.ones(N), (psu_id, np.arange(N))), shape=(P, N))
+    # z of domain j and metric m: d_j w e (y - value_jm) / sw_jm, summed per PSU
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = Df[:, :, None] * (we[:, None, :] * (Y[:, None, :] - value[None]) / sw[None])
+    z = np.where(np.isfinite(z), z, 0.0).reshape(N, J * M)
+    totals = np.asarray(S @ z).reshape(P, J, M)
+    held = np.asarray(S @ (Df[:, :, None] * E[:, None, :]).reshape(N, J * M)).reshape(P, J, M) > 0
+    return value, base, totals, held
+
+
+def compare_within(study, wave: str | None = None, metrics=None, by=None, adjust: str = "bh",
+                   level: float = 0.95) -> WithinResult:
+    """Compare subgroups within ``wave`` (the latest by default) for ``metrics`` over the
+    splits ``by`` (every split by default): see the module's description."""
+    from .estimates import calibration_of, design_of, fpc_factor, population_of
+
+    check_adjust(adjust)
+    check_level(level)
+    labels = study.labels
+    if not labels:
+        raise TrackerError("the study holds no waves yet")
+    wave = wave or labels[-1]
+    if wave not in labels:
+        raise TrackerError(f"wave {wave!r} is not stored (stored: {', '.join(labels)})")
+    book = study.codebook
+    metric_list = study.pick_metrics(metrics)
+    groups = study.pick_groups(by)
+    if not groups:
+        raise TrackerError("the codebook declares no subgroup splits to compare")
+    table = study.load(wave)
+    if calibration_of(book, table) is not None:
+        raise TrackerError(f"wave {wave} was raked: comparing its subgroups within the wave needs the raking's "
+                           f"regression in the variance, which this comparison does not carry yet")
+    strata, psu = design_of(book, table)
+    N = len(table)
+    psu_id, psu_stratum, n_strata = psu_index(strata, psu if psu is not None else np.arange(N), N)
+    P = psu_stratum.size
+    pop = population_of(book, table)
+    factor = fpc_factor(pop, psu_stratum[psu_id], np.bincount(psu_stratum, minlength=n_strata))
+    Dm, names = _domains(book, table, groups)
+    value, base, totals, held = _linearized(book, table, metric_list, Dm, psu_id, P)
+    keys = np.arange(P)
+    design_df = float(P - n_strata)
+    rows = _pairs(names, value, base, totals, held, psu_stratum, n_strata, factor, keys, book.single_cluster_rule)
+    rows += _across(names, value, base, totals, psu_stratum, n_strata, factor, keys, book.single_cluster_rule,
+                    design_df)
+    out = _finish(rows, metric_list, wave, adjust, level)
+    return WithinResult(out, wave, adjust, level)
+
+
+def _cov(totals, a, b, psu_stratum, n_strata, factor, keys, rule):
+    """Covariance per metric of domains a and b (their PSU totals, P x M each)."""
+    ta = PsuTotals(totals[:, a, :], psu_stratum, n_strata, factor)
+    tb = PsuTotals(totals[:, b, :], psu_stratum, n_strata, factor)
+    return cross_wave_covariance(ta, keys, tb, keys, rule)[0]
+
+
+def _pairs(names, value, base, totals, held, psu_stratum, n_strata, factor, keys, rule) -> list[dict]:
+    """Each level against its rest, and the levels of each split pairwise."""
+    out = []
+    by_split: dict[str, list[int]] = {}
+    for j, (g, _lev, rest) in enumerate(names):
+        if not rest:
+            by_split.setdefault(g, []).append(j)
+    for g, levels in by_split.items():
+        pairs = [(j, j + 1, "against the rest") for j in levels]
+        pairs += [(a, b, "pairwise") for i, a in enumerate(levels) for b in levels[i + 1:]]
+        for a, b, kind in pairs:  # a loop over pairs of subgroups; every metric at once
+            va, vb = _cov(totals, a, a, psu_stratum, n_strata, factor, keys, rule), \
+                _cov(totals, b, b, psu_stratum, n_strata, factor, keys, rule)
+            cab = _cov(totals, a, b, psu_stratum, n_strata, factor, keys, rule)
+            either = held[:, a, :] | held[:, b, :]
+            # one design: the PSUs holding either side minus the strata holding them (R's degf)
+            df = either.sum(axis=0) - _strata_holding(either, psu_stratum, n_strata)
+            out.append({"group": g, "comparison": kind, "first": names[a][1],
+                        "second": REST if kind == "against the rest" else names[b][1],
+                        "value_first": value[a], "value_second": value[b], "var": va + vb - 2 * cab, "df": df,
+                        "base_first": base[a], "base_second": base[b], "statistic": None})
+    return out
+
+
+def _strata_holding(held: np.ndarray, psu_stratum: np.ndarray, n_strata: int) -> np.ndarray:
+    """How many strata hold a PSU marked in each column of ``held`` (P x M)."""
+    import scipy.sparse as sp
+
+    H = sp.csr_matrix((np.ones(psu_stratum.size), (psu_stratum, np.arange(psu_stratum.size))),
+                      shape=(n_strata, psu_stratum.size))
+    return (np.asarray(H @ held.astype(float)) > 0).sum(axis=0)
+
+
+def _across(names, value, base, totals, psu_stratum, n_strata, factor, keys, rule, design_df) -> list[dict]:
+    """The Wald test that all levels of a split have the same value, per metric."""
+    out = []
+    by_split: dict[str, list[int]] = {}
+    for j, (g, _lev, rest) in enumerate(names):
+        if not rest:
+            by_split.setdefault(g, []).append(j)
+    M = value.shape[1]
+    for g, levels in by_split.items():
+        K = len(levels)
+        V = np.zeros((M, K, K))
+        for i, a in enumerate(levels):  # K (K + 1) / 2 covariances, every metric at once
+            for k, b in enumerate(levels[i:], start=i):
+                V[:, i, k] = V[:, k, i] = _cov(totals, a, b, psu_stratum, n_strata, factor, keys, rule)
+        v = value[levels].T  # M x K
+        F, p = np.full(M, np.nan), np.full(M, np.nan)
+        for m in range(M):  # a loop over metrics for the K x K solve of each
+            ok = (base[levels, m] > 0) & np.isfinite(v[m])
+            k = int(ok.sum())
+            if k < 2:
+                continue
+            C = np.hstack([np.eye(k - 1), -np.ones((k - 1, 1))])
+            d = C @ v[m, ok]
+            cvc = C @ V[m][np.ix_(ok, ok)] @ C.T
+            if np.linalg.matrix_rank(cvc) < k - 1:
+                continue
+            W = float(d @ np.linalg.solve(cvc, d))
+            df2 = design_df + 1 - k
+            if df2 < 1:
+                continue
+            F[m] = W / (k - 1)
+            p[m] = f_sf(F[m], k - 1, df2)
+        out.append({"group": g, "comparison": "across all levels", "first": "all levels", "second": "",
+                    "value_first": np.full(M, np.nan), "value_second": np.full(M, np.nan), "var": np.full(M, np.nan),
+                    "df": np.full(M, design_df + 1 - K), "base_first": base[levels].sum(axis=0),
+                    "base_second": np.full(M, np.nan), "statistic": F, "p": p})
+    return out
+
+
+def _finish(rows: list[dict], metrics, wave: str, adjust: str, level: float) -> pd.DataFrame:
+    """One table of every comparison, adjusted in one family, with verdicts."""
+    if not rows:
+        return pd.DataFrame(columns=COLUMNS)
+    M = len(metrics)
+    parts = []
+    for r in rows:
+        parts.append(pd.DataFrame({
+            "metric": [m.name for m in metrics], "metric_label": [m.label for m in metrics],
+            "kind": [m.kind for m in metrics], "group": r["group"], "comparison": r["comparison"],
+            "first": r["first"], "second": r["second"], "value_first": r["value_first"],
+            "value_second": r["value_second"], "var": r["var"], "df": np.broadcast_to(r["df"], M),
+            "base_first": r["base_first"], "base_second": r["base_second"],
+            "F": r["statistic"] if r["statistic"] is not None else np.full(M, np.nan),
+            "p_across": r.get("p", np.full(M, np.nan))}))
+    t = pd.concat(parts, ignore_index=True)
+    diff = (t["value_first"] - t["value_second"]).to_numpy(float)
+    var = t["var"].to_numpy(float)
+    df = t["df"].to_numpy(float)
+    pairwise = t["comparison"] != "across all levels"
+    stat, p = difference_test(diff, var, df)
+    testable = pairwise.to_numpy() & np.isfinite(diff) & (var > 0) & (df >= 1) \
+        & (t["base_first"].to_numpy(float) > 0) & (t["base_second"].to_numpy(float) > 0)
+    p = np.where(testable, p, np.nan)
+    across = ~pairwise.to_numpy()
+    p = np.where(across, t["p_across"].to_numpy(float), p)
+    stat = np.where(across, t["F"].to_numpy(float), stat)
+    p_adj = adjust_pvalues(p, adjust)
+    adj_level = family_level(p_adj, adjust, 1 - level)
+    se = np.sqrt(np.where(var > 0, var, np.nan))
+    half = critical(adj_level, np.where(df >= 1, df, 1.0)) * se
+    sig = np.nan_to_num(p_adj, nan=1.0) <= 1 - level
+    verdict = np.where(np.isnan(p_adj), "not tested",
+                       np.where(~sig, "no difference found",
+                                np.where(across, "differ", np.where(diff > 0, "higher", "lower"))))
+    out = pd.DataFrame({
+        "wave": wave, "metric": t["metric"], "metric_label": t["metric_label"], "kind": t["kind"],
+        "group": t["group"], "comparison": t["comparison"], "first": t["first"], "second": t["second"],
+        "value_first": t["value_first"], "value_second": t["value_second"], "difference": diff, "se": se,
+        "df": df, "statistic": stat, "p_raw": p, "p_adjusted": p_adj, "adjusted_low": diff - half,
+        "adjusted_high": diff + half, "adjusted_level": adj_level, "base_first": t["base_first"],
+        "base_second": t["base_second"], "verdict": verdict})
+    return out[COLUMNS]
