@@ -1,5 +1,5 @@
 """Write docs/glossary.md from the one definition of each word in the code
-(tracker.changes.VERDICTS, tracker.trends.PATTERNS). tests/test_wording.py checks the page."""
+(tracker.changes.VERDICTS, tracker.trends.PATTERNS, tracker.within.GAP_VERDICTS). tests/test_wording.py checks the page."""
 
 from __future__ import annotations
 
@@ -7,6 +7,7 @@ from pathlib import Path
 
 from tracker.changes import VERDICT_NAMES, VERDICTS
 from tracker.trends import PATTERNS
+from tracker.within import GAP_VERDICTS
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -15,9 +16,10 @@ def render() -> str:
     lines = [
         "# Glossary: one word, one meaning", "",
         "Every verdict the tool gives has one definition, written once in the code (`tracker.changes.VERDICTS`,",
-        "`tracker.trends.PATTERNS`) and here (`scripts/glossary.py` writes this page from them;",
-        "tests/test_wording.py checks it and that every output uses only these words). A comparison of two",
-        "waves and a series over many waves have their own words: none is shared.", "",
+        "`tracker.trends.PATTERNS`, `tracker.within.GAP_VERDICTS`) and here (`scripts/glossary.py` writes this",
+        "page from them; tests/test_wording.py checks it and that every output uses only these words). A",
+        "comparison of two waves, a series over many waves and a comparison of subgroups within a wave have",
+        "their own words: none is shared.", "",
         "## A comparison of two waves (`verdict`)", "",
         "| code | said as | meaning |", "|---|---|---|",
         *[f"| `{k}` | {VERDICT_NAMES[k]} | {v} |" for k, v in VERDICTS.items()], "",
@@ -39,6 +41,12 @@ def render() -> str:
         *[f"| `{k}` | {v} |" for k, v in PATTERNS.items()], "",
         "A series' patterns are judged in one family: every metric in total and in every subgroup over",
         "the same waves, whatever a command shows (`--family asked` narrows it and says so).", "",
+        "## Subgroups compared within a wave (`verdict` of `tracker gaps`)", "",
+        "| code | meaning |", "|---|---|",
+        *[f"| `{k}` | {v} |" for k, v in GAP_VERDICTS.items()], "",
+        "Every comparison of one call (each level against the rest of the sample, the levels of a split",
+        "pairwise, and the test across all levels) is adjusted in one family, with the adjusted interval",
+        "defined as for a comparison of two waves. A gap between subgroups is an association, not a cause.", "",
         "## Numbers", "",
         "Written once in `tracker/wording.py`: a value that rounds to zero is written without a sign; p-values",
         "below 0.001 are written 'below 0.001' (the terminal: '<0.001'); counts take the singular for one; a",

@@ -154,7 +154,8 @@ def test_nothing_moved_says_so_instead_of_an_empty_table(demo_study):
 
 # -- shared options, formats of the quick commands, help, quiet, progress --------------------
 
-COMMANDS = ["draft", "new", "check", "add", "waves", "amend", "remove", "rename", "verify", "prepare", "estimates", "changes", "trends", "expect", "surprises",
+COMMANDS = ["draft", "new", "check", "add", "waves", "amend", "remove", "rename", "verify", "prepare", "estimates", "answers", "changes", "gaps",
+            "trends", "expect", "surprises",
             "composition", "chart", "brief", "demo"]
 
 
@@ -299,6 +300,12 @@ def test_docs_columns_lists_exactly_the_columns_each_command_writes(demo_study):
                                           else [c])]
 
     assert named("estimates") == ESTIMATE_COLUMNS
+    from tracker.answers import NUMBER_COLUMNS, SHARE_COLUMNS
+    from tracker.within import COLUMNS as GAP_COLUMNS
+
+    answers = named("answers")
+    assert set(answers) == set(SHARE_COLUMNS) | set(NUMBER_COLUMNS) | {"kind"}
+    assert set(named("gaps")) == set(GAP_COLUMNS)
     assert set(expand(named("changes"))) == set(CHANGE_COLUMNS)
     assert set(expand(named("trends"))) == set(TREND_COLUMNS)
     mix = demo_study.changes(wave="2025-Q4", by=[], mix="frequency").mix

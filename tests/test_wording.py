@@ -42,6 +42,9 @@ def test_the_glossary_page_is_the_code():
     render = runpy.run_path(str(ROOT / "scripts" / "glossary.py"))["render"]
     assert (ROOT / "docs" / "glossary.md").read_text(encoding="utf-8") == render()
     assert not set(VERDICTS) & set(PATTERNS)  # no word names both a comparison and a series
+    from tracker.within import GAP_VERDICTS
+
+    assert not set(GAP_VERDICTS) & (set(VERDICTS) | set(PATTERNS))
 
 
 def test_the_agreeing_level_by_hand_on_the_published_example():

@@ -522,6 +522,43 @@ def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, smooth,
     emit(table, fmt, "estimates", wide, output, note)
 
 
+@main.command("answers", short_help="Each answer's share of a question, or a number's spread.")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.argument("variable")
+@by_option
+@wave_option("A wave to show (repeatable; default: every wave, or at the terminal the latest).", True, "waves")
+@click.option("--base", "in_base", type=click.Choice(["valid", "with-missing", "both"]), default="both",
+              show_default=True, help="Coded questions: shares of the valid answers, or with the missing codes "
+                                      "(don't know, refused) counted in the base, or both.")
+@level_option
+@_fmt_option
+@user_errors
+def answers_cmd(study, variable, by, waves, in_base, level, fmt, wide, output):
+    """Every answer of a question by wave and subgroup: each code's share (with and without the
+    missing codes in the base) for a coded question, or the mean, spread and quartiles of a number.
+
+    \b
+    Example:  tracker answers demo-study sat_overall --by area
+    """
+    from .answers import answer_shares, number_summary
+
+    s = Study(study)
+    latest_only = fmt == "table" and not output and not waves
+    pick = {"waves": [s.labels[-1]] if latest_only and s.labels else (list(waves) or None),
+            "by": list(by) if by else None, "level": level}
+    note = [f"Wave {s.labels[-1]} only; --wave LABEL for others."] if latest_only and s.labels else []
+    if s.codebook.variables.get(variable) is not None and s.codebook.variables[variable].type == "number":
+        table = number_summary(s, variable, **pick)
+        note.append("Quartiles with Woodruff's intervals; the standard deviation carries no interval.")
+        emit(table.assign(kind="mean"), fmt, "numbers", wide, output, note)
+        return
+    table = answer_shares(s, variable, **pick)
+    wanted = {"valid": ["valid answers"], "with-missing": ["with missing codes"]}.get(in_base)
+    if wanted:
+        table = table[table["in_base"].isin(wanted)].reset_index(drop=True)
+    emit(table, fmt, "answers", wide, output, note)
+
+
 @main.command("changes", short_help="What changed in a wave, with the many tests controlled.")
 @click.argument("study", type=click.Path(file_okay=False))
 @wave_option("The wave to test (default: the latest).")
@@ -562,6 +599,42 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fami
             echo(line)
         return
     emit(shown, fmt, "changes", wide, output, footer)
+
+
+@main.command("gaps", short_help="Subgroups compared within a wave, tests controlled.")
+@click.argument("study", type=click.Path(file_okay=False))
+@wave_option("The wave whose subgroups are compared (default: the latest).")
+@metric_option
+@by_option
+@adjust_option
+@level_option
+@click.option("--all", "show_all", is_flag=True, help="List every comparison, not only significant differences.")
+@_fmt_option
+@user_errors
+def gaps_cmd(study, wave, metrics, by, adjust, level, show_all, fmt, wide, output):
+    """Subgroups compared within a wave: each level against the rest of the sample, the levels
+    of a split pairwise, and a test across all levels, all in one family of tests.
+
+    \b
+    Example:  tracker gaps demo-study --metric satisfied --by area
+    """
+    from .within import compare_within
+
+    result = compare_within(Study(study), wave=wave, metrics=list(metrics) or None,
+                            by=list(by) if by and list(by) != ["total"] else None, adjust=adjust, level=level)
+    t = result.table
+    shown = t if show_all else t[t["verdict"].isin(["higher", "lower", "differ"])]
+    footer = [(f"{result.n_tests} comparisons in wave {result.wave}, adjusted together ({ADJUST_NAMES[adjust]}); "
+               f"a difference between subgroups is an association, not a cause, and sampling error only.")]
+    if len(shown) < len(t):
+        footer.insert(0, f"({len(t) - len(shown)} other comparisons without a significant difference; --all lists "
+                         f"them)")
+    if fmt in ("table", "md") and not output and shown.empty:
+        echo(f"No significant difference between subgroups in {result.wave}.")
+        for line in footer:
+            echo(line)
+        return
+    emit(shown.reset_index(drop=True), fmt, "gaps", wide, output, footer)
 
 
 @main.command("trends", short_help="The pattern and slope of every series.")

@@ -58,6 +58,26 @@ VIEWS: dict[str, list[Col]] = {
         Col("min_detectable_change", "detectable", "size", 3), Col("base_to", "base", "count", 2),
         Col("flags", "flags", keep=2), Col("group", "split", keep=6), Col("p_raw", "p raw", "p", 7),
     ],
+    "answers": [
+        Col("wave", "wave", keep=0), Col("subgroup", "subgroup", keep=0), Col("answer", "answer", keep=0),
+        Col("value", "share", "value", 0), Col(("low", "high"), "interval", "span", 1),
+        Col("base", "base", "count", 1), Col("effective_base", "eff. base", "count", 2),
+        Col("in_base", "base holds", keep=1), Col("flags", "flags", keep=2), Col("code", "code", keep=3),
+        Col("group", "split", keep=6),
+    ],
+    "numbers": [
+        Col("wave", "wave", keep=0), Col("subgroup", "subgroup", keep=0), Col("statistic", "statistic", keep=0),
+        Col("value", "value", "value", 0), Col(("low", "high"), "interval", "span", 1),
+        Col("base", "base", "count", 1), Col("se", "SE", "sd", 3), Col("group", "split", keep=6),
+    ],
+    "gaps": [
+        Col("metric_label", "metric", keep=0), Col("first", "subgroup", keep=0), Col("second", "against", keep=0),
+        Col("value_first", "value", "value", 0), Col("value_second", "other", "value", 0),
+        Col("difference", "gap", "change", 0),
+        Col(("adjusted_low", "adjusted_high"), "adj. interval", "span_change", 1),
+        Col("statistic", "F", "deff", 3), Col("p_adjusted", "p adj.", "p", 1), Col("verdict", "verdict", keep=0),
+        Col("base_first", "base", "count", 2), Col("group", "split", keep=6), Col("p_raw", "p raw", "p", 7),
+    ],
     "expect": [
         Col("metric_label", "metric", keep=0), Col("subgroup", "subgroup", keep=0),
         Col("expected", "expected", "value", 0), Col(("low", "high"), "range", "span", 0),

@@ -46,7 +46,7 @@ GAP_VERDICTS = {
               "alike (the pairwise rows say which differ)",
     "no difference found": "not significant after adjustment: the data do not show the sides apart (which does "
                            "not show them alike)",
-    "not tested": "a side with no respondents, no sampling variance, or too few degrees of freedom",
+    "not compared": "a side with no respondents, no sampling variance, or too few degrees of freedom",
 }
 
 COLUMNS = ["wave", "metric", "metric_label", "kind", "group", "comparison", "first", "second", "value_first",
@@ -225,7 +225,7 @@ def _across(names, value, base, totals, psu_stratum, n_strata, factor, keys, rul
                 continue
             F[m] = W / (k - 1)
             p[m] = f_sf(F[m], k - 1, df2)
-        out.append({"group": g, "comparison": "across all levels", "first": "all levels", "second": "",
+        out.append({"group": g, "comparison": "across all levels", "first": f"all levels of {g}", "second": "",
                     "value_first": np.full(M, np.nan), "value_second": np.full(M, np.nan), "var": np.full(M, np.nan),
                     "df": np.full(M, design_df + 1 - K), "base_first": base[levels].sum(axis=0),
                     "base_second": np.full(M, np.nan), "statistic": F, "p": p})
@@ -264,7 +264,7 @@ def _finish(rows: list[dict], metrics, wave: str, adjust: str, level: float) -> 
     se = np.sqrt(np.where(var > 0, var, np.nan))
     half = critical(adj_level, np.where(df >= 1, df, 1.0)) * se
     sig = np.nan_to_num(p_adj, nan=1.0) <= 1 - level
-    verdict = np.where(np.isnan(p_adj), "not tested",
+    verdict = np.where(np.isnan(p_adj), "not compared",
                        np.where(~sig, "no difference found",
                                 np.where(across, "differ", np.where(diff > 0, "higher", "lower"))))
     out = pd.DataFrame({

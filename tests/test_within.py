@@ -1,0 +1,120 @@
+"""Whole distributions and subgroups compared within a wave, through the command line.
+
+The statistics are checked against R's survey package in tests/test_against_r.py (svymean on a
+factor, svyquantile's Woodruff intervals, svyby + svycontrast, regTermTest). Here: the commands
+give exactly what the library computes, the parts agree with the estimates the tool already
+checks (a top-2 box is the sum of its two codes' shares, to rounding), the verdicts agree with
+their intervals, and bad requests get a message, not a traceback.
+"""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+
+from tracker.answers import answer_shares, number_summary
+from tracker.cli import main
+from tracker.within import GAP_VERDICTS, compare_within
+
+
+def _csv(*args) -> pd.DataFrame:
+    done = CliRunner().invoke(main, [str(a) for a in args] + ["--format", "csv"])
+    assert done.exit_code == 0, done.output
+    return pd.read_csv(io.StringIO(done.output), keep_default_na=False, na_values=[""])
+
+
+def test_every_code_adds_up_and_a_top2_box_is_two_codes(demo_study):
+    # common practice, no source: a question's code shares sum to one, and a share of codes
+    # [4, 5] is the sum of the two codes' shares in the same base (both are ratios of the same sums)
+    shares = answer_shares(demo_study, "overall", waves=["2025-Q2"], by=["area"])
+    sums = shares.groupby(["group", "subgroup", "in_base"])["value"].sum()
+    np.testing.assert_allclose(sums.to_numpy(), 1.0, rtol=0, atol=1e-12)
+    valid = shares[shares["in_base"] == "valid answers"].set_index(["subgroup", "code"])
+    est = demo_study.estimates(metrics=["satisfied"], waves=["2025-Q2"], by=["area"]).set_index("subgroup")
+    for sub in est.index:
+        two = valid.loc[(sub, "4"), "value"] + valid.loc[(sub, "5"), "value"]
+        assert two == pytest.approx(est.loc[sub, "value"], rel=1e-12)
+        assert valid.loc[(sub, "4"), "base"] == est.loc[sub, "base"]
+    dk = shares[shares["missing_code"]]
+    assert set(dk["in_base"]) == {"with missing codes"} and set(dk["answer"]) == {"Don't know"}
+
+
+def test_the_answers_command_writes_what_the_library_computes(demo_study):
+    got = _csv("answers", demo_study.root, "overall", "--wave", "2025-Q2", "--by", "area")
+    want = answer_shares(demo_study, "overall", waves=["2025-Q2"], by=["area"])
+    assert list(got.columns) == list(want.columns)
+    np.testing.assert_allclose(got["value"], want["value"], rtol=1e-12)
+    np.testing.assert_allclose(got["se"], want["se"], rtol=1e-12)
+    only = _csv("answers", demo_study.root, "overall", "--wave", "2025-Q2", "--base", "valid")
+    assert set(only["in_base"]) == {"valid answers"}
+    numbers = _csv("answers", demo_study.root, "age", "--wave", "2025-Q2", "--by", "total")
+    want = number_summary(demo_study, "age", waves=["2025-Q2"], by=[])
+    np.testing.assert_allclose(numbers["value"], want["value"], rtol=1e-12)
+    assert list(numbers["statistic"]) == ["mean", "standard deviation", "lower quartile", "median", "upper quartile"]
+
+
+def test_gaps_agree_with_their_adjusted_intervals_and_the_command(demo_study):
+    result = compare_within(demo_study, wave="2025-Q2")
+    t = result.table
+    assert set(t["verdict"]) <= set(GAP_VERDICTS)
+    pairs = t[t["comparison"] != "across all levels"]
+    tested = pairs[pairs["verdict"] != "not compared"]
+    outside = (tested["adjusted_low"] > 0) | (tested["adjusted_high"] < 0)
+    assert (outside == tested["verdict"].isin(["higher", "lower"])).all()
+    assert ((tested["verdict"] == "higher") == (outside & (tested["difference"] > 0))).all()
+    # a level against the rest and the rest against it are the same test (one family, its own rows)
+    assert len(pairs[pairs["comparison"] == "against the rest"]) == len(demo_study.pick_metrics()) * sum(
+        len(demo_study.codebook.groups[g].levels) for g in demo_study.pick_groups())
+    got = _csv("gaps", demo_study.root, "--wave", "2025-Q2", "--all")
+    assert len(got) == len(t)
+    np.testing.assert_allclose(got["p_adjusted"], t["p_adjusted"], rtol=1e-9)
+    assert result.n_tests == int(t["p_adjusted"].notna().sum())
+
+
+@pytest.mark.parametrize("args, says", [
+    (["answers", "{root}", "no_such_question"], "variable 'no_such_question' is not in the codebook"),
+    (["answers", "{root}", "comments"], "is a text variable"),
+    (["gaps", "{root}", "--wave", "1999-Q9"], "wave '1999-Q9' is not stored"),
+    (["gaps", "{root}", "--adjust", "bh", "--metric", "no_such_metric"], "no_such_metric"),
+])
+def test_bad_requests_get_a_message_and_exit_one(demo_study, args, says):
+    done = CliRunner().invoke(main, [a.format(root=demo_study.root) for a in args])
+    assert done.exit_code == 1, done.output
+    assert says in done.output and "Traceback" not in done.output
+
+
+def test_a_number_with_no_values_in_a_wave_is_named(tmp_path):
+    from tests.conftest import EXAMPLE_CODEBOOK, example_wave
+    from tracker import Study
+
+    # age asked only from a later wave: the wave before has no age column at all
+    text = EXAMPLE_CODEBOOK.read_text().replace("    range: [16, 99]\n", "    range: [16, 99]\n    first_wave: 2026-Q1\n")
+    (tmp_path / "book.yaml").write_text(text)
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    frame = example_wave(n=80, seed=2).drop(columns=["age"])
+    frame.to_csv(tmp_path / "w.csv", index=False)
+    study.add(tmp_path / "w.csv", "2025-Q3", "2025-08-15")
+    done = CliRunner().invoke(main, ["answers", str(study.root), "age"])
+    assert done.exit_code == 1 and "age has no values in wave 2025-Q3" in done.output
+
+
+def test_a_split_level_with_nobody_is_not_compared(tmp_path):
+    from tests.conftest import EXAMPLE_CODEBOOK, example_wave
+    from tracker import Study
+
+    (tmp_path / "book.yaml").write_text(EXAMPLE_CODEBOOK.read_text())
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    frame = example_wave(n=120, seed=5)
+    frame["site"] = frame["site"].where(frame["site"] != 3, 1)  # nobody at the third site
+    frame.to_csv(tmp_path / "w.csv", index=False)
+    study.add(tmp_path / "w.csv", "2025-Q3", "2025-08-15")
+    site = next(g for g, grp in study.codebook.groups.items() if grp.variable == "site")
+    t = compare_within(study, by=[site]).table
+    empty = t[(t["base_first"] == 0) | (t["base_second"] == 0)]
+    assert len(empty) and set(empty["verdict"]) == {"not compared"} and empty["p_adjusted"].isna().all()
+    across = t[t["comparison"] == "across all levels"]
+    assert across["p_raw"].notna().any()  # the two sites with respondents are still compared
