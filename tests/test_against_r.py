@@ -467,3 +467,21 @@ def test_subgroups_compared_within_a_wave_equal_r(reference, design):
         assert row["statistic"].iloc[0] == pytest.approx(r.F, rel=1e-8)
         assert row["df"].iloc[0] == r.df2
         assert row["p_raw"].iloc[0] == pytest.approx(r.p, rel=1e-8)
+
+
+@pytest.mark.parametrize("design", WITHIN)
+def test_the_change_of_a_gap_between_two_waves_equals_r(reference, design):
+    # reference: R's svyby(~api00 + api99, ~stype, covmat = TRUE) + svycontrast of
+    # (E - H in 2000) - (E - H in 1999): the same schools (apistrat, a panel) and the same
+    # districts (apiclus1) in both years, so the two gaps' covariance counts
+    from tracker.gapshift import gap_shifts
+
+    want = pd.read_csv(_data_dir(reference) / "gap_changes.csv")
+    got = gap_shifts(reference[1][design], wave="2000", against="1999", metrics=["api_mean"], by=["stype"],
+                     slopes=False).table
+    assert set(got["covariance_from"]) == {"panel" if design == "apistrat" else "clusters"}
+    for r in want[want["design"] == design].itertuples():
+        row = got[(got["first"] == CODES[str(r.a)]) & (got["second"] == CODES[str(r.b)])]
+        assert len(row) == 1
+        assert row["change"].iloc[0] == pytest.approx(r.change, rel=1e-10)
+        assert row["se"].iloc[0] == pytest.approx(r.se, rel=1e-8)

@@ -305,7 +305,9 @@ def test_docs_columns_lists_exactly_the_columns_each_command_writes(demo_study):
 
     answers = named("answers")
     assert set(answers) == set(SHARE_COLUMNS) | set(NUMBER_COLUMNS) | {"kind"}
-    assert set(named("gaps")) == set(GAP_COLUMNS)
+    from tracker.gapshift import COLUMNS as SHIFT_COLUMNS
+
+    assert set(named("gaps")) == set(GAP_COLUMNS) | set(SHIFT_COLUMNS)
     assert set(expand(named("changes"))) == set(CHANGE_COLUMNS)
     assert set(expand(named("trends"))) == set(TREND_COLUMNS)
     mix = demo_study.changes(wave="2025-Q4", by=[], mix="frequency").mix

@@ -118,3 +118,27 @@ def test_a_split_level_with_nobody_is_not_compared(tmp_path):
     assert len(empty) and set(empty["verdict"]) == {"not compared"} and empty["p_adjusted"].isna().all()
     across = t[t["comparison"] == "across all levels"]
     assert across["p_raw"].notna().any()  # the two sites with respondents are still compared
+
+
+def test_gap_changes_through_the_command_and_their_verdict_words(demo_study):
+    from tracker.changes import VERDICTS
+    from tracker.gapshift import gap_shifts
+
+    result = gap_shifts(demo_study, wave="2025-Q4", against="2025-Q3", metrics=["satisfied", "staff_good"])
+    t = result.table
+    gaps = t[t["test"] != "slopes differ"]
+    assert set(gaps["verdict"]) <= set(VERDICTS) and set(t[t["test"] == "slopes differ"]["verdict"]) <= set(
+        GAP_VERDICTS)
+    np.testing.assert_allclose(gaps["change"], gaps["gap_to"] - gaps["gap_from"], rtol=1e-12)
+    # independent waves: the change's variance is the sum of the two gaps' (each checked against R)
+    within_to = compare_within(demo_study, wave="2025-Q4", metrics=["satisfied", "staff_good"]).table
+    within_from = compare_within(demo_study, wave="2025-Q3", metrics=["satisfied", "staff_good"]).table
+    key = ["metric", "first", "second"]
+    pair = within_to[within_to["comparison"] != "across all levels"].merge(
+        within_from[within_from["comparison"] != "across all levels"], on=key, suffixes=("_to", "_from"))
+    both = gaps.merge(pair, on=key)
+    assert len(both) == len(gaps) and set(gaps["covariance_from"]) == {"none"}
+    np.testing.assert_allclose(both["se"] ** 2, both["se_to"] ** 2 + both["se_from"] ** 2, rtol=1e-10)
+    got = _csv("gaps", demo_study.root, "--wave", "2025-Q4", "--against", "2025-Q3", "--metric", "satisfied",
+               "--metric", "staff_good", "--all")
+    np.testing.assert_allclose(got["p_adjusted"], t["p_adjusted"], rtol=1e-9)

@@ -608,33 +608,52 @@ def changes_cmd(study, wave, against, metrics, by, adjust, level, show_all, fami
 @by_option
 @adjust_option
 @level_option
+@click.option("--against", metavar="BASELINE", default=None,
+              help="Instead: has each gap changed since this wave (previous, year-ago or a wave label), and do the "
+                   "levels of each split trend alike over every wave.")
 @click.option("--all", "show_all", is_flag=True, help="List every comparison, not only significant differences.")
 @_fmt_option
 @user_errors
-def gaps_cmd(study, wave, metrics, by, adjust, level, show_all, fmt, wide, output):
+def gaps_cmd(study, wave, metrics, by, adjust, level, against, show_all, fmt, wide, output):
     """Subgroups compared within a wave: each level against the rest of the sample, the levels
-    of a split pairwise, and a test across all levels, all in one family of tests.
+    of a split pairwise, and a test across all levels, all in one family of tests. With
+    --against: whether each gap changed since that wave, and whether the levels' trends differ.
 
     \b
     Example:  tracker gaps demo-study --metric satisfied --by area
     """
+    pick = {"wave": wave, "metrics": list(metrics) or None, "by": list(by) if by and list(by) != ["total"] else None,
+            "adjust": adjust, "level": level}
+    if against:
+        from .gapshift import gap_shifts
+
+        moved = gap_shifts(Study(study), against=against, **pick)
+        _emit_tested(moved.table, ["rise", "fall", "differ"], show_all, fmt, "gapshift", wide, output,
+                     f"No gap between subgroups changed from {moved.against} to {moved.wave}.",
+                     [(f"{moved.n_tests} tests of {moved.wave} against {moved.against}, adjusted together "
+                       f"({ADJUST_NAMES[adjust]}); sampling error only.")])
+        return
     from .within import compare_within
 
-    result = compare_within(Study(study), wave=wave, metrics=list(metrics) or None,
-                            by=list(by) if by and list(by) != ["total"] else None, adjust=adjust, level=level)
-    t = result.table
-    shown = t if show_all else t[t["verdict"].isin(["higher", "lower", "differ"])]
-    footer = [(f"{result.n_tests} comparisons in wave {result.wave}, adjusted together ({ADJUST_NAMES[adjust]}); "
-               f"a difference between subgroups is an association, not a cause, and sampling error only.")]
+    result = compare_within(Study(study), **pick)
+    _emit_tested(result.table, ["higher", "lower", "differ"], show_all, fmt, "gaps", wide, output,
+                 f"No significant difference between subgroups in {result.wave}.",
+                 [(f"{result.n_tests} comparisons in wave {result.wave}, adjusted together ({ADJUST_NAMES[adjust]}); "
+                   f"a difference between subgroups is an association, not a cause, and sampling error only.")])
+
+
+def _emit_tested(t, found: list[str], show_all: bool, fmt: str, view: str, wide: bool, output, nothing: str,
+                 footer: list[str]) -> None:
+    """Print the tests whose verdict is one of ``found`` (every test with --all), or say that none is."""
+    shown = t if show_all else t[t["verdict"].isin(found)]
     if len(shown) < len(t):
-        footer.insert(0, f"({len(t) - len(shown)} other comparisons without a significant difference; --all lists "
-                         f"them)")
+        footer = [f"({len(t) - len(shown)} other tests without a significant result; --all lists them)", *footer]
     if fmt in ("table", "md") and not output and shown.empty:
-        echo(f"No significant difference between subgroups in {result.wave}.")
+        echo(nothing)
         for line in footer:
             echo(line)
         return
-    emit(shown.reset_index(drop=True), fmt, "gaps", wide, output, footer)
+    emit(shown.reset_index(drop=True), fmt, view, wide, output, footer)
 
 
 @main.command("trends", short_help="The pattern and slope of every series.")

@@ -78,6 +78,14 @@ VIEWS: dict[str, list[Col]] = {
         Col("statistic", "F", "deff", 3), Col("p_adjusted", "p adj.", "p", 1), Col("verdict", "verdict", keep=0),
         Col("base_first", "base", "count", 2), Col("group", "split", keep=6), Col("p_raw", "p raw", "p", 7),
     ],
+    "gapshift": [
+        Col("metric_label", "metric", keep=0), Col("first", "subgroup", keep=0), Col("second", "against", keep=0),
+        Col("gap_from", "gap then", "change", 0), Col("gap_to", "gap now", "change", 0),
+        Col("change", "change", "change", 0),
+        Col(("adjusted_low", "adjusted_high"), "adj. interval", "span_change", 1),
+        Col("statistic", "Q", "deff", 3), Col("p_adjusted", "p adj.", "p", 1), Col("verdict", "verdict", keep=0),
+        Col("test", "test", keep=2), Col("group", "split", keep=6), Col("p_raw", "p raw", "p", 7),
+    ],
     "expect": [
         Col("metric_label", "metric", keep=0), Col("subgroup", "subgroup", keep=0),
         Col("expected", "expected", "value", 0), Col(("low", "high"), "range", "span", 0),

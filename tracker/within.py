@@ -113,29 +113,48 @@ def _linearized(book, table, metrics, Dm, psu_id, P):
     return value, base, totals, held
 
 
-def compare_within(study, wave: str | None = None, metrics=None, by=None, adjust: str = "bh",
-                   level: float = 0.95) -> WithinResult:
-    """Compare subgroups within ``wave`` (the latest by default) for ``metrics`` over the
-    splits ``by`` (every split by default): see the module's description."""
-    from .estimates import calibration_of, design_of, fpc_factor, population_of
+@dataclass(frozen=True)
+class WaveDomains:
+    """One wave's subgroups and their rests as domains: values and bases (domains x metrics),
+    the PSU totals of their linearized values (P x domains x metrics), which PSUs hold each
+    domain's base, the PSUs' strata and finite population factors, and each PSU's key (its
+    stratum and cluster label, or the respondent's id) for covariances with another wave."""
 
-    check_adjust(adjust)
-    check_level(level)
-    labels = study.labels
-    if not labels:
-        raise TrackerError("the study holds no waves yet")
-    wave = wave or labels[-1]
-    if wave not in labels:
-        raise TrackerError(f"wave {wave!r} is not stored (stored: {', '.join(labels)})")
+    wave: str
+    names: list  # (split, level, is the level's rest)
+    value: np.ndarray
+    base: np.ndarray
+    totals: np.ndarray
+    held: np.ndarray
+    psu_stratum: np.ndarray
+    n_strata: int
+    factor: np.ndarray | None
+    keys: np.ndarray
+    rule: str
+
+    @property
+    def design_df(self) -> float:
+        return float(self.psu_stratum.size - self.n_strata)
+
+    def psu_totals(self, columns: np.ndarray) -> PsuTotals:
+        """The PSU totals of some combinations of domains: ``columns`` (P x M) already combined."""
+        return PsuTotals(columns, self.psu_stratum, self.n_strata, self.factor)
+
+    def cov(self, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+        """Covariance per metric of two combinations of this wave's PSU totals (P x M each)."""
+        own = np.arange(self.psu_stratum.size)
+        return cross_wave_covariance(self.psu_totals(a), own, self.psu_totals(b), own, self.rule)[0]
+
+
+def wave_domains(study, wave: str, metric_list: list, groups: list[str]) -> WaveDomains:
+    """The domains of ``wave`` for ``metric_list`` over the splits ``groups`` (WaveDomains)."""
+    from .estimates import SEP, calibration_of, design_labels, design_of, fpc_factor, population_of
+
     book = study.codebook
-    metric_list = study.pick_metrics(metrics)
-    groups = study.pick_groups(by)
-    if not groups:
-        raise TrackerError("the codebook declares no subgroup splits to compare")
     table = study.load(wave)
     if calibration_of(book, table) is not None:
-        raise TrackerError(f"wave {wave} was raked: comparing its subgroups within the wave needs the raking's "
-                           f"regression in the variance, which this comparison does not carry yet")
+        raise TrackerError(f"wave {wave} was raked: comparing its subgroups needs the raking's regression in the "
+                           f"variance, which this comparison does not carry yet")
     strata, psu = design_of(book, table)
     N = len(table)
     psu_id, psu_stratum, n_strata = psu_index(strata, psu if psu is not None else np.arange(N), N)
@@ -144,43 +163,78 @@ def compare_within(study, wave: str | None = None, metrics=None, by=None, adjust
     factor = fpc_factor(pop, psu_stratum[psu_id], np.bincount(psu_stratum, minlength=n_strata))
     Dm, names = _domains(book, table, groups)
     value, base, totals, held = _linearized(book, table, metric_list, Dm, psu_id, P)
-    keys = np.arange(P)
-    design_df = float(P - n_strata)
-    rows = _pairs(names, value, base, totals, held, psu_stratum, n_strata, factor, keys, book.single_cluster_rule)
-    rows += _across(names, value, base, totals, psu_stratum, n_strata, factor, keys, book.single_cluster_rule,
-                    design_df)
+    first = np.zeros(P, dtype=np.int64)
+    first[psu_id[::-1]] = np.arange(N)[::-1]
+    s_lab, c_lab = design_labels(book, table)
+    if c_lab is not None:
+        keys = np.asarray(c_lab[first], dtype=str)
+        if s_lab is not None:
+            keys = np.char.add(np.char.add(np.asarray(s_lab[first], dtype=str), SEP), keys)
+    else:
+        keys = table[book.id].astype(str).to_numpy()[first]
+    return WaveDomains(wave, names, value, base, totals, held, psu_stratum, n_strata, factor, keys,
+                       book.single_cluster_rule)
+
+
+def compare_within(study, wave: str | None = None, metrics=None, by=None, adjust: str = "bh",
+                   level: float = 0.95) -> WithinResult:
+    """Compare subgroups within ``wave`` (the latest by default) for ``metrics`` over the
+    splits ``by`` (every split by default): see the module's description."""
+    check_adjust(adjust)
+    check_level(level)
+    wave = pick_wave(study, wave)
+    metric_list = study.pick_metrics(metrics)
+    groups = study.pick_groups(by)
+    if not groups:
+        raise TrackerError("the codebook declares no subgroup splits to compare")
+    d = wave_domains(study, wave, metric_list, groups)
+    rows = _pairs(d) + _across(d)
     out = _finish(rows, metric_list, wave, adjust, level)
     return WithinResult(out, wave, adjust, level)
 
 
-def _cov(totals, a, b, psu_stratum, n_strata, factor, keys, rule):
-    """Covariance per metric of domains a and b (their PSU totals, P x M each)."""
-    ta = PsuTotals(totals[:, a, :], psu_stratum, n_strata, factor)
-    tb = PsuTotals(totals[:, b, :], psu_stratum, n_strata, factor)
-    return cross_wave_covariance(ta, keys, tb, keys, rule)[0]
+def pick_wave(study, wave: str | None) -> str:
+    """The wave asked for (the latest by default), refused by name when not stored."""
+    labels = study.labels
+    if not labels:
+        raise TrackerError("the study holds no waves yet")
+    wave = wave or labels[-1]
+    if wave not in labels:
+        raise TrackerError(f"wave {wave!r} is not stored (stored: {', '.join(labels)})")
+    return wave
 
 
-def _pairs(names, value, base, totals, held, psu_stratum, n_strata, factor, keys, rule) -> list[dict]:
-    """Each level against its rest, and the levels of each split pairwise."""
-    out = []
-    by_split: dict[str, list[int]] = {}
+def split_levels(names: list) -> dict[str, list[int]]:
+    """Each split's level domains (their positions among the domains), in order."""
+    out: dict[str, list[int]] = {}
     for j, (g, _lev, rest) in enumerate(names):
         if not rest:
-            by_split.setdefault(g, []).append(j)
-    for g, levels in by_split.items():
-        pairs = [(j, j + 1, "against the rest") for j in levels]
-        pairs += [(a, b, "pairwise") for i, a in enumerate(levels) for b in levels[i + 1:]]
-        for a, b, kind in pairs:  # a loop over pairs of subgroups; every metric at once
-            va, vb = _cov(totals, a, a, psu_stratum, n_strata, factor, keys, rule), \
-                _cov(totals, b, b, psu_stratum, n_strata, factor, keys, rule)
-            cab = _cov(totals, a, b, psu_stratum, n_strata, factor, keys, rule)
-            either = held[:, a, :] | held[:, b, :]
-            # one design: the PSUs holding either side minus the strata holding them (R's degf)
-            df = either.sum(axis=0) - _strata_holding(either, psu_stratum, n_strata)
-            out.append({"group": g, "comparison": kind, "first": names[a][1],
-                        "second": REST if kind == "against the rest" else names[b][1],
-                        "value_first": value[a], "value_second": value[b], "var": va + vb - 2 * cab, "df": df,
-                        "base_first": base[a], "base_second": base[b], "statistic": None})
+            out.setdefault(g, []).append(j)
+    return out
+
+
+def comparison_pairs(names: list) -> list[tuple[str, int, int, str]]:
+    """(split, first, second, kind) of every comparison of two domains: each level against its
+    rest (the domain after it), then the levels of each split pairwise."""
+    out = []
+    for g, levels in split_levels(names).items():
+        out += [(g, j, j + 1, "against the rest") for j in levels]
+        out += [(g, a, b, "pairwise") for i, a in enumerate(levels) for b in levels[i + 1:]]
+    return out
+
+
+def _pairs(d: WaveDomains) -> list[dict]:
+    """Each level against its rest, and the levels of each split pairwise."""
+    out = []
+    for g, a, b, kind in comparison_pairs(d.names):  # a loop over pairs of subgroups; every metric at once
+        ta, tb = d.totals[:, a, :], d.totals[:, b, :]
+        either = d.held[:, a, :] | d.held[:, b, :]
+        # one design: the PSUs holding either side minus the strata holding them (R's degf)
+        df = either.sum(axis=0) - _strata_holding(either, d.psu_stratum, d.n_strata)
+        out.append({"group": g, "comparison": kind, "first": d.names[a][1],
+                    "second": REST if kind == "against the rest" else d.names[b][1],
+                    "value_first": d.value[a], "value_second": d.value[b], "var": d.cov(ta - tb, ta - tb), "df": df,
+                    "base_first": d.base[a], "base_second": d.base[b], "statistic": None})
     return out
 
 
@@ -193,43 +247,43 @@ def _strata_holding(held: np.ndarray, psu_stratum: np.ndarray, n_strata: int) ->
     return (np.asarray(H @ held.astype(float)) > 0).sum(axis=0)
 
 
-def _across(names, value, base, totals, psu_stratum, n_strata, factor, keys, rule, design_df) -> list[dict]:
+def _across(d: WaveDomains) -> list[dict]:
     """The Wald test that all levels of a split have the same value, per metric."""
     out = []
-    by_split: dict[str, list[int]] = {}
-    for j, (g, _lev, rest) in enumerate(names):
-        if not rest:
-            by_split.setdefault(g, []).append(j)
-    M = value.shape[1]
-    for g, levels in by_split.items():
+    M = d.value.shape[1]
+    for g, levels in split_levels(d.names).items():
         K = len(levels)
         V = np.zeros((M, K, K))
         for i, a in enumerate(levels):  # K (K + 1) / 2 covariances, every metric at once
             for k, b in enumerate(levels[i:], start=i):
-                V[:, i, k] = V[:, k, i] = _cov(totals, a, b, psu_stratum, n_strata, factor, keys, rule)
-        v = value[levels].T  # M x K
-        F, p = np.full(M, np.nan), np.full(M, np.nan)
-        for m in range(M):  # a loop over metrics for the K x K solve of each
-            ok = (base[levels, m] > 0) & np.isfinite(v[m])
-            k = int(ok.sum())
-            if k < 2:
-                continue
-            C = np.hstack([np.eye(k - 1), -np.ones((k - 1, 1))])
-            d = C @ v[m, ok]
-            cvc = C @ V[m][np.ix_(ok, ok)] @ C.T
-            if np.linalg.matrix_rank(cvc) < k - 1:
-                continue
-            W = float(d @ np.linalg.solve(cvc, d))
-            df2 = design_df + 1 - k
-            if df2 < 1:
-                continue
-            F[m] = W / (k - 1)
-            p[m] = f_sf(F[m], k - 1, df2)
+                V[:, i, k] = V[:, k, i] = d.cov(d.totals[:, a, :], d.totals[:, b, :])
+        F, p = _wald(d.value[levels].T, V, d.base[levels].T, d.design_df)
         out.append({"group": g, "comparison": "across all levels", "first": f"all levels of {g}", "second": "",
                     "value_first": np.full(M, np.nan), "value_second": np.full(M, np.nan), "var": np.full(M, np.nan),
-                    "df": np.full(M, design_df + 1 - K), "base_first": base[levels].sum(axis=0),
+                    "df": np.full(M, d.design_df + 1 - K), "base_first": d.base[levels].sum(axis=0),
                     "base_second": np.full(M, np.nan), "statistic": F, "p": p})
     return out
+
+
+def _wald(v: np.ndarray, V: np.ndarray, base: np.ndarray, design_df: float) -> tuple[np.ndarray, np.ndarray]:
+    """Per row of ``v`` (metrics x K values, V their K x K covariances): the Wald F that the
+    values with respondents are equal, and its p on (k - 1, design_df + 1 - k) df."""
+    M = v.shape[0]
+    F, p = np.full(M, np.nan), np.full(M, np.nan)
+    for m in range(M):  # a loop over metrics for the K x K solve of each
+        ok = (base[m] > 0) & np.isfinite(v[m])
+        k = int(ok.sum())
+        df2 = design_df + 1 - k
+        if k < 2 or df2 < 1:
+            continue
+        C = np.hstack([np.eye(k - 1), -np.ones((k - 1, 1))])
+        diff = C @ v[m, ok]
+        cvc = C @ V[m][np.ix_(ok, ok)] @ C.T
+        if np.linalg.matrix_rank(cvc) < k - 1:
+            continue
+        F[m] = float(diff @ np.linalg.solve(cvc, diff)) / (k - 1)
+        p[m] = f_sf(F[m], k - 1, df2)
+    return F, p
 
 
 def _finish(rows: list[dict], metrics, wave: str, adjust: str, level: float) -> pd.DataFrame:

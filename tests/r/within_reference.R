@@ -46,6 +46,23 @@ for (name in names(designs)) {
       df1 = t$df, df2 = t$ddf, p = as.vector(t$p))
   }
 }
+# the change of a gap from 1999 to 2000 (the same schools: paired, and the same districts)
+dids <- list()
+for (name in names(designs)) {
+  d <- read.csv(file.path(out, paste0(name, ".csv")))
+  des <- update(designs[[name]](d), stype_f = factor(stype))
+  by <- svyby(~api00 + api99, ~stype_f, des, svymean, covmat = TRUE)
+  nm <- names(coef(by))
+  for (pr in list(c(1, 2), c(1, 3), c(2, 3))) {
+    w <- setNames(rep(0, length(nm)), nm)
+    w[paste0(pr[1], ":api00")] <- 1; w[paste0(pr[2], ":api00")] <- -1
+    w[paste0(pr[1], ":api99")] <- -1; w[paste0(pr[2], ":api99")] <- 1
+    k <- svycontrast(by, w)
+    dids[[length(dids) + 1]] <- data.frame(design = name, a = pr[1], b = pr[2], change = as.vector(coef(k)),
+                                           se = as.vector(SE(k)))
+  }
+}
+write.csv(do.call(rbind, dids), file.path(out, "gap_changes.csv"), row.names = FALSE)
 write.csv(do.call(rbind, codes), file.path(out, "codes.csv"), row.names = FALSE)
 write.csv(do.call(rbind, quart), file.path(out, "quartiles.csv"), row.names = FALSE)
 write.csv(do.call(rbind, pairs), file.path(out, "within_pairs.csv"), row.names = FALSE)
