@@ -485,3 +485,54 @@ def test_the_change_of_a_gap_between_two_waves_equals_r(reference, design):
         assert len(row) == 1
         assert row["change"].iloc[0] == pytest.approx(r.change, rel=1e-10)
         assert row["se"].iloc[0] == pytest.approx(r.se, rel=1e-8)
+
+
+DRIVER_BOOK = """title: California schools (R survey package data), drivers of the API
+id: snum
+weight: pw
+{design}variables:
+  stype: {{type: category, codes: {{1: E, 2: H, 3: M}}}}
+  api00: {{type: number}}
+  ell: {{type: number}}
+  meals: {{type: number}}
+  mobility: {{type: number}}
+metrics:
+  api: {{variable: api00, mean: true}}
+  ell_mean: {{variable: ell, mean: true}}
+  meals_mean: {{variable: meals, mean: true}}
+  mobility_mean: {{variable: mobility, mean: true}}
+"""
+
+
+@pytest.mark.parametrize("design", WITHIN)
+def test_driver_coefficients_and_ses_equal_svyglm(reference, design):
+    # reference: R's svyglm(api00 ~ ell + meals + mobility) on the stratified and the cluster sample
+    from tracker.drivers import fit_drivers
+
+    folder = _data_dir(reference)
+    text = DRIVER_BOOK.format(design="strata: stype\n" if design == "apistrat" else "clusters: dnum\n")
+    study = _study(folder, f"drivers_{design}", text, [(folder / f"drivers_{design}.csv", "2000", "2000-06-30")])
+    fit = fit_drivers(study, "api", ["ell_mean", "meals_mean", "mobility_mean"])
+    want = pd.read_csv(folder / "svyglm.csv")
+    want = want[want["design"] == design]
+    np.testing.assert_allclose(fit.coefficients["coefficient"], want["coefficient"], rtol=1e-9)
+    np.testing.assert_allclose(fit.coefficients["se"], want["se"], rtol=1e-6)
+
+
+def test_relative_weights_equal_the_published_mtcars_example(reference):
+    # reference: the rwa package's documented example (Johnson's relative weights of mpg on cyl,
+    # disp, hp and gear in R's mtcars): R^2 0.7791896; raw weights 0.2284797, 0.2221469,
+    # 0.2321744, 0.0963886 (as published, to 7 decimals); mtcars exported by R itself
+    from tracker.drivers import fit_drivers
+
+    folder = _data_dir(reference)
+    text = ("title: mtcars\nid: car\nvariables:\n" + "".join(f"  {v}: {{type: number}}\n" for v in
+                                                                ("mpg", "cyl", "disp", "hp", "gear"))
+            + "metrics:\n" + "".join(f"  {v}_m: {{variable: {v}, mean: true}}\n" for v in
+                                      ("mpg", "cyl", "disp", "hp", "gear")))
+    study = _study(folder, "mtcars", text, [(folder / "mtcars.csv", "1974", "1974-06-30")])
+    fit = fit_drivers(study, "mpg_m", ["cyl_m", "disp_m", "hp_m", "gear_m"])
+    assert fit.r2 == pytest.approx(0.7791896, abs=5e-8)
+    np.testing.assert_allclose(fit.importance["raw_weight"], [0.2284797, 0.2221469, 0.2321744, 0.0963886],
+                               atol=5e-8)
+    assert fit.importance["raw_weight"].sum() == pytest.approx(fit.r2, rel=1e-12)

@@ -155,7 +155,7 @@ def test_nothing_moved_says_so_instead_of_an_empty_table(demo_study):
 # -- shared options, formats of the quick commands, help, quiet, progress --------------------
 
 COMMANDS = ["draft", "new", "check", "add", "waves", "amend", "remove", "rename", "verify", "prepare", "estimates", "answers", "changes", "gaps",
-            "trends", "expect", "surprises",
+            "drivers", "trends", "expect", "surprises",
             "composition", "chart", "brief", "demo"]
 
 
@@ -308,6 +308,9 @@ def test_docs_columns_lists_exactly_the_columns_each_command_writes(demo_study):
     from tracker.gapshift import COLUMNS as SHIFT_COLUMNS
 
     assert set(named("gaps")) == set(GAP_COLUMNS) | set(SHIFT_COLUMNS)
+    from tracker.drivers import COEFFICIENT_COLUMNS, IMPORTANCE_COLUMNS, SHIFT_COLUMNS as DRIFT_COLUMNS
+
+    assert set(named("drivers")) == set(IMPORTANCE_COLUMNS) | set(COEFFICIENT_COLUMNS) | set(DRIFT_COLUMNS) | {"kind"}
     assert set(expand(named("changes"))) == set(CHANGE_COLUMNS)
     assert set(expand(named("trends"))) == set(TREND_COLUMNS)
     mix = demo_study.changes(wave="2025-Q4", by=[], mix="frequency").mix

@@ -142,3 +142,78 @@ def test_gap_changes_through_the_command_and_their_verdict_words(demo_study):
     got = _csv("gaps", demo_study.root, "--wave", "2025-Q4", "--against", "2025-Q3", "--metric", "satisfied",
                "--metric", "staff_good", "--all")
     np.testing.assert_allclose(got["p_adjusted"], t["p_adjusted"], rtol=1e-9)
+
+
+# -- drivers ---------------------------------------------------------------------------------------
+
+ATTRS = ["on_time_good", "clean_good", "staff_good"]
+
+
+def test_the_drivers_command_writes_what_the_library_fits(demo_study):
+    from tracker.drivers import fit_drivers
+
+    fit = fit_drivers(demo_study, "satisfied", ATTRS, waves=demo_study.labels[-2:])
+    args = ["drivers", demo_study.root, "--headline", "satisfied", *sum((["--attribute", a] for a in ATTRS), []),
+            "--last", "2"]
+    got = _csv(*args)
+    np.testing.assert_allclose(got["raw_weight"], fit.importance["raw_weight"], rtol=1e-12)
+    assert got["raw_weight"].sum() == pytest.approx(fit.r2, rel=1e-10)  # the parts add up to R^2
+    coef = _csv(*args, "--coefficients")
+    assert list(coef["term"]) == ["(intercept)", *ATTRS]
+    # reference: statsmodels' weighted least squares gives the same coefficients (the design only
+    # changes the SEs, checked against R's svyglm in tests/test_against_r.py)
+    import statsmodels.api as sm
+
+    from tracker.cells import metric_matrix
+    from tracker.estimates import weights_of
+
+    Ys, ws = [], []
+    for w in demo_study.labels[-2:]:
+        table = demo_study.load(w)
+        Y, E = metric_matrix(demo_study.codebook, table, demo_study.pick_metrics(["satisfied", *ATTRS]))
+        keep = E.all(axis=1)
+        Ys.append(Y[keep])
+        ws.append(weights_of(demo_study.codebook, table)[keep])
+    Y, wt = np.concatenate(Ys), np.concatenate(ws)
+    ref = sm.WLS(Y[:, 0], sm.add_constant(Y[:, 1:]), weights=wt).fit()
+    np.testing.assert_allclose(coef["coefficient"], ref.params, rtol=1e-9)
+
+
+def test_importance_over_two_periods_is_one_family(demo_study):
+    from tracker.changes import VERDICTS
+    from tracker.drivers import importance_shift
+
+    t = importance_shift(demo_study, "satisfied", ATTRS, recent=2)
+    assert set(t["verdict"]) <= set(VERDICTS)
+    np.testing.assert_allclose(t["change"], t["raw_weight_to"] - t["raw_weight_from"], rtol=1e-12)
+    assert t["adjusted_level"].nunique() == 1
+
+
+@pytest.mark.parametrize("attrs, says", [
+    (["on_time_good", "on_time_good"], "collinear"),
+    (["satisfied", "clean_good"], "is the headline"),
+    (["no_such_metric", "clean_good"], "no_such_metric"),
+])
+def test_driver_sets_that_cannot_be_fitted_are_named(demo_study, attrs, says):
+    args = ["drivers", demo_study.root, "--headline", "satisfied", *sum((["--attribute", a] for a in attrs), [])]
+    done = CliRunner().invoke(main, [str(a) for a in args])
+    assert done.exit_code == 1 and says in done.output and "Traceback" not in done.output, done.output
+
+
+def test_a_constant_attribute_is_named_with_its_wave(tmp_path):
+    from tests.conftest import EXAMPLE_CODEBOOK, example_wave
+    from tracker import Study
+    from tracker.drivers import fit_drivers
+
+    (tmp_path / "book.yaml").write_text(EXAMPLE_CODEBOOK.read_text())
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    frame = example_wave(n=150, seed=7)
+    frame["cleanliness"] = 4  # everyone gives the same answer
+    frame.to_csv(tmp_path / "w.csv", index=False)
+    study.add(tmp_path / "w.csv", "2025-Q3", "2025-08-15")
+    metrics = list(study.codebook.metrics)
+    clean = next(m for m, spec in study.codebook.metrics.items() if spec.variable == "cleanliness")
+    head = next(m for m in metrics if m != clean and study.codebook.metrics[m].variable == "satisfaction")
+    other = next(m for m in metrics if m not in (clean, head))
+    with pytest.raises(Exception, match=f"metric {clean} has the same value for every respondent"):
+        fit_drivers(study, head, [clean, other])

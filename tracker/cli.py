@@ -656,6 +656,44 @@ def _emit_tested(t, found: list[str], show_all: bool, fmt: str, view: str, wide:
     emit(shown.reset_index(drop=True), fmt, view, wide, output, footer)
 
 
+@main.command("drivers", short_help="What drives the headline score: relative importance.")
+@click.argument("study", type=click.Path(file_okay=False))
+@click.option("--headline", metavar="NAME", help="The headline metric (default: the codebook's drivers).")
+@click.option("--attribute", "attributes", multiple=True, metavar="NAME",
+              help="An attribute metric (repeatable; default: the codebook's drivers).")
+@click.option("--last", type=click.IntRange(min=1), default=1, show_default=True, metavar="N",
+              help="Pool the last N waves (independent samples).")
+@click.option("--compare", type=click.IntRange(min=1), default=None, metavar="K",
+              help="Instead: has each attribute's importance changed between the last K waves and the K before?")
+@click.option("--coefficients", is_flag=True, help="Show the regression's coefficients instead of the importance.")
+@adjust_option
+@level_option
+@_fmt_option
+@user_errors
+def drivers_cmd(study, headline, attributes, last, compare, coefficients, adjust, level, fmt, wide, output):
+    """What drives the headline score: a design-based regression on the attribute metrics and
+    each attribute's relative importance (Johnson's relative weights), with intervals.
+
+    \b
+    Example:  tracker drivers demo-study --last 4
+    """
+    from .drivers import fit_drivers, importance_shift
+
+    s = Study(study)
+    names = {"headline": headline, "attributes": list(attributes) or None}
+    if compare:
+        shift = importance_shift(s, **names, recent=compare, level=level, adjust=adjust)
+        emit(shift.assign(kind="share"), fmt, "driftdrivers", wide, output,
+             [(f"Raw weights of {shift['period_to'].iloc[0]} against {shift['period_from'].iloc[0]}, adjusted "
+               f"together ({ADJUST_NAMES[adjust]}). Association is not cause; sampling error only.")])
+        return
+    fit = fit_drivers(s, **names, waves=s.labels[-last:], level=level)
+    if coefficients:
+        emit(fit.coefficients, fmt, None, wide, output, fit.lines())
+        return
+    emit(fit.importance.assign(kind="share"), fmt, "drivers", wide, output, fit.lines())
+
+
 @main.command("trends", short_help="The pattern and slope of every series.")
 @click.argument("study", type=click.Path(file_okay=False))
 @metric_option

@@ -151,6 +151,7 @@ def _unknown_keys(doc: dict) -> None:
                 check(node.get("balance"), ("plus", "minus"), f"{section}.{name}.balance.")
                 check(node.get("base"), ("variable", "codes"), f"{section}.{name}.base.")
     check(doc.get("rake"), tuple(schema["properties"]["rake"]["properties"]), "rake.")
+    check(doc.get("drivers"), tuple(schema["properties"]["drivers"]["properties"]), "drivers.")
 
 
 @dataclass(frozen=True)
@@ -230,6 +231,8 @@ class Codebook:
     # key smallest_change at the top: the study's default per metric kind, in the units shown
     # (a metric's own smallest_change wins); none declared, no 'held' or 'flat' is ever said
     smallest_change: dict[str, float] = field(default_factory=dict)
+    # key drivers: {"headline": metric, "attributes": (metrics...)} for the driver analysis
+    drivers: dict[str, Any] = field(default_factory=dict)
 
     def design_columns(self) -> list[str]:
         return [c for c in (self.id, self.weight, self.strata, self.clusters) if c]
@@ -398,6 +401,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         population=_parse_population(doc.get("population"), strata),
         raked_to=_group_list(doc, "weights_raked_to", groups),
         smallest_change=_parse_smallest_defaults(doc.get("smallest_change")),
+        drivers=_parse_drivers(doc.get("drivers"), metrics),
     )
     _one_label_form(book)
     return book
@@ -493,6 +497,29 @@ def _group_list(doc: dict, key: str, groups: dict) -> tuple[str, ...]:
         if g not in groups:
             raise _err(f"{key}[{i}]", f"{g!r} is not a group in groups")
     return names
+
+
+def _parse_drivers(node: Any, metrics: dict) -> dict[str, Any]:
+    """The key drivers: {headline: METRIC, attributes: [METRIC, ...]}, each a declared metric,
+    the headline not among its attributes, at least two attributes."""
+    if node is None:
+        return {}
+    if not isinstance(node, dict) or "headline" not in node or "attributes" not in node:
+        raise _err("drivers", "write {headline: METRIC, attributes: [METRIC, METRIC, ...]}")
+    headline = str(node["headline"])
+    attributes = node["attributes"]
+    if headline not in metrics:
+        raise _err("drivers.headline", f"{headline!r} is not a metric in metrics")
+    if not isinstance(attributes, list) or len(attributes) < 2:
+        raise _err("drivers.attributes", "give a list of at least two metrics")
+    for i, a in enumerate(map(str, attributes)):
+        if a not in metrics:
+            raise _err(f"drivers.attributes[{i}]", f"{a!r} is not a metric in metrics")
+        if a == headline:
+            raise _err(f"drivers.attributes[{i}]", f"{a!r} is the headline; an attribute explains it")
+    if len(set(map(str, attributes))) < len(attributes):
+        raise _err("drivers.attributes", "a metric is listed twice")
+    return {"headline": headline, "attributes": tuple(map(str, attributes))}
 
 
 def _parse_smallest_defaults(node: Any) -> dict[str, float]:

@@ -86,6 +86,17 @@ VIEWS: dict[str, list[Col]] = {
         Col("statistic", "Q", "deff", 3), Col("p_adjusted", "p adj.", "p", 1), Col("verdict", "verdict", keep=0),
         Col("test", "test", keep=2), Col("group", "split", keep=6), Col("p_raw", "p raw", "p", 7),
     ],
+    "drivers": [
+        Col("attribute_label", "attribute", keep=0), Col("raw_weight", "raw weight", "value", 0),
+        Col(("raw_low", "raw_high"), "interval", "span", 1), Col("share_of_r2", "share of R^2", "value", 0),
+        Col("attribute", "metric", keep=3),
+    ],
+    "driftdrivers": [
+        Col("attribute", "attribute", keep=0), Col("raw_weight_from", "before", "value", 0),
+        Col("raw_weight_to", "now", "value", 0), Col("change", "change", "change", 0),
+        Col(("adjusted_low", "adjusted_high"), "adj. interval", "span_change", 1),
+        Col("p_adjusted", "p adj.", "p", 1), Col("verdict", "verdict", keep=0),
+    ],
     "expect": [
         Col("metric_label", "metric", keep=0), Col("subgroup", "subgroup", keep=0),
         Col("expected", "expected", "value", 0), Col(("low", "high"), "range", "span", 0),

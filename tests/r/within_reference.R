@@ -3,6 +3,7 @@
 # tests/test_against_r.py. Usage: Rscript within_reference.R OUTDIR (after api_reference.R
 # wrote the coded samples there).
 suppressMessages(library(survey))
+data(api)
 out <- commandArgs(trailingOnly = TRUE)[1]
 options(survey.lonely.psu = "fail")
 designs <- list(
@@ -63,6 +64,22 @@ for (name in names(designs)) {
   }
 }
 write.csv(do.call(rbind, dids), file.path(out, "gap_changes.csv"), row.names = FALSE)
+
+# drivers: svyglm of the API on three school attributes; and mtcars as R ships it (the rwa
+# package's documented example of Johnson's relative weights uses it)
+fits <- list()
+raw <- list(apistrat = apistrat, apiclus1 = apiclus1)
+for (name in names(designs)) {
+  d <- raw[[name]][, c("snum", "dnum", "pw", "stype", "api00", "ell", "meals", "mobility")]
+  d$stype <- match(as.character(d$stype), c("E", "H", "M"))
+  write.csv(d, file.path(out, paste0("drivers_", name, ".csv")), row.names = FALSE)
+  g <- svyglm(api00 ~ ell + meals + mobility, designs[[name]](d))
+  fits[[length(fits) + 1]] <- data.frame(design = name, term = names(coef(g)), coefficient = as.vector(coef(g)),
+                                         se = as.vector(SE(g)))
+}
+write.csv(do.call(rbind, fits), file.path(out, "svyglm.csv"), row.names = FALSE)
+cars <- data.frame(car = seq_len(nrow(mtcars)), mtcars)
+write.csv(cars, file.path(out, "mtcars.csv"), row.names = FALSE)
 write.csv(do.call(rbind, codes), file.path(out, "codes.csv"), row.names = FALSE)
 write.csv(do.call(rbind, quart), file.path(out, "quartiles.csv"), row.names = FALSE)
 write.csv(do.call(rbind, pairs), file.path(out, "within_pairs.csv"), row.names = FALSE)
