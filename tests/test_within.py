@@ -217,3 +217,51 @@ def test_a_constant_attribute_is_named_with_its_wave(tmp_path):
     other = next(m for m in metrics if m not in (clean, head))
     with pytest.raises(Exception, match=f"metric {clean} has the same value for every respondent"):
         fit_drivers(study, head, [clean, other])
+
+
+# -- in the brief --------------------------------------------------------------------------------
+
+def _planted(tmp_path, drivers: bool):
+    """Two waves of the example study in which Ashby Park's satisfaction falls far from the
+    others' (a gap that moves), and satisfaction follows the recommend score (a driver)."""
+    from tests.conftest import EXAMPLE_CODEBOOK, example_wave
+    from tracker import Study
+
+    text = EXAMPLE_CODEBOOK.read_text()
+    if drivers:
+        text = text.replace("\nprofile:", "\ndrivers: {headline: satisfaction_mean, attributes: [satisfied, "
+                                          "recommend_balance]}\nprofile:")
+    (tmp_path / "book.yaml").write_text(text)
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    rng = np.random.default_rng(12)
+    for k, (label, date) in enumerate((("2025-Q3", "2025-08-15"), ("2025-Q4", "2025-11-15"))):
+        frame = example_wave(n=900, seed=20 + k)
+        frame["recommend"] = np.clip(2 * frame["satisfaction"].where(frame["satisfaction"] != 9, 3)
+                                     + rng.integers(-1, 2, len(frame)), 0, 10)
+        if k == 1:
+            ashby = frame["site"] == 3
+            frame.loc[ashby, "satisfaction"] = rng.choice([1, 2], int(ashby.sum()))
+        frame.to_csv(tmp_path / f"{label}.csv", index=False)
+        study.add(tmp_path / f"{label}.csv", label, date)
+    return study
+
+
+def test_the_brief_says_which_gaps_moved_and_what_goes_with_the_headline(tmp_path):
+    from tracker.brief import build_brief, render_markdown
+
+    study = _planted(tmp_path, drivers=True)
+    brief = build_brief(study, charts=False)
+    gaps = [i for i in brief.gap_moves if i.metric == "satisfied" and i.subgroup == "Ashby Park"]
+    assert gaps and gaps[0].mark == "fall" and "the gap between Ashby Park and rest of the sample" in gaps[0].text
+    assert "An association, not a cause." in gaps[0].text
+    assert brief.drivers and "an attribute that goes with the headline may not move it" in brief.drivers[0].text
+    assert {i.metric for i in brief.drivers[1:]} == {"satisfied", "recommend_balance"}
+    md = render_markdown(brief)
+    assert "## Gaps between subgroups that moved" in md and "## What goes with the headline" in md
+
+
+def test_no_driver_section_without_declared_drivers(tmp_path):
+    from tracker.brief import build_brief
+
+    brief = build_brief(_planted(tmp_path, drivers=False), charts=False)
+    assert brief.drivers == ()

@@ -116,11 +116,6 @@ class Analysis:
             t["group"] == "total") & t["significant"]
         return t
 
-    def verdict(self, metric: str, group: str, subgroup: str) -> str:
-        t = self.changes.table
-        row = t[(t["metric"] == metric) & (t["group"] == group) & (t["subgroup"] == subgroup)]
-        return str(row["verdict"].iloc[0]) if len(row) else "not compared"
-
     def comparisons(self) -> list[dict]:
         return _records(self.table[COMPARISON_FIELDS])
 

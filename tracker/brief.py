@@ -66,6 +66,8 @@ class Brief:
     intro: tuple[str, ...] = ()  # what the intervals and the words mean, in plain sentences
     first_wave: bool = False  # a study's first wave: levels only, nothing to compare with
     levels: tuple[Item, ...] = ()  # the first wave's levels
+    gap_moves: tuple[Item, ...] = ()  # gaps between subgroups that changed, and splits whose trends differ
+    drivers: tuple[Item, ...] = ()  # the attributes' importance for the headline, when the codebook declares them
 
 
 # -- assembling -----------------------------------------------------------------------------
@@ -140,7 +142,50 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         sample_notes=tuple(sample), method=method, tables=tables, charts=tuple(chart_list),
         compact_charts=tuple(compact), mix_moves=moves["mix_moves"], not_significant=not_significant,
         surprises=_surprise_items(analysis), data=analysis.to_dict(), intro=intro,
+        gap_moves=_gap_items(study, wave, result, adjust, level), drivers=_driver_items(study, level),
     )
+
+
+def _gap_items(study, wave: str, result, adjust: str, level: float) -> tuple[Item, ...]:
+    """Gaps between subgroups that changed since the baseline, and splits whose levels trend
+    apart (tracker.gapshift: their own family of tests)."""
+    from .gapshift import gap_shifts
+    from .wording import gap_sentence, slopes_sentence
+
+    if len(result.compared_with) != 1 or not study.codebook.groups:
+        return ()
+    try:
+        t = gap_shifts(study, wave=wave, against=result.compared_with[0], adjust=adjust, level=level).table
+    except TrackerError:  # a raked wave, levels that differ between the waves: the section is left out
+        return ()
+    moved = t[t["verdict"].isin(["rise", "fall"])]
+    moved = moved.reindex(moved["change"].abs().sort_values(ascending=False).index)
+    items = [Item(gap_sentence(r) + " An association, not a cause.", r.verdict, r.metric, r.first)
+             for r in moved.itertuples()]
+    apart = t[(t["test"] == "slopes differ") & (t["verdict"] == "differ")]
+    items += [Item(slopes_sentence(r, _group_label(study, r.group)), "note", r.metric) for r in apart.itertuples()]
+    return tuple(items)
+
+
+def _driver_items(study, level: float) -> tuple[Item, ...]:
+    """The declared attributes' importance for the headline in the latest waves (up to four,
+    pooled), largest first, with the model's R^2 and the caution that association is not cause."""
+    from .drivers import fit_drivers
+    from .wording import driver_sentence, fixed
+
+    if not study.codebook.drivers:
+        return ()
+    try:
+        fit = fit_drivers(study, waves=study.labels[-4:], level=level)
+    except TrackerError as exc:
+        return (Item(f"No driver analysis: {exc}", "note"),)
+    head = study.codebook.metrics[fit.headline].label
+    imp = fit.importance.sort_values("raw_weight", ascending=False)
+    lead = Item(f"Over {', '.join(fit.waves)}, the declared attributes together account for "
+                f"{fixed(100 * fit.r2, 0)}% of the variation of {head} between respondents (R^2 {fixed(fit.r2, 3)}, "
+                f"interval {fixed(fit.r2_low, 3)} to {fixed(fit.r2_high, 3)}). Relative weights share that among "
+                f"correlated attributes; an attribute that goes with the headline may not move it.", "note")
+    return (lead, *[Item(driver_sentence(r, head), "note", r.attribute) for r in imp.itertuples()])
 
 
 def _move_sections(analysis) -> dict:
@@ -396,10 +441,12 @@ SECTIONS = [
     ("headline", "What moved", "No measure moved significantly in total."),
     ("mix_moves", "Moved with the sample's make-up", ""),
     ("subgroup_moves", "Moves in one subgroup only", "No subgroup moved on its own."),
+    ("gap_moves", "Gaps between subgroups that moved", ""),
     ("held", "Held within the margin", ""),
     ("not_significant", "Not significant", ""),
     ("surprises", "Out of line with the series", ""),
     ("trends", "Patterns over the series", "No series has enough waves for a pattern."),
+    ("drivers", "What goes with the headline", ""),
     ("sample_notes", "Sample notes", ""),
 ]
 

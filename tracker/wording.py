@@ -19,9 +19,26 @@ import math
 
 from .names import ADJUST_METHODS
 
-__all__ = ["CAUTIONS", "change_footer", "change_sentence", "composition_lines", "count", "design_lines",
-           "fixed", "held_sentence", "method_lines", "not_significant_sentence", "not_tested_sentence",
-           "p_text", "plural", "shown_change", "trend_sentence"]
+__all__ = [
+    "CAUTIONS",
+    "change_footer",
+    "change_sentence",
+    "composition_lines",
+    "count",
+    "design_lines",
+    "driver_sentence",
+    "fixed",
+    "gap_sentence",
+    "held_sentence",
+    "method_lines",
+    "not_significant_sentence",
+    "not_tested_sentence",
+    "p_text",
+    "plural",
+    "shown_change",
+    "slopes_sentence",
+    "trend_sentence",
+]
 
 
 def _kinds():
@@ -243,6 +260,33 @@ def design_lines(result) -> tuple[str, ...]:
     if "shared clusters" in used:
         out.append("The waves share sampling clusters: the comparisons take the link between them into account.")
     return tuple(out)
+
+
+def gap_sentence(row) -> str:
+    """'Staff helpfulness rated good: the gap between Southbank and the rest of the sample went
+    from -21.4 to -15.7 points, a change of +5.7 points (adjusted interval +1.2 to +10.2 points).'
+    The change is the difference of the two printed gaps; the interval is the one adjusted with
+    the verdict."""
+    k = _kinds()[row.kind]
+    shown = round(row.gap_to * k.scale, k.decimals) - round(row.gap_from * k.scale, k.decimals)
+    return (f"{row.metric_label}: the gap between {row.first} and {row.second} went from "
+            f"{k.fmt_change(row.gap_from, signed=True)} to {k.fmt_change(row.gap_to, signed=True)}, a change of "
+            f"{k.fmt_change(shown / k.scale, signed=True)} (adjusted interval "
+            f"{span(row.kind, row.adjusted_low, row.adjusted_high)}).")
+
+
+def slopes_sentence(row, split: str) -> str:
+    """'Staff helpfulness rated good: the levels of Area do not trend alike over the waves
+    (Cochran's Q 12.2 on 2 df, adjusted p 0.012).'"""
+    return (f"{row.metric_label}: the levels of {split} do not trend alike over the waves (Cochran's Q "
+            f"{fixed(row.statistic, 1)} on {int(row.df)} df, adjusted p {p_text(row.p_adjusted)}).")
+
+
+def driver_sentence(row, headline: str) -> str:
+    """'Punctuality rated good: 38% of the R^2 of Satisfied overall (raw weight 0.114, interval
+    0.081 to 0.147).'"""
+    return (f"{row.attribute_label}: {fixed(100 * row.share_of_r2, 0)}% of the explained variation of {headline} "
+            f"(raw weight {fixed(row.raw_weight, 3)}, interval {fixed(row.raw_low, 3)} to {fixed(row.raw_high, 3)}).")
 
 
 def signed(kind: str, d: float) -> str:
