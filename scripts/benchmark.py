@@ -311,6 +311,8 @@ def part_clustered(tmp: Path, rows: list, quick: bool) -> None:
         sec, mb = run_cli(args) if "first" in name else median_cli(args, 1 if quick else 3)
         rows.append((name, f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
 
+    beside(study, rows, quick)
+
     checked, hashed = [], []
     for _ in range(7):  # alternating, so that the machine's drift falls on both alike
         checked.append(run_cli(["changes", str(study)])[0])
@@ -326,6 +328,23 @@ def part_clustered(tmp: Path, rows: list, quick: bool) -> None:
     make_wave(rng, 99, 2000, 100, 5, 10, 200).to_parquet(path)
     sec, mb = run_cli(["add", str(study), str(path), "--wave", "X1", "--date", "2030-01-15", "-q"])
     rows.append((f"cli: add a 2,000-row wave to {n0} stored", f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
+
+
+def beside(study: Path, rows: list, quick: bool) -> None:
+    """The analyses beside the trend on the clustered study: the within-wave comparisons of one
+    wave over every split against `changes`, every code of a question, and a driver analysis
+    of one headline over 10 attributes pooled over 8 waves."""
+    runs = 1 if quick else 3
+    changes_t, _ = median_cli(["changes", str(study), "--format", "csv"], runs)
+    gaps_t, mb = median_cli(["gaps", str(study), "--all", "--format", "csv"], runs)
+    rows.append(("cli: gaps (one wave, 100 metrics x 5 splits: 5,500 tests)", f"{gaps_t:.2f} s",
+                 f"{gaps_t / changes_t:.2f}x changes --format csv ({changes_t:.2f} s); target 2x; peak {mb:,.0f} MB"))
+    sec, mb = median_cli(["answers", str(study), "q0", "--format", "csv"], runs)
+    rows.append(("cli: answers of one question (24 waves, every split)", f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
+    attrs = " ".join(f"--attribute m{k}" for k in range(1, 11))
+    sec, mb = median_cli(["drivers", str(study), "--headline", "m0", *attrs.split(), "--last", "8"], runs)
+    rows.append(("cli: drivers, 1 headline x 10 attributes x 8 waves", f"{sec:.2f} s",
+                 f"target 5 s; delete-one-cluster jackknife over 1,600 clusters; peak {mb:,.0f} MB"))
 
 
 def part_million(tmp: Path, rows: list) -> None:

@@ -31,7 +31,8 @@ from .composition import compare_composition
 from .estimates import finish, wave_covariance, wave_estimates
 from .methods.tests import adjust_pvalues
 
-__all__ = ["DESIGNS", "FEW_DESIGN", "FEW_REPS", "FORECAST_DESIGN", "LONE_DESIGN", "LONE_REPS", "RAKED_DESIGN",
+__all__ = ["DESIGNS", "DRIVER_DESIGN", "DRIVER_REPS", "FEW_DESIGN", "FEW_REPS", "FORECAST_DESIGN", "LONE_DESIGN",
+           "LONE_REPS", "RAKED_DESIGN",
            "RAKED_REPS", "RARE_DESIGN",
            "RARE_REPS", "TIERS", "Design", "Rate", "run"]
 
@@ -714,6 +715,60 @@ def _rare_shares(rng, reps: int, out: list[Rate]) -> None:
                             (0.92, 1.0) if share >= 0.2 and k >= 30 else None, 0.95))
 
 
+DRIVER_DESIGN = "drivers: relative weights"
+DRIVER_REPS = {"full": 4000, "quick": 1000, "test": 200}
+#: the population of the driver setting: three attributes of unit variance correlated 0.5
+#: within clusters, a cluster effect of variance 0.3 on each, the headline b'x + a cluster
+#: effect (variance 0.2) + noise (variance 1); 10 strata x 6 clusters x 30 respondents
+DRIVER_B = np.array([0.5, 0.3, 0.1])
+DRIVER_WITHIN = 0.5 * np.eye(3) + 0.5
+DRIVER_CLUSTER, DRIVER_U, DRIVER_E = 0.3, 0.2, 1.0
+DRIVER_H, DRIVER_C, DRIVER_M = 10, 6, 30
+
+
+def driver_truth() -> tuple[np.ndarray, float]:
+    """The population's relative weights and R^2 in the driver setting (from its covariance)."""
+    from .drivers import relative_weights
+
+    vx = DRIVER_CLUSTER * np.eye(3) + DRIVER_WITHIN
+    cxy = vx @ DRIVER_B
+    vy = DRIVER_B @ vx @ DRIVER_B + DRIVER_U + DRIVER_E
+    cov = np.block([[vx, cxy[:, None]], [cxy[None, :], np.array([[vy]])]])
+    sd = np.sqrt(np.diag(cov))
+    raw, r2 = relative_weights(cov / np.outer(sd, sd))
+    return raw, float(r2)
+
+
+def _driver_importance(rng, reps: int, out: list[Rate]) -> None:
+    """Coverage of the jackknife intervals of Johnson's relative weights and of R^2 in a
+    stratified cluster sample with lognormal weights (independent of the answers)."""
+    from .drivers import importance_estimates
+    from .methods.intervals import critical
+
+    truth, r2_true = driver_truth()
+    n_c = DRIVER_H * DRIVER_C
+    n = n_c * DRIVER_M
+    cluster = np.repeat(np.arange(n_c), DRIVER_M)
+    strata = cluster // DRIVER_C
+    chol = np.linalg.cholesky(DRIVER_WITHIN)
+    hits: list[list[float]] = [[] for _ in range(4)]
+    for _ in range(reps):
+        x = (rng.normal(0, np.sqrt(DRIVER_CLUSTER), (n_c, 3))[cluster] + rng.normal(size=(n, 3)) @ chol.T)
+        y = x @ DRIVER_B + rng.normal(0, np.sqrt(DRIVER_U), n_c)[cluster] + rng.normal(0, np.sqrt(DRIVER_E), n)
+        w = np.exp(rng.normal(0, 0.4, n))
+        est = importance_estimates(np.column_stack([y, x]), w, strata, cluster)
+        t = critical(LEVEL, est.df)
+        se = np.sqrt(est.raw_var)
+        for j in range(3):
+            hits[j].append(float(abs(est.raw[j] - truth[j]) <= t * se[j]))
+        hits[3].append(float(abs(est.r2 - r2_true) <= t * np.sqrt(est.r2_var)))
+    names = [f"attribute {j + 1} (true raw weight {truth[j]:.3f})" for j in range(3)] + [f"R^2 (true {r2_true:.3f})"]
+    for name, h in zip(names, hits):
+        rate, mc, k = _prop(h)
+        out.append(Rate(DRIVER_DESIGN, "95% interval coverage", f"{name}, jackknife over {n_c} clusters", rate, mc,
+                        k, (0.93, 0.97), 0.95))
+
+
 def _one_design(args) -> tuple[list[Rate], tuple[float, float, float]]:
     d, tier, seed, verbose = args
     t = TIERS[tier]
@@ -756,7 +811,8 @@ def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DES
     for name, step, reps, tag in ((FORECAST_DESIGN, _forecasts, FORECAST_REPS, 14),
                                   (RARE_DESIGN, _rare_shares, RARE_REPS, 21), (FEW_DESIGN, _few_clusters, FEW_REPS, 22),
                                   (RAKED_DESIGN, _raked_items, RAKED_REPS, 23),
-                                  (LONE_DESIGN, _lone_clusters, LONE_REPS, 24)):
+                                  (LONE_DESIGN, _lone_clusters, LONE_REPS, 24),
+                                  (DRIVER_DESIGN, _driver_importance, DRIVER_REPS, 25)):
         if verbose:
             print(name, file=sys.stderr, flush=True)
         step(np.random.default_rng(np.random.SeedSequence([seed, tag])), reps[tier], rates)

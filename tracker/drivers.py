@@ -170,11 +170,43 @@ def fit_drivers(study, headline: str | None = None, attributes=None, waves=None,
     waves = study.pick_waves(waves) if waves else study.labels[-1:]
     Y, w, strata, psu = _design(study, waves, metrics)
     _check(study, headline, attributes, Y, waves)
+    est = importance_estimates(Y, w, strata, psu, level)
+    coefficients = _regression_frame(est, attributes, level)
+    t = critical(level, est.df if est.df > 0 else None)
+    raw, se = est.raw, np.sqrt(est.raw_var)
+    labels = [m.label for m in metrics[1:]]
+    importance = pd.DataFrame({
+        "attribute": attributes, "attribute_label": labels, "raw_weight": raw,
+        "raw_low": raw - t * se, "raw_high": raw + t * se, "share_of_r2": raw / est.r2,
+        "coefficient": coefficients["coefficient"].to_numpy()[1:], "coefficient_se": coefficients["se"].to_numpy()[1:]})
+    r2_se = float(np.sqrt(est.r2_var))
+    return DriverFit(headline, tuple(attributes), tuple(waves), len(Y), est.r2, est.r2 - t * r2_se, est.r2 + t * r2_se,
+                     coefficients, importance, level, est.replicates, est.jk_factor, est.jk_stratum, est.df)
+
+
+@dataclass(frozen=True)
+class Importance:
+    """The estimates of one driver fit from its respondents' arrays (:func:`importance_estimates`)."""
+
+    beta: np.ndarray  # intercept, then one coefficient per attribute
+    beta_cov: np.ndarray  # their linearized covariance
+    raw: np.ndarray  # Johnson's raw weights
+    raw_var: np.ndarray  # their jackknife variances
+    r2: float
+    r2_var: float
+    df: float  # the design's degrees of freedom: PSUs minus strata
+    replicates: np.ndarray
+    jk_factor: np.ndarray
+    jk_stratum: np.ndarray
+
+
+def importance_estimates(Y: np.ndarray, w: np.ndarray, strata, psu, level: float = 0.95) -> Importance:
+    """The regression and the relative weights of ``Y``'s first column on the others, with the
+    respondents' weights, strata and PSU labels (see the module's description)."""
     psu_id, psu_stratum, n_strata = psu_index(pd.factorize(strata)[0], pd.factorize(psu)[0], len(Y))
     P = psu_stratum.size
     n_h = np.bincount(psu_stratum, minlength=n_strata).astype(float)
-    df = float(P - n_strata)
-    coefficients = _regression(Y, w, psu_id, psu_stratum, n_h, P, df, attributes, level)
+    beta, cov = _regression(Y, w, psu_id, psu_stratum, n_h, P)
     M = _moments(Y, w, psu_id, P)
     total = M.sum(axis=0)
     by_stratum = np.zeros((n_strata, *total.shape))
@@ -187,16 +219,9 @@ def fit_drivers(study, headline: str | None = None, attributes=None, waves=None,
     rep_raw, rep_r2 = relative_weights(_corr(reps[~lone]))
     jk = ((n_h - 1) / n_h)[psu_stratum][~lone]
     stratum = psu_stratum[~lone]
-    v_raw, v_r2 = _jk_variance(rep_raw, jk, stratum, n_strata), _jk_variance(rep_r2[:, None], jk, stratum,
-                                                                            n_strata)[0]
-    t = critical(level, df if df > 0 else None)
-    labels = [m.label for m in metrics[1:]]
-    importance = pd.DataFrame({
-        "attribute": attributes, "attribute_label": labels, "raw_weight": raw,
-        "raw_low": raw - t * np.sqrt(v_raw), "raw_high": raw + t * np.sqrt(v_raw), "share_of_r2": raw / r2,
-        "coefficient": coefficients["coefficient"].to_numpy()[1:], "coefficient_se": coefficients["se"].to_numpy()[1:]})
-    return DriverFit(headline, tuple(attributes), tuple(waves), len(Y), float(r2), float(r2 - t * np.sqrt(v_r2)),
-                     float(r2 + t * np.sqrt(v_r2)), coefficients, importance, level, rep_raw, jk, stratum, df)
+    v_raw = _jk_variance(rep_raw, jk, stratum, n_strata)
+    v_r2 = float(_jk_variance(rep_r2[:, None], jk, stratum, n_strata)[0])
+    return Importance(beta, cov, raw, v_raw, float(r2), v_r2, float(P - n_strata), rep_raw, jk, stratum)
 
 
 def _jk_variance(reps: np.ndarray, factor: np.ndarray, stratum: np.ndarray, n_strata: int) -> np.ndarray:
@@ -209,8 +234,9 @@ def _jk_variance(reps: np.ndarray, factor: np.ndarray, stratum: np.ndarray, n_st
     return (factor[:, None] * (reps - mean[stratum]) ** 2).sum(axis=0)
 
 
-def _regression(Y, w, psu_id, psu_stratum, n_h, P, df, attributes, level) -> pd.DataFrame:
-    """Weighted least squares of the headline on the attributes, with linearized SEs (as svyglm)."""
+def _regression(Y, w, psu_id, psu_stratum, n_h, P) -> tuple[np.ndarray, np.ndarray]:
+    """Weighted least squares of the headline on the attributes: coefficients and their
+    linearized covariance (as svyglm)."""
     import scipy.sparse as sp
 
     X = np.column_stack([np.ones(len(Y)), Y[:, 1:]])
@@ -226,9 +252,13 @@ def _regression(Y, w, psu_id, psu_stratum, n_h, P, df, attributes, level) -> pd.
     np.add.at(sums, psu_stratum, t)
     c = t - (sums / np.maximum(n_h, 1)[:, None])[psu_stratum]
     g = np.where(n_h > 1, n_h / np.maximum(n_h - 1, 1), 0.0)[psu_stratum]
-    V = (c * g[:, None]).T @ c
-    se = np.sqrt(np.diag(V))
-    dfr = max(df + 1 - X.shape[1], 1.0)
+    return beta, (c * g[:, None]).T @ c
+
+
+def _regression_frame(est: Importance, attributes: list[str], level: float) -> pd.DataFrame:
+    """The coefficients as a table (COEFFICIENT_COLUMNS), t on the design df minus the attributes."""
+    beta, se = est.beta, np.sqrt(np.diag(est.beta_cov))
+    dfr = max(est.df + 1 - beta.size, 1.0)
     tq = critical(level, dfr)
     stat = beta / se
     return pd.DataFrame({"term": ["(intercept)", *attributes], "coefficient": beta, "se": se, "df": dfr, "t": stat,
