@@ -536,3 +536,14 @@ def test_relative_weights_equal_the_published_mtcars_example(reference):
     np.testing.assert_allclose(fit.importance["raw_weight"], [0.2284797, 0.2221469, 0.2321744, 0.0963886],
                                atol=5e-8)
     assert fit.importance["raw_weight"].sum() == pytest.approx(fit.r2, rel=1e-12)
+
+
+@pytest.mark.parametrize("design", WITHIN)
+def test_a_questions_answers_across_a_split_equal_svychisq(reference, design):
+    # reference: R's svychisq(~stype + awards) (the second-order Rao-Scott F, its df and p)
+    from tracker.answers import distribution_tests
+
+    want = pd.read_csv(_data_dir(reference) / "svychisq.csv").set_index("design").loc[design]
+    got = distribution_tests(reference[1][design], "stype", waves=["2000"], by=["awards"]).iloc[0]
+    np.testing.assert_allclose([got["f"], got["f_df_num"], got["f_df_den"], got["p_raw"]],
+                               [want["f"], want["ndf"], want["ddf"], want["p"]], rtol=1e-8)

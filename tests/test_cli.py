@@ -300,11 +300,11 @@ def test_docs_columns_lists_exactly_the_columns_each_command_writes(demo_study):
                                           else [c])]
 
     assert named("estimates") == ESTIMATE_COLUMNS
-    from tracker.answers import NUMBER_COLUMNS, SHARE_COLUMNS
+    from tracker.answers import NUMBER_COLUMNS, SHARE_COLUMNS, TEST_COLUMNS
     from tracker.within import COLUMNS as GAP_COLUMNS
 
     answers = named("answers")
-    assert set(answers) == set(SHARE_COLUMNS) | set(NUMBER_COLUMNS) | {"kind"}
+    assert set(answers) == set(SHARE_COLUMNS) | set(NUMBER_COLUMNS) | set(TEST_COLUMNS) | {"kind"}
     from tracker.gapshift import COLUMNS as SHIFT_COLUMNS
 
     assert set(named("gaps")) == set(GAP_COLUMNS) | set(SHIFT_COLUMNS)

@@ -94,7 +94,7 @@ def _shares(study, book, metrics, groups, waves, level, var: Variable, in_base: 
 
 
 NUMBER_COLUMNS = ["wave", "variable", "group", "subgroup", "statistic", "value", "se", "low", "high", "base",
-                  "design_df"]
+                  "design_df", "kind"]
 
 
 def weighted_quantile(x: np.ndarray, w: np.ndarray, p: float) -> float:
@@ -159,7 +159,40 @@ def number_summary(study, variable: str, waves=None, by=None, level: float = 0.9
         est = _finish(cells, [mean], wave, dates[wave], level)
         rows.append(_mean_rows(est, variable))
         rows.append(_quartile_rows(study, book, table, variable, groups, est, wave, level))
-    return pd.concat(rows, ignore_index=True)[NUMBER_COLUMNS]
+        rows.append(_band_rows(book, table, variable, groups, wave, dates[wave], level))
+    out = pd.concat([r for r in rows if len(r)], ignore_index=True)
+    out["kind"] = np.where(out["statistic"].str.startswith("share "), "share", "mean")
+    return out[NUMBER_COLUMNS]
+
+
+def _band_rows(book, table, variable, groups, wave, date, level) -> pd.DataFrame:
+    """The share of each band of every split the codebook bands this number into (its
+    'grouped bands'), among those with a value, estimated as share metrics."""
+    from .estimates import cell_arrays, estimates_frame
+
+    x = table[variable].to_numpy(float)
+    frames = []
+    for name, g in book.groups.items():
+        if g.variable != variable or g.bands is None:
+            continue
+        code = np.full(len(table), np.nan)
+        labels = list(g.bands)
+        for k, lab in enumerate(labels, start=1):
+            lo, hi = g.bands[lab]
+            code[(x >= lo) & (x <= hi) & np.isnan(code)] = k
+        code[np.isfinite(x) & np.isnan(code)] = 0  # a value in no band: in the base, in no band
+        band = f"@band_{name}"
+        var = Variable(band, band, "category", codes={float(k): lab for k, lab in enumerate(["(none)", *labels])})
+        book2 = replace(book, variables={**book.variables, band: var})
+        metrics = [Metric(f"@{k}", lab, band, "share", codes=(float(k),)) for k, lab in enumerate(labels, start=1)]
+        est = estimates_frame([(wave, date, cell_arrays(book2, table.assign(**{band: code}), metrics, groups))],
+                              metrics, level)
+        est = est[est["base"] > 0]
+        frames.append(pd.DataFrame({
+            "wave": wave, "variable": variable, "group": est["group"], "subgroup": est["subgroup"],
+            "statistic": "share " + est["metric_label"] + f" ({name})", "value": est["value"], "se": est["se"],
+            "low": est["ci_low"], "high": est["ci_high"], "base": est["base"], "design_df": est["df"]}))
+    return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
 
 
 def _finish(cells, metrics, wave, date, level):
@@ -234,3 +267,56 @@ def _quartile_rows(study, book, table, variable, groups, est, wave, level) -> pd
                         "value": q[j, k], "se": (high - low) / (2 * t), "low": low, "high": high,
                         "base": int(cells.stats["base"][j, i]), "design_df": df})
     return pd.DataFrame(out)
+
+
+TEST_COLUMNS = ["wave", "variable", "group", "respondents", "pearson_chi2", "mean_design_effect", "f", "f_df_num",
+                "f_df_den", "p_raw", "p_adjusted", "verdict"]
+
+
+def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = "bh", level: float = 0.95
+                       ) -> pd.DataFrame:
+    """Whether a coded question's answers are distributed alike in every level of a split: the
+    Rao-Scott test of the (level x code) table of the valid answers (tracker.methods.raoscott,
+    the second-order F of R's ``svychisq``), one per wave and split, adjusted together, with
+    the verdicts of a test across levels (tracker.within.GAP_VERDICTS)."""
+    from .cells import group_matrix
+    from .estimates import design_of, weights_of
+    from .methods.raoscott import rao_scott_table
+    from .methods.tests import adjust_pvalues
+    from .methods.variance import taylor_covariance
+    from .options import check_adjust
+
+    check_adjust(adjust)
+    var = _variable(study, variable)
+    if var.type not in ("category", "scale"):
+        raise TrackerError(f"variable {variable}: only a coded question's answers are tested across subgroups")
+    book = study.codebook
+    groups = [g for g in study.pick_groups(by)]
+    rows = []
+    codes = np.array(sorted(var.codes), dtype=float)
+    for wave in study.pick_waves(waves):  # a loop over waves and splits: one small table each
+        table = study.load(wave)
+        x = table[variable].to_numpy(float) if variable in table.columns else np.full(len(table), np.nan)
+        w_all = weights_of(book, table)
+        strata, psu = design_of(book, table)
+        for g in groups:
+            D = group_matrix(book, table, [g])[0][:, 1:]
+            inside = np.isin(x, codes) & D.any(axis=1)
+            w = np.where(inside, w_all, 0.0)
+            cells = (D[:, :, None] & (x[:, None, None] == codes[None, None, :])).reshape(len(x), -1).astype(float)
+            W = w.sum()
+            pi = (w[:, None] * cells).sum(axis=0) / W
+            z = w[:, None] * (cells - pi) / W
+            st = np.zeros(len(x), np.int64) if strata is None else strata
+            ps = np.arange(len(x)) if psu is None else psu
+            V = taylor_covariance(z, st, ps, book.single_cluster_rule)
+            df = float(np.unique(ps[inside]).size - np.unique(st[inside]).size)
+            rs = rao_scott_table(pi, V, int(inside.sum()), df, D.shape[1], len(codes))
+            rows.append({"wave": wave, "variable": variable, "group": g, "respondents": int(inside.sum()),
+                         "pearson_chi2": rs.pearson, "mean_design_effect": rs.mean_deff, "f": rs.f,
+                         "f_df_num": rs.f_df_num, "f_df_den": rs.f_df_den, "p_raw": rs.f_p})
+    out = pd.DataFrame(rows, columns=[c for c in TEST_COLUMNS if c not in ("p_adjusted", "verdict")])
+    out["p_adjusted"] = adjust_pvalues(out["p_raw"].to_numpy(float), adjust)
+    sig = np.nan_to_num(out["p_adjusted"].to_numpy(float), nan=1.0) <= 1 - level
+    out["verdict"] = np.where(out["p_adjusted"].isna(), "not compared", np.where(sig, "differ", "no difference found"))
+    return out[TEST_COLUMNS]

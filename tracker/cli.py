@@ -17,7 +17,7 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 from .errors import TrackerError
 from .names import ADJUST_METHODS as ADJUST_NAMES
 from .names import FORMATS
-from .wording import plural
+from .wording import p_text, plural
 
 
 def Study(path):
@@ -530,10 +530,13 @@ def estimates_cmd(study, metrics, by, waves, all_waves, level, interval, smooth,
 @click.option("--base", "in_base", type=click.Choice(["valid", "with-missing", "both"]), default="both",
               show_default=True, help="Coded questions: shares of the valid answers, or with the missing codes "
                                       "(don't know, refused) counted in the base, or both.")
+@click.option("--tests", is_flag=True, help="Coded questions: instead, test whether the answers are distributed "
+                                            "alike in every level of each split (Rao-Scott).")
+@adjust_option
 @level_option
 @_fmt_option
 @user_errors
-def answers_cmd(study, variable, by, waves, in_base, level, fmt, wide, output):
+def answers_cmd(study, variable, by, waves, in_base, tests, adjust, level, fmt, wide, output):
     """Every answer of a question by wave and subgroup: each code's share (with and without the
     missing codes in the base) for a coded question, or the mean, spread and quartiles of a number.
 
@@ -550,12 +553,22 @@ def answers_cmd(study, variable, by, waves, in_base, level, fmt, wide, output):
     if s.codebook.variables.get(variable) is not None and s.codebook.variables[variable].type == "number":
         table = number_summary(s, variable, **pick)
         note.append("Quartiles with Woodruff's intervals; the standard deviation carries no interval.")
-        emit(table.assign(kind="mean"), fmt, "numbers", wide, output, note)
+        emit(table, fmt, "numbers", wide, output, note)
+        return
+    from .answers import distribution_tests
+
+    if tests:
+        emit(distribution_tests(s, variable, adjust=adjust, **pick), fmt, None, wide, output, note)
         return
     table = answer_shares(s, variable, **pick)
     wanted = {"valid": ["valid answers"], "with-missing": ["with missing codes"]}.get(in_base)
     if wanted:
         table = table[table["in_base"].isin(wanted)].reset_index(drop=True)
+    if fmt in ("table", "md") and pick["by"] != ["total"] and s.codebook.variables[variable].type != "multi":
+        for r in distribution_tests(s, variable, adjust=adjust, **pick).itertuples():
+            note.append(f"{r.wave}, {r.group}: Rao-Scott F {r.f:.2f} on {r.f_df_num:.1f} and {r.f_df_den:.0f} df, "
+                        f"adjusted p {p_text(r.p_adjusted)}: {r.verdict} (the valid answers' distribution across the "
+                        f"levels; sampling error only).")
     emit(table, fmt, "answers", wide, output, note)
 
 

@@ -80,6 +80,15 @@ for (name in names(designs)) {
 write.csv(do.call(rbind, fits), file.path(out, "svyglm.csv"), row.names = FALSE)
 cars <- data.frame(car = seq_len(nrow(mtcars)), mtcars)
 write.csv(cars, file.path(out, "mtcars.csv"), row.names = FALSE)
+chisq <- list()
+for (name in names(designs)) {
+  d <- read.csv(file.path(out, paste0(name, ".csv")))
+  des <- update(designs[[name]](d), stype_f = factor(stype), awards_f = factor(awards))
+  k <- svychisq(~stype_f + awards_f, des)
+  chisq[[length(chisq) + 1]] <- data.frame(design = name, f = as.vector(k$statistic), ndf = k$parameter[[1]],
+                                           ddf = k$parameter[[2]], p = as.vector(k$p.value))
+}
+write.csv(do.call(rbind, chisq), file.path(out, "svychisq.csv"), row.names = FALSE)
 write.csv(do.call(rbind, codes), file.path(out, "codes.csv"), row.names = FALSE)
 write.csv(do.call(rbind, quart), file.path(out, "quartiles.csv"), row.names = FALSE)
 write.csv(do.call(rbind, pairs), file.path(out, "within_pairs.csv"), row.names = FALSE)
