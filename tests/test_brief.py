@@ -106,20 +106,59 @@ def test_html_is_self_contained(q2_brief, tmp_path):
     assert "vegaEmbed" in text and 'name="viewport"' in text and "@media print" in text
 
 
-def test_xlsx_reopens_with_sheets_and_values(q2_brief, tmp_path, demo_study):
+def test_the_workbook_is_for_clients_numbers_formatted_by_kind_with_charts(q2_brief, tmp_path, demo_study):
+    # common practice, no source: a client workbook keeps numbers as numbers, shares shown as
+    # percentages and their changes in points, readable headers, frozen headers and native charts
     path = write_brief(q2_brief, tmp_path / "b.xlsx")
     wb = load_workbook(path)
-    assert wb.sheetnames == ["Brief", "Headline", "Subgroup moves", "All changes", "Trends", "Estimates"]
+    assert wb.sheetnames == ["Brief", "Every wave", "Charts", "Headline", "Subgroup moves", "All changes", "Trends",
+                             "Estimates", "Notes"]
     head = wb["Headline"]
     cols = [c.value for c in head[1]]
+    assert cols[:3] == ["Measure", "Split", "Subgroup"] and "p (adjusted)" in cols and "metric_label" not in cols
     first = {c: head.cell(2, j + 1) for j, c in enumerate(cols)}
     expected = q2_brief.tables["Headline"].iloc[0]
-    assert first["metric_label"].value == expected["metric_label"]
-    assert first["change"].value == pytest.approx(expected["change"], abs=1e-12)
-    assert first["change"].number_format == "0.000"
-    assert first["base_to"].value == expected["base_to"] and first["base_to"].number_format == "#,##0"
-    assert first["p_adjusted"].number_format == "0.0000"
-    assert wb["Brief"]["A1"].value == demo_study.codebook.title
+    assert expected["kind"] == "share"
+    assert first["Measure"].value == expected["metric_label"]
+    assert first["Now"].value == pytest.approx(expected["value_to"], abs=1e-15) and first["Now"].number_format == "0.0%"
+    assert first["Change"].value == pytest.approx(100 * expected["change"], abs=1e-12)
+    assert first["Change"].number_format == '+0.0" points";-0.0" points";0.0" points"'
+    assert first["Base now"].value == expected["base_to"] and first["Base now"].number_format == "#,##0"
+    assert first["p (adjusted)"].number_format == "0.0000"
+    assert head.freeze_panes == "B2"
+    assert wb["Brief"]["B1"].value == demo_study.codebook.title
+    marks = [r[0] for r in wb["Brief"].iter_rows(values_only=True) if r[0]]
+    assert marks and set(marks) <= {"▲ Up", "▼ Down", "= Held"}  # moves marked by shape and word
+    # every metric in every wave up to the brief's, in total and by subgroup, equal to the estimates
+    wide = wb["Every wave"]
+    waves = [c.value for c in wide[1]][3:-1]
+    assert waves == demo_study.labels[: demo_study.labels.index("2025-Q2") + 1]
+    est = demo_study.estimates(waves=waves).set_index(["metric_label", "subgroup", "wave"])
+    row = next(r for r in wide.iter_rows(min_row=2) if r[0].value == expected["metric_label"] and r[2].value == "Total")
+    for j, w in enumerate(waves):
+        assert row[3 + j].value == pytest.approx(est.loc[(expected["metric_label"], "Total", w), "value"], abs=1e-15)
+    assert row[-1].value in ("▲ Up", "▼ Down")  # the headline move, marked in the wave's column
+    flagged = [c for r in wide.iter_rows(min_row=2) for c in r[3:-1] if c.comment is not None]
+    assert flagged and all(c.comment.text.startswith("Read with care: ") for c in flagged)
+    assert wide.freeze_panes == "D2"
+    charts = wb["Charts"]._charts
+    assert len(charts) == len({i.metric for i in q2_brief.headline if i.metric})
+    assert all(type(c).__name__ == "LineChart" for c in charts)
+    assert "Cautions" in [r[0] for r in wb["Notes"].iter_rows(values_only=True)]
+
+
+def test_a_results_workbook_keeps_the_machine_columns_and_values(demo_study, tmp_path):
+    from tracker.formatting import write_table
+
+    t = demo_study.changes(wave="2025-Q2").table
+    wb = load_workbook(write_table(t, tmp_path / "c.xlsx"))
+    ws = wb.active
+    cols = [c.value for c in ws[1]]
+    assert cols == list(t.columns)  # the names of docs/columns.md
+    row = {c: ws.cell(2, j + 1) for j, c in enumerate(cols)}
+    assert row["change"].value == pytest.approx(t.iloc[0]["change"], abs=1e-15)  # a difference of fractions
+    assert row["value_to"].number_format == ("0.0%" if t.iloc[0]["kind"] == "share" else row["value_to"].number_format)
+    assert ws.freeze_panes == "A2"
 
 
 def test_labels_are_escaped_and_cells_cannot_run_as_formulas(tmp_path):

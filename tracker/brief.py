@@ -8,16 +8,13 @@ from __future__ import annotations
 
 import datetime as dt
 import html
-import io
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 from .analysis import SMOOTH_BELOW, make_up_shares, sample_facts
 from .errors import TrackerError
-from .formatting import safe_cell
 from .wording import (
     CAUTIONS,
     change_sentence,
@@ -118,6 +115,7 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         "All changes": result.shown(True)[_TABLE_COLS].reset_index(drop=True),
         "Trends": analysis.trends[[c for c in _TREND_COLS]].reset_index(drop=True),
         "Estimates": study.estimates(waves=[wave, *result.compared_with], level=level),
+        "Every wave": study.estimates(waves=study.labels[:study.labels.index(wave) + 1], level=level),
     }
     thin_groups = {g for g, _ in analysis.thin}
     smoothed_drawn = charts and any(g in thin_groups for _, g in shown_sub_pairs(sub))  # the same words in every form
@@ -359,10 +357,11 @@ def _surprise_items(analysis) -> tuple[Item, ...]:
     return tuple(out)
 
 
-_TABLE_COLS = ["metric_label", "group", "subgroup", "wave_from", "wave_to", "value_from", "value_to", "change",
+_TABLE_COLS = ["metric_label", "metric", "kind", "group", "subgroup", "wave_from", "wave_to", "value_from", "value_to",
+               "change",
                "change_low", "change_high", "base_from", "base_to", "effective_base_from", "effective_base_to",
                "p_raw", "p_adjusted", "min_detectable_change", "verdict", "flags"]
-_TREND_COLS = ["metric_label", "group", "subgroup", "first_wave", "last_wave", "waves", "latest_value",
+_TREND_COLS = ["metric_label", "kind", "group", "subgroup", "first_wave", "last_wave", "waves", "latest_value",
                "slope_per_year", "slope_low", "slope_high", "wave_to_wave_sd", "excess_variation_p", "pattern",
                "pattern_p_adjusted", "shift_wave", "level_before", "level_after", "blip_wave", "note"]
 
@@ -540,83 +539,7 @@ def render_html(brief: Brief) -> str:
 
 
 def render_xlsx(brief: Brief) -> bytes:
-    """One sheet per table, plus the brief's text; numbers keep proper formats."""
-    from openpyxl import Workbook
-    from openpyxl.styles import Font
-    from openpyxl.utils import get_column_letter
+    """The brief as a client workbook (tracker.workbook)."""
+    from .workbook import workbook_bytes
 
-    wb = Workbook()
-    ws = wb.active
-    ws.title = "Brief"
-    ws.append([safe_cell(brief.title)])
-    ws["A1"].font = Font(bold=True, size=14)
-    ws.append([safe_cell(_subtitle(brief, lambda x: x))])
-    for line in brief.intro:
-        ws.append([safe_cell(line)])
-    for attr, heading, empty in _sections(brief):
-        if not getattr(brief, attr) and not empty:
-            continue
-        ws.append([])
-        ws.append([heading])
-        ws.cell(ws.max_row, 1).font = Font(bold=True)
-        for i in getattr(brief, attr) or [Item(empty)]:
-            ws.append([safe_cell(WORD[i.mark] + i.text)])
-    for heading, lines in (("Method", brief.method), ("Cautions", brief.cautions)):
-        ws.append([])
-        ws.append([heading])
-        ws.cell(ws.max_row, 1).font = Font(bold=True)
-        for line in lines:
-            ws.append([safe_cell(line)])
-    ws.column_dimensions["A"].width = 140
-    for name, table in brief.tables.items():
-        sheet = wb.create_sheet(name[:31])
-        sheet.append([str(c) for c in table.columns])
-        for cell in sheet[1]:
-            cell.font = Font(bold=True)
-        for row in table.itertuples(index=False):
-            sheet.append([_xlsx_value(v) for v in row])
-        for j, col in enumerate(table.columns, start=1):
-            fmt = _number_format(col)
-            letter = get_column_letter(j)
-            sheet.column_dimensions[letter].width = max(10, min(40, len(str(col)) + 2))
-            if fmt:
-                for cell in sheet[letter][1:]:
-                    if isinstance(cell.value, (int, float)):
-                        cell.number_format = fmt
-        sheet.freeze_panes = "A2"
-    for sheet in wb.worksheets:
-        for row in sheet.iter_rows():
-            for cell in row:
-                if isinstance(cell.value, str):
-                    cell.data_type = "s"  # never a formula, whatever the text
-    buf = io.BytesIO()
-    wb.save(buf)
-    return buf.getvalue()
-
-
-def _xlsx_value(v):
-    if v is None or (isinstance(v, float) and not np.isfinite(v)):
-        return None
-    if isinstance(v, (np.bool_, bool)):
-        return bool(v)
-    if isinstance(v, np.integer):
-        return int(v)
-    if isinstance(v, np.floating):
-        return float(v) if np.isfinite(v) else None
-    if isinstance(v, str):
-        return safe_cell(v)
-    if pd.isna(v):
-        return None
-    return v
-
-
-def _number_format(col: str) -> str | None:
-    if col.startswith(("p_", "pattern_p", "slope_p")) or col == "excess_variation_p":
-        return "0.0000"
-    if "base" in col or col in ("waves", "df"):
-        return "#,##0"
-    if col in ("value", "value_from", "value_to", "change", "change_low", "change_high", "ci_low", "ci_high",
-               "min_detectable_change", "latest_value", "slope_per_year", "slope_low", "slope_high",
-               "wave_to_wave_sd", "level_before", "level_after", "se"):
-        return "0.000"
-    return None
+    return workbook_bytes(brief)

@@ -61,7 +61,6 @@ def render(frame: pd.DataFrame, fmt: str = "table", digits: int = 4) -> str:
 def write_table(frame: pd.DataFrame, path) -> Path:
     """Write a result table to ``path`` by its suffix (.csv, .json, .md, .xlsx), every column
     at full precision, atomically; formula-like text cells are neutralised in CSV and XLSX."""
-    import io
 
     from .errors import TrackerError
     from .outputs import check_output, write_output
@@ -71,9 +70,9 @@ def write_table(frame: pd.DataFrame, path) -> Path:
     if suffix in (".csv", ".json", ".md"):
         data = render(frame, suffix[1:]).encode("utf-8")
     elif suffix == ".xlsx":
-        buf = io.BytesIO()
-        safe_text(frame).to_excel(buf, index=False)
-        data = buf.getvalue()
+        from .workbook import table_bytes
+
+        data = table_bytes(frame)
     else:
         raise TrackerError(f"{path}: give a file ending in .csv, .json, .md or .xlsx")
     return write_output(path, data)
