@@ -237,7 +237,7 @@ def test_chart_and_brief_commands(demo_study, tmp_path):
     assert result.exit_code == 0, result.output
     assert "Punctuality good or very good fell from" in (tmp_path / "b.md").read_text()
     result = CliRunner().invoke(main, ["brief", root, "-o", str(tmp_path / "b.pdf")])
-    assert result.exit_code == 1 and "give a file ending in .html, .md, .xlsx or .json" in result.output
+    assert result.exit_code == 1 and "give a file ending in .html, .md, .xlsx, .pptx or .json" in result.output
 
 
 def test_demo_command_ends_with_the_brief(tmp_path):

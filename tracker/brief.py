@@ -358,9 +358,9 @@ def _surprise_items(analysis) -> tuple[Item, ...]:
 
 
 _TABLE_COLS = ["metric_label", "metric", "kind", "group", "subgroup", "wave_from", "wave_to", "value_from", "value_to",
-               "change",
-               "change_low", "change_high", "base_from", "base_to", "effective_base_from", "effective_base_to",
-               "p_raw", "p_adjusted", "min_detectable_change", "verdict", "flags"]
+               "change", "change_low", "change_high", "adjusted_low", "adjusted_high", "adjusted_level", "base_from",
+               "base_to", "effective_base_from", "effective_base_to", "p_raw", "p_adjusted", "min_detectable_change",
+               "verdict", "flags"]
 _TREND_COLS = ["metric_label", "kind", "group", "subgroup", "first_wave", "last_wave", "waves", "latest_value",
                "slope_per_year", "slope_low", "slope_high", "wave_to_wave_sd", "excess_variation_p", "pattern",
                "pattern_p_adjusted", "shift_wave", "level_before", "level_after", "blip_wave", "note"]
@@ -430,8 +430,12 @@ def write_brief(brief: Brief, path: str | Path) -> Path:
         data = render_xlsx(brief)
     elif suffix == ".json":
         data = render_json(brief).encode("utf-8")
+    elif suffix == ".pptx":
+        from .deck import deck_bytes
+
+        data = deck_bytes(brief)
     else:
-        raise TrackerError(f"{path}: give a file ending in .html, .md, .xlsx or .json")
+        raise TrackerError(f"{path}: give a file ending in .html, .md, .xlsx, .pptx or .json")
     return write_output(path, data)
 
 

@@ -890,10 +890,11 @@ def chart_cmd(study, metric, by, overview, wave, against, adjust, level, smooth,
 @adjust_option
 @level_option
 @click.option("-o", "--output", required=True, type=click.Path(),
-              help="brief.html, brief.md, brief.xlsx or brief.json (every comparison and pattern, for other tools)")
+              help="brief.html, brief.md, brief.xlsx (a client workbook), brief.pptx (an editable slide deck) or "
+                   "brief.json (every comparison and pattern, for other tools)")
 @user_errors
 def brief_cmd(study, wave, against, adjust, level, output):
-    """Write the briefing: what moved, what held steady, trends, sample notes, method and cautions.
+    """Write the briefing: what moved, what held, trends, sample notes, method and cautions.
 
     \b
     Example:  tracker brief demo-study --against year-ago -o brief.html
@@ -901,8 +902,8 @@ def brief_cmd(study, wave, against, adjust, level, output):
     from .brief import build_brief, write_brief
     from .outputs import check_output
 
-    if Path(output).suffix.lower() not in (".html", ".htm", ".md", ".xlsx", ".json"):
-        raise TrackerError(f"{output}: give a file ending in .html, .md, .xlsx or .json")
+    if Path(output).suffix.lower() not in (".html", ".htm", ".md", ".xlsx", ".pptx", ".json"):
+        raise TrackerError(f"{output}: give a file ending in .html, .md, .xlsx, .pptx or .json")
     check_output(output)
     brief = build_brief(Study(study), wave=wave, against=against, adjust=adjust, level=level,
                         charts=Path(output).suffix.lower() in (".html", ".htm"))

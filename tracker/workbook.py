@@ -24,7 +24,9 @@ __all__ = ["TITLES", "change_cell", "table_bytes", "value_cell", "workbook_bytes
 TITLES = {
     "metric_label": "Measure", "group": "Split", "subgroup": "Subgroup", "wave_from": "From wave",
     "wave_to": "To wave", "value_from": "Then", "value_to": "Now", "change": "Change", "change_low": "Change, low",
-    "change_high": "Change, high", "base_from": "Base then", "base_to": "Base now",
+    "change_high": "Change, high", "adjusted_low": "Adjusted interval, low",
+    "adjusted_high": "Adjusted interval, high", "adjusted_level": "Adjusted level", "base_from": "Base then",
+    "base_to": "Base now",
     "effective_base_from": "Effective base then", "effective_base_to": "Effective base now", "p_raw": "p",
     "p_adjusted": "p (adjusted)", "min_detectable_change": "Detectable change", "verdict": "Verdict",
     "flags": "Read with care", "first_wave": "First wave", "last_wave": "Last wave", "waves": "Waves",
@@ -39,9 +41,11 @@ TITLES = {
 }
 #: How each column's numbers read: a value, a change, or a plain format.
 VALUES = {"value", "value_from", "value_to", "latest_value", "level_before", "level_after", "ci_low", "ci_high"}
-CHANGES = {"change", "change_low", "change_high", "min_detectable_change", "slope_per_year", "slope_low",
+CHANGES = {"change", "change_low", "change_high", "adjusted_low", "adjusted_high", "min_detectable_change",
+           "slope_per_year", "slope_low",
            "slope_high", "wave_to_wave_sd", "se"}
-PLAIN = {"p_raw": "0.0000", "p_adjusted": "0.0000", "excess_variation_p": "0.0000", "pattern_p_adjusted": "0.0000",
+PLAIN = {"adjusted_level": "0.0000",
+         "p_raw": "0.0000", "p_adjusted": "0.0000", "excess_variation_p": "0.0000", "pattern_p_adjusted": "0.0000",
          "design_effect": "0.00", "unit_variance": "0.0000", "df": "#,##0.0"}
 MARKS = {"rise": "▲ Up", "fall": "▼ Down", "held": "= Held", "flat": "= Held", "note": ""}
 
