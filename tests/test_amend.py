@@ -52,7 +52,7 @@ def test_amend_names_only_the_waves_a_scoped_change_touches(copy, tmp_path):
 
 
 def test_a_note_is_required_and_a_broken_codebook_is_refused(copy, tmp_path):
-    with pytest.raises(TrackerError, match="--note"):
+    with pytest.raises(TrackerError, match="^note: "):
         from tracker.amending import amend
 
         amend(copy, " ")

@@ -49,7 +49,7 @@ def test_level_is_checked_the_same_way_everywhere(demo_study):
 
     for call in (lambda: demo_study.estimates(level=95), lambda: demo_study.trends(level=95),
                  lambda: demo_study.composition(level=95), lambda: demo_study.pooled(4, level=95)):
-        with pytest.raises(TrackerError, match="--level 95: give a confidence level between 0.5 and 1"):
+        with pytest.raises(TrackerError, match="^level 95: give a confidence level between 0.5 and 1"):
             call()
 
 
@@ -342,3 +342,21 @@ def test_the_view_takes_units_from_the_kinds_registry(demo_study):
     assert f"{est['recommend_balance'] * 100:.1f}%" not in row["recommend_balance"]
     assert f"{est['satisfied'] * 100:.1f}%" in row["satisfied"]
     assert f" {est['satisfaction_mean']:.2f} " in row["satisfaction_mean"] + " "
+
+
+def test_python_errors_name_arguments_and_the_command_line_names_options(demo_study):
+    # common practice, no source: a notebook user never reads about a flag they cannot pass
+    import pytest
+
+    from tracker import TrackerError
+    from tracker.cli import as_flag
+
+    calls = {"by": lambda: demo_study.estimates(by="colour"), "metric": lambda: demo_study.changes(metrics="nope"),
+             "against": lambda: demo_study.changes(against="someday"), "level": lambda: demo_study.trends(level=3)}
+    for name, call in calls.items():
+        with pytest.raises(TrackerError) as err:
+            call()
+        assert str(err.value).startswith(f"{name} ") and "--" not in str(err.value), str(err.value)
+        assert as_flag(str(err.value)).startswith(f"--{name} ")
+    done = _run("estimates", demo_study.root, "--by", "colour")
+    assert done.exit_code == 1 and "error: --by colour: not a group of this study" in done.output

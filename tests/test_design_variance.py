@@ -194,7 +194,7 @@ def test_korn_graubard_interval_equals_statsmodels_beta(tmp_path):
         assert (row.ci_low, row.ci_high) == (pytest.approx(lo, abs=1e-10), pytest.approx(hi, abs=1e-10))
     wilson = study.estimates(metrics=["top2"])
     assert not np.allclose(wilson["ci_low"], est["ci_low"])  # the choice is real
-    with pytest.raises(TrackerError, match="--interval nope"):
+    with pytest.raises(TrackerError, match="^interval nope"):
         study.estimates(interval="nope")
 
 

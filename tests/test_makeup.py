@@ -261,5 +261,5 @@ def test_kitagawa_parts_sum_to_the_total_and_hand_examples():
 
 
 def test_bad_mix_group_is_refused(demo_study):
-    with pytest.raises(TrackerError, match="--mix colour: not a group of this study"):
+    with pytest.raises(TrackerError, match="^mix colour: not a group of this study"):
         demo_study.changes(mix="colour")

@@ -126,7 +126,7 @@ def test_a_scheduler_address_is_used_as_given(clustered_study, tmp_path):
     assert report.computed == tuple(clustered_study.labels) and c.scheduler_address in report.where
     with pytest.raises(TrackerError, match="cannot reach the Dask scheduler .* give its address as tcp://HOST:PORT"):
         prepare(Study(copy), scheduler="not an address", rebuild=True)
-    with pytest.raises(TrackerError, match="give --workers or --scheduler, not both"):
+    with pytest.raises(TrackerError, match="^scheduler: give a scheduler or a number of workers, not both"):
         prepare(Study(copy), workers=2, scheduler="tcp://127.0.0.1:1", rebuild=True)
 
 

@@ -283,7 +283,7 @@ def add(study, file, wave: str, date: str, encoding=None, replace=False, rake=Fa
     unchanged, if it cannot be. The whole add runs under the study's write lock, against the
     ledger as it stands once the lock is held, so two adds at once are serialised."""
     if not wave:
-        raise TrackerError("a wave label is required (--wave)")
+        raise TrackerError("a wave label is required")
     iso = parse_date(date)
     with store.study_lock(study.root):
         study.reload_ledger()

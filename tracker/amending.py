@@ -50,7 +50,7 @@ def amend(root: str | Path, note: str, codebook: str | Path | None = None) -> Am
     that names waves of another form. Runs under the study's lock; the ledger rename commits."""
     root = Path(root)
     if not note or not note.strip():
-        raise TrackerError("--note: say what changed (it is kept in the ledger with the version)")
+        raise TrackerError("note: say what changed (it is kept in the ledger with the version)")
     new = load_codebook(codebook if codebook is not None else root / store.CODEBOOK)
     with store.study_lock(root):
         ledger = store.read_ledger(root)

@@ -153,8 +153,7 @@ def number_summary(study, variable: str, waves=None, by=None, level: float = 0.9
     for wave in waves:  # a loop over waves: each wave's respondents are read once
         table = study.load(wave)
         if variable not in table.columns or not np.isfinite(table[variable].to_numpy(float)).any():
-            raise TrackerError(f"variable {variable} has no values in wave {wave}; choose waves that asked it "
-                               f"(--wave)")
+            raise TrackerError(f"variable {variable} has no values in wave {wave}; choose waves that asked it")
         cells = cell_arrays(book, table, [mean], groups)
         est = _finish(cells, [mean], wave, dates[wave], level)
         rows.append(_mean_rows(est, variable))

@@ -156,15 +156,15 @@ def resolve_against(labels: list[str], dates: dict[str, str], wave: str, against
         try:
             k = int(against.split(":", 1)[1])
         except ValueError:
-            raise TrackerError(f"--against {against}: write pooled:K with K a whole number, e.g. pooled:4") from None
+            raise TrackerError(f"against {against}: write pooled:K with K a whole number, e.g. pooled:4") from None
         if k < 1 or i < k:
-            raise TrackerError(f"--against {against}: {wave} has {i} earlier wave(s); cannot pool {k}")
+            raise TrackerError(f"against {against}: {wave} has {i} earlier wave(s); cannot pool {k}")
         chosen = labels[i - k:i]
         return Baseline(tuple(chosen), ", ".join(chosen), f"pooled earlier waves: {', '.join(chosen)}")
     if against not in labels:
-        raise TrackerError(f"--against {against}: not 'previous', 'year-ago', 'pooled:K' or a stored wave label")
+        raise TrackerError(f"against {against}: not 'previous', 'year-ago', 'pooled:K' or a stored wave label")
     if against == wave:
-        raise TrackerError(f"--against {against}: a wave cannot be compared with itself")
+        raise TrackerError(f"against {against}: a wave cannot be compared with itself")
     return Baseline((against,), f"wave {against}", f"wave {against}")
 
 

@@ -82,7 +82,7 @@ def trend_chart(study, metric: str, by: str | None = None, adjust: str = "bh", l
     ``compact``: a small chart for a grid (no subtitle, no bases), for series that held.
     ``smooth``: also the smoothed series (tracker.methods.statespace), dotted and labelled "smoothed"."""
     if metric not in study.codebook.metrics:
-        raise TrackerError(f"--metric {metric}: not a metric of this study ({', '.join(study.codebook.metrics)})")
+        raise TrackerError(f"metric {metric}: not a metric of this study ({', '.join(study.codebook.metrics)})")
     return trend_spec(trend_frame(study, metric, by, adjust, level, until, smooth), by, adjust, level, width, height,
                       compact)
 

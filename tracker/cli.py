@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import re
 import sys
 from functools import wraps
 from pathlib import Path
@@ -43,6 +44,18 @@ def say(text: str) -> None:
         echo(text)
 
 
+#: The library names a bad argument by its Python name ("against 'x': ..."); at the command line
+#: the message names the option ("--against 'x': ...").
+OPTION_NAMES = ("metric", "by", "against", "mix", "family", "pool", "interval", "decimal", "to", "level", "adjust",
+                "engine", "workers", "scheduler", "since", "last", "base", "date", "note")
+_OPTION = re.compile(r"^(" + "|".join(OPTION_NAMES) + r")(?=( [^:\n]*)?:)")
+
+
+def as_flag(message: str) -> str:
+    """A library error as the command line says it: a leading argument name becomes its option."""
+    return _OPTION.sub(r"--\1", message, count=1)
+
+
 def user_errors(fn):
     """Print a TrackerError as a plain message and exit 1 (no traceback); add -q/--quiet and
     show progress of long work on a terminal unless it is given."""
@@ -60,7 +73,7 @@ def user_errors(fn):
             from .codebook import shorten
 
             # a value echoed from a file or codebook may be any length: each line is kept readable
-            echo("\n".join(shorten(line, 1000) for line in f"error: {exc}".splitlines()), err=True)
+            echo("\n".join(shorten(line, 1000) for line in f"error: {as_flag(str(exc))}".splitlines()), err=True)
             sys.exit(1)
         except OSError as exc:
             _stdout_failed(exc)

@@ -175,7 +175,7 @@ class Comparisons:
         from .methods.tests import adjust_pvalues
 
         if var not in self.codebook.groups:
-            raise TrackerError(f"--mix {var}: not a group of this study ({', '.join(self.codebook.groups) or 'none'})")
+            raise TrackerError(f"mix {var}: not a group of this study ({', '.join(self.codebook.groups) or 'none'})")
         before = pd.concat([self.waves.load(w) for w in others], ignore_index=True)
         out = mix_table(self.codebook, before, self.waves.load(wave), ms, var, level)
         out["standardised_p_adjusted"] = adjust_pvalues(out["standardised_p"].to_numpy(float), adjust)
@@ -200,7 +200,7 @@ class Comparisons:
         from .changes import ChangeResult, resolve_against
 
         if family not in ("brief", "asked"):
-            raise TrackerError(f"--family {family}: use brief (every metric and subgroup) or asked")
+            raise TrackerError(f"family {family}: use brief (every metric and subgroup) or asked")
         labels = self.waves.pick()
         wave = wave or labels[-1]
         check_level(level)
@@ -234,10 +234,10 @@ class Comparisons:
 
         check_level(level)
         if k < 2:
-            raise TrackerError(f"--pool {k}: pool at least 2 waves")
+            raise TrackerError(f"pool {k}: pool at least 2 waves")
         ms, gs, labels = pick_metrics(self.codebook, metrics), pick_groups(self.codebook, by), self.waves.pick()
         if len(labels) < k:
-            raise TrackerError(f"--pool {k}: only {len(labels)} waves are stored")
+            raise TrackerError(f"pool {k}: only {len(labels)} waves are stored")
         rows = []
         for i in range(k - 1, len(labels)):
             window = labels[i - k + 1:i + 1]

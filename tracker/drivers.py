@@ -162,7 +162,7 @@ def fit_drivers(study, headline: str | None = None, attributes=None, waves=None,
     headline = headline or declared.get("headline")
     attributes = list(attributes or declared.get("attributes") or [])
     if not headline or not attributes:
-        raise TrackerError("name the headline metric and its attributes (--headline, --attribute), or declare them "
+        raise TrackerError("name the headline metric and its attributes, or declare them "
                            "in the codebook under drivers")
     if headline in attributes:
         raise TrackerError(f"drivers: {headline} is the headline and cannot also be an attribute")

@@ -454,7 +454,7 @@ def derived(stats: dict[str, np.ndarray], kind: np.ndarray, level: float = 0.95,
     reliability rule of each metric kind (tracker.kinds) on the design's degrees of freedom.
     """
     if interval not in INTERVALS:
-        raise TrackerError(f"--interval {interval}: use one of {', '.join(INTERVALS)}")
+        raise TrackerError(f"interval {interval}: use one of {', '.join(INTERVALS)}")
     n = np.asarray(stats["base"], float)
     var = np.asarray(stats["variance"], float)
     unit = np.asarray(stats["unit_variance"], float)

@@ -438,7 +438,7 @@ def _read_csv(path: Path, encoding: str | None, decimal: str | None = None) -> t
     its header checked (:func:`_csv_header`), every row as wide as the header. With
     ``decimal=','`` a number written with a decimal comma (1,25) is read as 1.25."""
     if decimal not in (None, ".", ","):
-        raise TrackerError(f"--decimal {decimal}: give . or ,")
+        raise TrackerError(f"decimal {decimal}: give . or ,")
     fast = _read_csv_arrow(path, encoding, decimal)
     if fast is not None:
         return fast

@@ -40,7 +40,7 @@ def remove_wave(root: str | Path, label: str, note: str) -> list[str]:
     refused while the codebook names it. Returns the lines to print."""
     root = Path(root)
     if not note or not note.strip():
-        raise TrackerError("--note: say why the wave is removed (it is kept in the ledger)")
+        raise TrackerError("note: say why the wave is removed (it is kept in the ledger)")
     with store.study_lock(root):
         ledger = store.read_ledger(root)
         entry = _entry(ledger, root, label)
@@ -59,13 +59,13 @@ def rename_wave(root: str | Path, label: str, new: str) -> list[str]:
     wave labels); refused while the codebook names the old label. Returns the lines to print."""
     root = Path(root)
     if not LABEL_RE.fullmatch(new):
-        raise TrackerError(f"--to {new!r}: not a valid wave label (a letter or digit, then letters, digits, "
+        raise TrackerError(f"to {new!r}: not a valid wave label (a letter or digit, then letters, digits, "
                            f"'.', '_', '-'; at most 40 characters, no spaces)")
     with store.study_lock(root):
         ledger = store.read_ledger(root)
         entry = _entry(ledger, root, label)
         if any(w["label"] == new for w in ledger["waves"]):
-            raise TrackerError(f"--to {new}: a wave labelled {new} is already stored")
+            raise TrackerError(f"to {new}: a wave labelled {new} is already stored")
         named = _named_by_codebook(root, label)
         if named:
             raise TrackerError(f"the codebook names wave {label} ({', '.join(named)}); amend the codebook first")

@@ -13,7 +13,7 @@ __all__ = ["check_adjust", "check_level", "parse_date"]
 def check_level(level: float) -> None:
     """Refuse a confidence level outside (0.5, 1)."""
     if not 0.5 < level < 1:
-        raise TrackerError(f"--level {level}: give a confidence level between 0.5 and 1, e.g. 0.95")
+        raise TrackerError(f"level {level}: give a confidence level between 0.5 and 1, e.g. 0.95")
 
 
 def check_adjust(adjust: str) -> None:
@@ -21,7 +21,7 @@ def check_adjust(adjust: str) -> None:
     from .names import ADJUST_METHODS
 
     if adjust not in ADJUST_METHODS:
-        raise TrackerError(f"--adjust {adjust}: use one of {', '.join(ADJUST_METHODS)}")
+        raise TrackerError(f"adjust {adjust}: use one of {', '.join(ADJUST_METHODS)}")
 
 
 def parse_date(text: str) -> str:

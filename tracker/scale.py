@@ -360,17 +360,17 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
     from .cache import read_cells, write_cells
 
     if engine not in ENGINES:
-        raise TrackerError(f"--engine {engine}: use one of {', '.join(ENGINES)}")
+        raise TrackerError(f"engine {engine}: use one of {', '.join(ENGINES)}")
     if engine == "duckdb":
         _need("duckdb")
         if study.codebook.raked_to or any((w.get("weighting") or {}).get("kind") == "raked"
                                           for w in study.wave_entries):
-            raise TrackerError("--engine duckdb does not compute the variance of raked weights yet; use --engine "
-                               "pandas, which does")
+            raise TrackerError("engine duckdb: it does not compute the variance of raked weights yet; use the "
+                               "pandas engine, which does")
     if workers is not None and scheduler is not None:
-        raise TrackerError("give --workers or --scheduler, not both")
+        raise TrackerError("scheduler: give a scheduler or a number of workers, not both")
     if workers is not None and workers < 1:
-        raise TrackerError(f"--workers {workers}: give 1 or more")
+        raise TrackerError(f"workers {workers}: give 1 or more")
     labels = study.pick_waves(waves)
     todo = [w for w in labels if rebuild or read_cells(study.root, w, study.cellstore.key(w)) is None]
     current = tuple(w for w in labels if w not in todo)
@@ -388,7 +388,7 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
             try:
                 client = Client(scheduler, timeout="20s")
             except (OSError, TimeoutError, ValueError) as exc:  # unreachable, or not an address at all
-                raise TrackerError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); give its "
+                raise TrackerError(f"scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); give its "
                                    f"address as tcp://HOST:PORT") from None
             cluster = None
             where = f"on the Dask cluster at {scheduler}"

@@ -15,7 +15,7 @@ def pick_metrics(book: Codebook, names=None) -> list:
         return list(book.metrics.values())
     unknown = [n for n in names if n not in book.metrics]
     if unknown:
-        raise TrackerError(f"--metric {unknown[0]}: not a metric of this study ({', '.join(book.metrics)})")
+        raise TrackerError(f"metric {unknown[0]}: not a metric of this study ({', '.join(book.metrics)})")
     return [book.metrics[n] for n in names]
 
 
@@ -27,6 +27,6 @@ def pick_groups(book: Codebook, names=None) -> list[str]:
     names = [n for n in names if n not in ("total", "none")]
     unknown = [n for n in names if n not in book.groups]
     if unknown:
-        raise TrackerError(f"--by {unknown[0]}: not a group of this study "
+        raise TrackerError(f"by {unknown[0]}: not a group of this study "
                            f"({', '.join(book.groups) or 'none declared'})")
     return list(dict.fromkeys(names))

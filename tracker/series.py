@@ -46,11 +46,11 @@ class Series:
             labels = labels[:labels.index(until) + 1]
         if since is not None:
             if since not in labels:
-                raise TrackerError(f"--since {since}: no stored wave has that label")
+                raise TrackerError(f"since {since}: no stored wave has that label")
             labels = labels[labels.index(since):]
         if last is not None:
             if last < 1:
-                raise TrackerError(f"--last {last}: give a number of waves of 1 or more")
+                raise TrackerError(f"last {last}: give a number of waves of 1 or more")
             labels = labels[-last:]
         return labels
 
@@ -80,7 +80,7 @@ class Series:
         check_level(level)
         check_adjust(adjust)
         if family not in ("brief", "asked"):
-            raise TrackerError(f"--family {family}: use brief (every metric and subgroup) or asked")
+            raise TrackerError(f"family {family}: use brief (every metric and subgroup) or asked")
         ms = pick_metrics(self.codebook, metrics)
         gs = pick_groups(self.codebook, by)
         labels = self.window(last, since, until)
@@ -118,13 +118,13 @@ class Series:
 
         check_level(level)
         if base is not None and not base > 0:
-            raise TrackerError(f"--base {base}: give the expected number of respondents, above 0")
+            raise TrackerError(f"base {base}: give the expected number of respondents, above 0")
         from .expected import WINDOW
 
         labels = self.waves.pick()
         date = parse_date(date) if date else self.next_date()
         if date <= self.waves.dates()[labels[-1]]:
-            raise TrackerError(f"--date {date}: the next wave must come after the latest, {labels[-1]} "
+            raise TrackerError(f"date {date}: the next wave must come after the latest, {labels[-1]} "
                                f"({self.waves.dates()[labels[-1]]})")
         labels = labels[-WINDOW:]
         hist = self.estimates(level=level, detail=True, waves=labels)
