@@ -216,7 +216,8 @@ def test_the_next_add_clears_what_a_killed_writer_left(study_dir, wave_csv):
     assert len(Study(study_dir).load("2025-Q2")) == 30
 
 
-def test_an_output_that_cannot_be_written_ends_in_one_line(demo_study, tmp_path, monkeypatch):
+@pytest.mark.parametrize("suffix", ["md", "pptx", "xlsx"])
+def test_an_output_that_cannot_be_written_ends_in_one_line(demo_study, tmp_path, monkeypatch, suffix):
     import contextlib
 
     @contextlib.contextmanager
@@ -225,11 +226,11 @@ def test_an_output_that_cannot_be_written_ends_in_one_line(demo_study, tmp_path,
         yield
 
     monkeypatch.setattr(store, "incoming", refused)
-    result = run("brief", demo_study.root, "-o", tmp_path / "b.md")
+    result = run("brief", demo_study.root, "-o", tmp_path / f"b.{suffix}")
     assert result.exit_code == 1 and "Traceback" not in result.output
-    assert f"{tmp_path / 'b.md'}: cannot write the file (permission denied); check the folder's permissions" \
+    assert f"{tmp_path / f'b.{suffix}'}: cannot write the file (permission denied); check the folder's permissions" \
         in result.output
-    assert not (tmp_path / "b.md").exists()
+    assert not (tmp_path / f"b.{suffix}").exists() and list(tmp_path.iterdir()) == []
 
 
 def test_the_codebook_schema_is_valid_and_agrees_with_the_parser():

@@ -2,11 +2,11 @@
 
 from .errors import TrackerError
 
-__all__ = ["AddReport", "CheckReport", "Codebook", "Study", "TrackerError", "load_codebook", "parse_codebook"]
+__all__ = ["AddReport", "CheckReport", "Codebook", "Study", "TrackerError", "load_codebook", "parse_codebook", "show"]
 __version__ = "0.1.0"
 
 _LAZY = {"Codebook": "codebook", "load_codebook": "codebook", "parse_codebook": "codebook",
-         "Study": "study", "AddReport": "study", "CheckReport": "study"}
+         "Study": "study", "AddReport": "study", "CheckReport": "study", "show": "notebook"}
 
 
 def __getattr__(name):

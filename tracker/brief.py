@@ -66,6 +66,39 @@ class Brief:
     gap_moves: tuple[Item, ...] = ()  # gaps between subgroups that changed, and splits whose trends differ
     drivers: tuple[Item, ...] = ()  # the attributes' importance for the headline, when the codebook declares them
 
+    def to_html(self, path=None):
+        """The one-page HTML brief (charts inline, opens offline): written to ``path``, or returned."""
+        return self._out(path, ".html", render_html)
+
+    def to_markdown(self, path=None):
+        """The brief as Markdown: written to ``path``, or returned."""
+        return self._out(path, ".md", render_markdown)
+
+    def to_json(self, path=None):
+        """Every comparison, pattern and section as JSON: written to ``path``, or returned."""
+        return self._out(path, ".json", render_json)
+
+    def to_xlsx(self, path=None):
+        """The client workbook (tracker.workbook): written to ``path``, or its bytes."""
+        return self._out(path, ".xlsx", render_xlsx)
+
+    def to_pptx(self, path=None):
+        """The slide deck (tracker.deck): written to ``path``, or its bytes."""
+        from .deck import deck_bytes
+
+        return self._out(path, ".pptx", deck_bytes)
+
+    def _repr_html_(self) -> str:
+        """In a notebook: the brief's text (the charts are in to_html's page)."""
+        return html.escape(render_markdown(self)).replace("\n", "<br>")
+
+    def _out(self, path, suffix: str, render):
+        if path is None:
+            return render(self)
+        if Path(path).suffix.lower() not in (suffix, ".htm" if suffix == ".html" else suffix):
+            raise TrackerError(f"{path}: this writes {suffix} files")
+        return write_brief(self, path)
+
 
 # -- assembling -----------------------------------------------------------------------------
 

@@ -81,6 +81,12 @@ class ChangeResult:
     def n_tests(self) -> int:
         return int(self.table["p_adjusted"].notna().sum())
 
+    def _repr_html_(self) -> str:
+        """In a notebook: the readable table of every comparison, with its footer."""
+        from .notebook import show
+
+        return show(self.table, "changes", tuple(self.footer()))._repr_html_()
+
     @property
     def n_significant(self) -> int:
         return int(self.table["significant"].sum())

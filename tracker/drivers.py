@@ -79,6 +79,11 @@ class DriverFit:
     jk_stratum: np.ndarray  # each replicate's stratum
     design_df: float  # PSUs minus strata of the pooled waves
 
+    def _repr_html_(self) -> str:
+        from .notebook import show
+
+        return show(self.importance.assign(kind="share"), "drivers", tuple(self.lines()))._repr_html_()
+
     def raw_variance(self) -> np.ndarray:
         """The jackknife variance of each attribute's raw weight."""
         return _jk_variance(self.replicates, self.jk_factor, self.jk_stratum, int(self.jk_stratum.max()) + 1)

@@ -57,6 +57,11 @@ class GapShiftResult:
     def n_tests(self) -> int:
         return int(self.table["p_adjusted"].notna().sum())
 
+    def _repr_html_(self) -> str:
+        from .notebook import show
+
+        return show(self.table, "gapshift")._repr_html_()
+
 
 def _cross(study, now, then, a_cols, b_cols):
     """Covariance per metric of a gap in two waves (0 for independent waves), the PSUs they

@@ -12,13 +12,14 @@ from .cellstore import CellStore
 from .codebook import Codebook, load_codebook
 from .comparing import Comparisons, metric_breaks, smallest_changes
 from .errors import TrackerError
+from .notebook import NotebookMixin
 from .options import check_adjust, check_level
 from .selection import pick_groups, pick_metrics
 from .series import Series
 from .waves import StoredWaves
 
 
-class Study:
+class Study(NotebookMixin):
     """A tracking study on disk. ``Study.create`` makes one; ``Study(path)`` opens one."""
 
     def __init__(self, path: str | Path):
@@ -339,9 +340,8 @@ class Study:
                  level: float = 0.95):
         """The one analysis of ``wave`` (tracker.analysis.Analysis) that the brief, the charts and
         the JSON brief render: computed once per wave, baseline, adjustment and level."""
-        check_adjust(adjust)
         from .analysis import analyse
-
+        check_adjust(adjust)
         check_level(level)
         wave = wave or self.pick_waves()[-1]
         key = ("analysis", wave, against, adjust, level)

@@ -69,6 +69,11 @@ class WithinResult:
     def n_tests(self) -> int:
         return int(self.table["p_adjusted"].notna().sum())
 
+    def _repr_html_(self) -> str:
+        from .notebook import show
+
+        return show(self.table, "gaps")._repr_html_()
+
 
 def _domains(book, table, groups: list[str]):
     """The domains compared: for each split, its levels and each level's rest of the sample.
