@@ -307,6 +307,8 @@ def part_clustered(tmp: Path, rows: list, quick: bool) -> None:
         ("cli: changes", ["changes", str(study)]),
         ("cli: trends", ["trends", str(study), "--format", "csv"]),
         ("cli: brief -o x.html", ["brief", str(study), "-o", str(tmp / "x.html")]),
+        ("cli: brief -o x.xlsx (the client workbook)", ["brief", str(study), "-o", str(tmp / "x.xlsx")]),
+        ("cli: brief -o x.pptx (the slide deck)", ["brief", str(study), "-o", str(tmp / "x.pptx")]),
     ]:
         sec, mb = run_cli(args) if "first" in name else median_cli(args, 1 if quick else 3)
         rows.append((name, f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
