@@ -38,3 +38,12 @@ def test_wording_break_is_not_compared(demo_study):
 def test_year_ago_picks_the_same_quarter(demo_study):
     result = demo_study.changes(wave="2026-Q1", against="year-ago")
     assert result.against.startswith("2025-Q1")
+
+
+def test_the_planted_wording_jump_is_bridged(demo_study):
+    # the demo plants an 8-point jump at the rewording of the safety question (tracker/demo.py, truth 8)
+    from tracker.bridging import break_jumps
+
+    est = demo_study.estimates(metrics="safe", by=[])
+    j = break_jumps(est, {"safe": "2024-Q1"}).iloc[0]
+    assert j["bridged"] and j["jump_low"] < 0.08 < j["jump_high"] and j["jump_low"] > 0

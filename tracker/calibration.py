@@ -17,6 +17,7 @@ correlated cluster effects (0.8); respondents in both waves keep correlated late
 
 from __future__ import annotations
 
+import datetime as dt
 import sys
 import time
 from dataclasses import dataclass, field
@@ -31,7 +32,8 @@ from .composition import compare_composition
 from .estimates import finish, wave_covariance, wave_estimates
 from .methods.tests import adjust_pvalues
 
-__all__ = ["DESIGNS", "DRIVER_DESIGN", "DRIVER_REPS", "FEW_DESIGN", "FEW_REPS", "FORECAST_DESIGN", "LONE_DESIGN",
+__all__ = ["BRIDGE_DESIGN", "BRIDGE_REPS", "DESIGNS", "DRIVER_DESIGN", "DRIVER_REPS", "FEW_DESIGN", "FEW_REPS",
+           "FORECAST_DESIGN", "LONE_DESIGN",
            "LONE_REPS", "RAKED_DESIGN",
            "RAKED_REPS", "RARE_DESIGN",
            "RARE_REPS", "TIERS", "Design", "Rate", "run"]
@@ -769,6 +771,32 @@ def _driver_importance(rng, reps: int, out: list[Rate]) -> None:
                         k, (0.93, 0.97), 0.95))
 
 
+BRIDGE_DESIGN = "bridged wording breaks"
+BRIDGE_REPS = {"full": 20000, "quick": 4000, "test": 1000}
+
+
+def _bridges(rng, reps: int, out: list[Rate]) -> None:
+    """Coverage of the interval of a wording break's jump (tracker.bridging): series of 14
+    quarterly waves, a break at the 7th, sampling SE 1.6 points, wave-to-wave SD 1 point, a
+    jump of 8 points, flat or rising 2 points a year."""
+    from .bridging import break_jumps
+
+    k, at, jump, se, tau = 14, 6, 0.08, 0.016, 0.01
+    waves = [f"W{i:02d}" for i in range(k)]
+    dates = [(dt.date(2020, 1, 15) + dt.timedelta(days=91 * i)).isoformat() for i in range(k)]
+    for slope, name in ((0.0, "flat"), (0.02, "rising 2 points a year")):
+        t = np.arange(k) / 4
+        y = 0.5 + slope * t + jump * (np.arange(k) >= at) + rng.normal(0, tau, (reps, k)) + rng.normal(0, se, (reps, k))
+        est = pd.DataFrame({"metric": "m", "group": "total", "subgroup": np.repeat(np.arange(reps).astype(str), k),
+                            "wave": np.tile(waves, reps), "fieldwork_date": np.tile(dates, reps),
+                            "value": y.ravel(), "se": se, "reliable": True})
+        j = break_jumps(est, {"m": waves[at]})
+        hit = ((j["jump_low"] <= jump) & (jump <= j["jump_high"])).to_numpy(float)
+        rate, mc, n = _prop(hit)
+        out.append(Rate(BRIDGE_DESIGN, "95% interval coverage of the jump", f"jump 8 points, series {name}", rate,
+                        mc, n, (0.94, 0.98), 0.95))
+
+
 def _one_design(args) -> tuple[list[Rate], tuple[float, float, float]]:
     d, tier, seed, verbose = args
     t = TIERS[tier]
@@ -812,7 +840,8 @@ def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DES
                                   (RARE_DESIGN, _rare_shares, RARE_REPS, 21), (FEW_DESIGN, _few_clusters, FEW_REPS, 22),
                                   (RAKED_DESIGN, _raked_items, RAKED_REPS, 23),
                                   (LONE_DESIGN, _lone_clusters, LONE_REPS, 24),
-                                  (DRIVER_DESIGN, _driver_importance, DRIVER_REPS, 25)):
+                                  (DRIVER_DESIGN, _driver_importance, DRIVER_REPS, 25),
+                                  (BRIDGE_DESIGN, _bridges, BRIDGE_REPS, 26)):
         if verbose:
             print(name, file=sys.stderr, flush=True)
         step(np.random.default_rng(np.random.SeedSequence([seed, tag])), reps[tier], rates)

@@ -733,9 +733,12 @@ def drivers_cmd(study, headline, attributes, last, compare, coefficients, adjust
 @click.option("--moving-only", is_flag=True,
               help="List only series that moved (a trend, a shift, a blip or a move whose shape is unclear).")
 @family_option
+@click.option("--bridge", is_flag=True,
+              help="Join each series across a wording break by the level jump estimated there (labelled bridged).")
 @_fmt_option
 @user_errors
-def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_only, family, fmt, wide, output):
+def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_only, family, bridge, fmt, wide,
+               output):
     """The pattern of every series (rising, falling, shifted, a one-wave blip, moved, flat or no pattern
     found) and its slope.
 
@@ -750,7 +753,7 @@ def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_o
         emit(pooled, fmt, "estimates", wide, output, [f"Each wave pooled with the {rolling - 1} before it."])
         return
     table = s.trends(metrics=list(metrics) or None, by=list(by) if by else None, last=last, since=since,
-                     adjust=adjust, level=level, family=family)
+                     adjust=adjust, level=level, family=family, bridge=bridge)
     still = ("no pattern found", "flat", "too few waves")
     shown = table[~table["pattern"].isin(still)] if moving_only else table
     counts = table["pattern"].value_counts()
@@ -782,9 +785,11 @@ def trends_cmd(study, metrics, by, last, since, adjust, level, rolling, moving_o
               help="The next wave's fieldwork date (default: the latest plus the usual gap).")
 @adjust_option
 @level_option
+@click.option("--bridge", is_flag=True,
+              help="Use each series across a wording break, joined by the level jump estimated there.")
 @_fmt_option
 @user_errors
-def expect_cmd(study, metrics, by, base, date, adjust, level, fmt, wide, output):
+def expect_cmd(study, metrics, by, base, date, adjust, level, bridge, fmt, wide, output):
     """Where every metric x subgroup should land in the next wave, from its pattern so far.
 
     Anything outside these ranges deserves a second look: it is out of line with the
@@ -795,7 +800,7 @@ def expect_cmd(study, metrics, by, base, date, adjust, level, fmt, wide, output)
     """
     s = Study(study)
     table = s.expected(base=base, metrics=list(metrics) or None, by=list(by) if by else None, date=date,
-                       adjust=adjust, level=level)
+                       adjust=adjust, level=level, bridge=bridge)
     emit(table, fmt, "expect", wide, output, [
         (f"Expected ranges ({level:.0%} prediction intervals) for a wave fielded on {table.attrs['date']}, after "
         f"{table.attrs['after']}."),

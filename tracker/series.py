@@ -22,6 +22,15 @@ from .waves import StoredWaves
 __all__ = ["Series"]
 
 
+def bridge_note(row) -> str:
+    """'bridged across the wording break at 2024-Q1: jump +6.8 points (interval +2.3 to +11.3
+    points)': how every output labels a bridged series."""
+    from .wording import signed, span
+
+    return (f"bridged across the wording break at {row.break_wave}: jump {signed(row.kind, row.jump)} (interval "
+            f"{span(row.kind, row.jump_low, row.jump_high)})")
+
+
 class Series:
     """Patterns, expected ranges, surprises and smoothing of a study's series.
 
@@ -67,7 +76,8 @@ class Series:
         return out
 
     def trends(self, metrics=None, by=None, last: int | None = None, since: str | None = None,
-               adjust: str = "bh", level: float = 0.95, until: str | None = None, family: str = "brief"):
+               adjust: str = "bh", level: float = 0.95, until: str | None = None, family: str = "brief",
+               bridge: bool = False):
         """Slope per year, extra variation, and the pattern (tracker.trends.PATTERNS) of every
         metric x subgroup series; see docs/methods.md.
 
@@ -86,16 +96,45 @@ class Series:
         labels = self.window(last, since, until)
         fam_ms, fam_by = (pick_metrics(self.codebook), None) if family == "brief" else (ms, by)
         key = ("trends", tuple(m.name for m in fam_ms), None if fam_by is None else tuple(gs), tuple(labels), adjust,
-               level)
+               level, bridge)
         if key not in self.memory:
             est = self.estimates(metrics=[m.name for m in fam_ms], by=fam_by, waves=labels, level=level)
-            self.memory[key] = fit_trends(est, self.segment_starts(fam_ms, labels), adjust, level,
-                                          matters=smallest_changes(self.codebook))
+            starts = self.segment_starts(fam_ms, labels)
+            if bridge:
+                self.memory[key] = self._bridged_trends(est, starts, adjust, level)
+            else:
+                self.memory[key] = fit_trends(est, starts, adjust, level, matters=smallest_changes(self.codebook))
         out = self.memory[key]
         size = int(out["pattern_p_adjusted"].notna().sum())
         keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
         out = out[keep].reset_index(drop=True)
         out.attrs.update(family=family, family_size=size)
+        return out
+
+    def bridged(self, est: pd.DataFrame, starts: dict[str, str], level: float) -> tuple[pd.DataFrame, pd.DataFrame,
+                                                                                       dict[str, str]]:
+        """(the estimates bridged across their wording breaks, the jumps, the breaks still
+        restarting a series: those of metrics none of whose series could be bridged)."""
+        from .bridging import break_jumps, bridge
+
+        jumps = break_jumps(est, starts, level)
+        done = set(jumps.loc[jumps["bridged"], "metric"])
+        return bridge(est, jumps), jumps, {m: w for m, w in starts.items() if m not in done}
+
+    def _bridged_trends(self, est: pd.DataFrame, starts: dict[str, str], adjust: str, level: float) -> pd.DataFrame:
+        """Trends of the bridged series; each bridged series' note gives its jump."""
+        from .trends import fit_trends
+
+        bridged, jumps, restart = self.bridged(est, starts, level)
+        out = fit_trends(bridged, restart, adjust, level, matters=smallest_changes(self.codebook))
+        keys = ["metric", "group", "subgroup"]
+        j = out[keys + ["kind"]].merge(jumps, on=keys, how="left")
+        said = [bridge_note(r) if r.bridged is True else
+                (f"series starts at {r.break_wave} (wording break: too few waves on one side to bridge)"
+                 if isinstance(r.break_wave, str) and r.metric not in restart else "")
+                for r in j.itertuples()]
+        note = out["note"].fillna("").astype(str).to_numpy(object)
+        out["note"] = [b if not a else (f"{b}; {a}" if b else a) for a, b in zip(note, said)]
         return out
 
     # -- before and after a wave (tracker.expected) -----------------------------------------
@@ -107,7 +146,7 @@ class Series:
         return (max(dates) + dt.timedelta(days=max(gap, 1))).isoformat()
 
     def expected(self, base: float | None = None, metrics=None, by=None, date: str | None = None,
-                 adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+                 adjust: str = "bh", level: float = 0.95, bridge: bool = False) -> pd.DataFrame:
         """The expected range of the next wave for every metric x subgroup series: the
         prediction interval from the series' pattern, its wave-to-wave variation and the
         sampling variance at the expected base (tracker.expected). ``base``: the next
@@ -128,10 +167,18 @@ class Series:
                                f"({self.waves.dates()[labels[-1]]})")
         labels = labels[-WINDOW:]
         hist = self.estimates(level=level, detail=True, waves=labels)
-        patterns = self.trends(adjust=adjust, level=level, last=len(labels))
+        patterns = self.trends(adjust=adjust, level=level, last=len(labels), bridge=bridge)
         rows = float(np.mean([self.waves.entry(w)["rows"] for w in labels[-3:]]))
-        pred = next_ranges(self.codebook, hist, patterns, labels, date, base, rows,
-                           self.segment_starts(pick_metrics(self.codebook), labels), level)
+        starts = self.segment_starts(pick_metrics(self.codebook), labels)
+        jumps = None
+        if bridge:
+            hist, jumps, starts = self.bridged(hist, starts, level)
+        pred = next_ranges(self.codebook, hist, patterns, labels, date, base, rows, starts, level)
+        if jumps is not None and len(jumps):
+            keys = ["metric", "group", "subgroup"]
+            j = pred[keys + ["kind"]].merge(jumps, on=keys, how="left")
+            said = np.array([bridge_note(r) if r.bridged is True else "" for r in j.itertuples()], dtype=object)
+            pred["basis"] = np.where(said != "", pred["basis"].astype(str) + "; " + said, pred["basis"])
         ms, gs = pick_metrics(self.codebook, metrics), pick_groups(self.codebook, by)
         keep = pred["metric"].isin([m.name for m in ms]) & pred["group"].isin(["total", *gs])
         out = pred[keep][RANGE_COLUMNS].reset_index(drop=True)

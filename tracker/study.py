@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import shutil
 from pathlib import Path
 
 import pandas as pd
@@ -61,8 +62,6 @@ class Study(NotebookMixin):
                                                                                         "was made with")]})
         except (OSError, TrackerError) as exc:
             if made:  # leave no half-made study behind
-                import shutil
-
                 shutil.rmtree(root, ignore_errors=True)
             if isinstance(exc, OSError):
                 raise store.fs_problem(exc, root, "make the study folder") from None
@@ -246,7 +245,8 @@ class Study(NotebookMixin):
         return self.series.segment_starts(metrics, labels)
 
     def trends(self, metrics=None, by=None, last: int | None = None, since: str | None = None,
-               adjust: str = "bh", level: float = 0.95, until: str | None = None, family: str = "brief"):
+               adjust: str = "bh", level: float = 0.95, until: str | None = None, family: str = "brief",
+               bridge: bool = False):
         """The pattern of every metric x subgroup series (tracker.trends.PATTERNS) with its slope.
 
         Parameters
@@ -260,20 +260,22 @@ class Study(NotebookMixin):
         family : {'brief', 'asked'}
             Adjust the pattern tests across every metric and subgroup over the same waves (the
             brief's family) or across only the series asked for.
+        bridge : bool
+            Join each series across a wording break by its estimated jump (tracker.bridging).
 
         Returns
         -------
         DataFrame
             One row per series (docs/columns.md); ``attrs`` name the family and its size.
         """
-        return self.series.trends(metrics, by, last, since, adjust, level, until, family)
+        return self.series.trends(metrics, by, last, since, adjust, level, until, family, bridge)
 
     def next_date(self) -> str:
         """The expected fieldwork date of the next wave: the latest plus the median gap."""
         return self.series.next_date()
 
     def expected(self, base: float | None = None, metrics=None, by=None, date: str | None = None,
-                 adjust: str = "bh", level: float = 0.95) -> pd.DataFrame:
+                 adjust: str = "bh", level: float = 0.95, bridge: bool = False) -> pd.DataFrame:
         """The expected range of the next wave for every metric x subgroup series.
 
         Parameters
@@ -285,15 +287,15 @@ class Study(NotebookMixin):
             The series shown.
         date : str, optional
             The next wave's fieldwork date (default: the latest plus the usual gap).
-        adjust, level :
-            As :meth:`changes` (the patterns the ranges follow).
+        adjust, level, bridge :
+            As :meth:`changes` (the patterns the ranges follow) and :meth:`trends`.
 
         Returns
         -------
         DataFrame
             Expected value, range, basis and model per series (tracker.expected.next_ranges).
         """
-        return self.series.expected(base, metrics, by, date, adjust, level)
+        return self.series.expected(base, metrics, by, date, adjust, level, bridge)
 
     def surprises(self, wave: str | None = None, adjust: str = "bh", level: float = 0.95,
                   table: pd.DataFrame | None = None, date: str | None = None) -> pd.DataFrame:
@@ -329,8 +331,7 @@ class Study(NotebookMixin):
         self.cellstore.forget()
 
     def memo(self, key: tuple, make):
-        """``make()`` computed once per Study object (for values derived from the stored
-        waves, such as the table every trend chart of a brief draws from)."""
+        """``make()`` computed once per Study object (values derived from the stored waves)."""
         key = ("memo", *key)
         if key not in self._cache:
             self._cache[key] = make()
