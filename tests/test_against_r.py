@@ -547,3 +547,31 @@ def test_a_questions_answers_across_a_split_equal_svychisq(reference, design):
     got = distribution_tests(reference[1][design], "stype", waves=["2000"], by=["awards"]).iloc[0]
     np.testing.assert_allclose([got["f"], got["f_df_num"], got["f_df_den"], got["p_raw"]],
                                [want["f"], want["ndf"], want["ddf"], want["p"]], rtol=1e-8)
+
+
+@pytest.mark.parametrize("method", ["jk1", "jkn", "bootstrap"])
+def test_replicate_weight_designs_equal_svrepdesign(reference, method):
+    # reference: R's as.svrepdesign(type = JK1 on apiclus1, JKn and a seeded bootstrap of 50 on
+    # apistrat): svymean of api00 and of "met the target", in total and by school type, and degf
+    folder = _data_dir(reference)
+    data = pd.read_csv(folder / f"rep_{method}.csv")
+    n_rep = sum(c.startswith("rw") for c in data.columns)
+    scales = pd.read_csv(folder / f"rep_{method}_scales.csv")
+    spec = f"replicates:\n  method: {method}\n  prefix: rw\n  count: {n_rep}\n"
+    if method == "jkn":
+        spec += f"  rscales: [{', '.join(repr(float(x)) for x in scales['rscales'])}]\n"
+    if method == "bootstrap":  # as.svrepdesign sets the stratified bootstrap's scale from the design
+        spec += f"  scale: {float(scales['scale'].iloc[0])!r}\n"
+    wave = data.drop(columns=["api00", "api99", "fpc"]).copy()
+    wave["api"] = data["api00"]
+    wave.to_csv(folder / f"rep_{method}_wave.csv", index=False)
+    study = _study(folder, f"rep_{method}", CODEBOOK.format(name=f"replicates {method}", design=spec),
+                   [(folder / f"rep_{method}_wave.csv", "2000", "2000-06-30")])
+    est = study.estimates(metrics=["api_mean", "target_met"], by="stype").set_index(["metric", "subgroup"])
+    want = pd.read_csv(folder / "replicates.csv")
+    for r in want[want["method"] == method].itertuples():
+        mean, share = est.loc[("api_mean", r.subgroup)], est.loc[("target_met", r.subgroup)]
+        assert mean["value"] == pytest.approx(r.api00, rel=1e-12)
+        assert mean["se"] == pytest.approx(r.api00_se, rel=1e-8)
+        assert share["se"] == pytest.approx(r.yes_se, rel=1e-8)
+        assert mean["df"] == r.df

@@ -279,6 +279,7 @@ def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = 
     the second-order F of R's ``svychisq``), one per wave and split, adjusted together, with
     the verdicts of a test across levels (tracker.within.GAP_VERDICTS)."""
     from .cells import group_matrix
+    from .comparing import taylor_only
     from .estimates import design_of, weights_of
     from .methods.raoscott import rao_scott_table
     from .methods.tests import adjust_pvalues
@@ -286,6 +287,7 @@ def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = 
     from .options import check_adjust
 
     check_adjust(adjust)
+    taylor_only(study.codebook, "the test of a question's answers across subgroups")
     var = _variable(study, variable)
     if var.type not in ("category", "scale"):
         raise TrackerError(f"variable {variable}: only a coded question's answers are tested across subgroups")

@@ -152,6 +152,7 @@ def _unknown_keys(doc: dict) -> None:
                 check(node.get("base"), ("variable", "codes"), f"{section}.{name}.base.")
     check(doc.get("rake"), tuple(schema["properties"]["rake"]["properties"]), "rake.")
     check(doc.get("drivers"), tuple(schema["properties"]["drivers"]["properties"]), "drivers.")
+    check(doc.get("replicates"), tuple(schema["properties"]["replicates"]["properties"]), "replicates.")
 
 
 @dataclass(frozen=True)
@@ -203,6 +204,27 @@ class Metric:
     smallest_change: float | None = None  # the smallest change that matters, in the units shown
 
 
+#: Each replicate method's variance multiplier and per-replicate scales, as R's svrepdesign
+#: sets them by type (Lumley 2010, *Complex Surveys*, ch. 2.7; Wolter 2007, ch. 3-4): R
+#: replicates; Fay's rho; JKn needs its rscales (n_h - 1) / n_h given.
+REPLICATE_SCALE = {"jk1": lambda r, rho: (r - 1) / r, "brr": lambda r, rho: 1 / r,
+                   "fay": lambda r, rho: 1 / (r * (1 - rho) ** 2), "bootstrap": lambda r, rho: 1 / (r - 1),
+                   "sdr": lambda r, rho: 4 / r, "jkn": lambda r, rho: 1.0}
+
+
+@dataclass(frozen=True)
+class Replicates:
+    """Replicate weight columns and how their spread makes a variance:
+    V = scale * sum_r rscales_r (theta_r - centre)^2, the centre the full-sample estimate
+    (``mse``) or the replicates' mean."""
+
+    columns: tuple[str, ...]
+    method: str
+    scale: float
+    rscales: tuple[float, ...]
+    mse: bool
+
+
 @dataclass(frozen=True)
 class Codebook:
     title: str
@@ -233,9 +255,12 @@ class Codebook:
     smallest_change: dict[str, float] = field(default_factory=dict)
     # key drivers: {"headline": metric, "attributes": (metrics...)} for the driver analysis
     drivers: dict[str, Any] = field(default_factory=dict)
+    # key replicates: the replicate weights that carry the design (Replicates), or None
+    replicates: Replicates | None = None
 
     def design_columns(self) -> list[str]:
-        return [c for c in (self.id, self.weight, self.strata, self.clusters) if c]
+        reps = list(self.replicates.columns) if self.replicates else []
+        return [c for c in (self.id, self.weight, self.strata, self.clusters) if c] + reps
 
     def column_for(self, variable: str) -> list[str]:
         """The stored column(s) of a variable (one per option for multi)."""
@@ -402,6 +427,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         raked_to=_group_list(doc, "weights_raked_to", groups),
         smallest_change=_parse_smallest_defaults(doc.get("smallest_change")),
         drivers=_parse_drivers(doc.get("drivers"), metrics),
+        replicates=_parse_replicates(doc.get("replicates"), doc),
     )
     _one_label_form(book)
     return book
@@ -497,6 +523,46 @@ def _group_list(doc: dict, key: str, groups: dict) -> tuple[str, ...]:
         if g not in groups:
             raise _err(f"{key}[{i}]", f"{g!r} is not a group in groups")
     return names
+
+
+def _parse_replicates(node: Any, doc: dict) -> Replicates | None:
+    """The key replicates: {method: jk1|jkn|brr|fay|bootstrap|sdr, columns: [...] or prefix: P
+    with count: N (columns P1..PN), fay_rho, scale, rscales, mse}. Replicate weights replace
+    strata, clusters, a population, shared clusters, a panel and raking."""
+    if node is None:
+        return None
+    if not isinstance(node, dict):
+        raise _err("replicates", "write {method: jk1, columns: [...]} (or prefix: and count:)")
+    for key in ("strata", "clusters", "population", "rake", "weights_raked_to"):
+        if doc.get(key):
+            raise _err("replicates", f"replicate weights carry the design: leave out {key}")
+    if doc.get("panel") or doc.get("waves_share_clusters"):
+        raise _err("replicates", "replicate weights are taken as independent samples per wave: leave out panel and "
+                                 "waves_share_clusters")
+    method = str(node.get("method"))
+    if method not in REPLICATE_SCALE:
+        raise _err("replicates.method", f"{shorten(repr(node.get('method')))}: give one of "
+                                        f"{', '.join(REPLICATE_SCALE)}")
+    if "columns" in node:
+        columns = tuple(str(c) for c in node["columns"])
+    elif "prefix" in node and "count" in node:
+        columns = tuple(f"{node['prefix']}{k}" for k in range(1, int(node["count"]) + 1))
+    else:
+        raise _err("replicates", "name the replicate weight columns: columns: [...], or prefix: and count:")
+    if len(set(columns)) < len(columns) or len(columns) < 2:
+        raise _err("replicates.columns", "give at least two columns, each once")
+    rho = float(node.get("fay_rho", 0.0))
+    if method == "fay" and not 0 < rho < 1:
+        raise _err("replicates.fay_rho", "Fay's method needs its rho, between 0 and 1 (e.g. 0.5)")
+    r = len(columns)
+    rscales = node.get("rscales")
+    if method == "jkn" and rscales is None:
+        raise _err("replicates.rscales", "the JKn jackknife needs each replicate's scale, (n_h - 1) / n_h")
+    if rscales is not None and len(rscales) != r:
+        raise _err("replicates.rscales", f"give one scale per replicate ({r}), not {len(rscales)}")
+    scale = float(node.get("scale", REPLICATE_SCALE[method](r, rho)))
+    return Replicates(columns, method, scale, tuple(float(x) for x in (rscales or [1.0] * r)),
+                      bool(node.get("mse", False)))
 
 
 def _parse_drivers(node: Any, metrics: dict) -> dict[str, Any]:

@@ -99,8 +99,10 @@ class DriverFit:
 def _design(study, waves: list[str], metrics: list):
     """The pooled respondents of ``waves`` in every metric's base: (Y, w, stratum codes, psu codes)."""
     from .cells import metric_matrix
+    from .comparing import taylor_only
     from .estimates import design_of, weights_of
 
+    taylor_only(study.codebook, "the driver analysis")
     Ys, ws, ss, ps = [], [], [], []
     for k, wave in enumerate(waves):  # a loop over waves: each read once
         table = study.load(wave)
@@ -159,10 +161,12 @@ def _corr(M: np.ndarray) -> np.ndarray:
 def fit_drivers(study, headline: str | None = None, attributes=None, waves=None, level: float = 0.95) -> DriverFit:
     """The driver analysis of ``headline`` on ``attributes`` (default: the codebook's drivers)
     over ``waves`` (default: the latest): see the module's description."""
+    from .comparing import taylor_only
     from .options import check_level
 
     check_level(level)
     book = study.codebook
+    taylor_only(book, "the driver analysis")
     declared = getattr(book, "drivers", None) or {}
     headline = headline or declared.get("headline")
     attributes = list(attributes or declared.get("attributes") or [])

@@ -296,7 +296,9 @@ def _block_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric],
         value = swy / sw
         unit_var = np.maximum(swy2 / sw - value**2, 0.0)
     psu_totals = first_row = None
-    if psu is None:
+    if codebook.replicates is not None:
+        var, n_psu, df = _replicate_variance(codebook.replicates, table, D, Ef, EY, value, memo)
+    elif psu is None:
         var, n_psu, df = _unclustered_variance(D, Ef, EY, w, value, sw, n, strata, codebook.single_cluster_rule, pop,
                                                memo)
     else:
@@ -328,6 +330,32 @@ def cell_stats(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric], g
     """:func:`cell_arrays` as a table: one row per subgroup level x metric with base,
     weighted_base, sum_w2, value, variance, unit_variance, n_psu and design_df."""
     return cells_frame(cell_arrays(codebook, table, metrics, groups, sample, residual))
+
+
+def _replicate_variance(reps, table: pd.DataFrame, D: np.ndarray, Ef: np.ndarray, EY: np.ndarray, value: np.ndarray,
+                        memo: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The replicate-weight variance of every cell: each replicate's estimate of the cell
+    (its weighted sums over the cell's respondents), spread about the full-sample estimate
+    (``mse``) or the replicates' mean, V = scale * sum_r rscales_r (theta_r - centre)^2, as
+    R's ``svrepdesign`` computes it for its replicate types (Wolter 2007, *Introduction to
+    Variance Estimation*, ch. 3-5). Degrees of freedom: the rank of the replicate weights
+    minus one for every cell (R's ``degf`` of a replicate design); ``n_psu`` holds the number
+    of replicates."""
+    if "replicates" not in memo:
+        W = table[list(reps.columns)].to_numpy(dtype=float)
+        memo["replicates"] = (W, float(np.linalg.matrix_rank(W) - 1))
+    W, df = memo["replicates"]
+    L, M = value.shape
+    R = W.shape[1]
+    var = np.empty((L, M))
+    rscales = np.asarray(reps.rscales, float)[:, None]
+    for j in range(L):  # a loop over subgroup levels: each one product per replicate at once
+        Wl = W * D[:, j][:, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            theta = (Wl.T @ EY) / (Wl.T @ Ef)  # replicates x metrics
+        centre = value[j][None] if reps.mse else theta.mean(axis=0)[None]
+        var[j] = reps.scale * (rscales * (theta - centre) ** 2).sum(axis=0)
+    return var, np.full((L, M), R), np.full((L, M), df)
 
 
 def _level_sums(D: np.ndarray, unit: np.ndarray, n_units: int, weights: list[np.ndarray],

@@ -755,6 +755,27 @@ def _design_rules(codebook: Codebook, table: pd.DataFrame, rake: bool, out: dict
             out[col] = _weight_rules(col, cells, add)
         else:
             out[col] = _label_column_rules(role, col, cells, add)
+    for col in (codebook.replicates.columns if codebook.replicates else ()):
+        if col not in table.columns:
+            add("error", col, "the replicate weight column is missing")
+            continue
+        out[col] = _replicate_rules(col, read_column(table[col]), add)
+
+
+def _replicate_rules(col: str, cells: FileColumn, add: _Found) -> pd.Series:
+    """A replicate weight: a finite number of 0 or more (a jackknife replicate gives the
+    respondents it leaves out a weight of 0)."""
+    num, blank = cells.numbers, cells.blank
+    if blank.any():
+        add("error", col, "blank replicate weight", blank)
+    text = cells.not_numbers
+    if text.any():
+        example = cells.example(text)
+        add("error", col, f"replicate weight is not a number (e.g. {example!r}){_decimal_hint(example)}", text)
+    bad = ~np.isnan(num) & ~(np.isfinite(num) & (num >= 0) & (num <= MAX_WEIGHT))
+    if bad.any():
+        add("error", col, "replicate weight is negative, not finite or above 1e12", bad)
+    return pd.Series(num)
 
 
 def _weight_rules(col: str, cells: FileColumn, add: _Found) -> pd.Series:

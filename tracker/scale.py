@@ -352,6 +352,20 @@ class PrepareReport:
                 f"{len(self.current)} already up to date")]
 
 
+def _engine_fits(study, engine: str) -> None:
+    """Refuse an engine that does not compute what the study's design needs."""
+    if engine not in ENGINES:
+        raise TrackerError(f"engine {engine}: use one of {', '.join(ENGINES)}")
+    if engine == "duckdb":
+        _need("duckdb")
+        if study.codebook.replicates is not None:
+            raise TrackerError("engine duckdb: it does not compute replicate-weight variances; use the pandas engine")
+        if study.codebook.raked_to or any((w.get("weighting") or {}).get("kind") == "raked"
+                                          for w in study.wave_entries):
+            raise TrackerError("engine duckdb: it does not compute the variance of raked weights yet; use the "
+                               "pandas engine, which does")
+
+
 def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler: str | None = None,
             rebuild: bool = False, waves: list[str] | None = None) -> PrepareReport:
     """Fill the study's cache (tracker.cache) with every wave's statistics: in this process,
@@ -359,14 +373,7 @@ def prepare(study, engine: str = "pandas", workers: int | None = None, scheduler
     written here, under the study's lock."""
     from .cache import read_cells, write_cells
 
-    if engine not in ENGINES:
-        raise TrackerError(f"engine {engine}: use one of {', '.join(ENGINES)}")
-    if engine == "duckdb":
-        _need("duckdb")
-        if study.codebook.raked_to or any((w.get("weighting") or {}).get("kind") == "raked"
-                                          for w in study.wave_entries):
-            raise TrackerError("engine duckdb: it does not compute the variance of raked weights yet; use the "
-                               "pandas engine, which does")
+    _engine_fits(study, engine)
     if workers is not None and scheduler is not None:
         raise TrackerError("scheduler: give a scheduler or a number of workers, not both")
     if workers is not None and workers < 1:

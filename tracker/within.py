@@ -156,6 +156,9 @@ def wave_domains(study, wave: str, metric_list: list, groups: list[str]) -> Wave
     from .estimates import SEP, calibration_of, design_labels, design_of, fpc_factor, population_of
 
     book = study.codebook
+    from .comparing import taylor_only
+
+    taylor_only(book, "comparing subgroups")
     table = study.load(wave)
     if calibration_of(book, table) is not None:
         raise TrackerError(f"wave {wave} was raked: comparing its subgroups needs the raking's regression in the "

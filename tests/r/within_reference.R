@@ -93,3 +93,34 @@ write.csv(do.call(rbind, codes), file.path(out, "codes.csv"), row.names = FALSE)
 write.csv(do.call(rbind, quart), file.path(out, "quartiles.csv"), row.names = FALSE)
 write.csv(do.call(rbind, pairs), file.path(out, "within_pairs.csv"), row.names = FALSE)
 write.csv(do.call(rbind, overall), file.path(out, "within_overall.csv"), row.names = FALSE)
+
+# replicate weights: apiclus1 as JK1 (R's own tests give api00 SE 26.329), apistrat as JKn and
+# as a seeded bootstrap; the replicate weights written beside the data, R's values per cell
+rep_rows <- list()
+rep_designs <- list(
+  jk1 = list(name = "apiclus1", make = function(d) as.svrepdesign(svydesign(id = ~dnum, weights = ~pw, data = d),
+                                                                  type = "JK1")),
+  jkn = list(name = "apistrat", make = function(d) as.svrepdesign(svydesign(id = ~1, strata = ~stype, weights = ~pw,
+                                                                            data = d), type = "JKn")),
+  bootstrap = list(name = "apistrat", make = function(d) { set.seed(20261205); as.svrepdesign(
+    svydesign(id = ~1, strata = ~stype, weights = ~pw, data = d), type = "bootstrap", replicates = 50) }))
+for (method in names(rep_designs)) {
+  spec <- rep_designs[[method]]
+  d <- read.csv(file.path(out, paste0(spec$name, ".csv")))
+  rdes <- spec$make(d)
+  w <- weights(rdes, "analysis")
+  colnames(w) <- paste0("rw", seq_len(ncol(w)))
+  write.csv(cbind(d, w), file.path(out, paste0("rep_", method, ".csv")), row.names = FALSE)
+  write.csv(data.frame(rscales = rdes$rscales, scale = rdes$scale), file.path(out, paste0("rep_", method, "_scales.csv")),
+            row.names = FALSE)
+  rdes <- update(rdes, yes = as.numeric(sch_wide == 1))
+  for (cell in list(c("total", "Total", "TRUE"), c("stype", "E", "stype == 1"), c("stype", "H", "stype == 2"),
+                    c("stype", "M", "stype == 3"))) {
+    sub <- if (cell[1] == "total") rdes else subset(rdes, eval(parse(text = cell[3])))
+    m <- svymean(~api00, sub)
+    s <- svymean(~yes, sub)
+    rep_rows[[length(rep_rows) + 1]] <- data.frame(method = method, group = cell[1], subgroup = cell[2],
+      api00 = coef(m)[[1]], api00_se = SE(m)[[1]], yes = coef(s)[[1]], yes_se = SE(s)[[1]], df = degf(rdes))
+  }
+}
+write.csv(do.call(rbind, rep_rows), file.path(out, "replicates.csv"), row.names = FALSE)

@@ -1,0 +1,100 @@
+"""Replicate-weight designs: the codebook key, intake of the replicate columns, and the
+analyses that do not use replicates yet refusing by name. Their estimates are checked against
+R's svrepdesign in tests/test_against_r.py; here a JK1 design built by hand (each respondent
+left out in turn) is checked against the textbook delete-one jackknife of a mean (Wolter 2007,
+ch. 4: (n - 1)/n times the squared spread of the leave-one-out means), computed with numpy."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from tracker import Study, TrackerError
+from tracker.codebook import parse_codebook
+
+BOOK = """title: replicates
+id: rid
+weight: w
+{extra}variables:
+  score: {{type: number}}
+  group: {{type: category, codes: {{1: a, 2: b}}}}
+groups:
+  group: {{variable: group}}
+metrics:
+  mean_score: {{variable: score, mean: true}}
+"""
+
+
+def _jk1_wave(rng, n=30):
+    w = rng.uniform(0.5, 2.0, n)
+    frame = pd.DataFrame({"rid": [f"r{i}" for i in range(n)], "w": w, "score": rng.normal(50, 10, n),
+                          "group": rng.integers(1, 3, n)})
+    for k in range(n):  # replicate k leaves respondent k out and weights the rest by n / (n - 1)
+        frame[f"rw{k + 1}"] = np.where(np.arange(n) == k, 0.0, w * n / (n - 1))
+    return frame
+
+
+def test_a_hand_built_jackknife_equals_the_textbook_one(tmp_path):
+    rng = np.random.default_rng(3)
+    frame = _jk1_wave(rng)
+    n = len(frame)
+    (tmp_path / "book.yaml").write_text(BOOK.format(extra=f"replicates: {{method: jk1, prefix: rw, count: {n}}}\n"))
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    frame.to_csv(tmp_path / "w.csv", index=False)
+    study.add(tmp_path / "w.csv", "2025-Q1", "2025-02-15")
+    est = study.estimates(by=[]).iloc[0]
+    x, w = frame["score"].to_numpy(), frame["w"].to_numpy()
+    loo = np.array([np.average(np.delete(x, k), weights=np.delete(w, k)) for k in range(n)])
+    want = (n - 1) / n * ((loo - loo.mean()) ** 2).sum()
+    assert est["value"] == pytest.approx(np.average(x, weights=w), rel=1e-12)
+    assert est["se"] ** 2 == pytest.approx(want, rel=1e-10)
+    assert est["df"] == n - 1  # the rank of the replicate weights minus one
+
+
+@pytest.mark.parametrize("extra, says", [
+    ("replicates: {columns: [rw1, rw2]}\n", "method"),
+    ("replicates: {method: fay, columns: [rw1, rw2]}\n", "Fay's method needs its rho"),
+    ("replicates: {method: jkn, columns: [rw1, rw2]}\n", "needs each replicate's scale"),
+    ("replicates: {method: jk1}\n", "name the replicate weight columns"),
+    ("strata: group\nreplicates: {method: jk1, columns: [rw1, rw2]}\n", "leave out strata"),
+    ("panel: true\nreplicates: {method: brr, prefix: rw, count: 4}\n", "leave out panel"),
+    ("replicates: {method: jkn, columns: [rw1, rw2], rscales: [0.5]}\n", "one scale per replicate"),
+])
+def test_a_replicate_key_that_cannot_work_is_refused(extra, says):
+    with pytest.raises(TrackerError, match=says):
+        parse_codebook(BOOK.format(extra=extra), "book")
+
+
+def test_scales_follow_the_method():
+    # R's svrepdesign defaults by type (from memory of its documentation): JK1 (R-1)/R, BRR 1/R,
+    # Fay 1/(R (1-rho)^2), bootstrap 1/(R-1), successive difference 4/R
+    def scale(spec):
+        return parse_codebook(BOOK.format(extra=f"replicates: {spec}\n"), "b").replicates.scale
+
+    assert scale("{method: jk1, prefix: rw, count: 10}") == pytest.approx(0.9)
+    assert scale("{method: brr, prefix: rw, count: 8}") == pytest.approx(1 / 8)
+    assert scale("{method: fay, fay_rho: 0.5, prefix: rw, count: 8}") == pytest.approx(1 / (8 * 0.25))
+    assert scale("{method: bootstrap, prefix: rw, count: 51}") == pytest.approx(1 / 50)
+    assert scale("{method: sdr, prefix: rw, count: 80}") == pytest.approx(4 / 80)
+
+
+def test_replicate_columns_are_checked_at_intake_and_stored(tmp_path):
+    rng = np.random.default_rng(4)
+    frame = _jk1_wave(rng, 12)
+    (tmp_path / "book.yaml").write_text(BOOK.format(extra="replicates: {method: jk1, prefix: rw, count: 12}\n"))
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    bad = frame.copy()
+    bad.loc[3, "rw2"] = -1.0
+    bad = bad.drop(columns=["rw5"])
+    bad.to_csv(tmp_path / "bad.csv", index=False)
+    text = "\n".join(study.check(tmp_path / "bad.csv", "2025-Q1", "2025-02-15").lines())
+    assert "column rw5: the replicate weight column is missing" in text
+    assert "column rw2: replicate weight is negative, not finite or above 1e12 [1 row: 5]" in text
+    frame.to_csv(tmp_path / "w.csv", index=False)
+    study.add(tmp_path / "w.csv", "2025-Q1", "2025-02-15")
+    assert [f"rw{k}" for k in range(1, 13)] == [c for c in study.load("2025-Q1").columns if c.startswith("rw")]
+    for call, what in ((lambda: study.gaps(), "comparing subgroups"),
+                       (lambda: study.drivers("mean_score", ["mean_score", "mean_score"]), "the driver analysis")):
+        with pytest.raises(TrackerError, match=f"{what} works from strata and clusters; with replicate weights"):
+            call()
