@@ -568,6 +568,7 @@ def test_replicate_weight_designs_equal_svrepdesign(reference, method):
     study = _study(folder, f"rep_{method}", CODEBOOK.format(name=f"replicates {method}", design=spec),
                    [(folder / f"rep_{method}_wave.csv", "2000", "2000-06-30")])
     est = study.estimates(metrics=["api_mean", "target_met"], by="stype").set_index(["metric", "subgroup"])
+    _replicate_pairs_equal_r(study, folder, method)
     want = pd.read_csv(folder / "replicates.csv")
     for r in want[want["method"] == method].itertuples():
         mean, share = est.loc[("api_mean", r.subgroup)], est.loc[("target_met", r.subgroup)]
@@ -575,3 +576,21 @@ def test_replicate_weight_designs_equal_svrepdesign(reference, method):
         assert mean["se"] == pytest.approx(r.api00_se, rel=1e-8)
         assert share["se"] == pytest.approx(r.yes_se, rel=1e-8)
         assert mean["df"] == r.df
+
+
+def _replicate_pairs_equal_r(study, folder, method):
+    """Subgroups compared within a replicate-weight wave against R: svyby(covmat = TRUE) +
+    svycontrast for each pair of school types, regTermTest for the test across the three."""
+    from tracker.within import compare_within
+
+    got = compare_within(study, wave="2000", metrics="api_mean", by="stype").table
+    want = pd.read_csv(folder / "replicate_pairs.csv")
+    for r in want[want["method"] == method].itertuples():
+        if r.a == 0:
+            row = got[got["comparison"] == "across all levels"].iloc[0]
+            assert row["statistic"] == pytest.approx(r.F, rel=1e-8) and row["df"] == r.ddf
+            assert row["p_raw"] == pytest.approx(r.p, rel=1e-8)
+            continue
+        row = got[(got["first"] == CODES[str(r.a)]) & (got["second"] == CODES[str(r.b)])].iloc[0]
+        assert row["difference"] == pytest.approx(r.diff, rel=1e-10)
+        assert row["se"] == pytest.approx(r.se, rel=1e-8)

@@ -127,6 +127,8 @@ def gap_shifts(study, wave: str | None = None, against: str = "previous", metric
 def _df(d, a: int, b: int) -> np.ndarray:
     from .within import _strata_holding
 
+    if d.replicate_df is not None:
+        return np.full(d.value.shape[1], d.replicate_df)
     either = d.held[:, a, :] | d.held[:, b, :]
     return either.sum(axis=0) - _strata_holding(either, d.psu_stratum, d.n_strata)
 

@@ -136,9 +136,12 @@ class WaveDomains:
     factor: np.ndarray | None
     keys: np.ndarray
     rule: str
+    replicate_df: float | None = None  # with replicate weights: totals hold the replicates' deviations
 
     @property
     def design_df(self) -> float:
+        if self.replicate_df is not None:
+            return self.replicate_df
         return float(self.psu_stratum.size - self.n_strata)
 
     def psu_totals(self, columns: np.ndarray) -> PsuTotals:
@@ -146,7 +149,10 @@ class WaveDomains:
         return PsuTotals(columns, self.psu_stratum, self.n_strata, self.factor)
 
     def cov(self, a: np.ndarray, b: np.ndarray) -> np.ndarray:
-        """Covariance per metric of two combinations of this wave's PSU totals (P x M each)."""
+        """Covariance per metric of two combinations of this wave's PSU totals (P x M each);
+        with replicate weights, of two combinations of the scaled replicate deviations."""
+        if self.replicate_df is not None:
+            return (a * b).sum(axis=0)
         own = np.arange(self.psu_stratum.size)
         return cross_wave_covariance(self.psu_totals(a), own, self.psu_totals(b), own, self.rule)[0]
 
@@ -156,10 +162,9 @@ def wave_domains(study, wave: str, metric_list: list, groups: list[str]) -> Wave
     from .estimates import SEP, calibration_of, design_labels, design_of, fpc_factor, population_of
 
     book = study.codebook
-    from .comparing import taylor_only
-
-    taylor_only(book, "comparing subgroups")
     table = study.load(wave)
+    if book.replicates is not None:
+        return _replicate_domains(book, table, wave, metric_list, groups)
     if calibration_of(book, table) is not None:
         raise TrackerError(f"wave {wave} was raked: comparing its subgroups needs the raking's regression in the "
                            f"variance, which this comparison does not carry yet")
@@ -182,6 +187,36 @@ def wave_domains(study, wave: str, metric_list: list, groups: list[str]) -> Wave
         keys = table[book.id].astype(str).to_numpy()[first]
     return WaveDomains(wave, names, value, base, totals, held, psu_stratum, n_strata, factor, keys,
                        book.single_cluster_rule)
+
+
+def _replicate_domains(book, table: pd.DataFrame, wave: str, metric_list: list, groups: list[str]) -> WaveDomains:
+    """The domains of a replicate-weight wave: each domain's estimate under every replicate,
+    kept as deviations scaled so that the sum of products of two combinations is their
+    replicate covariance, scale * sum_r rscales_r (a_r - a_c)(b_r - b_c) (tracker.estimates,
+    replicate variance); df the rank of the replicate weights minus one."""
+    from .cells import metric_matrix
+    from .estimates import weights_of
+
+    reps = book.replicates
+    Y, E = metric_matrix(book, table, metric_list)
+    Dm, names = _domains(book, table, groups)
+    W = table[list(reps.columns)].to_numpy(dtype=float)
+    w = weights_of(book, table)
+    J, M, R = Dm.shape[1], len(metric_list), W.shape[1]
+    EY, Ef = np.where(E, Y, 0.0), E.astype(float)
+    value, base, dev = np.empty((J, M)), np.empty((J, M)), np.empty((R, J, M))
+    root = np.sqrt(reps.scale * np.asarray(reps.rscales, float))[:, None]
+    for j in range(J):  # a loop over domains: every replicate and metric at once
+        d = Dm[:, j]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            value[j] = ((w * d) @ EY) / ((w * d) @ Ef)
+            theta = ((W * d[:, None]).T @ EY) / ((W * d[:, None]).T @ Ef)
+        base[j] = d.astype(float) @ Ef
+        centre = value[j][None] if reps.mse else theta.mean(axis=0)[None]
+        dev[:, j, :] = np.nan_to_num(root * (theta - centre))
+    held = np.ones((R, J, M), bool)
+    return WaveDomains(wave, names, value, base, dev, held, np.zeros(R, np.int64), 1, None,
+                       np.arange(R).astype(str), book.single_cluster_rule, float(np.linalg.matrix_rank(W) - 1))
 
 
 def compare_within(study, wave: str | None = None, metrics=None, by=None, adjust: str = "bh",
@@ -238,7 +273,8 @@ def _pairs(d: WaveDomains) -> list[dict]:
         ta, tb = d.totals[:, a, :], d.totals[:, b, :]
         either = d.held[:, a, :] | d.held[:, b, :]
         # one design: the PSUs holding either side minus the strata holding them (R's degf)
-        df = either.sum(axis=0) - _strata_holding(either, d.psu_stratum, d.n_strata)
+        df = (either.sum(axis=0) - _strata_holding(either, d.psu_stratum, d.n_strata) if d.replicate_df is None
+              else np.full(d.value.shape[1], d.replicate_df))
         out.append({"group": g, "comparison": kind, "first": d.names[a][1],
                     "second": REST if kind == "against the rest" else d.names[b][1],
                     "value_first": d.value[a], "value_second": d.value[b], "var": d.cov(ta - tb, ta - tb), "df": df,

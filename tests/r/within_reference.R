@@ -124,3 +124,23 @@ for (method in names(rep_designs)) {
   }
 }
 write.csv(do.call(rbind, rep_rows), file.path(out, "replicates.csv"), row.names = FALSE)
+
+# subgroups compared within a replicate-weight wave
+rep_pairs <- list()
+for (method in names(rep_designs)) {
+  spec <- rep_designs[[method]]
+  d <- read.csv(file.path(out, paste0(spec$name, ".csv")))
+  rdes <- update(spec$make(d), stype_f = factor(stype))
+  by <- svyby(~api00, ~stype_f, rdes, svymean, covmat = TRUE)
+  for (pr in list(c(1, 2), c(1, 3), c(2, 3))) {
+    w <- rep(0, 3); w[pr[1]] <- 1; w[pr[2]] <- -1
+    k <- svycontrast(by, w)
+    rep_pairs[[length(rep_pairs) + 1]] <- data.frame(method = method, a = pr[1], b = pr[2],
+      diff = as.vector(coef(k)), se = as.vector(SE(k)), F = NA, ddf = NA, p = NA)
+  }
+  g <- svyglm(api00 ~ stype_f, rdes)
+  t <- regTermTest(g, ~stype_f, method = "Wald")
+  rep_pairs[[length(rep_pairs) + 1]] <- data.frame(method = method, a = 0, b = 0, diff = NA, se = NA,
+    F = as.vector(t$Ftest), ddf = t$ddf, p = as.vector(t$p))
+}
+write.csv(do.call(rbind, rep_pairs), file.path(out, "replicate_pairs.csv"), row.names = FALSE)
