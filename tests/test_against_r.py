@@ -594,3 +594,18 @@ def _replicate_pairs_equal_r(study, folder, method):
         row = got[(got["first"] == CODES[str(r.a)]) & (got["second"] == CODES[str(r.b)])].iloc[0]
         assert row["difference"] == pytest.approx(r.diff, rel=1e-10)
         assert row["se"] == pytest.approx(r.se, rel=1e-8)
+
+
+def test_driver_coefficients_with_replicate_weights_equal_svyglm(reference):
+    # reference: R's svyglm(api00 ~ ell + meals + mobility) on apiclus1 as a JK1 replicate design
+    from tracker.drivers import fit_drivers
+
+    folder = _data_dir(reference)
+    data = pd.read_csv(folder / "drivers_rep.csv")
+    n_rep = sum(c.startswith("rw") for c in data.columns)
+    text = DRIVER_BOOK.format(design=f"replicates: {{method: jk1, prefix: rw, count: {n_rep}}}\n")
+    study = _study(folder, "drivers_rep", text, [(folder / "drivers_rep.csv", "2000", "2000-06-30")])
+    fit = fit_drivers(study, "api", ["ell_mean", "meals_mean", "mobility_mean"])
+    want = pd.read_csv(folder / "svyglm_rep.csv")
+    np.testing.assert_allclose(fit.coefficients["coefficient"], want["coefficient"], rtol=1e-9)
+    np.testing.assert_allclose(fit.coefficients["se"], want["se"], rtol=1e-8)

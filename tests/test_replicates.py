@@ -94,8 +94,8 @@ def test_replicate_columns_are_checked_at_intake_and_stored(tmp_path):
     frame.to_csv(tmp_path / "w.csv", index=False)
     study.add(tmp_path / "w.csv", "2025-Q1", "2025-02-15")
     assert [f"rw{k}" for k in range(1, 13)] == [c for c in study.load("2025-Q1").columns if c.startswith("rw")]
-    with pytest.raises(TrackerError, match="the driver analysis works from strata and clusters; with replicate"):
-        study.drivers("mean_score", ["mean_score", "mean_score"])
+    with pytest.raises(TrackerError, match="the make-up test works from strata and clusters; with replicate"):
+        study.composition()
     gaps = study.gaps(by="group").table  # from the replicates (checked against R in tests/test_against_r.py)
     pairs = gaps[gaps["comparison"] != "across all levels"]
     assert set(pairs["df"]) == {11.0}  # the rank of the 12 replicate weights minus one

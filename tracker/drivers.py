@@ -74,10 +74,8 @@ class DriverFit:
     coefficients: pd.DataFrame  # COEFFICIENT_COLUMNS
     importance: pd.DataFrame  # IMPORTANCE_COLUMNS
     level: float
-    replicates: np.ndarray  # the jackknife replicates of the raw weights (replicates x attributes)
-    jk_factor: np.ndarray  # each replicate's (n_h - 1) / n_h
-    jk_stratum: np.ndarray  # each replicate's stratum
-    design_df: float  # PSUs minus strata of the pooled waves
+    raw_var: np.ndarray  # the replicate (jackknife, or the study's replicate weights) variance of each raw weight
+    design_df: float  # PSUs minus strata of the pooled waves, or the replicates' rank minus one
 
     def _repr_html_(self) -> str:
         from .notebook import show
@@ -85,8 +83,8 @@ class DriverFit:
         return show(self.importance.assign(kind="share"), "drivers", tuple(self.lines()))._repr_html_()
 
     def raw_variance(self) -> np.ndarray:
-        """The jackknife variance of each attribute's raw weight."""
-        return _jk_variance(self.replicates, self.jk_factor, self.jk_stratum, int(self.jk_stratum.max()) + 1)
+        """The replicate variance of each attribute's raw weight."""
+        return self.raw_var
 
     def lines(self) -> list[str]:
         return [(f"{self.headline} on {len(self.attributes)} attributes in {', '.join(self.waves)}: "
@@ -99,10 +97,8 @@ class DriverFit:
 def _design(study, waves: list[str], metrics: list):
     """The pooled respondents of ``waves`` in every metric's base: (Y, w, stratum codes, psu codes)."""
     from .cells import metric_matrix
-    from .comparing import taylor_only
     from .estimates import design_of, weights_of
 
-    taylor_only(study.codebook, "the driver analysis")
     Ys, ws, ss, ps = [], [], [], []
     for k, wave in enumerate(waves):  # a loop over waves: each read once
         table = study.load(wave)
@@ -161,12 +157,10 @@ def _corr(M: np.ndarray) -> np.ndarray:
 def fit_drivers(study, headline: str | None = None, attributes=None, waves=None, level: float = 0.95) -> DriverFit:
     """The driver analysis of ``headline`` on ``attributes`` (default: the codebook's drivers)
     over ``waves`` (default: the latest): see the module's description."""
-    from .comparing import taylor_only
     from .options import check_level
 
     check_level(level)
     book = study.codebook
-    taylor_only(book, "the driver analysis")
     declared = getattr(book, "drivers", None) or {}
     headline = headline or declared.get("headline")
     attributes = list(attributes or declared.get("attributes") or [])
@@ -179,7 +173,10 @@ def fit_drivers(study, headline: str | None = None, attributes=None, waves=None,
     waves = study.pick_waves(waves) if waves else study.labels[-1:]
     Y, w, strata, psu = _design(study, waves, metrics)
     _check(study, headline, attributes, Y, waves)
-    est = importance_estimates(Y, w, strata, psu, level)
+    if book.replicates is not None:
+        est = replicate_importance(Y, w, [_replicate_weights(study, wv, metrics) for wv in waves], book.replicates)
+    else:
+        est = importance_estimates(Y, w, strata, psu, level)
     coefficients = _regression_frame(est, attributes, level)
     t = critical(level, est.df if est.df > 0 else None)
     raw, se = est.raw, np.sqrt(est.raw_var)
@@ -190,7 +187,7 @@ def fit_drivers(study, headline: str | None = None, attributes=None, waves=None,
         "coefficient": coefficients["coefficient"].to_numpy()[1:], "coefficient_se": coefficients["se"].to_numpy()[1:]})
     r2_se = float(np.sqrt(est.r2_var))
     return DriverFit(headline, tuple(attributes), tuple(waves), len(Y), est.r2, est.r2 - t * r2_se, est.r2 + t * r2_se,
-                     coefficients, importance, level, est.replicates, est.jk_factor, est.jk_stratum, est.df)
+                     coefficients, importance, level, est.raw_var, est.df)
 
 
 @dataclass(frozen=True)
@@ -203,10 +200,7 @@ class Importance:
     raw_var: np.ndarray  # their jackknife variances
     r2: float
     r2_var: float
-    df: float  # the design's degrees of freedom: PSUs minus strata
-    replicates: np.ndarray
-    jk_factor: np.ndarray
-    jk_stratum: np.ndarray
+    df: float  # the design's degrees of freedom: PSUs minus strata (or the replicates' rank minus one)
 
 
 def importance_estimates(Y: np.ndarray, w: np.ndarray, strata, psu, level: float = 0.95) -> Importance:
@@ -230,7 +224,47 @@ def importance_estimates(Y: np.ndarray, w: np.ndarray, strata, psu, level: float
     stratum = psu_stratum[~lone]
     v_raw = _jk_variance(rep_raw, jk, stratum, n_strata)
     v_r2 = float(_jk_variance(rep_r2[:, None], jk, stratum, n_strata)[0])
-    return Importance(beta, cov, raw, v_raw, float(r2), v_r2, float(P - n_strata), rep_raw, jk, stratum)
+    return Importance(beta, cov, raw, v_raw, float(r2), v_r2, float(P - n_strata))
+
+
+def _replicate_weights(study, wave: str, metrics: list) -> np.ndarray:
+    """A replicate-weight wave's replicate weights of the respondents in every metric's base."""
+    from .cells import metric_matrix
+
+    table = study.load(wave)
+    keep = metric_matrix(study.codebook, table, metrics)[1].all(axis=1)
+    return table[list(study.codebook.replicates.columns)].to_numpy(dtype=float)[keep]
+
+
+def replicate_importance(Y: np.ndarray, w: np.ndarray, waves_W: list[np.ndarray], reps) -> Importance:
+    """The regression and relative weights with the study's replicate weights: each replicate
+    of each wave refits them from the moment matrices with that wave's rows re-weighted, and
+    the variance is scale * sum_r rscales_r (theta_r - centre)^2 per wave, added over the
+    pooled waves (independent samples), as R's svyglm on a replicate design."""
+    V = np.column_stack([np.ones(len(Y)), Y[:, 1:], Y[:, 0]])
+    q = V.shape[1]
+    outer = (V[:, :, None] * V[:, None, :]).reshape(len(Y), q * q)
+    total = (w @ outer).reshape(q, q)
+    p = q - 1
+    beta = np.linalg.solve(total[:p, :p], total[:p, p])
+    raw, r2 = relative_weights(_corr(total))
+    var_b, var_raw, var_r2, start, ranks = np.zeros((p, p)), np.zeros(raw.size), 0.0, 0, []
+    c = np.asarray(reps.scale * np.asarray(reps.rscales, float))
+    for W in waves_W:  # a loop over waves: every replicate of a wave at once
+        rows = slice(start, start + len(W))
+        start += len(W)
+        own = (w[rows] @ outer[rows]).reshape(q, q)
+        M = total[None] - own[None] + (W.T @ outer[rows]).reshape(-1, q, q)
+        b_r = np.linalg.solve(M[:, :p, :p], M[:, :p, p][..., None])[..., 0]
+        raw_r, r2_r = relative_weights(_corr(M))
+        db = b_r - (beta[None] if reps.mse else b_r.mean(axis=0)[None])
+        dr = raw_r - (raw[None] if reps.mse else raw_r.mean(axis=0)[None])
+        d2 = r2_r - (r2 if reps.mse else r2_r.mean())
+        var_b += (c[:, None, None] * db[:, :, None] * db[:, None, :]).sum(axis=0)
+        var_raw += (c[:, None] * dr**2).sum(axis=0)
+        var_r2 += float((c * d2**2).sum())
+        ranks.append(np.linalg.matrix_rank(W) - 1)
+    return Importance(beta, var_b, raw, var_raw, float(r2), var_r2, float(sum(ranks)))
 
 
 def _jk_variance(reps: np.ndarray, factor: np.ndarray, stratum: np.ndarray, n_strata: int) -> np.ndarray:

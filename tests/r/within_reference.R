@@ -144,3 +144,13 @@ for (method in names(rep_designs)) {
     F = as.vector(t$Ftest), ddf = t$ddf, p = as.vector(t$p))
 }
 write.csv(do.call(rbind, rep_pairs), file.path(out, "replicate_pairs.csv"), row.names = FALSE)
+
+# drivers with replicate weights: svyglm on apiclus1 as JK1
+d <- read.csv(file.path(out, "drivers_apiclus1.csv"))
+rdes <- as.svrepdesign(svydesign(id = ~dnum, weights = ~pw, data = d), type = "JK1")
+w <- weights(rdes, "analysis")
+colnames(w) <- paste0("rw", seq_len(ncol(w)))
+write.csv(cbind(d, w), file.path(out, "drivers_rep.csv"), row.names = FALSE)
+g <- svyglm(api00 ~ ell + meals + mobility, rdes)
+write.csv(data.frame(term = names(coef(g)), coefficient = as.vector(coef(g)), se = as.vector(SE(g))),
+          file.path(out, "svyglm_rep.csv"), row.names = FALSE)
