@@ -580,9 +580,15 @@ def test_replicate_weight_designs_equal_svrepdesign(reference, method):
 
 def _replicate_pairs_equal_r(study, folder, method):
     """Subgroups compared within a replicate-weight wave against R: svyby(covmat = TRUE) +
-    svycontrast for each pair of school types, regTermTest for the test across the three."""
+    svycontrast for each pair of school types, regTermTest for the test across the three, and
+    svychisq for school type across award eligibility."""
+    from tracker.answers import distribution_tests
     from tracker.within import compare_within
 
+    chisq = pd.read_csv(folder / "svychisq_rep.csv").set_index("method").loc[method]
+    test = distribution_tests(study, "stype", waves="2000", by="awards").iloc[0]
+    np.testing.assert_allclose([test["f"], test["f_df_num"], test["f_df_den"], test["p_raw"]],
+                               [chisq["f"], chisq["ndf"], chisq["ddf"], chisq["p"]], rtol=1e-8)
     got = compare_within(study, wave="2000", metrics="api_mean", by="stype").table
     want = pd.read_csv(folder / "replicate_pairs.csv")
     for r in want[want["method"] == method].itertuples():

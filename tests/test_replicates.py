@@ -23,6 +23,7 @@ groups:
   group: {{variable: group}}
 metrics:
   mean_score: {{variable: score, mean: true}}
+  share_a: {{variable: group, share: [1]}}
 """
 
 
@@ -94,8 +95,20 @@ def test_replicate_columns_are_checked_at_intake_and_stored(tmp_path):
     frame.to_csv(tmp_path / "w.csv", index=False)
     study.add(tmp_path / "w.csv", "2025-Q1", "2025-02-15")
     assert [f"rw{k}" for k in range(1, 13)] == [c for c in study.load("2025-Q1").columns if c.startswith("rw")]
-    with pytest.raises(TrackerError, match="the make-up test works from strata and clusters; with replicate"):
-        study.composition()
+    # the make-up test's replicate covariance of a level's share is that share's replicate variance
+    from tracker.answers import share_covariance
+
+    table = study.load("2025-Q1")
+    inside = np.ones(len(table), bool)
+    cells = np.column_stack([table["group"] == 1, table["group"] == 2]).astype(float)
+    share = (table["w"].to_numpy() @ cells) / table["w"].sum()
+    cov, df = share_covariance(study.codebook.replicates, table, inside, cells, share)
+    est = study.estimates(metrics="share_a", by=[]).iloc[0]
+    assert cov[0, 0] == pytest.approx(est["se"] ** 2, rel=1e-10) and df == 11
+    frame.assign(rid=[f"x{i}" for i in range(len(frame))]).to_csv(tmp_path / "w2.csv", index=False)
+    study.add(tmp_path / "w2.csv", "2025-Q2", "2025-05-15")
+    tests = study.composition(groups=["group"]).tests
+    assert len(tests) == 1 and np.isfinite(tests["p_raw"].iloc[0] if "p_raw" in tests else tests.iloc[0, -1])
     gaps = study.gaps(by="group").table  # from the replicates (checked against R in tests/test_against_r.py)
     pairs = gaps[gaps["comparison"] != "across all levels"]
     assert set(pairs["df"]) == {11.0}  # the rank of the 12 replicate weights minus one

@@ -167,8 +167,7 @@ def analyse(study, wave: str | None = None, against: str = "previous", adjust: s
     wave = result.wave
     trends = study.trends(adjust=adjust, level=level, until=wave)
     comp = None
-    # the make-up test's variance is Taylor's: replicate-weight studies are not tested on their make-up yet
-    if study.codebook.profile and len(result.compared_with) == 1 and study.codebook.replicates is None:
+    if study.codebook.profile and len(result.compared_with) == 1:
         comp = study.composition(wave=wave, against=result.compared_with[0], adjust=adjust, level=level)
     t = result.table
     moved = t[(t["group"] == "total") & t["significant"]]["metric"].tolist()

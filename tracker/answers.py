@@ -279,7 +279,6 @@ def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = 
     the second-order F of R's ``svychisq``), one per wave and split, adjusted together, with
     the verdicts of a test across levels (tracker.within.GAP_VERDICTS)."""
     from .cells import group_matrix
-    from .comparing import taylor_only
     from .estimates import design_of, weights_of
     from .methods.raoscott import rao_scott_table
     from .methods.tests import adjust_pvalues
@@ -287,7 +286,6 @@ def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = 
     from .options import check_adjust
 
     check_adjust(adjust)
-    taylor_only(study.codebook, "the test of a question's answers across subgroups")
     var = _variable(study, variable)
     if var.type not in ("category", "scale"):
         raise TrackerError(f"variable {variable}: only a coded question's answers are tested across subgroups")
@@ -307,11 +305,14 @@ def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = 
             cells = (D[:, :, None] & (x[:, None, None] == codes[None, None, :])).reshape(len(x), -1).astype(float)
             W = w.sum()
             pi = (w[:, None] * cells).sum(axis=0) / W
-            z = w[:, None] * (cells - pi) / W
-            st = np.zeros(len(x), np.int64) if strata is None else strata
-            ps = np.arange(len(x)) if psu is None else psu
-            V = taylor_covariance(z, st, ps, book.single_cluster_rule)
-            df = float(np.unique(ps[inside]).size - np.unique(st[inside]).size)
+            if book.replicates is not None:
+                V, df = share_covariance(book.replicates, table, inside, cells, pi)
+            else:
+                z = w[:, None] * (cells - pi) / W
+                st = np.zeros(len(x), np.int64) if strata is None else strata
+                ps = np.arange(len(x)) if psu is None else psu
+                V = taylor_covariance(z, st, ps, book.single_cluster_rule)
+                df = float(np.unique(ps[inside]).size - np.unique(st[inside]).size)
             rs = rao_scott_table(pi, V, int(inside.sum()), df, D.shape[1], len(codes))
             rows.append({"wave": wave, "variable": variable, "group": g, "respondents": int(inside.sum()),
                          "pearson_chi2": rs.pearson, "mean_design_effect": rs.mean_deff, "f": rs.f,
@@ -321,3 +322,17 @@ def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = 
     sig = np.nan_to_num(out["p_adjusted"].to_numpy(float), nan=1.0) <= 1 - level
     out["verdict"] = np.where(out["p_adjusted"].isna(), "not compared", np.where(sig, "differ", "no difference found"))
     return out[TEST_COLUMNS]
+
+
+def share_covariance(reps, table: pd.DataFrame, inside: np.ndarray, cells: np.ndarray, pi: np.ndarray
+                     ) -> tuple[np.ndarray, float]:
+    """The replicate covariance of a table's weighted cell shares (each replicate's shares
+    among the respondents ``inside``), scale * sum_r rscales_r (pi_r - c)(pi_r - c)', and the
+    replicates' df (their rank minus one)."""
+    W = table[list(reps.columns)].to_numpy(dtype=float) * inside[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pis = (W.T @ cells) / W.sum(axis=0)[:, None]
+    d = np.nan_to_num(pis - (pi[None] if reps.mse else pis.mean(axis=0)[None]))
+    c = reps.scale * np.asarray(reps.rscales, float)
+    full = table[list(reps.columns)].to_numpy(dtype=float)
+    return (d * c[:, None]).T @ d, float(np.linalg.matrix_rank(full) - 1)

@@ -46,14 +46,6 @@ def metric_breaks(book: Codebook, metric) -> Iterator[tuple[str, str]]:
             yield vname, b
 
 
-def taylor_only(book: Codebook, what: str) -> None:
-    """Refuse, by name, an analysis whose variance is computed from strata and clusters only,
-    for a study whose replicate weights carry its design."""
-    if book.replicates is not None:
-        raise TrackerError(f"{what} works from strata and clusters; with replicate weights it is not available "
-                           f"yet (estimates, changes, trends and answers use the replicates)")
-
-
 class Comparisons:
     """The comparisons of a study's waves, computed once per key in ``memory``.
 
@@ -287,7 +279,6 @@ class Comparisons:
 
         labels = self.waves.pick()
         wave = wave or labels[-1]
-        taylor_only(self.codebook, "the make-up test")
         if against.startswith("pooled:"):
             raise TrackerError("composition compares two single waves; give previous, year-ago or a wave label")
         others = list(resolve_against(labels, self.waves.dates(), wave, against).waves)

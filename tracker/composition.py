@@ -94,6 +94,28 @@ TEST_COLUMNS = ["group", "base_from", "base_to", "pearson_chi2", "design_effect"
                 "f", "f_df_num", "f_df_den", "p", "largest_move"]
 
 
+def _replicate_stacked(book: Codebook, tables, labs, levels) -> tuple[np.ndarray, float]:
+    """The covariance of the stacked waves x levels shares from each wave's replicate weights
+    (the waves independent: a block per wave, each scaled by the wave's share of the table),
+    and the summed replicate degrees of freedom."""
+    from .answers import share_covariance
+
+    n = [int(np.isin(lab, levels).sum()) for lab in labs]
+    blocks, df = [], 0.0
+    for t, lab, n_k in zip(tables, labs, n):
+        inside = np.isin(lab, levels)
+        cells = np.column_stack([lab == lev for lev in levels]).astype(float)
+        w = weights_of(book, t) * inside
+        share = (w @ cells) / w.sum()
+        cov, d = share_covariance(book.replicates, t, inside, cells, share)
+        blocks.append(cov * (n_k / sum(n)) ** 2)
+        df += d
+    L = len(levels)
+    V = np.zeros((2 * L, 2 * L))
+    V[:L, :L], V[L:, L:] = blocks
+    return V, df
+
+
 def compare_composition(book: Codebook, a: pd.DataFrame, b: pd.DataFrame, wave_a: str, wave_b: str,
                         groups: list[str] | None = None, adjust: str = "bh", level: float = 0.95) -> CompositionResult:
     """Compare the weighted make-up of wave b (later) with wave a on each profile group.
@@ -113,6 +135,8 @@ def compare_composition(book: Codebook, a: pd.DataFrame, b: pd.DataFrame, wave_a
         pi, V, n, df, (pw1, pw2) = stacked_shares(labs, levels, [weights_of(book, t) for t in (a, b)],
                                                   [d[0] for d in designs], [d[1] for d in designs],
                                                   book.single_cluster_rule)
+        if book.replicates is not None:
+            V, df = _replicate_stacked(book, (a, b), labs, levels)
         keep = np.tile((pw1 + pw2) > 0, 2)  # a level empty in both waves is not part of the table
         C = int(keep.sum() // 2)
         if C < 2:

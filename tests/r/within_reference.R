@@ -154,3 +154,15 @@ write.csv(cbind(d, w), file.path(out, "drivers_rep.csv"), row.names = FALSE)
 g <- svyglm(api00 ~ ell + meals + mobility, rdes)
 write.csv(data.frame(term = names(coef(g)), coefficient = as.vector(coef(g)), se = as.vector(SE(g))),
           file.path(out, "svyglm_rep.csv"), row.names = FALSE)
+
+# a question's answers across a split, with replicate weights
+rep_chisq <- list()
+for (method in names(rep_designs)) {
+  spec <- rep_designs[[method]]
+  d <- read.csv(file.path(out, paste0(spec$name, ".csv")))
+  rdes <- update(spec$make(d), stype_f = factor(stype), awards_f = factor(awards))
+  k <- svychisq(~stype_f + awards_f, rdes)
+  rep_chisq[[length(rep_chisq) + 1]] <- data.frame(method = method, f = as.vector(k$statistic),
+    ndf = k$parameter[[1]], ddf = k$parameter[[2]], p = as.vector(k$p.value))
+}
+write.csv(do.call(rbind, rep_chisq), file.path(out, "svychisq_rep.csv"), row.names = FALSE)
