@@ -23,7 +23,7 @@ sys.path.insert(0, str(ROOT))
 import numpy as np  # noqa: E402
 
 from tracker.calibration import (  # noqa: E402
-    BRIDGE_DESIGN, BRIDGE_REPS, DESIGNS, DRIVER_DESIGN, DRIVER_REPS, FEW_DESIGN, FEW_REPS, FORECAST_DESIGN, FORECAST_REPS, LONE_DESIGN, LONE_REPS, RAKED_DESIGN, RAKED_REPS,
+    BRIDGE_DESIGN, BRIDGE_REPS, SEASON_DESIGN, SEASON_REPS, DESIGNS, DRIVER_DESIGN, DRIVER_REPS, FEW_DESIGN, FEW_REPS, FORECAST_DESIGN, FORECAST_REPS, LONE_DESIGN, LONE_REPS, RAKED_DESIGN, RAKED_REPS,
     RARE_DESIGN, RARE_REPS, TIERS, TREND_DESIGN, TREND_REPS, Report, run,
 )
 
@@ -164,6 +164,16 @@ def render(report: Report) -> str:
         "model with a step at the break). Promised: its 95 % interval covers the true jump 94 % to 98 % of the "
         "time (it leans conservative: the wave-to-wave variance is estimated with a floor at zero and t has the "
         "fit's 11 df)."))]
+    sections += [(SEASON_DESIGN, (
+        f"{SEASON_REPS[report.tier]:,} monthly series per setting: 24 waves of history (two cycles) and the next "
+        "wave, a 12-month cycle of amplitude 3 points, sampling SE 1.6 points and wave-to-wave SD 1.5 points. With "
+        "the codebook's `seasons: 12` the expected range fits fixed seasonal effects (tracker/expected.py). "
+        "Promised: 93 % to 97 % coverage at the seasonal peak, the trough and the seasonal mean with the key, and "
+        "for a series without seasons under the key; without the key a seasonal series is reported (its ranges "
+        "miss peaks and troughs and are too wide at the mean). The key's cost for a series without seasons is "
+        "a wider range (its median prediction SD is shown), so surprises need larger moves: set it only for "
+        "questions that do follow the seasons. Trends' slopes and patterns and the smoother do not model "
+        "seasons yet."))]
     for name, intro in sections:
         out += [f"## {name[0].upper() + name[1:]}", ""] + ([intro, ""] if intro else []) + [
                 "| what | setting | nominal | measured | MC SE | target | meets |",

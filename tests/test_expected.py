@@ -153,3 +153,30 @@ def test_the_readme_shows_what_the_command_prints(demo_study):
     block = readme.split("on the demo it finds the planted one-wave dip")[1].split("```")[1].strip().splitlines()
     out = CliRunner().invoke(main, ["surprises", str(demo_study.root), "--wave", "2024-Q3"]).output.splitlines()
     assert block[:4] == out[:4]
+
+
+def test_seasonal_effects_are_those_of_a_weighted_regression():
+    # reference: statsmodels WLS with weights 1 / (sampling variance + tau^2) on an intercept, time
+    # and sum-to-zero month effects gives the same prediction (tau^2 as the fit reports it)
+    import statsmodels.api as sm
+
+    from tracker.expected import predict
+    from tracker.trends import fit_trends, meta_regression, season_columns
+
+    rng = np.random.default_rng(8)
+    K, se = 30, 0.016
+    dates = [f"{2010 + i // 12}-{i % 12 + 1:02d}-15" for i in range(K)]
+    y = 0.6 + 0.03 * np.sin(2 * np.pi * np.arange(K) / 12) + rng.normal(0, se, K)
+    hist = pd.DataFrame({"metric": "m", "metric_label": "m", "kind": "share", "group": "total", "subgroup": "Total",
+                         "wave": [f"W{i:02d}" for i in range(K)], "fieldwork_date": dates, "value": y, "se": se,
+                         "reliable": True, "base": 1000, "effective_base": 900.0})
+    pred = predict(hist, fit_trends(hist), "2012-07-15", cycle=12).iloc[0]
+    years = np.array([(pd.Timestamp(d) - pd.Timestamp(dates[0])).days / 365.25 for d in dates])
+    X = np.column_stack([np.ones(K), years - years.mean(), season_columns(dates, 12)])
+    tau2 = meta_regression(y[None], np.full((1, K), se**2), X[None], np.ones((1, K), bool))["tau2"][0]
+    fit = sm.WLS(y, X, weights=1 / (se**2 + tau2)).fit(cov_type="fixed scale")
+    t_new = (pd.Timestamp("2012-07-15") - pd.Timestamp(dates[0])).days / 365.25 - years.mean()
+    x_new = np.concatenate([[1.0, t_new], season_columns(["2012-07-15"], 12)[0]])
+    assert pred["expected"] == pytest.approx(float(x_new @ fit.params), rel=1e-10)
+    assert pred["fit_sd"] ** 2 == pytest.approx(float(x_new @ fit.cov_params() @ x_new), rel=1e-8)
+    assert bool(pred["seasonal"])

@@ -32,11 +32,28 @@ from .composition import compare_composition
 from .estimates import finish, wave_covariance, wave_estimates
 from .methods.tests import adjust_pvalues
 
-__all__ = ["BRIDGE_DESIGN", "BRIDGE_REPS", "DESIGNS", "DRIVER_DESIGN", "DRIVER_REPS", "FEW_DESIGN", "FEW_REPS",
-           "FORECAST_DESIGN", "LONE_DESIGN",
-           "LONE_REPS", "RAKED_DESIGN",
-           "RAKED_REPS", "RARE_DESIGN",
-           "RARE_REPS", "TIERS", "Design", "Rate", "run"]
+__all__ = [
+    "BRIDGE_DESIGN",
+    "BRIDGE_REPS",
+    "DESIGNS",
+    "DRIVER_DESIGN",
+    "DRIVER_REPS",
+    "FEW_DESIGN",
+    "FEW_REPS",
+    "FORECAST_DESIGN",
+    "LONE_DESIGN",
+    "LONE_REPS",
+    "RAKED_DESIGN",
+    "RAKED_REPS",
+    "RARE_DESIGN",
+    "RARE_REPS",
+    "SEASON_DESIGN",
+    "SEASON_REPS",
+    "TIERS",
+    "Design",
+    "Rate",
+    "run",
+]
 
 RATING = np.array([0.10, 0.15, 0.25, 0.30, 0.20])     # category shares of the 1-5 rating
 TRUTH = {"p50": 0.5, "p30": 0.3, "p10": 0.1, "p03": 0.03,
@@ -797,6 +814,51 @@ def _bridges(rng, reps: int, out: list[Rate]) -> None:
                         mc, n, (0.94, 0.98), 0.95))
 
 
+SEASON_DESIGN = "seasonal series"
+SEASON_REPS = {"full": 4000, "quick": 1000, "test": 200}
+
+
+def _monthly_rows(y: np.ndarray, month0: int, se: float) -> pd.DataFrame:
+    reps, k = y.shape
+    dates = [f"{2010 + (month0 + i) // 12}-{(month0 + i) % 12 + 1:02d}-15" for i in range(k)]
+    return pd.DataFrame({"metric": np.repeat([f"m{i}" for i in range(reps)], k), "metric_label": "m", "kind": "share",
+                         "group": "total", "subgroup": "Total", "wave": np.tile([f"W{i:02d}" for i in range(k)], reps),
+                         "fieldwork_date": np.tile(dates, reps), "value": y.ravel(), "se": se, "reliable": True,
+                         "base": 1000, "effective_base": 900.0})
+
+
+def _seasons(rng, reps: int, out: list[Rate]) -> None:
+    """Coverage of the next wave's expected range for monthly series of 24 waves with a
+    12-month cycle of amplitude 3 points (sampling SE 1.6 points, wave-to-wave SD 1.5), the
+    next wave at a seasonal peak, trough or the seasonal mean, with and without the codebook's
+    seasons: 12; and a series without seasons under the key (its cost: a wider range)."""
+    from .expected import predict
+    from .trends import fit_trends
+
+    K, se, tau = 24, 0.016, 0.015
+    for amp, where, month in ((0.03, "peak", 3), (0.03, "trough", 9), (0.03, "seasonal mean", 0),
+                              (0.0, "no seasons", 3)):
+        month0 = (month - K) % 12
+        months = (month0 + np.arange(K + 1)) % 12
+        y = (0.6 + amp * np.sin(2 * np.pi * months / 12)[None] + rng.normal(0, tau, (reps, K + 1))
+             + rng.normal(0, se, (reps, K + 1)))
+        hist = _monthly_rows(y[:, :-1], month0, se)
+        pats = fit_trends(hist)
+        date = f"{2010 + (month0 + K) // 12}-{(month0 + K) % 12 + 1:02d}-15"
+        for cycle in (12, None):
+            pred = predict(hist, pats, date, cycle=cycle)
+            ok = pred["expected"].notna().to_numpy()
+            inside = (pred["low"].to_numpy() <= y[:, -1]) & (y[:, -1] <= pred["high"].to_numpy())
+            rate, mc, n = _prop(inside[ok])
+            sd = float(np.median(pred["prediction_sd"])) * 100
+            setting = (f"{'amplitude 3 points' if amp else 'a series without seasons'}, next wave at "
+                       f"{where if amp else 'any month'}; {'seasons: 12' if cycle else 'no seasons key'} "
+                       f"(median prediction SD {sd:.1f} points)")
+            promised = cycle is not None or not amp
+            out.append(Rate(SEASON_DESIGN, "95% expected-range coverage of the next wave", setting, rate, mc, n,
+                            (0.93, 0.97) if promised else None, 0.95))
+
+
 def _one_design(args) -> tuple[list[Rate], tuple[float, float, float]]:
     d, tier, seed, verbose = args
     t = TIERS[tier]
@@ -841,7 +903,8 @@ def run(tier: str = "quick", seed: int = 2026, designs: tuple[Design, ...] = DES
                                   (RAKED_DESIGN, _raked_items, RAKED_REPS, 23),
                                   (LONE_DESIGN, _lone_clusters, LONE_REPS, 24),
                                   (DRIVER_DESIGN, _driver_importance, DRIVER_REPS, 25),
-                                  (BRIDGE_DESIGN, _bridges, BRIDGE_REPS, 26)):
+                                  (BRIDGE_DESIGN, _bridges, BRIDGE_REPS, 26),
+                                  (SEASON_DESIGN, _seasons, SEASON_REPS, 27)):
         if verbose:
             print(name, file=sys.stderr, flush=True)
         step(np.random.default_rng(np.random.SeedSequence([seed, tag])), reps[tier], rates)

@@ -257,6 +257,8 @@ class Codebook:
     drivers: dict[str, Any] = field(default_factory=dict)
     # key replicates: the replicate weights that carry the design (Replicates), or None
     replicates: Replicates | None = None
+    # key seasons: the seasonal cycle (12 monthly, 4 quarterly) of expected ranges and slopes, or None
+    seasons: int | None = None
 
     def design_columns(self) -> list[str]:
         reps = list(self.replicates.columns) if self.replicates else []
@@ -428,6 +430,7 @@ def parse_codebook(text: str, name: str = "codebook.yaml") -> Codebook:
         smallest_change=_parse_smallest_defaults(doc.get("smallest_change")),
         drivers=_parse_drivers(doc.get("drivers"), metrics),
         replicates=_parse_replicates(doc.get("replicates"), doc),
+        seasons=_parse_seasons(doc.get("seasons")),
     )
     _one_label_form(book)
     return book
@@ -523,6 +526,15 @@ def _group_list(doc: dict, key: str, groups: dict) -> tuple[str, ...]:
         if g not in groups:
             raise _err(f"{key}[{i}]", f"{g!r} is not a group in groups")
     return names
+
+
+def _parse_seasons(node: Any) -> int | None:
+    """The key seasons: 12 (monthly waves) or 4 (quarterly)."""
+    if node is None:
+        return None
+    if node not in (4, 12) or isinstance(node, bool):
+        raise _err("seasons", f"{shorten(repr(node))}: give 12 for monthly waves or 4 for quarterly ones")
+    return int(node)
 
 
 def _parse_replicates(node: Any, doc: dict) -> Replicates | None:

@@ -64,7 +64,8 @@ def _years(date: str, t0: str) -> float:
 
 
 def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.Series | None = None,
-            segment_start: dict[str, str] | None = None, level: float = 0.95) -> pd.DataFrame:
+            segment_start: dict[str, str] | None = None, level: float = 0.95, cycle: int | None = None
+            ) -> pd.DataFrame:
     """The predictive distribution of a new wave at ``at_date`` for every series of ``hist``
     (estimates rows of the waves before it, in fieldwork order).
 
@@ -73,7 +74,9 @@ def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.
     subgroup; missing or None: the mean variance of the last three waves). Returns one row
     per series with expected, the interval (low, high), the standard deviations of its
     parts and the degrees of freedom; a series with fewer than MIN_WAVES usable waves, or
-    not fitted, gets NaN and its reason in ``basis``.
+    not fitted, gets NaN and its reason in ``basis``. With a seasonal ``cycle`` (12 or 4) a
+    series fitted on at least two cycles of waves gets fixed seasonal effects
+    (tracker.trends.season_columns) in its line, and the new wave its season's effect.
     """
     series, waves, y, v, ok, years = _series_arrays(hist, segment_start)
     S, K = y.shape
@@ -100,6 +103,7 @@ def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.
     tau2 = np.full(S, np.nan)
     df = np.full(S, np.nan)
     vbar = np.full(S, np.nan)
+    seasonal = np.zeros(S, bool)
     for name in ("line", "step"):  # a loop over the models; every series of a model at once
         rows = np.flatnonzero(model == name)
         if not rows.size:
@@ -118,12 +122,24 @@ def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.
             X = np.stack([one, np.where(oo, years[None, :] - tbar[:, None], 0.0)], axis=2)
             x_new = np.stack([np.ones(rows.size), t_new - tbar], axis=1)
             k[rows] = oo.sum(axis=1)
-        fit = meta_regression(yy, vv, X, oo)
-        expected[rows] = (fit["beta"] * x_new).sum(axis=1)
-        fit_var[rows] = np.einsum("sp,spq,sq->s", x_new, fit["cov"], x_new)
-        tau2[rows] = fit["tau2"]
-        df[rows] = np.maximum(oo.sum(axis=1) - X.shape[2], 1)
-        vbar[rows] = np.where(oo, vv, 0.0).sum(axis=1) / np.maximum(oo.sum(axis=1), 1)
+        # with a seasonal cycle, series with two cycles of waves get seasonal effects; the
+        # others are fitted as before
+        parts = [(np.ones(rows.size, bool), X, x_new)]
+        if cycle:
+            enough = oo.sum(axis=1) >= 2 * cycle
+            Xs, xs = _with_seasons(X, x_new, hist, waves, at_date, cycle)
+            parts = [(enough, Xs, xs), (~enough, X, x_new)]
+            seasonal[rows] = enough
+        for sel, XX, xn in parts:
+            if not sel.any():
+                continue
+            r, o = rows[sel], oo[sel]
+            fit = meta_regression(yy[sel], vv[sel], XX[sel], o)
+            expected[r] = (fit["beta"] * xn[sel]).sum(axis=1)
+            fit_var[r] = np.einsum("sp,spq,sq->s", xn[sel], fit["cov"], xn[sel])
+            tau2[r] = fit["tau2"]
+            df[r] = np.maximum(o.sum(axis=1) - XX.shape[2], 1)
+            vbar[r] = np.where(o, vv[sel], 0.0).sum(axis=1) / np.maximum(o.sum(axis=1), 1)
     sd = np.sqrt(fit_var + tau2 + vn)
     # Satterthwaite (1946): each wave's total variance tau^2 + v is estimated on k - p degrees
     # of freedom; the prediction's variance, mostly known sampling variance, gets more
@@ -140,9 +156,22 @@ def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.
     out["between_wave_sd"] = np.sqrt(tau2)
     out["sampling_sd"] = np.sqrt(vn)
     out["df"] = df
+    out["seasonal"] = seasonal
     out["reason"] = np.where(model != "none", "", np.where(k < MIN_WAVES, f"fewer than {MIN_WAVES} usable waves",
                                                            "no pattern fitted"))
     return out
+
+
+def _with_seasons(X, x_new, hist: pd.DataFrame, waves: list[str], at_date: str, cycle: int):
+    """The design and the new wave's row with the waves' seasonal effects added."""
+    from .trends import season_columns
+
+    dates = hist.drop_duplicates("wave").set_index("wave")["fieldwork_date"]
+    cols = season_columns([dates[w] for w in waves], cycle)
+    S = X.shape[0]
+    extra = np.broadcast_to(cols[None], (S, *cols.shape))
+    new = np.broadcast_to(season_columns([at_date], cycle), (S, cycle - 1))
+    return np.concatenate([X, extra], axis=2), np.concatenate([x_new, new], axis=1)
 
 
 def recent_mask(ok: np.ndarray, n: int = 3) -> np.ndarray:
@@ -165,7 +194,8 @@ def basis_text(row) -> str:
     if row.model == "none":
         return row.reason
     what = {"line": "line", "step": "line since the step"}[row.model]
-    parts = [f"{what} ({int(row.waves_used)} waves)"]
+    parts = [f"{what} ({int(row.waves_used)} waves)" + (" with seasonal effects" if getattr(row, "seasonal", False)
+                                                         else "")]
     if row.between_wave_sd > 0:
         parts.append("wave-to-wave variation")
     if np.isfinite(row.expected_base):
@@ -239,7 +269,7 @@ def next_ranges(book, hist: pd.DataFrame, patterns: pd.DataFrame, labels: list[s
         n_new = base * n_recent / rows
     with np.errstate(invalid="ignore", divide="ignore"):
         v_new = pd.Series(vb / n_new, index=pd.MultiIndex.from_frame(series))
-    pred = predict(hist, patterns, date, v_new, segment_starts, level)
+    pred = predict(hist, patterns, date, v_new, segment_starts, level, book.seasons)
     pred["expected_base"] = n_new
     pred["metric_label"] = pred["metric"].map({m.name: m.label for m in book.metrics.values()})
     pred["kind"] = pred["metric"].map({m.name: m.kind for m in book.metrics.values()})

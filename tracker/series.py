@@ -221,7 +221,7 @@ class Series:
             self.memory[key] = (self.estimates(waves=before, level=level),
                                 self.trends(adjust=adjust, level=level, until=before[-1], last=len(before)))
         hist, patterns = self.memory[key]
-        pred = predict(hist, patterns, date, None, self.segment_starts(ms, before), level)
+        pred = predict(hist, patterns, date, None, self.segment_starts(ms, before), level, self.codebook.seasons)
         # a wording break between the last wave fitted and this one restarts the series: no prediction
         for m in ms:
             for vname, b in metric_breaks(self.codebook, m):

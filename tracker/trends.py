@@ -100,6 +100,17 @@ def _small_pinv(A: np.ndarray) -> np.ndarray:
     return out
 
 
+def season_columns(dates, cycle: int) -> np.ndarray:
+    """Seasonal effects of fieldwork dates (ISO) for a cycle of 12 (months) or 4 (quarters),
+    coded to sum to zero over the cycle (cycle - 1 columns: 1 in the date's season, -1 in the
+    last season), so that the intercept stays the level across seasons."""
+    month = np.array([int(str(d)[5:7]) for d in dates])
+    season = month - 1 if cycle == 12 else (month - 1) // 3
+    out = (season[:, None] == np.arange(cycle - 1)[None, :]).astype(float)
+    out[season == cycle - 1] = -1.0
+    return out
+
+
 def _series_arrays(est: pd.DataFrame, segment_start: dict[str, str] | None = None):
     """Pad the estimates into (series x waves) arrays, in fieldwork order. ``segment_start``
     maps a metric to the wave its current series starts at (a wording break): its earlier
