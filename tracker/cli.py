@@ -682,7 +682,7 @@ def _emit_tested(t, found: list[str], show_all: bool, fmt: str, view: str, wide:
     emit(shown.reset_index(drop=True), fmt, view, wide, output, footer)
 
 
-@main.command("drivers", short_help="What drives the headline score: relative importance.")
+@main.command("drivers", short_help="What goes with the headline score: relative importance.")
 @click.argument("study", type=click.Path(file_okay=False))
 @click.option("--headline", metavar="NAME", help="The headline metric (default: the codebook's drivers).")
 @click.option("--attribute", "attributes", multiple=True, metavar="NAME",
@@ -697,7 +697,7 @@ def _emit_tested(t, found: list[str], show_all: bool, fmt: str, view: str, wide:
 @_fmt_option
 @user_errors
 def drivers_cmd(study, headline, attributes, last, compare, coefficients, adjust, level, fmt, wide, output):
-    """What drives the headline score: a design-based regression on the attribute metrics and
+    """What goes with the headline score: a design-based regression on the attribute metrics and
     each attribute's relative importance (Johnson's relative weights), with intervals.
 
     \b

@@ -1,4 +1,4 @@
-"""What drives the headline score: a design-based regression of the headline on its attribute
+"""What goes with the headline score: a design-based regression of the headline on its attribute
 metrics, each attribute's relative importance, and whether importance changed between periods.
 
 The model: each respondent's headline value (1/0 for a share, the answer for a mean, +1/0/-1
