@@ -172,8 +172,7 @@ def render(report: Report) -> str:
         "for a series without seasons under the key; without the key a seasonal series is reported (its ranges "
         "miss peaks and troughs and are too wide at the mean). The key's cost for a series without seasons is "
         "a wider range (its median prediction SD is shown), so surprises need larger moves: set it only for "
-        "questions that do follow the seasons. Trends' slopes and patterns and the smoother do not model "
-        "seasons yet."))]
+        "questions that do follow the seasons. The pattern tests and the smoother do not model seasons yet."))]
     for name, intro in sections:
         out += [f"## {name[0].upper() + name[1:]}", ""] + ([intro, ""] if intro else []) + [
                 "| what | setting | nominal | measured | MC SE | target | meets |",

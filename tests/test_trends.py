@@ -217,3 +217,28 @@ def test_between_a_step_and_a_line_the_shape_goes_line_then_undecided_then_step(
     text = trend_sentence(out[out["pattern"] == "moved down"].iloc[0], 0.95)
     assert text.startswith("m moved down over 14 waves (W00 to W13): -")
     assert "cannot tell a gradual trend from a one-off step" in text
+
+
+def test_a_seasonal_slope_is_that_of_a_regression_with_month_effects():
+    # reference: statsmodels WLS with weights 1 / (sampling variance + tau^2) on an intercept,
+    # time and sum-to-zero month effects (tau^2 as the fit reports it)
+    import statsmodels.api as sm
+
+    from tracker.trends import fit_trends, meta_regression, season_columns
+
+    rng = np.random.default_rng(11)
+    K, se = 36, 0.016
+    dates = [f"{2010 + i // 12}-{i % 12 + 1:02d}-15" for i in range(K)]
+    y = 0.6 + 0.01 * np.arange(K) / 12 + 0.03 * np.sin(2 * np.pi * np.arange(K) / 12) + rng.normal(0, se, K)
+    est = pd.DataFrame({"metric": "m", "metric_label": "m", "kind": "share", "group": "total", "subgroup": "Total",
+                        "wave": [f"W{i:02d}" for i in range(K)], "fieldwork_date": dates, "value": y, "se": se,
+                        "reliable": True})
+    got = fit_trends(est, cycle=12).iloc[0]
+    years = np.array([(pd.Timestamp(d) - pd.Timestamp(dates[0])).days / 365.25 for d in dates])
+    X = np.column_stack([np.ones(K), years - years.mean(), season_columns(dates, 12)])
+    tau2 = meta_regression(y[None], np.full((1, K), se**2), X[None], np.ones((1, K), bool))["tau2"][0]
+    ref = sm.WLS(y, X, weights=1 / (se**2 + tau2)).fit(cov_type="fixed scale")
+    assert got["slope_per_year"] == pytest.approx(ref.params[1], rel=1e-10)
+    assert "slope net of seasonal effects" in got["note"]
+    plain = fit_trends(est).iloc[0]
+    assert plain["wave_to_wave_sd"] > got["wave_to_wave_sd"]  # the seasons were noise to the plain line

@@ -103,7 +103,8 @@ class Series:
             if bridge:
                 self.memory[key] = self._bridged_trends(est, starts, adjust, level)
             else:
-                self.memory[key] = fit_trends(est, starts, adjust, level, matters=smallest_changes(self.codebook))
+                self.memory[key] = fit_trends(est, starts, adjust, level, matters=smallest_changes(self.codebook),
+                                              cycle=self.codebook.seasons)
         out = self.memory[key]
         size = int(out["pattern_p_adjusted"].notna().sum())
         keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs])
@@ -126,7 +127,8 @@ class Series:
         from .trends import fit_trends
 
         bridged, jumps, restart = self.bridged(est, starts, level)
-        out = fit_trends(bridged, restart, adjust, level, matters=smallest_changes(self.codebook))
+        out = fit_trends(bridged, restart, adjust, level, matters=smallest_changes(self.codebook),
+                         cycle=self.codebook.seasons)
         keys = ["metric", "group", "subgroup"]
         j = out[keys + ["kind"]].merge(jumps, on=keys, how="left")
         said = [bridge_note(r) if r.bridged is True else

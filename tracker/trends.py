@@ -111,6 +111,28 @@ def season_columns(dates, cycle: int) -> np.ndarray:
     return out
 
 
+def _slope_fit(est: pd.DataFrame, waves: list[str], y, v, ok, X, cycle: int | None) -> dict:
+    """The slope's meta-regression; with a seasonal ``cycle``, series with two cycles of waves
+    get fixed seasonal effects beside the line (season_columns), so that their slope, its
+    interval and their wave-to-wave variation are net of the seasons."""
+    fit = meta_regression(y, np.where(ok, v, 1.0), X, ok)
+    enough = ok.sum(axis=1) >= 2 * cycle if cycle else np.zeros(len(y), bool)
+    if not enough.any():
+        fit["seasonal"] = enough
+        return fit
+    dates = est.drop_duplicates("wave").set_index("wave")["fieldwork_date"]
+    cols = season_columns([dates[w] for w in waves], cycle)  # type: ignore[arg-type]  # set when enough
+    Xs = np.concatenate([X[enough], np.broadcast_to(cols[None], (int(enough.sum()), *cols.shape))], axis=2)
+    seasonal = meta_regression(y[enough], np.where(ok[enough], v[enough], 1.0), Xs, ok[enough])
+    for key in ("tau2", "q", "df"):
+        fit[key] = fit[key].astype(float)
+        fit[key][enough] = seasonal[key]
+    fit["beta"][enough] = seasonal["beta"][:, :2]
+    fit["cov"][enough] = seasonal["cov"][:, :2, :2]
+    fit["seasonal"] = enough
+    return fit
+
+
 def _series_arrays(est: pd.DataFrame, segment_start: dict[str, str] | None = None):
     """Pad the estimates into (series x waves) arrays, in fieldwork order. ``segment_start``
     maps a metric to the wave its current series starts at (a wording break): its earlier
@@ -145,8 +167,8 @@ def _series_arrays(est: pd.DataFrame, segment_start: dict[str, str] | None = Non
 
 
 def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, adjust: str = "bh",
-               level: float = 0.95, min_waves: int = MIN_WAVES, matters: dict[str, float] | None = None
-               ) -> pd.DataFrame:
+               level: float = 0.95, min_waves: int = MIN_WAVES, matters: dict[str, float] | None = None,
+               cycle: int | None = None) -> pd.DataFrame:
     """Slope, extra-variation test, shift and blip for every series in an estimates table.
 
     ``segment_start`` maps a metric to the wave its current series starts at (a wording
@@ -168,7 +190,7 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
     # slope per year, centred time for stability
     tbar = (ok * years[None, :]).sum(axis=1) / np.maximum(k, 1)
     X = np.stack([np.ones((S, K)), np.where(ok, years[None, :] - tbar[:, None], 0.0)], axis=2)
-    trend = meta_regression(y, np.where(ok, v, 1.0), X, ok)
+    trend = _slope_fit(est, waves, y, v, ok, X, cycle)
     slope = trend["beta"][:, 1]
     slope_se = np.sqrt(trend["cov"][:, 1, 1])
     # t on k - 2 df rather than z: few waves and an estimated tau^2 make z too narrow
@@ -208,6 +230,9 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
         seg = series["metric"].map(lambda m: f"series starts at {segment_start[m]} (wording break)"
                                    if m in segment_start else "").to_numpy(object)
         note = np.where(seg != "", np.where(note != "", seg + "; " + note, seg), note)
+    if trend["seasonal"].any():
+        said = "slope net of seasonal effects"
+        note = np.where(trend["seasonal"], np.where(note != "", note + "; " + said, said), note)
     j = tests["step_at"]
     out = pd.DataFrame({
         "metric": series["metric"], "metric_label": series["metric"].map(meta["metric_label"]),
