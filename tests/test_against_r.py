@@ -615,3 +615,25 @@ def test_driver_coefficients_with_replicate_weights_equal_svyglm(reference):
     want = pd.read_csv(folder / "svyglm_rep.csv")
     np.testing.assert_allclose(fit.coefficients["coefficient"], want["coefficient"], rtol=1e-9)
     np.testing.assert_allclose(fit.coefficients["se"], want["se"], rtol=1e-8)
+
+
+def test_raking_a_replicate_design_rakes_every_replicate_as_r(reference):
+    # reference: R's rake() on apiclus1 as JK1, to the school-type and growth-target counts of the
+    # survey package's own rakecheck test; every replicate is raked, and svymean's SE follows
+    folder = _data_dir(reference)
+    data = pd.read_csv(folder / "rep_raked.csv")
+    n_rep = sum(c.startswith("rw") for c in data.columns)
+    types, wide = {"E": 4421, "H": 755, "M": 1018}, {"Yes": 5122, "No": 1072}
+    design = (f"replicates: {{method: jk1, prefix: rw, count: {n_rep}}}\n"
+              f"targets:\n  stype: {{{', '.join(f'{k}: {v / 6194!r}' for k, v in types.items())}}}\n"
+              f"  sch_wide: {{{', '.join(f'{k!r}: {v / 6194!r}' for k, v in wide.items())}}}\n")
+    text = CODEBOOK.format(name="replicates raked", design=design).replace("groups:\n", "groups:\n  sch_wide: "
+                                                                                       "{variable: sch_wide}\n")
+    wave = data.drop(columns=["api00", "api99", "fpc"]).copy()
+    wave["api"] = data["api00"]
+    wave.to_csv(folder / "rep_raked_wave.csv", index=False)
+    study = _study(folder, "rep_raked", text, [(folder / "rep_raked_wave.csv", "2000", "2000-06-30")], rake=True)
+    est = study.estimates(metrics="api_mean", by="awards").set_index("subgroup")
+    for r in pd.read_csv(folder / "rep_raked_reference.csv").itertuples():
+        assert est.loc[r.subgroup, "value"] == pytest.approx(r.api00, rel=1e-8)
+        assert est.loc[r.subgroup, "se"] == pytest.approx(r.api00_se, rel=1e-6)

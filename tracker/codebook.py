@@ -540,12 +540,13 @@ def _parse_seasons(node: Any) -> int | None:
 def _parse_replicates(node: Any, doc: dict) -> Replicates | None:
     """The key replicates: {method: jk1|jkn|brr|fay|bootstrap|sdr, columns: [...] or prefix: P
     with count: N (columns P1..PN), fay_rho, scale, rscales, mse}. Replicate weights replace
-    strata, clusters, a population, shared clusters, a panel and raking."""
+    strata, clusters, a population, shared clusters and a panel; raking by the tool rakes every
+    replicate too (tracker.weighting.rake_table)."""
     if node is None:
         return None
     if not isinstance(node, dict):
         raise _err("replicates", "write {method: jk1, columns: [...]} (or prefix: and count:)")
-    for key in ("strata", "clusters", "population", "rake", "weights_raked_to"):
+    for key in ("strata", "clusters", "population", "weights_raked_to"):
         if doc.get(key):
             raise _err("replicates", f"replicate weights carry the design: leave out {key}")
     if doc.get("panel") or doc.get("waves_share_clusters"):

@@ -188,4 +188,12 @@ def rake_table(book: Codebook, table: pd.DataFrame, cap: tuple[float, float] | N
     out = table.copy()
     out[BASE_WEIGHT] = base if base is not None else 1.0  # the variance regresses on the margins with them
     out[book.weight] = result.weights
+    for col in (book.replicates.columns if book.replicates else ()):
+        # each replicate raked to the same targets from its own weights (as R's rake on a
+        # replicate design), so the replicates' spread carries the raking into every variance
+        rep = rake(labels, targets, base=table[col].to_numpy(float), cap=cap, tol=tol, max_iter=max_iter)
+        if not rep.converged or not np.isfinite(rep.weights).all():
+            raise TrackerError(f"raking: replicate weight {col}: the targets cannot be met from its weights (a "
+                               f"margin's level may hold only respondents the replicate leaves out)")
+        out[col] = rep.weights
     return out, result

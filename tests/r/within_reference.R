@@ -166,3 +166,22 @@ for (method in names(rep_designs)) {
     ndf = k$parameter[[1]], ddf = k$parameter[[2]], p = as.vector(k$p.value))
 }
 write.csv(do.call(rbind, rep_chisq), file.path(out, "svychisq_rep.csv"), row.names = FALSE)
+
+# raking a replicate design: every replicate raked (R's rake on apiclus1 as JK1, to the school
+# type and growth target counts of R's own rakecheck test)
+d <- read.csv(file.path(out, "apiclus1.csv"))
+rdes <- as.svrepdesign(svydesign(id = ~dnum, weights = ~pw, data = d), type = "JK1")
+w <- weights(rdes, "analysis")
+colnames(w) <- paste0("rw", seq_len(ncol(w)))
+write.csv(cbind(d, w), file.path(out, "rep_raked.csv"), row.names = FALSE)
+rr <- rake(rdes, list(~stype, ~sch_wide), list(data.frame(stype = c(1, 2, 3), Freq = c(4421, 755, 1018)),
+                                               data.frame(sch_wide = c(1, 2), Freq = c(5122, 1072))),
+           control = list(maxit = 1000, epsilon = 1e-10, verbose = FALSE))
+raked <- list()
+for (cell in list(c("total", "Total", "TRUE"), c("awards", "Yes", "awards == 1"), c("awards", "No", "awards == 2"))) {
+  sub <- if (cell[1] == "total") rr else subset(rr, eval(parse(text = cell[3])))
+  m <- svymean(~api00, sub)
+  raked[[length(raked) + 1]] <- data.frame(group = cell[1], subgroup = cell[2], api00 = coef(m)[[1]],
+                                           api00_se = SE(m)[[1]])
+}
+write.csv(do.call(rbind, raked), file.path(out, "rep_raked_reference.csv"), row.names = FALSE)
