@@ -171,8 +171,9 @@ def render(report: Report) -> str:
         "Promised: 93 % to 97 % coverage at the seasonal peak, the trough and the seasonal mean with the key, and "
         "for a series without seasons under the key; without the key a seasonal series is reported (its ranges "
         "miss peaks and troughs and are too wide at the mean). The key's cost for a series without seasons is "
-        "a wider range (its median prediction SD is shown), so surprises need larger moves: set it only for "
-        "questions that do follow the seasons. The pattern tests and the smoother do not model seasons yet."))]
+        "a wider range (its median prediction SD is shown), so surprises need larger moves (the surprise power "
+        "rows, reported: the fixed effects' cost is large with two cycles of waves): set it only for questions "
+        "that do follow the seasons. The pattern tests and the smoother do not model seasons yet."))]
     for name, intro in sections:
         out += [f"## {name[0].upper() + name[1:]}", ""] + ([intro, ""] if intro else []) + [
                 "| what | setting | nominal | measured | MC SE | target | meets |",

@@ -857,6 +857,31 @@ def _seasons(rng, reps: int, out: list[Rate]) -> None:
             promised = cycle is not None or not amp
             out.append(Rate(SEASON_DESIGN, "95% expected-range coverage of the next wave", setting, rate, mc, n,
                             (0.93, 0.97) if promised else None, 0.95))
+    _season_power(rng, reps, out, K, se, tau)
+
+
+def _season_power(rng, reps: int, out: list[Rate], K: int, se: float, tau: float) -> None:
+    """The key's cost for a series without seasons: how often a one-wave move of 5 sampling SEs
+    in 10 of 100 cells is called a surprise, with and without seasons: 12 (reported)."""
+    from .expected import predict, surprise_table
+    from .trends import fit_trends
+
+    found: dict[int | None, list[float]] = {12: [], None: []}
+    for _ in range(max(reps // FAMILY, 10)):  # families of 100 cells: a loop over families
+        y = 0.6 + rng.normal(0, tau, (FAMILY, K + 1)) + rng.normal(0, se, (FAMILY, K + 1))
+        y[:10, -1] += 5 * se
+        hist = _monthly_rows(y[:, :-1], 0, se)
+        pats = fit_trends(hist)
+        date = f"{2010 + K // 12}-{K % 12 + 1:02d}-15"
+        new = _monthly_rows(y[:, -1:], K, se).assign(wave="NEW", fieldwork_date=date)
+        for cycle, hits in found.items():
+            table = surprise_table(predict(hist, pats, date, cycle=cycle), new, "bh")
+            hits.extend(table["surprise"].to_numpy()[:10].tolist())
+    for cycle, hits in found.items():
+        rate, mc, n = _prop(np.array(hits, float))
+        out.append(Rate(SEASON_DESIGN, "surprise power", f"a series without seasons, 10 of {FAMILY} cells move 5 "
+                        f"sampling SEs ({5 * se * 100:.0f} points); {'seasons: 12' if cycle else 'no seasons key'}",
+                        rate, mc, n))
 
 
 def _one_design(args) -> tuple[list[Rate], tuple[float, float, float]]:
