@@ -11,7 +11,6 @@ is sized to fit its box (:func:`fit_size`), so that the longest labels stay insi
 from __future__ import annotations
 
 import io
-import math
 
 import pandas as pd
 
@@ -135,7 +134,7 @@ def deck_bytes(brief) -> bytes:
     from pptx import Presentation
     from pptx.util import Inches
 
-    from .brief import _subtitle
+    from .brief import Item, _subtitle
 
     deck = Presentation()
     deck.slide_width, deck.slide_height = Inches(WIDE), Inches(HIGH)
@@ -167,16 +166,11 @@ def deck_bytes(brief) -> bytes:
         _list_slide(deck, "Gaps between subgroups that moved", [("", brief.gap_moves[:8])], blank)
     if brief.drivers:
         _list_slide(deck, "What goes with the headline", [("", brief.drivers[:8])], blank)
-    _list_slide(deck, "Method and cautions", [("Method", [_Plain(m) for m in brief.method]),
-                                              ("Cautions", [_Plain(c) for c in brief.cautions])], blank)
+    _list_slide(deck, "Method and cautions", [("Method", [Item(m) for m in brief.method]),
+                                              ("Cautions", [Item(c) for c in brief.cautions])], blank)
     buf = io.BytesIO()
     deck.save(buf)
     return buf.getvalue()
-
-
-class _Plain:
-    def __init__(self, text: str):
-        self.text = text
 
 
 def _list_slide(deck, title: str, parts, layout) -> None:
@@ -215,6 +209,7 @@ def check_fits(path) -> list[str]:
             size = max((r.font.size.pt for p in shape.text_frame.paragraphs for r in p.runs if r.font.size),
                        default=18)
             text = "\n".join(p.text for p in shape.text_frame.paragraphs)
-            if lines_needed(text, width - 0.2, size) * size * LINE_HEIGHT > (height - 0.1) * 72 + 1e-9:
-                out.append(f"slide {n}, {shape.name}: {math.ceil(len(text) / 80)} lines at {size} pt")
+            lines = lines_needed(text, width - 0.2, size)
+            if lines * size * LINE_HEIGHT > (height - 0.1) * 72 + 1e-9:
+                out.append(f"slide {n}, {shape.name}: {lines} lines at {size} pt")
     return out

@@ -24,6 +24,7 @@ side leads); the slopes' test those of a test across a split's levels (tracker.w
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import ClassVar
 
 import numpy as np
 import pandas as pd
@@ -34,7 +35,7 @@ from .methods.distributions import chi2_sf
 from .methods.intervals import critical
 from .methods.tests import adjust_pvalues, difference_test, family_level, paired_df, satterthwaite_df
 from .options import check_adjust, check_level
-from .within import REST, comparison_pairs, pick_wave, split_levels, wave_domains
+from .within import REST, TestedTable, comparison_pairs, pair_df, pick_wave, split_levels, wave_domains
 
 __all__ = ["COLUMNS", "GapShiftResult", "gap_shifts", "slope_heterogeneity"]
 
@@ -44,23 +45,11 @@ COLUMNS = ["metric", "metric_label", "kind", "group", "test", "first", "second",
 
 
 @dataclass(frozen=True)
-class GapShiftResult:
+class GapShiftResult(TestedTable):
     """Every gap tested in one call and the family they were adjusted in."""
 
-    table: pd.DataFrame
-    wave: str
-    against: str
-    adjust: str
-    level: float
-
-    @property
-    def n_tests(self) -> int:
-        return int(self.table["p_adjusted"].notna().sum())
-
-    def _repr_html_(self) -> str:
-        from .notebook import show
-
-        return show(self.table, "gapshift")._repr_html_()
+    against: str = ""
+    view: ClassVar[str] = "gapshift"
 
 
 def _cross(study, now, then, a_cols, b_cols):
@@ -104,7 +93,7 @@ def gap_shifts(study, wave: str | None = None, against: str = "previous", metric
         v_to = now.cov(now.totals[:, a] - now.totals[:, b], now.totals[:, a] - now.totals[:, b])
         v_from = then.cov(then.totals[:, a] - then.totals[:, b], then.totals[:, a] - then.totals[:, b])
         cov, shared, source = _cross(study, now, then, (a, b), (a, b))
-        df_to, df_from = _df(now, a, b), _df(then, a, b)
+        df_to, df_from = pair_df(now, a, b), pair_df(then, a, b)
         if shared:
             psu_to = (now.held[:, a] | now.held[:, b]).sum(axis=0)
             psu_from = (then.held[:, a] | then.held[:, b]).sum(axis=0)
@@ -121,16 +110,7 @@ def gap_shifts(study, wave: str | None = None, against: str = "previous", metric
     if slopes:
         rows.append(slope_heterogeneity(study, metric_list, groups))
     table = _finish(pd.concat(rows, ignore_index=True), metric_list, adjust, level, study.matters())
-    return GapShiftResult(table, wave, other, adjust, level)
-
-
-def _df(d, a: int, b: int) -> np.ndarray:
-    from .within import _strata_holding
-
-    if d.replicate_df is not None:
-        return np.full(d.value.shape[1], d.replicate_df)
-    either = d.held[:, a, :] | d.held[:, b, :]
-    return either.sum(axis=0) - _strata_holding(either, d.psu_stratum, d.n_strata)
+    return GapShiftResult(table, wave, adjust, level, against=other)
 
 
 def slope_heterogeneity(study, metric_list: list, groups: list[str]) -> pd.DataFrame:

@@ -762,16 +762,22 @@ def _design_rules(codebook: Codebook, table: pd.DataFrame, rake: bool, out: dict
         out[col] = _replicate_rules(col, read_column(table[col]), add)
 
 
-def _replicate_rules(col: str, cells: FileColumn, add: _Found) -> pd.Series:
-    """A replicate weight: a finite number of 0 or more (a jackknife replicate gives the
-    respondents it leaves out a weight of 0)."""
-    num, blank = cells.numbers, cells.blank
-    if blank.any():
-        add("error", col, "blank replicate weight", blank)
+def _numbers_or_errors(col: str, cells: FileColumn, what: str, add: _Found) -> np.ndarray:
+    """A column that must hold a number in every row: its numbers, with an error for blank
+    cells and for text (naming a decimal comma when that is the cause)."""
+    if cells.blank.any():
+        add("error", col, f"blank {what}", cells.blank)
     text = cells.not_numbers
     if text.any():
         example = cells.example(text)
-        add("error", col, f"replicate weight is not a number (e.g. {example!r}){_decimal_hint(example)}", text)
+        add("error", col, f"{what} is not a number (e.g. {example!r}){_decimal_hint(example)}", text)
+    return cells.numbers
+
+
+def _replicate_rules(col: str, cells: FileColumn, add: _Found) -> pd.Series:
+    """A replicate weight: a finite number of 0 or more (a jackknife replicate gives the
+    respondents it leaves out a weight of 0)."""
+    num = _numbers_or_errors(col, cells, "replicate weight", add)
     bad = ~np.isnan(num) & ~(np.isfinite(num) & (num >= 0) & (num <= MAX_WEIGHT))
     if bad.any():
         add("error", col, "replicate weight is negative, not finite or above 1e12", bad)
@@ -780,13 +786,7 @@ def _replicate_rules(col: str, cells: FileColumn, add: _Found) -> pd.Series:
 
 def _weight_rules(col: str, cells: FileColumn, add: _Found) -> pd.Series:
     """A weight: present, a positive finite number, within bounds; the numbers."""
-    num, blank = cells.numbers, cells.blank
-    if blank.any():
-        add("error", col, "blank weight", blank)
-    bad_text = cells.not_numbers
-    if bad_text.any():
-        example = cells.example(bad_text)
-        add("error", col, f"weight is not a number (e.g. {example!r}){_decimal_hint(example)}", bad_text)
+    num = _numbers_or_errors(col, cells, "weight", add)
     nonpos = ~np.isnan(num) & ~(num > 0)
     if nonpos.any():
         add("error", col, "weight is zero or negative", nonpos)

@@ -22,6 +22,7 @@ respondents (one read of the stored wave).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import ClassVar
 
 import numpy as np
 import pandas as pd
@@ -57,13 +58,15 @@ REST = "rest of the sample"
 
 
 @dataclass(frozen=True)
-class WithinResult:
-    """Every comparison of one call within a wave, and the family they were adjusted in."""
+class TestedTable:
+    """A table of tests adjusted in one family (``adjust``, ``level``), shown in a notebook by
+    its readable view."""
 
     table: pd.DataFrame
     wave: str
     adjust: str
     level: float
+    view: ClassVar[str] = "gaps"
 
     @property
     def n_tests(self) -> int:
@@ -72,7 +75,12 @@ class WithinResult:
     def _repr_html_(self) -> str:
         from .notebook import show
 
-        return show(self.table, "gaps")._repr_html_()
+        return show(self.table, self.view)._repr_html_()
+
+
+@dataclass(frozen=True)
+class WithinResult(TestedTable):
+    """Every comparison of one call within a wave, and the family they were adjusted in."""
 
 
 def _domains(book, table, groups: list[str]):
@@ -271,15 +279,22 @@ def _pairs(d: WaveDomains) -> list[dict]:
     out = []
     for g, a, b, kind in comparison_pairs(d.names):  # a loop over pairs of subgroups; every metric at once
         ta, tb = d.totals[:, a, :], d.totals[:, b, :]
-        either = d.held[:, a, :] | d.held[:, b, :]
-        # one design: the PSUs holding either side minus the strata holding them (R's degf)
-        df = (either.sum(axis=0) - _strata_holding(either, d.psu_stratum, d.n_strata) if d.replicate_df is None
-              else np.full(d.value.shape[1], d.replicate_df))
+        df = pair_df(d, a, b)
         out.append({"group": g, "comparison": kind, "first": d.names[a][1],
                     "second": REST if kind == "against the rest" else d.names[b][1],
                     "value_first": d.value[a], "value_second": d.value[b], "var": d.cov(ta - tb, ta - tb), "df": df,
                     "base_first": d.base[a], "base_second": d.base[b], "statistic": None})
     return out
+
+
+def pair_df(d: WaveDomains, a: int, b: int) -> np.ndarray:
+    """Degrees of freedom per metric of a comparison of domains a and b in one wave: the PSUs
+    holding either side minus the strata holding them (R's degf of the design), or the
+    replicates' df."""
+    if d.replicate_df is not None:
+        return np.full(d.value.shape[1], d.replicate_df)
+    either = d.held[:, a, :] | d.held[:, b, :]
+    return either.sum(axis=0) - _strata_holding(either, d.psu_stratum, d.n_strata)
 
 
 def _strata_holding(held: np.ndarray, psu_stratum: np.ndarray, n_strata: int) -> np.ndarray:
