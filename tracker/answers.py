@@ -97,37 +97,43 @@ NUMBER_COLUMNS = ["wave", "variable", "group", "subgroup", "statistic", "value",
                   "design_df", "kind"]
 
 
-def weighted_quantile(x: np.ndarray, w: np.ndarray, p: float) -> float:
+def weighted_quantile(x: np.ndarray, w: np.ndarray, p):
     """The smallest x whose weighted share of values at or below it reaches p: the
     'mathematical' rule of R's survey package (``svyquantile(qrule="math")``: sort, cumulate
     the weights, take the last position whose cumulated weight is at most p times the total,
-    and step on unless it equals p exactly). Zero weights are left out."""
+    and step on unless it equals p exactly). Zero weights are left out. ``p`` may be an array
+    (one sort for all of them); a float for a scalar ``p``."""
+    ps = np.atleast_1d(np.asarray(p, float))
     keep = w > 0
     x, w = x[keep], w[keep]
     if x.size == 0:
-        return float("nan")
-    order = np.argsort(x, kind="stable")
-    # cumulated in extended precision and rounded, as R's cumsum and sum do: with equal weights
-    # p times the total often equals a cumulated weight exactly, and the rule steps on only if not
-    running = np.cumsum(w[order].astype(np.longdouble))
-    xs, cw, total = x[order], running.astype(float), float(running[-1])
-    below = np.flatnonzero(cw <= p * total)
-    if below.size == 0:
-        return float(xs[0])
-    pos = below[-1]
-    if p - cw[pos] / total == 0:
-        return float(xs[pos])
-    return float(xs[min(pos + 1, xs.size - 1)])
+        out = np.full(ps.shape, np.nan)
+    else:
+        order = np.argsort(x, kind="stable")
+        # cumulated in extended precision and rounded, as R's cumsum and sum do: with equal weights
+        # p times the total often equals a cumulated weight exactly, and the rule steps on only if not
+        running = np.cumsum(w[order].astype(np.longdouble))
+        xs, cw, total = x[order], running.astype(float), float(running[-1])
+        pos = np.searchsorted(cw, ps * total, side="right") - 1  # the last cumulated weight <= p total
+        at = np.maximum(pos, 0)
+        exact = (pos >= 0) & (ps - cw[at] / total == 0)
+        out = np.where(pos < 0, xs[0], np.where(exact, xs[at], xs[np.minimum(pos + 1, xs.size - 1)]))
+    return float(out[0]) if np.ndim(p) == 0 else out
 
 
-def woodruff_interval(x: np.ndarray, w: np.ndarray, p_low: float, p_high: float) -> tuple[float, float]:
+def woodruff_interval(x: np.ndarray, w: np.ndarray, p_low, p_high):
     """Woodruff's interval for a quantile (Woodruff 1952, JASA 47:635; R's ``svyquantile``
     with interval.type="mean"): the interval of the share of values at or below the
-    estimate, ``p_low`` to ``p_high``, turned back into values by :func:`weighted_quantile`;
-    NaN where it leaves [0, 1]."""
-    low = weighted_quantile(x, w, p_low) if 0 <= p_low <= 1 else float("nan")
-    high = weighted_quantile(x, w, p_high) if 0 <= p_high <= 1 else float("nan")
-    return low, high
+    estimate, ``p_low`` to ``p_high`` (scalars or arrays), turned back into values by
+    :func:`weighted_quantile`; NaN where it leaves [0, 1]."""
+    lo, hi = np.asarray(p_low, float), np.asarray(p_high, float)
+    bounds = np.concatenate([np.atleast_1d(lo), np.atleast_1d(hi)])
+    inside = (bounds >= 0) & (bounds <= 1)
+    got = np.where(inside, weighted_quantile(x, w, np.where(inside, bounds, 0.5)), np.nan)
+    n = got.size // 2
+    if np.ndim(p_low) == 0:
+        return float(got[0]), float(got[1])
+    return got[:n], got[n:]
 
 
 def number_summary(study, variable: str, waves=None, by=None, level: float = 0.95) -> pd.DataFrame:
@@ -227,10 +233,10 @@ def _quartile_rows(study, book, table, variable, groups, est, wave, level) -> pd
     w = weights_of(book, table)
     D, levels = group_matrix(book, table, groups)
     q = np.full((D.shape[1], len(QUANTILES)), np.nan)
-    for j in range(D.shape[1]):  # a loop over cells (levels), each a sort of its respondents
+    for j in range(D.shape[1]):  # a loop over cells (levels), each one sort of its respondents
         inside = D[:, j] & ok
-        for k, p in enumerate(QUANTILES):
-            q[j, k] = weighted_quantile(x[inside], w[inside], p) if inside.any() else np.nan
+        if inside.any():
+            q[j] = weighted_quantile(x[inside], w[inside], QUANTILES)
     # each split's levels are disjoint: one 0/1 column per split and quantile says "at or below
     # the quartile of my level" (the total is a split of one level)
     extra, names = {}, []
@@ -256,15 +262,15 @@ def _quartile_rows(study, book, table, variable, groups, est, wave, level) -> pd
             continue
         df = cells.stats["design_df"][j, col[f"@le_{g}_0"]]
         t = critical(level, df if df > 0 else None)
+        idx = [col[f"@le_{g}_{k}"] for k in range(len(QUANTILES))]
+        share, se = cells.stats["value"][j, idx], np.sqrt(cells.stats["variance"][j, idx])
+        inside = D[:, j] & ok
+        lows, highs = woodruff_interval(x[inside], w[inside], share - t * se, share + t * se)
         for k, p in enumerate(QUANTILES):
-            i = col[f"@le_{g}_{k}"]
-            share, se = cells.stats["value"][j, i], np.sqrt(cells.stats["variance"][j, i])
-            inside = D[:, j] & ok
-            low, high = woodruff_interval(x[inside], w[inside], share - t * se, share + t * se)
             out.append({"wave": wave, "variable": variable, "group": g, "subgroup": lev,
                         "statistic": {0.25: "lower quartile", 0.5: "median", 0.75: "upper quartile"}[p],
-                        "value": q[j, k], "se": (high - low) / (2 * t), "low": low, "high": high,
-                        "base": int(cells.stats["base"][j, i]), "design_df": df})
+                        "value": q[j, k], "se": (highs[k] - lows[k]) / (2 * t), "low": lows[k], "high": highs[k],
+                        "base": int(cells.stats["base"][j, idx[k]]), "design_df": df})
     return pd.DataFrame(out)
 
 
