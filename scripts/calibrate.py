@@ -53,7 +53,13 @@ def _limits() -> str:
             f"{stats.norm.cdf(-d_step / 2):.0%} of the time each way; the search over waves only adds to that. "
             f"An 8-point blip is {z_blip:.2f} noise SDs from the level, which even with the between-wave SD known "
             f"exactly would be found about {power:.0%} of the time at its share of the 5 % budget; estimating "
-            "that SD from 14 waves costs the rest.")
+            "that SD from 14 waves costs the rest. The rows below measure both at the classifier's own false-call "
+            "rate: the blip test alone given every false call (its threshold the null series' quantile), and a "
+            "detector that knows the noise (the limit). The first is what a blip detector that estimates the "
+            "wave-to-wave variation, with the sampling variance as its floor, can reach; the classifier gets "
+            "there only by taking the false calls from lines and steps. That floor buys little: a test valid for "
+            "every wave-to-wave variance must hold where the sampling variance is negligible, where only t on "
+            "k - 2 df is exact, and thresholds that relax with the floor gained under 1 point in our trials.")
 
 
 def _pct(x: float) -> str:
