@@ -155,13 +155,13 @@ def test_the_readme_shows_what_the_command_prints(demo_study):
     assert block[:4] == out[:4]
 
 
-def test_seasonal_effects_are_those_of_a_weighted_regression():
-    # reference: statsmodels WLS with weights 1 / (sampling variance + tau^2) on an intercept, time
-    # and sum-to-zero month effects gives the same prediction (tau^2 as the fit reports it)
-    import statsmodels.api as sm
-
+def test_seasonal_prediction_is_the_likelihood_weighted_mixture_of_mixed_models():
+    # reference: tests/seasonal_reference.py recomputes the seasons model from the full data, its
+    # likelihoods with scipy's multivariate normal and its fits with statsmodels WLS
     from tracker.expected import predict
-    from tracker.trends import fit_trends, meta_regression, season_columns
+    from tracker.trends import fit_trends, season_columns
+
+    from .seasonal_reference import mixture
 
     rng = np.random.default_rng(8)
     K, se = 30, 0.016
@@ -172,11 +172,18 @@ def test_seasonal_effects_are_those_of_a_weighted_regression():
                          "reliable": True, "base": 1000, "effective_base": 900.0})
     pred = predict(hist, fit_trends(hist), "2012-07-15", cycle=12).iloc[0]
     years = np.array([(pd.Timestamp(d) - pd.Timestamp(dates[0])).days / 365.25 for d in dates])
-    X = np.column_stack([np.ones(K), years - years.mean(), season_columns(dates, 12)])
-    tau2 = meta_regression(y[None], np.full((1, K), se**2), X[None], np.ones((1, K), bool))["tau2"][0]
-    fit = sm.WLS(y, X, weights=1 / (se**2 + tau2)).fit(cov_type="fixed scale")
+    Xp = np.column_stack([np.ones(K), years - years.mean()])
+    mean, cov, p_seasons = mixture(y, np.full(K, se**2), Xp, season_columns(dates, 12))
     t_new = (pd.Timestamp("2012-07-15") - pd.Timestamp(dates[0])).days / 365.25 - years.mean()
     x_new = np.concatenate([[1.0, t_new], season_columns(["2012-07-15"], 12)[0]])
-    assert pred["expected"] == pytest.approx(float(x_new @ fit.params), rel=1e-10)
-    assert pred["fit_sd"] ** 2 == pytest.approx(float(x_new @ fit.cov_params() @ x_new), rel=1e-8)
+    assert p_seasons > 0.99  # a 3-point yearly wave over 30 months stands out
+    assert pred["expected"] == pytest.approx(float(x_new @ mean), rel=1e-9)
+    assert pred["fit_sd"] ** 2 == pytest.approx(float(x_new @ cov @ x_new), rel=1e-7)
+    # the same series without its wave: the models share the weight, and the mixture is still exact
+    flat = hist.assign(value=0.6 + rng.normal(0, se, K))
+    pred = predict(flat, fit_trends(flat), "2012-07-15", cycle=12).iloc[0]
+    mean, cov, p_seasons = mixture(flat["value"].to_numpy(), np.full(K, se**2), Xp, season_columns(dates, 12))
+    assert 0.01 < p_seasons < 0.9
+    assert pred["expected"] == pytest.approx(float(x_new @ mean), rel=1e-9)
+    assert pred["fit_sd"] ** 2 == pytest.approx(float(x_new @ cov @ x_new), rel=1e-7)
     assert bool(pred["seasonal"])

@@ -6,6 +6,7 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from tracker.methods.statespace import fit_local_level, local_level
@@ -70,6 +71,76 @@ def test_known_varying_sampling_variances_and_a_missing_wave_equal_a_statsmodels
     assert np.allclose(mine["mean"][0], ref.smoothed_state[0], atol=1e-6, rtol=0)
     assert np.allclose(mine["var"][0], ref.smoothed_state_cov[0, 0], atol=1e-6, rtol=0)
     assert mine["loglik"][0] == pytest.approx(ref.llf, abs=1e-6)
+
+
+def _monthly(K=30, seed=4):
+    rng = np.random.default_rng(seed)
+    y = 0.6 + np.cumsum(rng.normal(0, 0.01, K)) + 0.03 * np.sin(2 * np.pi * np.arange(K) / 12) + rng.normal(0, 0.04, K)
+    dates = [f"{2010 + i // 12}-{i % 12 + 1:02d}-15" for i in range(K)]
+    return y, dates
+
+
+def test_the_smoother_with_seasons_equals_statsmodels_structural_model_at_fixed_variances():
+    # reference: statsmodels UnobservedComponents, a local level plus a fixed (non-stochastic)
+    # trigonometric season of period 12 with one harmonic, exact diffuse start; the irregular
+    # variance fixed at the sampling variance. Smoothed signal (level + season), its variance,
+    # and the likelihood's differences between values of q (its constant differs by the
+    # diffuse terms)
+    from statsmodels.tsa.statespace.structural import UnobservedComponents
+
+    from tracker.methods.statespace import smooth_with_seasons
+    from tracker.trends import season_columns
+
+    warnings.simplefilter("ignore")
+    y, dates = _monthly()
+    v = 0.04**2
+    H = season_columns(dates, 12)[:, :2]
+    model = UnobservedComponents(y, level="llevel", freq_seasonal=[{"period": 12, "harmonics": 1}],
+                                 stochastic_freq_seasonal=[False], use_exact_diffuse=True)
+    lls, refs = [], []
+    for f in (0.01, 0.1, 1.0):
+        ref = model.smooth([v, f * v])
+        mine = smooth_with_seasons(y[None], np.full((1, y.size), v), np.ones((1, y.size), bool), H,
+                                   factors=np.array([f]))
+        signal = ref.smoothed_state[0] + ref.smoothed_state[1]
+        signal_var = (ref.smoothed_state_cov[0, 0] + ref.smoothed_state_cov[1, 1]
+                      + 2 * ref.smoothed_state_cov[0, 1])
+        assert np.allclose(mine["mean"][0], signal, atol=1e-10, rtol=0)
+        assert np.allclose(mine["var"][0], signal_var, atol=1e-10, rtol=0)
+        lls.append(mine["loglik"][0, 0])
+        refs.append(ref.llf)
+    assert np.allclose(np.diff(lls), np.diff(refs), atol=1e-6)
+
+
+def test_the_smoother_with_no_seasons_is_the_plain_smoother():
+    # reference: smooth_over_q, itself equal to statsmodels' local level at each q (above)
+    from tracker.methods.statespace import smooth_over_q, smooth_with_seasons
+
+    y, _ = _monthly()
+    v = np.full((1, y.size), 0.04**2)
+    ok = np.ones((1, y.size), bool)
+    ok[0, 7] = False
+    mine = smooth_with_seasons(y[None], v, ok, np.zeros((y.size, 0)))
+    ref = smooth_over_q(y[None], v, ok)
+    assert np.allclose(mine["mean"], ref["mean"], atol=1e-12) and np.allclose(mine["var"], ref["var"], atol=1e-12)
+
+
+def test_with_seasons_declared_a_long_monthly_series_is_smoothed_with_its_yearly_wave():
+    from tracker.methods.statespace import smooth_with_seasons
+    from tracker.smoothing import smooth_estimates
+    from tracker.trends import season_columns
+
+    y, dates = _monthly()
+    est = pd.DataFrame({"metric": "m", "metric_label": "m", "kind": "share", "group": "total", "subgroup": "Total",
+                        "wave": [f"W{i:02d}" for i in range(y.size)], "fieldwork_date": dates, "value": y,
+                        "se": 0.04, "reliable": True})
+    got = smooth_estimates(est, {}, 0.95, cycle=12)
+    ref = smooth_with_seasons(y[None], np.full((1, y.size), 0.04**2), np.ones((1, y.size), bool),
+                              season_columns(dates, 12)[:, :2])
+    assert np.allclose(got["smoothed"], ref["mean"][0], atol=1e-12)
+    assert np.allclose(got["smoothed_high"] - got["smoothed"], 1.959963984540054 * np.sqrt(ref["var"][0]))
+    short = smooth_estimates(est.iloc[:20], {}, 0.95, cycle=12)  # under two cycles: the plain smoother
+    assert np.allclose(short["smoothed"], smooth_estimates(est.iloc[:20], {}, 0.95)["smoothed"])
 
 
 def test_with_no_signal_variance_the_smoothed_level_is_the_weighted_mean():

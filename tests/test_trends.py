@@ -219,12 +219,12 @@ def test_between_a_step_and_a_line_the_shape_goes_line_then_undecided_then_step(
     assert "cannot tell a gradual trend from a one-off step" in text
 
 
-def test_a_seasonal_slope_is_that_of_a_regression_with_month_effects():
-    # reference: statsmodels WLS with weights 1 / (sampling variance + tau^2) on an intercept,
-    # time and sum-to-zero month effects (tau^2 as the fit reports it)
-    import statsmodels.api as sm
+def test_a_seasonal_slope_is_that_of_the_seasons_model():
+    # reference: tests/seasonal_reference.py (the seasons model from the full data with scipy's
+    # multivariate normal and statsmodels WLS)
+    from tracker.trends import fit_trends, season_columns
 
-    from tracker.trends import fit_trends, meta_regression, season_columns
+    from .seasonal_reference import mixture
 
     rng = np.random.default_rng(11)
     K, se = 36, 0.016
@@ -235,10 +235,27 @@ def test_a_seasonal_slope_is_that_of_a_regression_with_month_effects():
                         "reliable": True})
     got = fit_trends(est, cycle=12).iloc[0]
     years = np.array([(pd.Timestamp(d) - pd.Timestamp(dates[0])).days / 365.25 for d in dates])
-    X = np.column_stack([np.ones(K), years - years.mean(), season_columns(dates, 12)])
-    tau2 = meta_regression(y[None], np.full((1, K), se**2), X[None], np.ones((1, K), bool))["tau2"][0]
-    ref = sm.WLS(y, X, weights=1 / (se**2 + tau2)).fit(cov_type="fixed scale")
-    assert got["slope_per_year"] == pytest.approx(ref.params[1], rel=1e-10)
+    mean, cov, _ = mixture(y, np.full(K, se**2), np.column_stack([np.ones(K), years - years.mean()]),
+                           season_columns(dates, 12))
+    assert got["slope_per_year"] == pytest.approx(mean[1], rel=1e-9)
     assert "slope net of seasonal effects" in got["note"]
     plain = fit_trends(est).iloc[0]
     assert plain["wave_to_wave_sd"] > got["wave_to_wave_sd"]  # the seasons were noise to the plain line
+
+
+@pytest.mark.parametrize("cycle", [12, 4])
+def test_season_harmonics_span_the_seasons(cycle):
+    # a periodic sequence of period c is a constant plus c - 1 harmonics (the discrete Fourier
+    # basis; common practice, no source): with the intercept, the harmonics and one effect per
+    # season are the same model, and the harmonics sum to zero over a cycle
+    from tracker.trends import season_columns
+
+    dates = [f"2020-{m:02d}-15" for m in range(1, 13)] * 2
+    H = season_columns(dates, cycle)
+    season = np.array([(m - 1) if cycle == 12 else (m - 1) // 3 for m in range(1, 13)] * 2)
+    dummies = (season[:, None] == np.arange(cycle)[None, :]).astype(float)
+    both = np.column_stack([np.ones(len(dates)), H])
+    assert H.shape[1] == cycle - 1 and np.linalg.matrix_rank(both) == cycle
+    coef = np.linalg.lstsq(both, dummies, rcond=None)[0]
+    assert np.allclose(both @ coef, dummies, atol=1e-12)
+    assert np.allclose(H[:12].sum(axis=0), 0.0, atol=1e-12)

@@ -29,7 +29,7 @@ import pandas as pd
 
 from .methods.distributions import t_ppf, t_sf
 from .methods.tests import adjust_pvalues
-from .trends import MIN_WAVES, _series_arrays, meta_regression
+from .trends import MIN_WAVES, _series_arrays, meta_regression, seasonal_regression
 
 __all__ = ["MODELS", "RANGE_COLUMNS", "SURPRISE_COLUMNS", "WINDOW", "basis_text", "next_ranges", "predict",
            "recent_mask", "shown",
@@ -75,8 +75,8 @@ def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.
     per series with expected, the interval (low, high), the standard deviations of its
     parts and the degrees of freedom; a series with fewer than MIN_WAVES usable waves, or
     not fitted, gets NaN and its reason in ``basis``. With a seasonal ``cycle`` (12 or 4) a
-    series fitted on at least two cycles of waves gets fixed seasonal effects
-    (tracker.trends.season_columns) in its line, and the new wave its season's effect.
+    series fitted on at least two cycles of waves gets seasonal effects in its line as far as
+    its waves show them (tracker.trends.seasonal_regression), and the new wave its season's.
     """
     series, waves, y, v, ok, years = _series_arrays(hist, segment_start)
     S, K = y.shape
@@ -134,11 +134,12 @@ def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.
             if not sel.any():
                 continue
             r, o = rows[sel], oo[sel]
-            fit = meta_regression(yy[sel], vv[sel], XX[sel], o)
+            fit = (seasonal_regression(yy[sel], vv[sel], XX[sel], o, X.shape[2]) if XX is not X else
+                   meta_regression(yy[sel], vv[sel], XX[sel], o))
             expected[r] = (fit["beta"] * xn[sel]).sum(axis=1)
             fit_var[r] = np.einsum("sp,spq,sq->s", xn[sel], fit["cov"], xn[sel])
             tau2[r] = fit["tau2"]
-            df[r] = np.maximum(o.sum(axis=1) - XX.shape[2], 1)
+            df[r] = np.maximum(fit["df"], 1)
             vbar[r] = np.where(o, vv[sel], 0.0).sum(axis=1) / np.maximum(o.sum(axis=1), 1)
     sd = np.sqrt(fit_var + tau2 + vn)
     # Satterthwaite (1946): each wave's total variance tau^2 + v is estimated on k - p degrees

@@ -246,7 +246,8 @@ class Series:
         key = ("smoothed", level, tuple(upto))
         if key not in self.memory:
             est = self.estimates(level=level, waves=upto)
-            self.memory[key] = smooth_estimates(est, self.segment_starts(pick_metrics(self.codebook), upto), level)
+            self.memory[key] = smooth_estimates(est, self.segment_starts(pick_metrics(self.codebook), upto), level,
+                                                self.codebook.seasons)
         out = self.memory[key]
         ms, gs, ws = pick_metrics(self.codebook, metrics), pick_groups(self.codebook, by), self.waves.pick(waves)
         keep = out["metric"].isin([m.name for m in ms]) & out["group"].isin(["total", *gs]) & out["wave"].isin(ws)

@@ -101,35 +101,127 @@ def _small_pinv(A: np.ndarray) -> np.ndarray:
 
 
 def season_columns(dates, cycle: int) -> np.ndarray:
-    """Seasonal effects of fieldwork dates (ISO) for a cycle of 12 (months) or 4 (quarters),
-    coded to sum to zero over the cycle (cycle - 1 columns: 1 in the date's season, -1 in the
-    last season), so that the intercept stays the level across seasons."""
+    """Seasonal effects of fieldwork dates (ISO) for a cycle of 12 (months) or 4 (quarters), as
+    the cycle's harmonics (cycle - 1 columns: cos and sin of 2 pi h s / cycle for h = 1, 2, ...,
+    the last harmonic's cos alone; s the season): the same effects as one per season, summing
+    to zero over the cycle so that the intercept stays the level across seasons, with the
+    smooth yearly wave in the first two columns (the one most seasons follow)."""
     month = np.array([int(str(d)[5:7]) for d in dates])
-    season = month - 1 if cycle == 12 else (month - 1) // 3
-    out = (season[:, None] == np.arange(cycle - 1)[None, :]).astype(float)
-    out[season == cycle - 1] = -1.0
-    return out
+    season = (month - 1 if cycle == 12 else (month - 1) // 3).astype(float)
+    cols = []
+    for h in range(1, cycle // 2 + 1):
+        angle = 2 * np.pi * h * season / cycle
+        cols.append(np.cos(angle))
+        if 2 * h < cycle:
+            cols.append(np.sin(angle))
+    return np.stack(cols, axis=1)
+
+
+#: Prior odds of a series having no seasons at all under the seasons key (two to one: most
+#: questions of a study do not follow its cycle), and the
+#: smallest seasonal variance the alternative considers, per unit of the mean sampling
+#: variance (both set by the seeded simulation of docs/validation.md).
+NO_SEASON_ODDS = 2.0
+SMALLEST_SEASON = 0.15
+
+
+def seasonal_regression(y: np.ndarray, v: np.ndarray, X: np.ndarray, mask: np.ndarray, n_plain: int,
+                        points: tuple[int, int] = (8, 5)) -> dict:
+    """A meta-regression whose last columns of X are seasonal harmonics (season_columns), with
+    the seasons kept only as far as the waves show them, for many series at once.
+
+    Two models are averaged by their likelihood (Bayesian model averaging; Hoeting, Madigan,
+    Raftery & Volinsky 1999, Stat Sci 14:382): no seasons (the plain meta-regression, prior
+    odds NO_SEASON_ODDS), and seasons as random effects (a mixed model, Harville 1977, JASA
+    72:320): the yearly wave's two coefficients N(0, sigma_1^2), the faster harmonics'
+    N(0, sigma_r^2), beside the between-wave variance tau^2 and the known sampling variances.
+    There tau^2 and its df come from the fit with the yearly wave fixed (DerSimonian-Laird, as
+    meta_regression); the fit with every harmonic fixed at that tau^2 gives the seasonal
+    estimates s (covariance C), which carry the restricted likelihood of the variances:
+    s ~ N(0, C + D), D = diag(sigma_1^2, sigma_1^2, sigma_r^2, ...), and s ~ N(0, C) without
+    seasons. Over a log-spaced grid of both variances (SMALLEST_SEASON to 10 times the mean
+    sampling variance, 8 x 5 points, a flat prior on the logs) the coefficients solve Henderson's mixed-model
+    equations (Henderson 1975, Biometrics 31:423), (X'WX + blockdiag(0, D^-1)) b = X'Wy,
+    W = 1/(v + tau^2), whose inverse is the covariance of b's errors (the plain coefficients
+    and the seasons' predictions). The result is the mixture's mean and covariance, so a
+    prediction's variance carries the models' and the variances' uncertainty: a series whose
+    seasons do not stand out of the noise is fitted nearly as without the key, and a clear
+    yearly wave, estimated from every wave, is barely shrunk. tau2 and df are the mixture's
+    (df: k minus the plain or the yearly-fixed coefficients); q and q_df are those of the fit
+    with every harmonic fixed (the test of variation beyond the seasons). Also returns
+    ``season_weight``, the posterior probability of seasons.
+    """
+    S, _K, p = X.shape
+    ns = p - n_plain
+    yearly = meta_regression(y, v, X[:, :, : n_plain + 2], mask)
+    fixed = meta_regression(y, v, X, mask, tau2=yearly["tau2"])
+    plain = meta_regression(y, v, X[:, :, :n_plain], mask)
+    s = fixed["beta"][:, n_plain:]
+    C = fixed["cov"][:, n_plain:, n_plain:]
+
+    def loglik(V):
+        logdet = np.linalg.slogdet(V)[1]
+        return -0.5 * (logdet + np.einsum("si,si->s", s, np.linalg.solve(V, s[:, :, None])[:, :, 0]))
+
+    vbar = np.where(mask, v, 0.0).sum(axis=1) / np.maximum(mask.sum(axis=1), 1)
+    pairs = [(a, b) for a in np.geomspace(SMALLEST_SEASON, 10.0, points[0])
+             for b in np.geomspace(SMALLEST_SEASON, 10.0, points[1])]
+    w = np.where(mask, 1.0 / (np.where(mask, v, 1.0) + yearly["tau2"][:, None]), 0.0)
+    Xw = X.transpose(0, 2, 1) * w[:, None, :]
+    A = Xw @ X
+    Xwy = Xw @ np.where(mask, y, 0.0)[:, :, None]
+    G = len(pairs)
+    ll, betas, covs = np.empty((S, G + 1)), np.zeros((S, G + 1, p)), np.zeros((S, G + 1, p, p))
+    penalty = np.zeros((S, p, p))
+    idx = np.arange(n_plain, p)
+    for g, (a, b) in enumerate(pairs):  # a loop over the grid; every series at once
+        d = vbar[:, None] * np.where(np.arange(ns) < 2, a, b)[None, :]
+        V = C.copy()
+        V[:, np.arange(ns), np.arange(ns)] += d
+        ll[:, g] = loglik(V) - np.log(G)  # the seasons' prior mass, spread evenly over the grid
+        penalty[:, idx, idx] = 1.0 / d
+        covs[:, g] = np.linalg.inv(A + penalty)  # positive definite: two cycles of waves and a penalty
+        betas[:, g] = (covs[:, g] @ Xwy)[:, :, 0]
+    ll[:, G] = loglik(C) + np.log(NO_SEASON_ODDS)
+    betas[:, G, :n_plain] = plain["beta"]
+    covs[:, G, :n_plain, :n_plain] = plain["cov"]
+    weight = np.exp(ll - ll.max(axis=1, keepdims=True))
+    weight /= weight.sum(axis=1, keepdims=True)
+    none = weight[:, G]
+    beta = np.einsum("sg,sgp->sp", weight, betas)
+    dev = betas - beta[:, None, :]
+    cov = np.einsum("sg,sgpq->spq", weight, covs + dev[:, :, :, None] * dev[:, :, None, :])
+    return {"beta": beta, "cov": cov, "tau2": none * plain["tau2"] + (1 - none) * yearly["tau2"],
+            "df": none * plain["df"] + (1 - none) * yearly["df"], "q": fixed["q"], "q_df": fixed["df"],
+            "season_weight": 1 - none}
 
 
 def _slope_fit(est: pd.DataFrame, waves: list[str], y, v, ok, X, cycle: int | None) -> dict:
     """The slope's meta-regression; with a seasonal ``cycle``, series with two cycles of waves
-    get fixed seasonal effects beside the line (season_columns), so that their slope, its
-    interval and their wave-to-wave variation are net of the seasons."""
+    get seasonal effects beside the line as far as their waves show them (seasonal_regression),
+    so that their slope, its interval and their wave-to-wave variation are net of the seasons.
+    ``q_df`` is the df of the excess-variation statistic q; ``season_part`` and
+    ``season_var`` (series x waves) the fitted seasonal effect of each wave and its variance
+    (zero for a series fitted without seasons)."""
+    S, K = y.shape
     fit = meta_regression(y, np.where(ok, v, 1.0), X, ok)
-    enough = ok.sum(axis=1) >= 2 * cycle if cycle else np.zeros(len(y), bool)
+    fit["q_df"] = fit["df"]
+    fit["season_part"], fit["season_var"] = np.zeros((S, K)), np.zeros((S, K))
+    enough = ok.sum(axis=1) >= 2 * cycle if cycle else np.zeros(S, bool)
+    fit["seasonal"] = enough
     if not enough.any():
-        fit["seasonal"] = enough
         return fit
     dates = est.drop_duplicates("wave").set_index("wave")["fieldwork_date"]
     cols = season_columns([dates[w] for w in waves], cycle)  # type: ignore[arg-type]  # set when enough
     Xs = np.concatenate([X[enough], np.broadcast_to(cols[None], (int(enough.sum()), *cols.shape))], axis=2)
-    seasonal = meta_regression(y[enough], np.where(ok[enough], v[enough], 1.0), Xs, ok[enough])
-    for key in ("tau2", "q", "df"):
+    seasonal = seasonal_regression(y[enough], np.where(ok[enough], v[enough], 1.0), Xs, ok[enough], X.shape[2])
+    for key in ("tau2", "q", "df", "q_df"):
         fit[key] = fit[key].astype(float)
         fit[key][enough] = seasonal[key]
     fit["beta"][enough] = seasonal["beta"][:, :2]
     fit["cov"][enough] = seasonal["cov"][:, :2, :2]
-    fit["seasonal"] = enough
+    fit["season_part"][enough] = seasonal["beta"][:, 2:] @ cols.T
+    fit["season_var"][enough] = np.einsum("kp,spq,kq->sk", cols, seasonal["cov"][:, 2:, 2:], cols)
     return fit
 
 
@@ -198,8 +290,12 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
     with np.errstate(divide="ignore", invalid="ignore"):  # a series too short to fit has no SE: NaN
         slope_p = 2 * t_sf(np.abs(slope / slope_se), df)
     tq = t_ppf(0.5 + level / 2, df)
-    q_p = chi2_sf(trend["q"], df)
+    q_p = chi2_sf(trend["q"], np.maximum(trend["q_df"], 1))
 
+    # the patterns (trend, step, blip) are judged on the series net of its fitted seasons, each
+    # wave's variance with that of its season's estimate
+    y = y - trend["season_part"]
+    v = v + trend["season_var"]
     tests = _pattern_tests(y, np.where(ok, v, 1.0), ok, X)
     p_any = np.where(fit_ok, tests["p"], np.nan)
     adj = adjust_pvalues(p_any, adjust)
@@ -223,7 +319,7 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
     first = np.where(k > 0, ok.argmax(axis=1), 0)
     last = np.where(k > 0, K - 1 - ok[:, ::-1].argmax(axis=1), 0)
     wv = np.array(waves, dtype=object)
-    latest = y[np.arange(S), last]
+    latest = (y + trend["season_part"])[np.arange(S), last]
     meta = est.drop_duplicates(["metric"]).set_index("metric")
     note = np.where(~fit_ok, "fewer than " + str(min_waves) + " waves with a reliable value: no slope", "")
     if segment_start:

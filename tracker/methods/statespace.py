@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["fit_local_level", "local_level", "smooth_over_q"]
+__all__ = ["fit_local_level", "local_level", "smooth_over_q", "smooth_with_seasons"]
 
 LOG_2PI = float(np.log(2 * np.pi))
 
@@ -127,3 +127,62 @@ def smooth_over_q(y: np.ndarray, v: np.ndarray, ok: np.ndarray, points: int = 25
     mean = sum(w[i][:, None] * f["mean"] for i, f in enumerate(fits))
     second = sum(w[i][:, None] * (f["var"] + f["mean"] ** 2) for i, f in enumerate(fits))
     return {"mean": mean, "var": np.maximum(second - mean**2, 0.0), "q_ml": fit_local_level(y, v, ok)}
+
+
+def smooth_with_seasons(y: np.ndarray, v: np.ndarray, ok: np.ndarray, H: np.ndarray, points: int = 25,
+                        factors: np.ndarray | None = None) -> dict:
+    """The local-level smoother with fixed seasonal effects, every series at once: y_t = mu_t +
+    (H s)_t + e_t, mu_t a random walk (variance q per wave) from a diffuse start, s the
+    seasons' coefficients (H: waves x harmonics, from tracker.trends.season_columns) with a
+    diffuse prior, i.e. fixed effects (the basic structural model with a fixed seasonal
+    pattern; Harvey 1989, sections 2.3 and 3.2). For each q the model is a linear mixed model:
+    the start level and s are estimated by generalized least squares with V = G + diag(v),
+    G = q W (W_ij = min(i, j) - first usable wave), the walk by its best linear unbiased
+    predictor, and the error variance of mu_t + (H s)_t is diag((F - M) Cov(b) (F - M)') +
+    diag(G - G V^-1 G), F = [1, H], M = G V^-1 F (Henderson 1975, Biometrics 31:423); the
+    likelihood of q is the restricted one, which the diffuse start makes exact (de Jong 1991,
+    Ann Stat 19:1073). As :func:`smooth_over_q`, the fits are averaged over a log-spaced grid
+    of q with weights proportional to the likelihood (``factors``, if given, replaces the grid's
+    multiples of the mean sampling variance); with no columns in H it is :func:`smooth_over_q`
+    exactly. Waves before a series' first usable one get NaN; a gap wave
+    is predicted. Returns mean, var and q_ml (the grid's likeliest q)."""
+    S, K = y.shape
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = np.where(ok, v, 0.0).sum(axis=1) / np.maximum(ok.sum(axis=1), 1)
+    scale = np.where(scale > 0, scale, 1e-4)
+    first = np.where(ok.any(axis=1), ok.argmax(axis=1), 0)
+    steps = np.maximum(np.arange(K)[None, :] - first[:, None], 0).astype(float)
+    W = np.minimum(steps[:, :, None], steps[:, None, :])
+    big = 1e10 * scale[:, None]  # a wave without a usable value carries no weight
+    vv = np.where(ok, v, big)
+    yy = np.where(ok, y, 0.0)
+    F = np.concatenate([np.ones((K, 1)), H], axis=1)
+    diag = np.arange(K)
+    fits = []
+    for f in np.logspace(-4, 1, points) if factors is None else factors:  # a loop over the grid; series at once
+        G = (scale * f)[:, None, None] * W
+        V = G.copy()
+        V[:, diag, diag] += vv
+        Vi = np.linalg.inv(V)
+        ViF = Vi @ F
+        info = F.T @ ViF
+        cov_b = np.linalg.inv(info)
+        b = np.einsum("spq,skq,sk->sp", cov_b, ViF, yy)
+        r = yy - b @ F.T
+        Vir = np.einsum("skj,sj->sk", Vi, r)
+        mean = b @ F.T + np.einsum("skj,sj->sk", G, Vir)
+        D = F[None] - G @ ViF
+        var = (np.einsum("skp,spq,skq->sk", D, cov_b, D) + np.einsum("skk->sk", G)
+               - np.einsum("skj,sjl,slk->sk", G, Vi, G))
+        logdet_v = np.linalg.slogdet(V)[1] - np.where(ok, 0.0, np.log(big)).sum(axis=1)
+        loglik = -0.5 * (logdet_v + np.linalg.slogdet(info)[1] + np.einsum("sk,sk->s", r, Vir))
+        fits.append((loglik, mean, var, scale * f))
+    ll = np.stack([f[0] for f in fits])
+    w = np.exp(ll - ll.max(axis=0))
+    w /= w.sum(axis=0)
+    mean = sum(w[i][:, None] * f[1] for i, f in enumerate(fits))
+    second = sum(w[i][:, None] * (f[2] + f[1] ** 2) for i, f in enumerate(fits))
+    before = np.arange(K)[None, :] < first[:, None]
+    q_ml = np.stack([f[3] for f in fits])[ll.argmax(axis=0), np.arange(S)]
+    return {"mean": np.where(before, np.nan, mean), "var": np.where(before, np.nan, np.maximum(second - mean**2, 0.0)),
+            "q_ml": q_ml, "loglik": ll.T}
