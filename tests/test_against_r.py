@@ -578,6 +578,43 @@ def test_replicate_weight_designs_equal_svrepdesign(reference, method):
         assert mean["df"] == r.df
 
 
+@pytest.mark.parametrize("method", ["jk1", "jkn", "bootstrap"])
+def test_a_panel_with_replicate_weights_equals_svrepdesign(reference, method):
+    # reference: R's svycontrast on svymean(~api00 + api99) and on svyby(~api00 + api99, ~stype,
+    # covmat = TRUE) of the replicate designs above: the same schools in 1999 and 2000 carry the
+    # same replicate weights, so a change's covariance is the replicates' (tests/r/within_reference.R)
+    folder = _data_dir(reference)
+    data = pd.read_csv(folder / f"rep_{method}.csv")
+    n_rep = sum(c.startswith("rw") for c in data.columns)
+    scales = pd.read_csv(folder / f"rep_{method}_scales.csv")
+    spec = f"panel: true\nreplicates:\n  method: {method}\n  prefix: rw\n  count: {n_rep}\n"
+    if method == "jkn":
+        spec += f"  rscales: [{', '.join(repr(float(x)) for x in scales['rscales'])}]\n"
+    if method == "bootstrap":
+        spec += f"  scale: {float(scales['scale'].iloc[0])!r}\n"
+    files = []
+    for year, column in (("1999", "api99"), ("2000", "api00")):
+        wave = data.drop(columns=["api00", "api99", "fpc"]).copy()
+        wave["api"] = data[column]
+        wave.to_csv(folder / f"panel_{method}_{year}.csv", index=False)
+        files.append((folder / f"panel_{method}_{year}.csv", year, f"{year}-06-30"))
+    study = _study(folder, f"panel_{method}", CODEBOOK.format(name=f"panel {method}", design=spec), files)
+    got = study.changes(wave="2000", against="1999", metrics="api_mean", by="stype").table.set_index("subgroup")
+    gaps = study.gap_changes(wave="2000", against="1999", metrics="api_mean", by="stype").table
+    want = pd.read_csv(folder / "replicate_panel.csv", dtype={"subgroup": str, "other": str})
+    want = want[want["method"] == method]
+    for r in want[want["what"] == "change"].itertuples():
+        row = got.loc[CODES.get(str(r.subgroup), r.subgroup)]
+        assert row["change"] == pytest.approx(r.value, rel=1e-10)
+        assert row["se"] == pytest.approx(r.se, rel=1e-8)
+        assert row["df"] == r.df and row["covariance_from"] == "shared respondents"
+    for r in want[want["what"] == "gap change"].itertuples():
+        row = gaps[(gaps["first"] == CODES[str(r.subgroup)]) & (gaps["second"] == CODES[str(r.other)])].iloc[0]
+        assert row["change"] == pytest.approx(r.value, rel=1e-10)
+        assert row["se"] == pytest.approx(r.se, rel=1e-8)
+        assert row["df"] == r.df
+
+
 def _replicate_pairs_equal_r(study, folder, method):
     """Subgroups compared within a replicate-weight wave against R: svyby(covmat = TRUE) +
     svycontrast for each pair of school types, regTermTest for the test across the three, and

@@ -59,7 +59,7 @@ def test_a_hand_built_jackknife_equals_the_textbook_one(tmp_path):
     ("replicates: {method: jkn, columns: [rw1, rw2]}\n", "needs each replicate's scale"),
     ("replicates: {method: jk1}\n", "name the replicate weight columns"),
     ("strata: group\nreplicates: {method: jk1, columns: [rw1, rw2]}\n", "leave out strata"),
-    ("panel: true\nreplicates: {method: brr, prefix: rw, count: 4}\n", "leave out panel"),
+    ("waves_share_clusters: true\nreplicates: {method: brr, prefix: rw, count: 4}\n", "leave out waves_share_clusters"),
     ("replicates: {method: jkn, columns: [rw1, rw2], rscales: [0.5]}\n", "one scale per replicate"),
 ])
 def test_a_replicate_key_that_cannot_work_is_refused(extra, says):
@@ -112,3 +112,21 @@ def test_replicate_columns_are_checked_at_intake_and_stored(tmp_path):
     gaps = study.gaps(by="group").table  # from the replicates (checked against R in tests/test_against_r.py)
     pairs = gaps[gaps["comparison"] != "across all levels"]
     assert set(pairs["df"]) == {11.0}  # the rank of the 12 replicate weights minus one
+
+
+def test_a_panel_whose_waves_share_no_respondent_compares_them_as_independent(tmp_path):
+    # common practice, no source: with no respondent in both waves there is no covariance to take,
+    # and the change's variance is the sum of the two waves' replicate variances
+    rng = np.random.default_rng(5)
+    n = 30
+    (tmp_path / "book.yaml").write_text(BOOK.format(extra=f"panel: true\nreplicates: {{method: jk1, prefix: rw, "
+                                                          f"count: {n}}}\n"))
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    for label, date, prefix in (("2025-Q1", "2025-02-15", "a"), ("2025-Q2", "2025-05-15", "b")):
+        frame = _jk1_wave(rng, n).assign(rid=lambda f, p=prefix: p + f["rid"])
+        frame.to_csv(tmp_path / f"{label}.csv", index=False)
+        study.add(tmp_path / f"{label}.csv", label, date)
+    row = study.changes(by=[], metrics="mean_score").table.iloc[0]
+    est = study.estimates(by=[], metrics="mean_score").set_index("wave")
+    assert row["covariance_from"] == "none"
+    assert row["se"] ** 2 == pytest.approx(est.loc["2025-Q1", "se"] ** 2 + est.loc["2025-Q2", "se"] ** 2, rel=1e-12)

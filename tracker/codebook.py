@@ -549,9 +549,9 @@ def _parse_replicates(node: Any, doc: dict) -> Replicates | None:
     for key in ("strata", "clusters", "population", "weights_raked_to"):
         if doc.get(key):
             raise _err("replicates", f"replicate weights carry the design: leave out {key}")
-    if doc.get("panel") or doc.get("waves_share_clusters"):
-        raise _err("replicates", "replicate weights are taken as independent samples per wave: leave out panel and "
-                                 "waves_share_clusters")
+    if doc.get("waves_share_clusters"):
+        raise _err("replicates", "replicate weights carry the design, with no clusters to share: leave out "
+                                 "waves_share_clusters (a panel's waves share respondents: panel: true)")
     method = str(node.get("method"))
     if method not in REPLICATE_SCALE:
         raise _err("replicates.method", f"{shorten(repr(node.get('method')))}: give one of "

@@ -149,7 +149,8 @@ class Comparisons:
     def covariance(self, wave: str, other: str, ms: list, gs: list[str], now: pd.DataFrame, then: pd.DataFrame):
         """Covariance of two waves' estimates (tracker.estimates.wave_covariance): from the
         cached cluster totals when the waves share clusters, from the respondents when they
-        share respondents (found by the cached id hashes before any wave is read)."""
+        share respondents (found by the cached id hashes before any wave is read); for a
+        panel with replicate weights, from the replicates (replicate_cell_deviations)."""
         from .estimates import wave_covariance
         from .methods.variance import PsuTotals, cross_wave_covariance, shared_per_cell
 
@@ -168,6 +169,11 @@ class Comparisons:
         ha, hb = self.cells.id_hashes(wave), self.cells.id_hashes(other)
         if not book.panel or ha is None or hb is None or not np.intersect1d(ha, hb).size:
             return np.zeros(len(now)), 0, "", np.zeros(len(now))
+        if book.replicates is not None:  # a panel's longitudinal replicates: their covariance
+            from .estimates import replicate_cell_deviations
+
+            da, db = (replicate_cell_deviations(book, self.waves.load(w), ms, gs) for w in (wave, other))
+            return (da * db).sum(axis=0), da.shape[0], "respondents", np.full(len(now), float(da.shape[0]))
         return wave_covariance(book, self.waves.load(wave), self.waves.load(other), ms, gs, now, then, by_cluster=False)
 
     def mix(self, ms, others, wave, var, adjust, level) -> pd.DataFrame:

@@ -358,6 +358,42 @@ def _replicate_variance(reps, table: pd.DataFrame, D: np.ndarray, Ef: np.ndarray
     return var, np.full((L, M), R), np.full((L, M), df)
 
 
+def replicate_deviations(reps, W: np.ndarray, w: np.ndarray, D: np.ndarray, EY: np.ndarray,
+                         Ef: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each domain's (column of D) estimate and its replicates' deviations, scaled so that the
+    sum over replicates of the products of two deviations is their replicate covariance,
+    scale * sum_r rscales_r (a_r - a_c)(b_r - b_c), the centre the full-sample estimate
+    (``mse``) or the replicates' mean (R's svrepdesign; as :func:`_replicate_variance`).
+    W: respondents x replicates; EY, Ef: respondents x metrics. Returns value (J x M) and the
+    deviations (R x J x M; 0 where a replicate leaves a domain empty)."""
+    J, M, R = D.shape[1], EY.shape[1], W.shape[1]
+    value, dev = np.empty((J, M)), np.empty((R, J, M))
+    root = np.sqrt(reps.scale * np.asarray(reps.rscales, float))[:, None]
+    for j in range(J):  # a loop over domains: every replicate and metric at once
+        d = D[:, j].astype(float)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            value[j] = ((w * d) @ EY) / ((w * d) @ Ef)
+            theta = ((W * d[:, None]).T @ EY) / ((W * d[:, None]).T @ Ef)
+        centre = value[j][None] if reps.mse else theta.mean(axis=0)[None]
+        dev[:, j, :] = np.nan_to_num(root * (theta - centre))
+    return value, dev
+
+
+def replicate_cell_deviations(codebook: Codebook, table: pd.DataFrame, metrics: list[Metric],
+                              groups: list[str]) -> np.ndarray:
+    """The replicates' scaled deviations of every cell of :func:`cell_stats` (replicates x
+    cells, in its order): the sum of products of two waves' deviations of a cell is the
+    replicate covariance of its two estimates when replicate r of both waves comes from the
+    same sample units (a panel's longitudinal replicate weights)."""
+    reps = codebook.replicates
+    assert reps is not None  # called for replicate-weight studies only
+    Y, E = metric_matrix(codebook, table, metrics)
+    D, _levels = group_matrix(codebook, table, groups)
+    W = table[list(reps.columns)].to_numpy(dtype=float)
+    _value, dev = replicate_deviations(reps, W, weights_of(codebook, table), D, np.where(E, Y, 0.0), E.astype(float))
+    return dev.reshape(dev.shape[0], -1)
+
+
 def _level_sums(D: np.ndarray, unit: np.ndarray, n_units: int, weights: list[np.ndarray],
                 *mats: list[np.ndarray], tags: tuple[str, ...] = (),
                 memo: dict | None = None) -> list[list[np.ndarray]]:

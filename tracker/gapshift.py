@@ -61,8 +61,14 @@ def _cross(study, now, then, a_cols, b_cols):
     shares = (book.clusters and book.waves_share_clusters) or (not book.clusters and book.panel)
     if not shares:
         return 0.0, 0, "none"
-    ga = now.psu_totals(now.totals[:, a_cols[0], :] - now.totals[:, a_cols[1], :])
-    gb = then.psu_totals(then.totals[:, b_cols[0], :] - then.totals[:, b_cols[1], :])
+    da = now.totals[:, a_cols[0], :] - now.totals[:, a_cols[1], :]
+    db = then.totals[:, b_cols[0], :] - then.totals[:, b_cols[1], :]
+    if now.replicate_df is not None:  # a panel's longitudinal replicates: the scaled deviations' products
+        ha, hb = study.cellstore.id_hashes(now.wave), study.cellstore.id_hashes(then.wave)
+        if ha is None or hb is None or not np.intersect1d(ha, hb).size:
+            return 0.0, 0, "none"
+        return (da * db).sum(axis=0), da.shape[0], "panel"
+    ga, gb = now.psu_totals(da), then.psu_totals(db)
     cov, shared = cross_wave_covariance(ga, now.keys, gb, then.keys, book.single_cluster_rule)
     return (cov, shared, "clusters" if book.clusters else "panel") if shared else (0.0, 0, "none")
 

@@ -203,25 +203,16 @@ def _replicate_domains(book, table: pd.DataFrame, wave: str, metric_list: list, 
     replicate covariance, scale * sum_r rscales_r (a_r - a_c)(b_r - b_c) (tracker.estimates,
     replicate variance); df the rank of the replicate weights minus one."""
     from .cells import metric_matrix
-    from .estimates import weights_of
+    from .estimates import replicate_deviations, weights_of
 
     reps = book.replicates
     Y, E = metric_matrix(book, table, metric_list)
     Dm, names = _domains(book, table, groups)
     W = table[list(reps.columns)].to_numpy(dtype=float)
-    w = weights_of(book, table)
-    J, M, R = Dm.shape[1], len(metric_list), W.shape[1]
     EY, Ef = np.where(E, Y, 0.0), E.astype(float)
-    value, base, dev = np.empty((J, M)), np.empty((J, M)), np.empty((R, J, M))
-    root = np.sqrt(reps.scale * np.asarray(reps.rscales, float))[:, None]
-    for j in range(J):  # a loop over domains: every replicate and metric at once
-        d = Dm[:, j]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            value[j] = ((w * d) @ EY) / ((w * d) @ Ef)
-            theta = ((W * d[:, None]).T @ EY) / ((W * d[:, None]).T @ Ef)
-        base[j] = d.astype(float) @ Ef
-        centre = value[j][None] if reps.mse else theta.mean(axis=0)[None]
-        dev[:, j, :] = np.nan_to_num(root * (theta - centre))
+    value, dev = replicate_deviations(reps, W, weights_of(book, table), Dm, EY, Ef)
+    base = Dm.astype(float).T @ Ef
+    R, J, M = dev.shape
     held = np.ones((R, J, M), bool)
     return WaveDomains(wave, names, value, base, dev, held, np.zeros(R, np.int64), 1, None,
                        np.arange(R).astype(str), book.single_cluster_rule, float(np.linalg.matrix_rank(W) - 1))

@@ -185,3 +185,31 @@ for (cell in list(c("total", "Total", "TRUE"), c("awards", "Yes", "awards == 1")
                                            api00_se = SE(m)[[1]])
 }
 write.csv(do.call(rbind, raked), file.path(out, "rep_raked_reference.csv"), row.names = FALSE)
+
+# a panel with replicate weights: the same schools in 1999 and 2000 (api99, api00), each school's
+# replicate weights the same in both years; the change, and the change of a gap between school
+# types, by svycontrast on svyby(covmat = TRUE)
+rep_panel <- list()
+for (method in names(rep_designs)) {
+  spec <- rep_designs[[method]]
+  d <- read.csv(file.path(out, paste0(spec$name, ".csv")))
+  rdes <- update(spec$make(d), stype_f = factor(stype))
+  tot <- svycontrast(svymean(~api00 + api99, rdes), c(api00 = 1, api99 = -1))
+  rep_panel[[length(rep_panel) + 1]] <- data.frame(method = method, what = "change", subgroup = "Total",
+    other = "", value = as.vector(coef(tot)), se = as.vector(SE(tot)), df = degf(rdes))
+  by <- svyby(~api00 + api99, ~stype_f, rdes, svymean, covmat = TRUE)
+  # coef order: api00 for E, H, M, then api99 for E, H, M
+  for (k in 1:3) {
+    w <- rep(0, 6); w[k] <- 1; w[k + 3] <- -1
+    ch <- svycontrast(by, w)
+    rep_panel[[length(rep_panel) + 1]] <- data.frame(method = method, what = "change", subgroup = levels(by$stype_f)[k],
+      other = "", value = as.vector(coef(ch)), se = as.vector(SE(ch)), df = degf(rdes))
+  }
+  for (pr in list(c(1, 2), c(1, 3), c(2, 3))) {
+    w <- rep(0, 6); w[pr[1]] <- 1; w[pr[2]] <- -1; w[pr[1] + 3] <- -1; w[pr[2] + 3] <- 1
+    g <- svycontrast(by, w)
+    rep_panel[[length(rep_panel) + 1]] <- data.frame(method = method, what = "gap change",
+      subgroup = pr[1], other = pr[2], value = as.vector(coef(g)), se = as.vector(SE(g)), df = degf(rdes))
+  }
+}
+write.csv(do.call(rbind, rep_panel), file.path(out, "replicate_panel.csv"), row.names = FALSE)
