@@ -486,6 +486,40 @@ def part_wide_header(tmp: Path, rows: list) -> None:
         rows.append((f"cli check of a header of {k:,} columns", f"{sec:.2f} s", f"peak {mb:,.0f} MB"))
 
 
+def part_seasons(rows: list) -> None:
+    """The cost of the codebook's seasons: 12 on trends, expected ranges and the smoother: 3,000
+    monthly series (metric x subgroup) of 24 waves, the library functions timed with and
+    without the key (median of 3 runs)."""
+    from tracker.expected import predict
+    from tracker.smoothing import smooth_estimates
+    from tracker.trends import fit_trends
+
+    rng = np.random.default_rng(5)
+    S, K = 3000, 24
+    dates = [f"{2024 + i // 12}-{i % 12 + 1:02d}-15" for i in range(K)]
+    y = 0.6 + 0.03 * np.sin(2 * np.pi * np.arange(K) / 12)[None] + rng.normal(0, 0.02, (S, K))
+    est = pd.DataFrame({"metric": np.repeat([f"m{i}" for i in range(S)], K), "metric_label": "m", "kind": "share",
+                        "group": "total", "subgroup": "Total", "wave": np.tile([f"W{i:02d}" for i in range(K)], S),
+                        "fieldwork_date": np.tile(dates, S), "value": y.ravel(), "se": 0.016, "reliable": True,
+                        "base": 1000, "effective_base": 900.0})
+
+    def timed(fn) -> float:
+        times = []
+        for _ in range(3):
+            t = time.perf_counter()
+            fn()
+            times.append(time.perf_counter() - t)
+        return float(np.median(times))
+
+    pats = fit_trends(est)
+    for what, fn in (("trends", lambda c: fit_trends(est, cycle=c)),
+                     ("expected ranges", lambda c: predict(est, pats, "2026-01-15", cycle=c)),
+                     ("smoother", lambda c: smooth_estimates(est, {}, 0.95, c))):
+        plain, seasonal = timed(lambda: fn(None)), timed(lambda: fn(12))
+        rows.append((f"{what} of {S:,} monthly series of {K} waves, seasons: 12", f"{seasonal:.2f} s",
+                     f"{plain:.2f} s without the key ({seasonal / plain:.1f}x)"))
+
+
 class Rows(list):
     """The result rows, each printed as it comes (the whole run takes a while)."""
 
@@ -511,6 +545,7 @@ def main() -> None:
     ap.add_argument("--ten-million", action="store_true", help="also the 10,000,000-respondent study (scale extra)")
     ap.add_argument("--wide-header", action="store_true", help="only the check of headers of 20,000 to 80,000 columns")
     ap.add_argument("--intake", action="store_true", help="only the add of a 1,000,000-row wave against its floor")
+    ap.add_argument("--seasons", action="store_true", help="only the cost of the seasons key (library functions)")
     args = ap.parse_args()
     print(f"machine: {machine()}; {time.strftime('%Y-%m-%d')}")
     print("| measurement | time | note |\n|---|---|---|", flush=True)
@@ -522,6 +557,9 @@ def main() -> None:
         if args.intake:
             part_intake(Path(tmp), rows)
             return
+        if args.seasons:
+            part_seasons(rows)
+            return
         part_clustered(Path(tmp), rows, args.quick)
         if not args.quick:
             part_cost(rows)
@@ -529,6 +567,7 @@ def main() -> None:
             part_intake(Path(tmp), rows)
             part_growth(Path(tmp), rows)
             part_wide_header(Path(tmp), rows)
+            part_seasons(rows)
             if args.ten_million:
                 part_ten_million(Path(tmp), rows)
 
