@@ -187,3 +187,29 @@ def test_seasonal_prediction_is_the_likelihood_weighted_mixture_of_mixed_models(
     assert pred["expected"] == pytest.approx(float(x_new @ mean), rel=1e-9)
     assert pred["fit_sd"] ** 2 == pytest.approx(float(x_new @ cov @ x_new), rel=1e-7)
     assert bool(pred["seasonal"])
+
+
+def test_quarterly_seasons_are_the_same_mixture():
+    # reference: tests/seasonal_reference.py, for a quarterly cycle (the yearly wave and the
+    # alternating quarter-to-quarter harmonic)
+    from tracker.expected import predict
+    from tracker.trends import fit_trends, season_columns
+
+    from .seasonal_reference import mixture
+
+    rng = np.random.default_rng(21)
+    K, se = 12, 0.016
+    dates = [f"{2020 + i // 4}-{3 * (i % 4) + 2:02d}-15" for i in range(K)]
+    y = 0.6 + 0.04 * np.cos(2 * np.pi * np.arange(K) / 4) + rng.normal(0, se, K)
+    hist = pd.DataFrame({"metric": "m", "metric_label": "m", "kind": "share", "group": "total", "subgroup": "Total",
+                         "wave": [f"W{i:02d}" for i in range(K)], "fieldwork_date": dates, "value": y, "se": se,
+                         "reliable": True, "base": 1000, "effective_base": 900.0})
+    pred = predict(hist, fit_trends(hist), "2023-02-15", cycle=4).iloc[0]
+    years = np.array([(pd.Timestamp(d) - pd.Timestamp(dates[0])).days / 365.25 for d in dates])
+    mean, cov, p_seasons = mixture(y, np.full(K, se**2), np.column_stack([np.ones(K), years - years.mean()]),
+                                   season_columns(dates, 4))
+    t_new = (pd.Timestamp("2023-02-15") - pd.Timestamp(dates[0])).days / 365.25 - years.mean()
+    x_new = np.concatenate([[1.0, t_new], season_columns(["2023-02-15"], 4)[0]])
+    assert p_seasons > 0.9 and bool(pred["seasonal"])
+    assert pred["expected"] == pytest.approx(float(x_new @ mean), rel=1e-9)
+    assert pred["fit_sd"] ** 2 == pytest.approx(float(x_new @ cov @ x_new), rel=1e-7)

@@ -259,3 +259,69 @@ def test_season_harmonics_span_the_seasons(cycle):
     coef = np.linalg.lstsq(both, dummies, rcond=None)[0]
     assert np.allclose(both @ coef, dummies, atol=1e-12)
     assert np.allclose(H[:12].sum(axis=0), 0.0, atol=1e-12)
+
+
+SEASONAL_BOOK = """title: monthly pulse
+id: rid
+weight: w
+{extra}variables:
+  happy: {{type: category, codes: {{0: "no", 1: "yes"}}}}
+metrics:
+  happy_yes: {{variable: happy, share: [1]}}
+"""
+
+
+@pytest.fixture(scope="module")
+def monthly_studies(tmp_path_factory):
+    """Two studies of the same 26 monthly waves (400 respondents each, a yes share that follows
+    a 10-point yearly wave), one declaring seasons: 12."""
+    from tracker import Study
+
+    tmp = tmp_path_factory.mktemp("monthly")
+    rng = np.random.default_rng(12)
+    files = []
+    for i in range(26):
+        p = 0.6 + 0.1 * np.sin(2 * np.pi * i / 12)
+        frame = pd.DataFrame({"rid": [f"r{i}_{k}" for k in range(400)], "w": rng.uniform(0.5, 1.5, 400),
+                              "happy": (rng.random(400) < p).astype(int)})
+        frame.to_csv(tmp / f"m{i}.csv", index=False)
+        files.append((tmp / f"m{i}.csv", f"{2024 + i // 12}-{i % 12 + 1:02d}", f"{2024 + i // 12}-{i % 12 + 1:02d}-15"))
+    studies = {}
+    for name, extra in (("plain", ""), ("seasonal", "seasons: 12\n")):
+        (tmp / f"{name}.yaml").write_text(SEASONAL_BOOK.format(extra=extra))
+        study = Study.create(tmp / name, tmp / f"{name}.yaml")
+        for path, label, date in files:
+            study.add(path, label, date)
+        studies[name] = study
+    return studies
+
+
+def test_the_seasons_key_reaches_trends_ranges_and_the_smoother(monthly_studies):
+    # reference: the library functions on the study's own estimates with the cycle given (the
+    # command line and the study add nothing to them); and without the key, none of it
+    from tracker.expected import predict
+    from tracker.smoothing import smooth_estimates
+
+    seasonal, plain = monthly_studies["seasonal"], monthly_studies["plain"]
+    est = seasonal.estimates()
+    want = fit_trends(est, adjust="bh", cycle=12).iloc[0]
+    got = seasonal.trends().iloc[0]
+    assert got["slope_per_year"] == pytest.approx(want["slope_per_year"], rel=1e-12)
+    assert "slope net of seasonal effects" in got["note"]
+    assert "seasonal" not in plain.trends().iloc[0]["note"]
+    assert got["pattern"] == "no pattern found"  # the yearly wave alone is not a pattern once it is fitted
+    # without the key the yearly wave is taken for wave-to-wave noise
+    assert plain.trends().iloc[0]["wave_to_wave_sd"] > 2 * got["wave_to_wave_sd"]
+    ranges = CliRunner().invoke(main, ["expect", str(seasonal.root), "--format", "csv"])
+    assert ranges.exit_code == 0 and "with seasonal effects" in ranges.output
+    # the expected range: the latest 24 waves (the window), the expected base's sampling variance
+    ranged = seasonal.expected()
+    rng_row = ranged.iloc[0]
+    hist = seasonal.estimates(waves=seasonal.labels[-24:])
+    pred = predict(hist, fit_trends(hist, cycle=12), ranged.attrs["date"],
+                   pd.Series({("happy_yes", "total", "Total"): rng_row["sampling_sd"] ** 2}), cycle=12).iloc[0]
+    row = pd.read_csv(__import__("io").StringIO(ranges.output)).iloc[0]
+    assert row["expected"] == pytest.approx(pred["expected"], rel=1e-9) == rng_row["expected"]
+    assert plain.expected().iloc[0]["expected"] != pytest.approx(rng_row["expected"], rel=1e-3)
+    smoothed = seasonal.smoothed()
+    assert np.allclose(smoothed["smoothed"], smooth_estimates(est, {}, 0.95, 12)["smoothed"], rtol=0, atol=1e-12)
