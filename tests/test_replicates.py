@@ -130,3 +130,17 @@ def test_a_panel_whose_waves_share_no_respondent_compares_them_as_independent(tm
     est = study.estimates(by=[], metrics="mean_score").set_index("wave")
     assert row["covariance_from"] == "none"
     assert row["se"] ** 2 == pytest.approx(est.loc["2025-Q1", "se"] ** 2 + est.loc["2025-Q2", "se"] ** 2, rel=1e-12)
+
+
+def test_the_brief_of_a_replicate_study_names_its_variance_method(tmp_path):
+    from tracker.brief import build_brief
+
+    rng = np.random.default_rng(6)
+    n = 30
+    (tmp_path / "book.yaml").write_text(BOOK.format(extra=f"replicates: {{method: jk1, prefix: rw, count: {n}}}\n"))
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    for label, date in (("2025-Q1", "2025-02-15"), ("2025-Q2", "2025-05-15")):
+        _jk1_wave(rng, n).to_csv(tmp_path / f"{label}.csv", index=False)
+        study.add(tmp_path / f"{label}.csv", label, date)
+    said = " ".join(i.text if hasattr(i, "text") else str(i) for i in build_brief(study, charts=False).method)
+    assert "30 replicate weights (the delete-a-group jackknife, JK1) rather than from linearization" in said

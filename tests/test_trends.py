@@ -325,3 +325,14 @@ def test_the_seasons_key_reaches_trends_ranges_and_the_smoother(monthly_studies)
     assert plain.expected().iloc[0]["expected"] != pytest.approx(rng_row["expected"], rel=1e-3)
     smoothed = seasonal.smoothed()
     assert np.allclose(smoothed["smoothed"], smooth_estimates(est, {}, 0.95, 12)["smoothed"], rtol=0, atol=1e-12)
+
+
+def test_the_brief_of_a_seasonal_study_says_how_seasons_are_treated(monthly_studies):
+    from tracker.brief import build_brief
+
+    said = " ".join(i.text if hasattr(i, "text") else str(i)
+                    for i in build_brief(monthly_studies["seasonal"], charts=False).method)
+    assert "the waves follow a cycle of 12 months" in said and "a year ago compares the same season" in said
+    plain = " ".join(i.text if hasattr(i, "text") else str(i)
+                     for i in build_brief(monthly_studies["plain"], charts=False).method)
+    assert "cycle of" not in plain

@@ -27,6 +27,7 @@ from .wording import (
     not_tested_sentence,
     p_text,
     plural,
+    study_lines,
     trend_sentence,
 )
 
@@ -140,7 +141,8 @@ def build_brief(study, wave: str | None = None, against: str = "previous", adjus
         ("Each change is shown with its interval adjusted for all the comparisons made together: a change is called "
         "significant exactly when that interval leaves out zero."),
     )
-    method = method_lines(adjust, level, adj_level, family, n_sig, bool(matters)) + design_lines(result)
+    method = (method_lines(adjust, level, adj_level, family, n_sig, bool(matters)) + study_lines(study.codebook)
+              + design_lines(result))
     sub = moves["sub_rows"]
     tables = {
         "Headline": moves["head_rows"][_TABLE_COLS].reset_index(drop=True),

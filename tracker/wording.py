@@ -37,6 +37,7 @@ __all__ = [
     "plural",
     "shown_change",
     "slopes_sentence",
+    "study_lines",
     "trend_sentence",
 ]
 
@@ -248,6 +249,28 @@ def method_lines(adjust: str, level: float, adj_level: float, family: int, n_sig
         "extraction for repeated surveys, Scott and Smith 1974)."),
         "The make-up of the sample is compared with a Rao-Scott corrected test on the weighted shares.",
     )
+
+
+#: How a replicate method is named in the brief's method section.
+REPLICATE_NAMES = {"jk1": "the delete-a-group jackknife, JK1", "jkn": "the stratified jackknife, JKn",
+                   "brr": "balanced repeated replication", "fay": "Fay's balanced repeated replication",
+                   "bootstrap": "the bootstrap", "sdr": "successive difference replication"}
+
+
+def study_lines(book) -> tuple[str, ...]:
+    """What the study's codebook changes in the method: replicate weights instead of
+    linearization, and seasons fitted in the series."""
+    out = []
+    if book.replicates is not None:
+        out.append(f"Variances here come from the study's {len(book.replicates.columns)} replicate weights "
+                   f"({REPLICATE_NAMES[book.replicates.method]}) rather than from linearization, and their degrees "
+                   f"of freedom from the replicates.")
+    if book.seasons:
+        cycle = "12 months" if book.seasons == 12 else "4 quarters"
+        out.append(f"Seasons: the codebook says the waves follow a cycle of {cycle}. A series with two cycles of waves "
+                   f"has its seasons fitted as far as its waves show them, in its trend, its expected range and its "
+                   f"smoothed line; a change against a year ago compares the same season.")
+    return tuple(out)
 
 
 def design_lines(result) -> tuple[str, ...]:
