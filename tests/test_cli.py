@@ -154,7 +154,7 @@ def test_nothing_moved_says_so_instead_of_an_empty_table(demo_study):
 
 # -- shared options, formats of the quick commands, help, quiet, progress --------------------
 
-COMMANDS = ["draft", "new", "check", "add", "waves", "amend", "remove", "rename", "verify", "prepare", "estimates", "answers", "changes", "gaps",
+COMMANDS = ["draft", "new", "check", "add", "waves", "amend", "remove", "rename", "verify", "prepare", "replicates", "estimates", "answers", "changes", "gaps",
             "drivers", "trends", "expect", "surprises",
             "composition", "chart", "brief", "demo"]
 

@@ -144,3 +144,40 @@ def test_the_brief_of_a_replicate_study_names_its_variance_method(tmp_path):
         study.add(tmp_path / f"{label}.csv", label, date)
     said = " ".join(i.text if hasattr(i, "text") else str(i) for i in build_brief(study, charts=False).method)
     assert "30 replicate weights (the delete-a-group jackknife, JK1) rather than from linearization" in said
+
+
+def test_building_replicates_refuses_what_cannot_be_built(tmp_path):
+    # common practice, no source: a jackknife drops one PSU of a stratum and needs another to
+    # carry its weight; JK1 is the jackknife of a design without strata
+    from click.testing import CliRunner
+
+    from tracker.cli import main
+    from tracker.replication import build_replicates
+
+    w = np.ones(6)
+    with pytest.raises(TrackerError, match="1 stratum\\(s\\) hold a single PSU"):
+        build_replicates(w, np.array([0, 0, 0, 1, 1, 1]), np.array([0, 1, 2, 3, 3, 3]), "jkn")
+    with pytest.raises(TrackerError, match="use jkn"):
+        build_replicates(w, np.array([0, 0, 0, 1, 1, 1]), None, "jk1")
+    rng = np.random.default_rng(7)
+    (tmp_path / "book.yaml").write_text(BOOK.format(extra="replicates: {method: jk1, prefix: rw, count: 30}\n"))
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    _jk1_wave(rng).to_csv(tmp_path / "w.csv", index=False)
+    study.add(tmp_path / "w.csv", "2025-Q1", "2025-02-15")
+    done = CliRunner().invoke(main, ["replicates", str(tmp_path / "s"), "-o", str(tmp_path / "r.csv")])
+    assert done.exit_code == 1 and "already carries replicate weights" in done.output
+    done = CliRunner().invoke(main, ["replicates", str(tmp_path / "s"), "-o", str(tmp_path / "r.txt")])
+    assert done.exit_code == 1 and "give a file ending in .csv or .parquet" in done.output
+    assert not (tmp_path / "r.csv").exists() and not (tmp_path / "r.txt").exists()
+
+
+def test_a_jackknife_of_one_stratum_is_the_textbook_delete_one_jackknife():
+    # Wolter 2007, ch. 4: replicate k drops unit k and weights the rest by n / (n - 1); the JK1
+    # scale is (n - 1) / n (computed here with numpy)
+    from tracker.replication import build_replicates
+
+    w = np.array([1.0, 2.0, 1.5, 0.5, 3.0])
+    W, scale, rscales = build_replicates(w, None, None, "jk1")
+    want = np.where(np.eye(5) == 1, 0.0, w[:, None] * 5 / 4)
+    np.testing.assert_allclose(W, want, rtol=1e-15)
+    assert scale == pytest.approx(4 / 5) and np.all(rscales == 1.0)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import io
 import os
 import re
 import sys
@@ -494,6 +495,54 @@ def prepare_cmd(study, engine, workers, scheduler, rebuild):
 
     for line in prepare(Study(study), engine=engine, workers=workers, scheduler=scheduler, rebuild=rebuild).lines():
         say(line)
+
+
+@main.command("replicates", short_help="Build replicate weights for a wave from its design.")
+@click.argument("study", type=click.Path(file_okay=False))
+@wave_option("The wave (default: the latest).")
+@click.option("--method", type=click.Choice(["jk1", "jkn", "bootstrap"]), default="jkn", show_default=True,
+              help="jk1 = delete-one-PSU jackknife (no strata); jkn = the jackknife within strata; bootstrap = "
+                   "rescaled bootstrap of PSUs within strata.")
+@click.option("--count", type=click.IntRange(min=2), default=200, show_default=True,
+              help="Bootstrap replicates.")
+@click.option("--seed", type=int, default=1, show_default=True, help="The bootstrap's random seed.")
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False),
+              help="weights.csv or weights.parquet: each respondent's id and replicate weights rw1, rw2, ...")
+@user_errors
+def replicates_cmd(study, wave, method, count, seed, output):
+    """Build replicate weights for a stored wave from the codebook's strata, clusters and weights,
+    and print the codebook lines that declare them.
+
+    \b
+    Example:  tracker replicates demo-study --method jkn -o weights.csv
+    """
+    from .outputs import check_output, write_output
+    from .replication import replicate_weights
+
+    suffix = Path(output).suffix.lower()
+    if suffix not in (".csv", ".parquet"):
+        raise TrackerError(f"{output}: give a file ending in .csv or .parquet")
+    check_output(output)
+    s = Study(study)
+    built = replicate_weights(s, wave or s.labels[-1], method, count, seed)
+    if suffix == ".csv":
+        data = built.weights.to_csv(index=False, float_format="%.17g").encode("utf-8")
+    else:
+        buf = io.BytesIO()
+        built.weights.to_parquet(buf, index=False)
+        data = buf.getvalue()
+    say(f"wrote {write_output(output, data)}: {built.weights.shape[1] - 1:,} replicate weights for "
+        f"{len(built.weights):,} respondents")
+    if built.from_unraked:
+        echo("the wave was raked: these replicates are of its weights before raking; rake each to the same "
+             "targets (tracker add --rake does so when the codebook declares them)")
+    key = built.codebook_key()
+    if len(key) <= 600:
+        echo("declare them in the codebook (the columns joined to the wave file):")
+        echo(key.rstrip())
+    else:  # a long list of per-replicate scales: beside the weights, not on the screen
+        path = write_output(Path(output).with_suffix(".replicates.yaml"), key.encode("utf-8"))
+        echo(f"declare them in the codebook (the columns joined to the wave file) with the key in {path}")
 
 
 @main.command("estimates", short_help="Every metric by wave and subgroup, with intervals.")

@@ -213,3 +213,13 @@ for (method in names(rep_designs)) {
   }
 }
 write.csv(do.call(rbind, rep_panel), file.path(out, "replicate_panel.csv"), row.names = FALSE)
+
+# replicate weights built from a design with a finite population correction: apistrat as JKn
+# with fpc (each replicate's scale carries 1 - n_h / N_h)
+d <- read.csv(file.path(out, "apistrat.csv"))
+rdes <- as.svrepdesign(svydesign(id = ~1, strata = ~stype, weights = ~pw, fpc = ~fpc, data = d), type = "JKn")
+w <- weights(rdes, "analysis")
+colnames(w) <- paste0("rw", seq_len(ncol(w)))
+write.csv(cbind(d["snum"], w), file.path(out, "rep_jkn_fpc.csv"), row.names = FALSE)
+write.csv(data.frame(rscales = rdes$rscales, scale = rdes$scale), file.path(out, "rep_jkn_fpc_scales.csv"),
+          row.names = FALSE)
