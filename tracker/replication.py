@@ -43,7 +43,7 @@ class ReplicateSet:
         """The codebook lines that declare these weights (the key replicates)."""
         lines = ["replicates:", f"  method: {self.method}", f"  prefix: {self.prefix}",
                  f"  count: {len(self.rscales)}", f"  scale: {self.scale!r}"]
-        if self.method == "jkn":
+        if self.method == "jkn" or len(set(self.rscales)) > 1 or self.rscales[0] != 1.0:
             lines.append(f"  rscales: [{', '.join(repr(x) for x in self.rscales)}]")
         return "\n".join(lines) + "\n"
 
@@ -55,8 +55,8 @@ def build_replicates(weights: np.ndarray, strata: np.ndarray | None, psu: np.nda
     variance's scale and per-replicate scales, V = scale * sum_r rscales_r (theta_r - centre)^2.
 
     - ``jk1`` (no strata): replicate j sets PSU j's weights to 0 and multiplies the others by
-      n / (n - 1); scale (n - 1) / n. R's ``as.svrepdesign(type = "JK1")`` (Wolter 2007,
-      *Introduction to Variance Estimation*, ch. 4).
+      n / (n - 1); scale (n - 1) / n, rscales 1 - f with a finite population correction. R's
+      ``as.svrepdesign(type = "JK1")`` (Wolter 2007, *Introduction to Variance Estimation*, ch. 4).
     - ``jkn``: replicate (h, j) sets PSU j of stratum h to 0 and multiplies the other PSUs of h by
       n_h / (n_h - 1), other strata unchanged; rscales (n_h - 1) / n_h, times 1 - f_h with a
       finite population correction (``fpc``: 1 - f_h per stratum); scale 1. R's
@@ -94,7 +94,8 @@ def build_replicates(weights: np.ndarray, strata: np.ndarray | None, psu: np.nda
         factor = np.where(same, grow[None, :], 1.0)
         factor[np.arange(P), np.arange(P)] = 0.0
         if method == "jk1":
-            return weights[:, None] * factor[psu_id], (P - 1) / P, np.ones(P)
+            rscales = np.ones(P) * (1.0 if fpc is None else float(np.asarray(fpc, float)[0]))
+            return weights[:, None] * factor[psu_id], (P - 1) / P, rscales
         rscales = ((n_h - 1) / n_h)[psu_stratum] * (1.0 if fpc is None else np.asarray(fpc, float)[psu_stratum])
         return weights[:, None] * factor[psu_id], 1.0, rscales
     if method != "bootstrap":
