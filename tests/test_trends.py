@@ -238,7 +238,7 @@ def test_a_seasonal_slope_is_that_of_the_seasons_model():
     mean, cov, _ = mixture(y, np.full(K, se**2), np.column_stack([np.ones(K), years - years.mean()]),
                            season_columns(dates, 12))
     assert got["slope_per_year"] == pytest.approx(mean[1], rel=1e-9)
-    assert "slope net of seasonal effects" in got["note"]
+    assert "slope and pattern net of seasonal effects" in got["note"]
     plain = fit_trends(est).iloc[0]
     assert plain["wave_to_wave_sd"] > got["wave_to_wave_sd"]  # the seasons were noise to the plain line
 
@@ -307,7 +307,7 @@ def test_the_seasons_key_reaches_trends_ranges_and_the_smoother(monthly_studies)
     want = fit_trends(est, adjust="bh", cycle=12).iloc[0]
     got = seasonal.trends().iloc[0]
     assert got["slope_per_year"] == pytest.approx(want["slope_per_year"], rel=1e-12)
-    assert "slope net of seasonal effects" in got["note"]
+    assert "slope and pattern net of seasonal effects" in got["note"]
     assert "seasonal" not in plain.trends().iloc[0]["note"]
     assert got["pattern"] == "no pattern found"  # the yearly wave alone is not a pattern once it is fitted
     # without the key the yearly wave is taken for wave-to-wave noise

@@ -118,9 +118,9 @@ def season_columns(dates, cycle: int) -> np.ndarray:
 
 
 #: Prior odds of a series having no seasons at all under the seasons key (two to one: most
-#: questions of a study do not follow its cycle), and the
-#: smallest seasonal variance the alternative considers, per unit of the mean sampling
-#: variance (both set by the seeded simulation of docs/validation.md).
+#: questions of a study do not follow its cycle), and the smallest seasonal variance the
+#: alternative considers, per unit of the mean sampling variance (both set by the seeded
+#: simulation of docs/validation.md).
 NO_SEASON_ODDS = 2.0
 SMALLEST_SEASON = 0.15
 
@@ -140,8 +140,9 @@ def seasonal_regression(y: np.ndarray, v: np.ndarray, X: np.ndarray, mask: np.nd
     estimates s (covariance C), which carry the restricted likelihood of the variances:
     s ~ N(0, C + D), D = diag(sigma_1^2, sigma_1^2, sigma_r^2, ...), and s ~ N(0, C) without
     seasons. Over a log-spaced grid of both variances (SMALLEST_SEASON to 10 times the mean
-    sampling variance, 8 x 5 points, a flat prior on the logs) the coefficients solve Henderson's mixed-model
-    equations (Henderson 1975, Biometrics 31:423), (X'WX + blockdiag(0, D^-1)) b = X'Wy,
+    sampling variance, 8 x 5 points, a flat prior on the logs) the coefficients solve
+    Henderson's mixed-model equations (Henderson 1975, Biometrics 31:423),
+    (X'WX + blockdiag(0, D^-1)) b = X'Wy,
     W = 1/(v + tau^2), whose inverse is the covariance of b's errors (the plain coefficients
     and the seasons' predictions). The result is the mixture's mean and covariance, so a
     prediction's variance carries the models' and the variances' uncertainty: a series whose
@@ -327,7 +328,7 @@ def fit_trends(est: pd.DataFrame, segment_start: dict[str, str] | None = None, a
                                    if m in segment_start else "").to_numpy(object)
         note = np.where(seg != "", np.where(note != "", seg + "; " + note, seg), note)
     if trend["seasonal"].any():
-        said = "slope net of seasonal effects"
+        said = "slope and pattern net of seasonal effects"
         note = np.where(trend["seasonal"], np.where(note != "", note + "; " + said, said), note)
     j = tests["step_at"]
     out = pd.DataFrame({
