@@ -336,3 +336,19 @@ def test_the_brief_of_a_seasonal_study_says_how_seasons_are_treated(monthly_stud
     plain = " ".join(i.text if hasattr(i, "text") else str(i)
                      for i in build_brief(monthly_studies["plain"], charts=False).method)
     assert "cycle of" not in plain
+
+
+def test_seasons_need_every_season_twice():
+    # common practice, no source: a season's effect rests on more than one wave; a survey fielded
+    # every other month never sees half the months and is fitted without seasons
+    from tracker.trends import seasons_covered
+
+    monthly = [f"{2020 + i // 12}-{i % 12 + 1:02d}-15" for i in range(24)]
+    ok = np.ones((3, 24), bool)
+    ok[1, 5] = False  # June seen once
+    assert seasons_covered(ok, monthly, 12).tolist() == [True, False, True]
+    bimonthly = [f"{2020 + (2 * i) // 12}-{(2 * i) % 12 + 1:02d}-15" for i in range(30)]
+    assert not seasons_covered(np.ones((1, 30), bool), bimonthly, 12)[0]
+    quarterly = [f"{2020 + i // 4}-{3 * (i % 4) + 2:02d}-15" for i in range(8)]
+    assert seasons_covered(np.ones((1, 8), bool), quarterly, 4)[0]
+    assert not seasons_covered(np.ones((1, 8), bool), quarterly, None)[0]

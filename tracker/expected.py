@@ -29,7 +29,7 @@ import pandas as pd
 
 from .methods.distributions import t_ppf, t_sf
 from .methods.tests import adjust_pvalues
-from .trends import MIN_WAVES, _series_arrays, meta_regression, seasonal_regression
+from .trends import MIN_WAVES, _series_arrays, meta_regression, seasonal_regression, seasons_covered
 
 __all__ = ["MODELS", "RANGE_COLUMNS", "SURPRISE_COLUMNS", "WINDOW", "basis_text", "next_ranges", "predict",
            "recent_mask", "shown",
@@ -75,7 +75,7 @@ def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.
     per series with expected, the interval (low, high), the standard deviations of its
     parts and the degrees of freedom; a series with fewer than MIN_WAVES usable waves, or
     not fitted, gets NaN and its reason in ``basis``. With a seasonal ``cycle`` (12 or 4) a
-    series fitted on at least two cycles of waves gets seasonal effects in its line as far as
+    series whose fitted waves cover every season twice gets seasonal effects in its line as far as
     its waves show them (tracker.trends.seasonal_regression), and the new wave its season's.
     """
     series, waves, y, v, ok, years = _series_arrays(hist, segment_start)
@@ -122,11 +122,12 @@ def predict(hist: pd.DataFrame, patterns: pd.DataFrame, at_date: str, v_new: pd.
             X = np.stack([one, np.where(oo, years[None, :] - tbar[:, None], 0.0)], axis=2)
             x_new = np.stack([np.ones(rows.size), t_new - tbar], axis=1)
             k[rows] = oo.sum(axis=1)
-        # with a seasonal cycle, series with two cycles of waves get seasonal effects; the
-        # others are fitted as before
+        # with a seasonal cycle, series that cover every season twice get seasonal effects;
+        # the others are fitted as before
         parts = [(np.ones(rows.size, bool), X, x_new)]
         if cycle:
-            enough = oo.sum(axis=1) >= 2 * cycle
+            dates = hist.drop_duplicates("wave").set_index("wave")["fieldwork_date"]
+            enough = seasons_covered(oo, [dates[w] for w in waves], cycle)
             Xs, xs = _with_seasons(X, x_new, hist, waves, at_date, cycle)
             parts = [(enough, Xs, xs), (~enough, X, x_new)]
             seasonal[rows] = enough

@@ -21,14 +21,14 @@ def smooth_estimates(est: pd.DataFrame, segment_starts: dict[str, str], level: f
     and cells before the current segment get no smoothed value."""
     from .methods.distributions import norm_ppf
     from .methods.statespace import smooth_over_q, smooth_with_seasons
-    from .trends import _series_arrays, season_columns
+    from .trends import _series_arrays, season_columns, seasons_covered
 
     series, labels, y, v, ok, _ = _series_arrays(est, segment_starts)
     ok = ok & np.isfinite(y) & (v > 0)
     fit = smooth_over_q(y, v, ok)
-    seasonal = ok.sum(axis=1) >= 2 * cycle if cycle else np.zeros(len(y), bool)
+    dates = est.drop_duplicates("wave").set_index("wave")["fieldwork_date"]
+    seasonal = seasons_covered(ok, [dates[w] for w in labels], cycle)
     if seasonal.any():
-        dates = est.drop_duplicates("wave").set_index("wave")["fieldwork_date"]
         H = season_columns([dates[w] for w in labels], cycle)  # type: ignore[arg-type]  # set when seasonal
         # the yearly wave alone: a thin subgroup's series cannot carry eleven seasonal effects
         # (in our trials they more than doubled the smoothed value's mean squared error)

@@ -117,6 +117,19 @@ def season_columns(dates, cycle: int) -> np.ndarray:
     return np.stack(cols, axis=1)
 
 
+def seasons_covered(ok: np.ndarray, dates, cycle: int | None) -> np.ndarray:
+    """Which series (rows of ``ok``, waves x their fieldwork ``dates``) can carry seasonal
+    effects: every season of the cycle (month or quarter) seen in at least two usable waves,
+    so that each season's effect rests on more than one wave (common practice, no source).
+    A survey fielded in some months only never qualifies."""
+    if not cycle:
+        return np.zeros(len(ok), bool)
+    month = np.array([int(str(d)[5:7]) for d in dates])
+    season = month - 1 if cycle == 12 else (month - 1) // 3
+    per_season = np.stack([(ok & (season == k)[None, :]).sum(axis=1) for k in range(cycle)], axis=1)
+    return np.asarray((per_season >= 2).all(axis=1))
+
+
 #: Prior odds of a series having no seasons at all under the seasons key (two to one: most
 #: questions of a study do not follow its cycle), and the smallest seasonal variance the
 #: alternative considers, per unit of the mean sampling variance (both set by the seeded
@@ -181,7 +194,7 @@ def seasonal_regression(y: np.ndarray, v: np.ndarray, X: np.ndarray, mask: np.nd
         V[:, np.arange(ns), np.arange(ns)] += d
         ll[:, g] = loglik(V) - np.log(G)  # the seasons' prior mass, spread evenly over the grid
         penalty[:, idx, idx] = 1.0 / d
-        covs[:, g] = np.linalg.inv(A + penalty)  # positive definite: two cycles of waves and a penalty
+        covs[:, g] = np.linalg.inv(A + penalty)  # positive definite: every season twice, and a penalty
         betas[:, g] = (covs[:, g] @ Xwy)[:, :, 0]
     ll[:, G] = loglik(C) + np.log(NO_SEASON_ODDS)
     betas[:, G, :n_plain] = plain["beta"]
@@ -198,8 +211,8 @@ def seasonal_regression(y: np.ndarray, v: np.ndarray, X: np.ndarray, mask: np.nd
 
 
 def _slope_fit(est: pd.DataFrame, waves: list[str], y, v, ok, X, cycle: int | None) -> dict:
-    """The slope's meta-regression; with a seasonal ``cycle``, series with two cycles of waves
-    get seasonal effects beside the line as far as their waves show them (seasonal_regression),
+    """The slope's meta-regression; with a seasonal ``cycle``, series that cover every season
+    twice (seasons_covered) get seasonal effects beside the line as far as their waves show them (seasonal_regression),
     so that their slope, its interval and their wave-to-wave variation are net of the seasons.
     ``q_df`` is the df of the excess-variation statistic q; ``season_part`` and
     ``season_var`` (series x waves) the fitted seasonal effect of each wave and its variance
@@ -208,11 +221,11 @@ def _slope_fit(est: pd.DataFrame, waves: list[str], y, v, ok, X, cycle: int | No
     fit = meta_regression(y, np.where(ok, v, 1.0), X, ok)
     fit["q_df"] = fit["df"]
     fit["season_part"], fit["season_var"] = np.zeros((S, K)), np.zeros((S, K))
-    enough = ok.sum(axis=1) >= 2 * cycle if cycle else np.zeros(S, bool)
+    dates = est.drop_duplicates("wave").set_index("wave")["fieldwork_date"]
+    enough = seasons_covered(ok, [dates[w] for w in waves], cycle)
     fit["seasonal"] = enough
     if not enough.any():
         return fit
-    dates = est.drop_duplicates("wave").set_index("wave")["fieldwork_date"]
     cols = season_columns([dates[w] for w in waves], cycle)  # type: ignore[arg-type]  # set when enough
     Xs = np.concatenate([X[enough], np.broadcast_to(cols[None], (int(enough.sum()), *cols.shape))], axis=2)
     seasonal = seasonal_regression(y[enough], np.where(ok[enough], v[enough], 1.0), Xs, ok[enough], X.shape[2])

@@ -267,9 +267,9 @@ def study_lines(book) -> tuple[str, ...]:
                    f"of freedom from the replicates.")
     if book.seasons:
         cycle = "12 months" if book.seasons == 12 else "4 quarters"
-        out.append(f"Seasons: the codebook says the waves follow a cycle of {cycle}. A series with two cycles of waves "
-                   f"has its seasons fitted as far as its waves show them, in its trend, its expected range and its "
-                   f"smoothed line; a change against a year ago compares the same season.")
+        out.append(f"Seasons: the codebook says the waves follow a cycle of {cycle}. A series with every season in "
+                   f"two of its waves or more has its seasons fitted as far as its waves show them, in its trend, its "
+                   f"expected range and its smoothed line; a change against a year ago compares the same season.")
     return tuple(out)
 
 
