@@ -181,3 +181,41 @@ def test_a_jackknife_of_one_stratum_is_the_textbook_delete_one_jackknife():
     want = np.where(np.eye(5) == 1, 0.0, w[:, None] * 5 / 4)
     np.testing.assert_allclose(W, want, rtol=1e-15)
     assert scale == pytest.approx(4 / 5) and np.all(rscales == 1.0)
+
+
+def test_a_replicate_panel_change_is_the_replicates_spread_of_the_change_in_every_cell(tmp_path):
+    # Wolter 2007, ch. 4 (a replicate variance of any statistic, here a change): each cell's
+    # change variance is (n - 1)/n times the spread of the delete-one changes, computed with numpy
+    # for two metrics, in total and in both subgroups (the covariance must meet its own cell)
+    rng = np.random.default_rng(8)
+    n = 30
+    (tmp_path / "book.yaml").write_text(BOOK.format(extra=f"panel: true\nreplicates: {{method: jk1, prefix: rw, "
+                                                          f"count: {n}}}\n"))
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    first = _jk1_wave(rng, n)
+    second = first.assign(score=first["score"] + rng.normal(2, 3, n),
+                          group=np.where(rng.random(n) < 0.2, 3 - first["group"], first["group"]))
+    for frame, label, date in ((first, "2025-Q1", "2025-02-15"), (second, "2025-Q2", "2025-05-15")):
+        frame.to_csv(tmp_path / f"{label}.csv", index=False)
+        study.add(tmp_path / f"{label}.csv", label, date)
+    got = study.changes().table.set_index(["metric", "subgroup"])
+    checked = 0
+    W = first[[f"rw{k + 1}" for k in range(n)]].to_numpy()
+    w = first["w"].to_numpy()
+    for metric in ("mean_score", "share_a"):
+        for subgroup, code in (("Total", None), ("a", 1), ("b", 2)):
+            def estimate(frame, weights):
+                inside = np.ones(n, bool) if code is None else (frame["group"] == code).to_numpy()
+                y = frame["score"].to_numpy() if metric == "mean_score" else (frame["group"] == 1).to_numpy(float)
+                ww = weights * inside[:, None] if weights.ndim == 2 else weights * inside
+                return (ww.T @ y) / ww.sum(axis=0)
+            change_r = estimate(second, W) - estimate(first, W)
+            var = (n - 1) / n * ((change_r - change_r.mean()) ** 2).sum()
+            row = got.loc[(metric, subgroup)]
+            if np.isnan(row["se"]):
+                continue  # a cell the reliability rule does not test
+            assert row["change"] == pytest.approx(estimate(second, w) - estimate(first, w), rel=1e-10, abs=1e-12)
+            assert row["se"] ** 2 == pytest.approx(var, rel=1e-9)
+            assert row["covariance_from"] == "shared respondents"
+            checked += 1
+    assert checked >= 4
