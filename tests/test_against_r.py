@@ -285,6 +285,26 @@ def test_raked_weights_equal_r(raked):
     np.testing.assert_allclose(both["pw"], both["raked"] * design_total / 6194, rtol=1e-9)
 
 
+def test_subgroups_compared_within_a_raked_wave_equal_r(reference, raked):
+    """R's svycontrast on svyby(~api00, ~stype, covmat = TRUE) and regTermTest of the raked
+    design (rake() to school type and the school-wide target, no fpc): each pair's difference
+    and SE, and the Wald F across the three school types, with its df and p."""
+    from tracker.within import compare_within
+
+    study = raked[2][False]
+    got = compare_within(study, wave="2000", metrics="api_mean", by="stype").table
+    want = pd.read_csv(_data_dir(reference) / "raked_pairs.csv")
+    for r in want.itertuples():
+        if r.a == 0:
+            row = got[got["comparison"] == "across all levels"].iloc[0]
+            assert row["statistic"] == pytest.approx(r.F, rel=1e-7) and row["df"] == r.ddf
+            assert row["p_raw"] == pytest.approx(r.p, rel=1e-6)
+            continue
+        row = got[(got["first"] == CODES[str(r.a)]) & (got["second"] == CODES[str(r.b)])].iloc[0]
+        assert row["difference"] == pytest.approx(r.diff, rel=1e-9)
+        assert row["se"] == pytest.approx(r.se, rel=1e-7)
+
+
 @pytest.mark.parametrize("with_fpc", [False, True], ids=["no fpc", "fpc"])
 def test_raked_variance_equals_r_calibration_aware(raked, with_fpc):
     """R's rake() variance (the residuals of the regression on the margins' indicators):

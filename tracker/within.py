@@ -98,13 +98,15 @@ def _domains(book, table, groups: list[str]):
     return np.column_stack(cols), names
 
 
-def _linearized(book, table, metrics, Dm, psu_id, P):
+def _linearized(book, table, metrics, Dm, psu_id, P, cal=None):
     """Per metric: each domain's value, base, and PSU totals of its linearized values (P x J x M),
-    and which PSUs hold each domain's base (P x J x M)."""
+    and which PSUs hold each domain's base (P x J x M). A raked wave's totals (``cal``, from
+    tracker.estimates.calibration_of) are those of the residuals of the regression on the raking
+    margins, as the estimates' (tracker.estimates._calibration_correction)."""
     import scipy.sparse as sp
 
     from .cells import metric_matrix
-    from .estimates import weights_of
+    from .estimates import _calibration_correction, weights_of
 
     Y, E = metric_matrix(book, table, metrics)
     w = weights_of(book, table)
@@ -122,6 +124,9 @@ def _linearized(book, table, metrics, Dm, psu_id, P):
         z = Df[:, :, None] * (we[:, None, :] * (Y[:, None, :] - value[None]) / sw[None])
     z = np.where(np.isfinite(z), z, 0.0).reshape(N, J * M)
     totals = np.asarray(S @ z).reshape(P, J, M)
+    if cal is not None:
+        totals = totals - _calibration_correction(cal, Df, E.astype(float), np.where(E, Y, 0.0), w, value, sw,
+                                                  psu_id, P)
     held = np.asarray(S @ (Df[:, :, None] * E[:, None, :]).reshape(N, J * M)).reshape(P, J, M) > 0
     return value, base, totals, held
 
@@ -173,9 +178,6 @@ def wave_domains(study, wave: str, metric_list: list, groups: list[str]) -> Wave
     table = study.load(wave)
     if book.replicates is not None:
         return _replicate_domains(book, table, wave, metric_list, groups)
-    if calibration_of(book, table) is not None:
-        raise TrackerError(f"wave {wave} was raked: comparing its subgroups needs the raking's regression in the "
-                           f"variance, which this comparison does not carry yet")
     strata, psu = design_of(book, table)
     N = len(table)
     psu_id, psu_stratum, n_strata = psu_index(strata, psu if psu is not None else np.arange(N), N)
@@ -183,7 +185,8 @@ def wave_domains(study, wave: str, metric_list: list, groups: list[str]) -> Wave
     pop = population_of(book, table)
     factor = fpc_factor(pop, psu_stratum[psu_id], np.bincount(psu_stratum, minlength=n_strata))
     Dm, names = _domains(book, table, groups)
-    value, base, totals, held = _linearized(book, table, metric_list, Dm, psu_id, P)
+    value, base, totals, held = _linearized(book, table, metric_list, Dm, psu_id, P,
+                                            calibration_of(book, table))
     first = np.zeros(P, dtype=np.int64)
     first[psu_id[::-1]] = np.arange(N)[::-1]
     s_lab, c_lab = design_labels(book, table)
