@@ -305,6 +305,16 @@ def test_subgroups_compared_within_a_raked_wave_equal_r(reference, raked):
         assert row["se"] == pytest.approx(r.se, rel=1e-7)
 
 
+def test_a_questions_answers_across_a_split_of_a_raked_wave_equal_svychisq(reference, raked):
+    # reference: R's svychisq(~stype + awards) of apiclus1 raked by rake() (no fpc)
+    from tracker.answers import distribution_tests
+
+    want = pd.read_csv(_data_dir(reference) / "raked_svychisq.csv").iloc[0]
+    got = distribution_tests(raked[2][False], "stype", waves=["2000"], by=["awards"]).iloc[0]
+    np.testing.assert_allclose([got["f"], got["f_df_num"], got["f_df_den"], got["p_raw"]],
+                               [want["f"], want["ndf"], want["ddf"], want["p"]], rtol=1e-7)
+
+
 @pytest.mark.parametrize("with_fpc", [False, True], ids=["no fpc", "fpc"])
 def test_raked_variance_equals_r_calibration_aware(raked, with_fpc):
     """R's rake() variance (the residuals of the regression on the margins' indicators):

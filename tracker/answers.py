@@ -283,9 +283,11 @@ def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = 
     """Whether a coded question's answers are distributed alike in every level of a split: the
     Rao-Scott test of the (level x code) table of the valid answers (tracker.methods.raoscott,
     the second-order F of R's ``svychisq``), one per wave and split, adjusted together, with
-    the verdicts of a test across levels (tracker.within.GAP_VERDICTS)."""
+    the verdicts of a test across levels (tracker.within.GAP_VERDICTS). A raked wave's shares
+    are linearized by their residuals on the raking margins (Deville & Sarndal 1992), as its
+    estimates."""
     from .cells import group_matrix
-    from .estimates import design_of, weights_of
+    from .estimates import calibration_of, design_of, weights_of
     from .methods.raoscott import rao_scott_table
     from .methods.tests import adjust_pvalues
     from .methods.variance import taylor_covariance
@@ -304,6 +306,7 @@ def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = 
         x = table[variable].to_numpy(float) if variable in table.columns else np.full(len(table), np.nan)
         w_all = weights_of(book, table)
         strata, psu = design_of(book, table)
+        cal = calibration_of(book, table)
         for g in groups:
             D = group_matrix(book, table, [g])[0][:, 1:]
             inside = np.isin(x, codes) & D.any(axis=1)
@@ -315,6 +318,11 @@ def distribution_tests(study, variable: str, waves=None, by=None, adjust: str = 
                 V, df = share_covariance(book.replicates, table, inside, cells, pi)
             else:
                 z = w[:, None] * (cells - pi) / W
+                if cal is not None:  # raked: the residuals of the regression on the margins (as the estimates)
+                    u = np.where(inside[:, None], (cells - pi) / W, 0.0)
+                    Mc, d = cal
+                    b = np.linalg.pinv(Mc.T @ (Mc * d[:, None])) @ (Mc.T @ (u * d[:, None]))
+                    z = w_all[:, None] * (u - Mc @ b)
                 st = np.zeros(len(x), np.int64) if strata is None else strata
                 ps = np.arange(len(x)) if psu is None else psu
                 V = taylor_covariance(z, st, ps, book.single_cluster_rule)

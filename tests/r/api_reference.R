@@ -110,6 +110,9 @@ t <- regTermTest(svyglm(api00 ~ stype_f, des), ~stype_f, method = "Wald")
 raked_pairs[[length(raked_pairs) + 1]] <- data.frame(a = 0, b = 0, diff = NA, se = NA, F = as.vector(t$Ftest),
                                                      ddf = t$ddf, p = as.vector(t$p))
 write.csv(do.call(rbind, raked_pairs), file.path(out, "raked_pairs.csv"), row.names = FALSE)
+k <- svychisq(~stype_f + awards_f, update(des, awards_f = factor(awards)))
+write.csv(data.frame(f = as.vector(k$statistic), ndf = k$parameter[[1]], ddf = k$parameter[[2]],
+                     p = as.vector(k$p.value)), file.path(out, "raked_svychisq.csv"), row.names = FALSE)
 
 # Bounded raking: apiclus1 calibrated to the same margins with each weight kept within 0.85 to
 # 1.8 times its design weight (three schools reach the upper bound), as calibrate(calfun =
