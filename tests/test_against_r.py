@@ -115,6 +115,29 @@ def _study(folder: Path, name: str, text: str, waves, rake: bool = False):
     return study
 
 
+def _api_study(folder: Path, name: str, data: pd.DataFrame, text: str, years=("2000",), rake: bool = False):
+    """A study of R's exported api sample ``data``: one wave per year (api = that year's score),
+    written as CSV beside R's files, under codebook ``text``."""
+    waves = []
+    for year in years:
+        path = folder / f"{name}-{year}.csv"
+        wave = pd.concat([data.drop(columns=["api00", "api99", "fpc"]), data[f"api{year[2:]}"].rename("api")], axis=1)
+        wave.to_csv(path, index=False)
+        waves.append((path, year, f"{year}-06-30"))
+    return _study(folder, name, text, waves, rake=rake)
+
+
+def _replicate_spec(folder: Path, method: str, data: pd.DataFrame) -> str:
+    """The codebook key of R's exported replicate weights for ``method`` (scales as R set them)."""
+    scales = pd.read_csv(folder / f"rep_{method}_scales.csv")
+    spec = f"replicates:\n  method: {method}\n  prefix: rw\n  count: {sum(c.startswith('rw') for c in data.columns)}\n"
+    if method == "jkn":
+        spec += f"  rscales: [{', '.join(repr(float(x)) for x in scales['rscales'])}]\n"
+    if method == "bootstrap":  # as.svrepdesign sets the stratified bootstrap's scale from the design
+        spec += f"  scale: {float(scales['scale'].iloc[0])!r}\n"
+    return spec
+
+
 def _cells(study, metric):
     est = study.estimates(metrics=[metric], waves=["2000"])
     return est.set_index(["group", "subgroup"])
@@ -586,18 +609,8 @@ def test_replicate_weight_designs_equal_svrepdesign(reference, method):
     # apistrat): svymean of api00 and of "met the target", in total and by school type, and degf
     folder = _data_dir(reference)
     data = pd.read_csv(folder / f"rep_{method}.csv")
-    n_rep = sum(c.startswith("rw") for c in data.columns)
-    scales = pd.read_csv(folder / f"rep_{method}_scales.csv")
-    spec = f"replicates:\n  method: {method}\n  prefix: rw\n  count: {n_rep}\n"
-    if method == "jkn":
-        spec += f"  rscales: [{', '.join(repr(float(x)) for x in scales['rscales'])}]\n"
-    if method == "bootstrap":  # as.svrepdesign sets the stratified bootstrap's scale from the design
-        spec += f"  scale: {float(scales['scale'].iloc[0])!r}\n"
-    wave = data.drop(columns=["api00", "api99", "fpc"]).copy()
-    wave["api"] = data["api00"]
-    wave.to_csv(folder / f"rep_{method}_wave.csv", index=False)
-    study = _study(folder, f"rep_{method}", CODEBOOK.format(name=f"replicates {method}", design=spec),
-                   [(folder / f"rep_{method}_wave.csv", "2000", "2000-06-30")])
+    spec = _replicate_spec(folder, method, data)
+    study = _api_study(folder, f"rep_{method}", data, CODEBOOK.format(name=f"replicates {method}", design=spec))
     est = study.estimates(metrics=["api_mean", "target_met"], by="stype").set_index(["metric", "subgroup"])
     _replicate_pairs_equal_r(study, folder, method)
     want = pd.read_csv(folder / "replicates.csv")
@@ -616,20 +629,9 @@ def test_a_panel_with_replicate_weights_equals_svrepdesign(reference, method):
     # same replicate weights, so a change's covariance is the replicates' (tests/r/within_reference.R)
     folder = _data_dir(reference)
     data = pd.read_csv(folder / f"rep_{method}.csv")
-    n_rep = sum(c.startswith("rw") for c in data.columns)
-    scales = pd.read_csv(folder / f"rep_{method}_scales.csv")
-    spec = f"panel: true\nreplicates:\n  method: {method}\n  prefix: rw\n  count: {n_rep}\n"
-    if method == "jkn":
-        spec += f"  rscales: [{', '.join(repr(float(x)) for x in scales['rscales'])}]\n"
-    if method == "bootstrap":
-        spec += f"  scale: {float(scales['scale'].iloc[0])!r}\n"
-    files = []
-    for year, column in (("1999", "api99"), ("2000", "api00")):
-        wave = data.drop(columns=["api00", "api99", "fpc"]).copy()
-        wave["api"] = data[column]
-        wave.to_csv(folder / f"panel_{method}_{year}.csv", index=False)
-        files.append((folder / f"panel_{method}_{year}.csv", year, f"{year}-06-30"))
-    study = _study(folder, f"panel_{method}", CODEBOOK.format(name=f"panel {method}", design=spec), files)
+    spec = "panel: true\n" + _replicate_spec(folder, method, data)
+    study = _api_study(folder, f"panel_{method}", data, CODEBOOK.format(name=f"panel {method}", design=spec),
+                       years=("1999", "2000"))
     got = study.changes(wave="2000", against="1999", metrics="api_mean", by="stype").table.set_index("subgroup")
     gaps = study.gap_changes(wave="2000", against="1999", metrics="api_mean", by="stype").table
     want = pd.read_csv(folder / "replicate_panel.csv", dtype={"subgroup": str, "other": str})
@@ -658,10 +660,7 @@ def test_replicate_weights_built_from_a_design_equal_as_svrepdesign(reference, m
     design = "clusters: dnum\n" if method == "jk1" else "strata: stype\n" + (FPC["apistrat"] if fpc else "")
     stem = f"rep_{method}" + ("_fpc" if fpc else "")
     data = pd.read_csv(folder / f"{name}.csv")
-    wave = data.drop(columns=["api00", "api99", "fpc"]).assign(api=data["api00"])
-    wave.to_csv(folder / f"{stem}_plain.csv", index=False)
-    study = _study(folder, f"{stem}_build", CODEBOOK.format(name=f"built {stem}", design=design),
-                   [(folder / f"{stem}_plain.csv", "2000", "2000-06-30")])
+    study = _api_study(folder, f"{stem}_build", data, CODEBOOK.format(name=f"built {stem}", design=design))
     built = replicate_weights(study, "2000", method)
     want = pd.read_csv(folder / f"{stem}.csv", dtype={"snum": str}).set_index("snum").loc[built.weights["snum"]]
     scales = pd.read_csv(folder / f"{stem}_scales.csv")
@@ -683,20 +682,15 @@ def test_built_jackknife_weights_declared_in_a_codebook_give_r_standard_errors(r
 
     folder = _data_dir(reference)
     data = pd.read_csv(folder / "apistrat.csv")
-    wave = data.drop(columns=["api00", "api99", "fpc"]).assign(api=data["api00"])
-    wave.to_csv(folder / "cli_build_plain.csv", index=False)
-    study = _study(folder, "cli_build", CODEBOOK.format(name="linearized", design="strata: stype\n"),
-                   [(folder / "cli_build_plain.csv", "2000", "2000-06-30")])
+    study = _api_study(folder, "cli_build", data, CODEBOOK.format(name="linearized", design="strata: stype\n"))
     done = CliRunner().invoke(main, ["replicates", str(study.root), "--method", "jkn", "-o",
                                      str(folder / "cli_built.csv")])
     assert done.exit_code == 0, done.output
     assert "wrote" in done.output and "200 replicate weights for 200 respondents" in done.output
     key = (folder / "cli_built.replicates.yaml").read_text()
     assert str(folder / "cli_built.replicates.yaml") in done.output
-    joined = wave.merge(pd.read_csv(folder / "cli_built.csv"), on="snum")
-    joined.to_csv(folder / "cli_build_joined.csv", index=False)
-    replicated = _study(folder, "cli_replicated", CODEBOOK.format(name="built replicates", design=key),
-                        [(folder / "cli_build_joined.csv", "2000", "2000-06-30")])
+    joined = data.merge(pd.read_csv(folder / "cli_built.csv"), on="snum")
+    replicated = _api_study(folder, "cli_replicated", joined, CODEBOOK.format(name="built replicates", design=key))
     got = replicated.estimates(metrics="api_mean", by=[]).iloc[0]
     want = pd.read_csv(folder / "replicates.csv")
     want = want[(want["method"] == "jkn") & (want["group"] == "total")].iloc[0]
@@ -712,13 +706,10 @@ def test_a_built_bootstrap_approaches_the_linearized_variance(reference):
 
     folder = _data_dir(reference)
     data = pd.read_csv(folder / "apistrat.csv")
-    wave = data.drop(columns=["api00", "api99", "fpc"]).assign(api=data["api00"])
-    wave.to_csv(folder / "boot_plain.csv", index=False)
-    study = _study(folder, "boot_build", CODEBOOK.format(name="linearized", design="strata: stype\n"),
-                   [(folder / "boot_plain.csv", "2000", "2000-06-30")])
+    study = _api_study(folder, "boot_build", data, CODEBOOK.format(name="linearized", design="strata: stype\n"))
     built = replicate_weights(study, "2000", "bootstrap", count=4000, seed=11)
     W = built.weights.drop(columns="snum").to_numpy()
-    y = wave.set_index("snum").loc[built.weights["snum"].astype(int), "api"].to_numpy(float)
+    y = data.set_index("snum").loc[built.weights["snum"].astype(int), "api00"].to_numpy(float)
     theta = (W * y[:, None]).sum(axis=0) / W.sum(axis=0)
     boot_se = np.sqrt(built.scale * ((theta - theta.mean()) ** 2).sum())
     linear_se = study.estimates(metrics="api_mean", by=[]).iloc[0]["se"]
@@ -784,10 +775,7 @@ def test_raking_a_replicate_design_rakes_every_replicate_as_r(reference):
               f"  sch_wide: {{{', '.join(f'{k!r}: {v / 6194!r}' for k, v in wide.items())}}}\n")
     text = CODEBOOK.format(name="replicates raked", design=design).replace("groups:\n", "groups:\n  sch_wide: "
                                                                                        "{variable: sch_wide}\n")
-    wave = data.drop(columns=["api00", "api99", "fpc"]).copy()
-    wave["api"] = data["api00"]
-    wave.to_csv(folder / "rep_raked_wave.csv", index=False)
-    study = _study(folder, "rep_raked", text, [(folder / "rep_raked_wave.csv", "2000", "2000-06-30")], rake=True)
+    study = _api_study(folder, "rep_raked", data, text, rake=True)
     est = study.estimates(metrics="api_mean", by="awards").set_index("subgroup")
     for r in pd.read_csv(folder / "rep_raked_reference.csv").itertuples():
         assert est.loc[r.subgroup, "value"] == pytest.approx(r.api00, rel=1e-8)

@@ -155,61 +155,54 @@ def test_the_readme_shows_what_the_command_prints(demo_study):
     assert block[:4] == out[:4]
 
 
-def test_seasonal_prediction_is_the_likelihood_weighted_mixture_of_mixed_models():
-    # reference: tests/seasonal_reference.py recomputes the seasons model from the full data, its
-    # likelihoods with scipy's multivariate normal and its fits with statsmodels WLS
+def _prediction_and_mixture(y: np.ndarray, dates: list[str], at: str, cycle: int, se: float = 0.016):
+    """The tool's prediction of the wave at ``at`` and, for the same series, the seasons model's
+    mixture recomputed by tests/seasonal_reference.py; with the new wave's design row."""
     from tracker.expected import predict
     from tracker.trends import fit_trends, season_columns
 
     from .seasonal_reference import mixture
 
+    K = len(y)
+    hist = pd.DataFrame({"metric": "m", "metric_label": "m", "kind": "share", "group": "total", "subgroup": "Total",
+                         "wave": [f"W{i:02d}" for i in range(K)], "fieldwork_date": dates, "value": y, "se": se,
+                         "reliable": True, "base": 1000, "effective_base": 900.0})
+    pred = predict(hist, fit_trends(hist), at, cycle=cycle).iloc[0]
+    years = np.array([(pd.Timestamp(d) - pd.Timestamp(dates[0])).days / 365.25 for d in dates])
+    mean, cov, p_seasons = mixture(y, np.full(K, se**2), np.column_stack([np.ones(K), years - years.mean()]),
+                                   season_columns(dates, cycle))
+    t_new = (pd.Timestamp(at) - pd.Timestamp(dates[0])).days / 365.25 - years.mean()
+    x_new = np.concatenate([[1.0, t_new], season_columns([at], cycle)[0]])
+    return pred, float(x_new @ mean), float(x_new @ cov @ x_new), p_seasons
+
+
+def test_seasonal_prediction_is_the_likelihood_weighted_mixture_of_mixed_models():
+    # reference: tests/seasonal_reference.py recomputes the seasons model from the full data, its
+    # likelihoods with scipy's multivariate normal and its fits with statsmodels WLS
     rng = np.random.default_rng(8)
     K, se = 30, 0.016
     dates = [f"{2010 + i // 12}-{i % 12 + 1:02d}-15" for i in range(K)]
     y = 0.6 + 0.03 * np.sin(2 * np.pi * np.arange(K) / 12) + rng.normal(0, se, K)
-    hist = pd.DataFrame({"metric": "m", "metric_label": "m", "kind": "share", "group": "total", "subgroup": "Total",
-                         "wave": [f"W{i:02d}" for i in range(K)], "fieldwork_date": dates, "value": y, "se": se,
-                         "reliable": True, "base": 1000, "effective_base": 900.0})
-    pred = predict(hist, fit_trends(hist), "2012-07-15", cycle=12).iloc[0]
-    years = np.array([(pd.Timestamp(d) - pd.Timestamp(dates[0])).days / 365.25 for d in dates])
-    Xp = np.column_stack([np.ones(K), years - years.mean()])
-    mean, cov, p_seasons = mixture(y, np.full(K, se**2), Xp, season_columns(dates, 12))
-    t_new = (pd.Timestamp("2012-07-15") - pd.Timestamp(dates[0])).days / 365.25 - years.mean()
-    x_new = np.concatenate([[1.0, t_new], season_columns(["2012-07-15"], 12)[0]])
+    pred, expected, fit_var, p_seasons = _prediction_and_mixture(y, dates, "2012-07-15", 12)
     assert p_seasons > 0.99  # a 3-point yearly wave over 30 months stands out
-    assert pred["expected"] == pytest.approx(float(x_new @ mean), rel=1e-9)
-    assert pred["fit_sd"] ** 2 == pytest.approx(float(x_new @ cov @ x_new), rel=1e-7)
+    assert pred["expected"] == pytest.approx(expected, rel=1e-9)
+    assert pred["fit_sd"] ** 2 == pytest.approx(fit_var, rel=1e-7)
     # the same series without its wave: the models share the weight, and the mixture is still exact
-    flat = hist.assign(value=0.6 + rng.normal(0, se, K))
-    pred = predict(flat, fit_trends(flat), "2012-07-15", cycle=12).iloc[0]
-    mean, cov, p_seasons = mixture(flat["value"].to_numpy(), np.full(K, se**2), Xp, season_columns(dates, 12))
+    pred, expected, fit_var, p_seasons = _prediction_and_mixture(0.6 + rng.normal(0, se, K), dates, "2012-07-15", 12)
     assert 0.01 < p_seasons < 0.9
-    assert pred["expected"] == pytest.approx(float(x_new @ mean), rel=1e-9)
-    assert pred["fit_sd"] ** 2 == pytest.approx(float(x_new @ cov @ x_new), rel=1e-7)
+    assert pred["expected"] == pytest.approx(expected, rel=1e-9)
+    assert pred["fit_sd"] ** 2 == pytest.approx(fit_var, rel=1e-7)
     assert bool(pred["seasonal"])
 
 
 def test_quarterly_seasons_are_the_same_mixture():
     # reference: tests/seasonal_reference.py, for a quarterly cycle (the yearly wave and the
     # alternating quarter-to-quarter harmonic)
-    from tracker.expected import predict
-    from tracker.trends import fit_trends, season_columns
-
-    from .seasonal_reference import mixture
-
     rng = np.random.default_rng(21)
     K, se = 12, 0.016
     dates = [f"{2020 + i // 4}-{3 * (i % 4) + 2:02d}-15" for i in range(K)]
     y = 0.6 + 0.04 * np.cos(2 * np.pi * np.arange(K) / 4) + rng.normal(0, se, K)
-    hist = pd.DataFrame({"metric": "m", "metric_label": "m", "kind": "share", "group": "total", "subgroup": "Total",
-                         "wave": [f"W{i:02d}" for i in range(K)], "fieldwork_date": dates, "value": y, "se": se,
-                         "reliable": True, "base": 1000, "effective_base": 900.0})
-    pred = predict(hist, fit_trends(hist), "2023-02-15", cycle=4).iloc[0]
-    years = np.array([(pd.Timestamp(d) - pd.Timestamp(dates[0])).days / 365.25 for d in dates])
-    mean, cov, p_seasons = mixture(y, np.full(K, se**2), np.column_stack([np.ones(K), years - years.mean()]),
-                                   season_columns(dates, 4))
-    t_new = (pd.Timestamp("2023-02-15") - pd.Timestamp(dates[0])).days / 365.25 - years.mean()
-    x_new = np.concatenate([[1.0, t_new], season_columns(["2023-02-15"], 4)[0]])
+    pred, expected, fit_var, p_seasons = _prediction_and_mixture(y, dates, "2023-02-15", 4)
     assert p_seasons > 0.9 and bool(pred["seasonal"])
-    assert pred["expected"] == pytest.approx(float(x_new @ mean), rel=1e-9)
-    assert pred["fit_sd"] ** 2 == pytest.approx(float(x_new @ cov @ x_new), rel=1e-7)
+    assert pred["expected"] == pytest.approx(expected, rel=1e-9)
+    assert pred["fit_sd"] ** 2 == pytest.approx(fit_var, rel=1e-7)

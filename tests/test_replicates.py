@@ -36,14 +36,24 @@ def _jk1_wave(rng, n=30):
     return frame
 
 
+def _jk1_study(tmp_path, frames, panel: bool = False):
+    """A study declaring the JK1 replicates of ``_jk1_wave`` frames, one quarterly wave per frame."""
+    n = sum(c.startswith("rw") for c in frames[0].columns)
+    extra = ("panel: true\n" if panel else "") + f"replicates: {{method: jk1, prefix: rw, count: {n}}}\n"
+    (tmp_path / "book.yaml").write_text(BOOK.format(extra=extra))
+    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
+    for k, frame in enumerate(frames):
+        label = f"2025-Q{k + 1}"
+        frame.to_csv(tmp_path / f"{label}.csv", index=False)
+        study.add(tmp_path / f"{label}.csv", label, f"2025-{3 * k + 2:02d}-15")
+    return study
+
+
 def test_a_hand_built_jackknife_equals_the_textbook_one(tmp_path):
     rng = np.random.default_rng(3)
     frame = _jk1_wave(rng)
     n = len(frame)
-    (tmp_path / "book.yaml").write_text(BOOK.format(extra=f"replicates: {{method: jk1, prefix: rw, count: {n}}}\n"))
-    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
-    frame.to_csv(tmp_path / "w.csv", index=False)
-    study.add(tmp_path / "w.csv", "2025-Q1", "2025-02-15")
+    study = _jk1_study(tmp_path, [frame])
     est = study.estimates(by=[]).iloc[0]
     x, w = frame["score"].to_numpy(), frame["w"].to_numpy()
     loo = np.array([np.average(np.delete(x, k), weights=np.delete(w, k)) for k in range(n)])
@@ -118,14 +128,8 @@ def test_a_panel_whose_waves_share_no_respondent_compares_them_as_independent(tm
     # common practice, no source: with no respondent in both waves there is no covariance to take,
     # and the change's variance is the sum of the two waves' replicate variances
     rng = np.random.default_rng(5)
-    n = 30
-    (tmp_path / "book.yaml").write_text(BOOK.format(extra=f"panel: true\nreplicates: {{method: jk1, prefix: rw, "
-                                                          f"count: {n}}}\n"))
-    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
-    for label, date, prefix in (("2025-Q1", "2025-02-15", "a"), ("2025-Q2", "2025-05-15", "b")):
-        frame = _jk1_wave(rng, n).assign(rid=lambda f, p=prefix: p + f["rid"])
-        frame.to_csv(tmp_path / f"{label}.csv", index=False)
-        study.add(tmp_path / f"{label}.csv", label, date)
+    study = _jk1_study(tmp_path, [_jk1_wave(rng).assign(rid=lambda f, p=prefix: p + f["rid"]) for prefix in "ab"],
+                       panel=True)
     row = study.changes(by=[], metrics="mean_score").table.iloc[0]
     est = study.estimates(by=[], metrics="mean_score").set_index("wave")
     assert row["covariance_from"] == "none"
@@ -136,12 +140,7 @@ def test_the_brief_of_a_replicate_study_names_its_variance_method(tmp_path):
     from tracker.brief import build_brief
 
     rng = np.random.default_rng(6)
-    n = 30
-    (tmp_path / "book.yaml").write_text(BOOK.format(extra=f"replicates: {{method: jk1, prefix: rw, count: {n}}}\n"))
-    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
-    for label, date in (("2025-Q1", "2025-02-15"), ("2025-Q2", "2025-05-15")):
-        _jk1_wave(rng, n).to_csv(tmp_path / f"{label}.csv", index=False)
-        study.add(tmp_path / f"{label}.csv", label, date)
+    study = _jk1_study(tmp_path, [_jk1_wave(rng), _jk1_wave(rng)])
     said = " ".join(i.text if hasattr(i, "text") else str(i) for i in build_brief(study, charts=False).method)
     assert "30 replicate weights (the delete-a-group jackknife, JK1) rather than from linearization" in said
 
@@ -159,16 +158,21 @@ def test_building_replicates_refuses_what_cannot_be_built(tmp_path):
         build_replicates(w, np.array([0, 0, 0, 1, 1, 1]), np.array([0, 1, 2, 3, 3, 3]), "jkn")
     with pytest.raises(TrackerError, match="use jkn"):
         build_replicates(w, np.array([0, 0, 0, 1, 1, 1]), None, "jk1")
-    rng = np.random.default_rng(7)
-    (tmp_path / "book.yaml").write_text(BOOK.format(extra="replicates: {method: jk1, prefix: rw, count: 30}\n"))
-    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
-    _jk1_wave(rng).to_csv(tmp_path / "w.csv", index=False)
-    study.add(tmp_path / "w.csv", "2025-Q1", "2025-02-15")
+    _jk1_study(tmp_path, [_jk1_wave(np.random.default_rng(7))])
     done = CliRunner().invoke(main, ["replicates", str(tmp_path / "s"), "-o", str(tmp_path / "r.csv")])
     assert done.exit_code == 1 and "already carries replicate weights" in done.output
     done = CliRunner().invoke(main, ["replicates", str(tmp_path / "s"), "-o", str(tmp_path / "r.txt")])
     assert done.exit_code == 1 and "give a file ending in .csv or .parquet" in done.output
     assert not (tmp_path / "r.csv").exists() and not (tmp_path / "r.txt").exists()
+    # the key's file beside the weights is vetted before anything is written
+    linear = tmp_path / "linear"
+    linear.mkdir()
+    (linear / "book.yaml").write_text(BOOK.format(extra=""))
+    Study.create(linear / "s", linear / "book.yaml").add(tmp_path / "2025-Q1.csv", "2025-Q1", "2025-02-15")
+    (tmp_path / "w.replicates.yaml").mkdir()
+    done = CliRunner().invoke(main, ["replicates", str(linear / "s"), "-o", str(tmp_path / "w.csv")])
+    assert done.exit_code == 1 and "w.replicates.yaml: is a folder" in done.output
+    assert not (tmp_path / "w.csv").exists()
 
 
 def test_a_jackknife_of_one_stratum_is_the_textbook_delete_one_jackknife():
@@ -189,15 +193,10 @@ def test_a_replicate_panel_change_is_the_replicates_spread_of_the_change_in_ever
     # for two metrics, in total and in both subgroups (the covariance must meet its own cell)
     rng = np.random.default_rng(8)
     n = 30
-    (tmp_path / "book.yaml").write_text(BOOK.format(extra=f"panel: true\nreplicates: {{method: jk1, prefix: rw, "
-                                                          f"count: {n}}}\n"))
-    study = Study.create(tmp_path / "s", tmp_path / "book.yaml")
     first = _jk1_wave(rng, n)
     second = first.assign(score=first["score"] + rng.normal(2, 3, n),
                           group=np.where(rng.random(n) < 0.2, 3 - first["group"], first["group"]))
-    for frame, label, date in ((first, "2025-Q1", "2025-02-15"), (second, "2025-Q2", "2025-05-15")):
-        frame.to_csv(tmp_path / f"{label}.csv", index=False)
-        study.add(tmp_path / f"{label}.csv", label, date)
+    study = _jk1_study(tmp_path, [first, second], panel=True)
     got = study.changes().table.set_index(["metric", "subgroup"])
     checked = 0
     W = first[[f"rw{k + 1}" for k in range(n)]].to_numpy()

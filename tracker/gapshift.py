@@ -32,10 +32,9 @@ import pandas as pd
 from .changes import resolve_against, verdict_of
 from .errors import TrackerError
 from .methods.distributions import chi2_sf
-from .methods.intervals import critical
-from .methods.tests import adjust_pvalues, difference_test, family_level, paired_df, satterthwaite_df
+from .methods.tests import difference_test, paired_df, satterthwaite_df
 from .options import check_adjust, check_level
-from .within import REST, TestedTable, comparison_pairs, pair_df, pick_wave, split_levels, wave_domains
+from .within import REST, TestedTable, adjusted_family, comparison_pairs, pair_df, pick_wave, split_levels, wave_domains
 
 __all__ = ["COLUMNS", "GapShiftResult", "gap_shifts", "slope_heterogeneity"]
 
@@ -160,12 +159,8 @@ def _finish(t: pd.DataFrame, metric_list, adjust: str, level: float, matters: di
     if "p_slopes" in t:
         p = np.where(slopes, t["p_slopes"].to_numpy(float), p)
         stat = np.where(slopes, t["statistic"].to_numpy(float), stat)
-    p_adj = adjust_pvalues(p, adjust)
-    adj_level = family_level(p_adj, adjust, 1 - level)
-    se = np.sqrt(np.where(var > 0, var, np.nan))
-    half = critical(adj_level, np.where(df >= 1, df, 1.0)) * se
+    p_adj, adj_level, se, half, sig = adjusted_family(p, var, df, adjust, level)
     lo, hi = change - half, change + half
-    sig = np.nan_to_num(p_adj, nan=1.0) <= 1 - level
     limit = t["metric"].map(matters).to_numpy(float)
     # a gap's change is a comparison of two waves (tracker.changes.VERDICTS); the slopes' test
     # compares a split's levels, as the test across levels within a wave (tracker.within.GAP_VERDICTS)

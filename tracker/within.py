@@ -281,6 +281,17 @@ def _pairs(d: WaveDomains) -> list[dict]:
     return out
 
 
+def adjusted_family(p: np.ndarray, var: np.ndarray, df: np.ndarray, adjust: str, level: float):
+    """One family of comparisons adjusted together: (adjusted p, the level of the intervals that
+    agree with the adjusted verdicts (tracker.methods.tests.family_level), SE, their half-width,
+    significant)."""
+    p_adj = adjust_pvalues(p, adjust)
+    adj_level = family_level(p_adj, adjust, 1 - level)
+    se = np.sqrt(np.where(var > 0, var, np.nan))
+    half = critical(adj_level, np.where(df >= 1, df, 1.0)) * se
+    return p_adj, adj_level, se, half, np.nan_to_num(p_adj, nan=1.0) <= 1 - level
+
+
 def pair_df(d: WaveDomains, a: int, b: int) -> np.ndarray:
     """Degrees of freedom per metric of a comparison of domains a and b in one wave: the PSUs
     holding either side minus the strata holding them (R's degf of the design), or the
@@ -366,11 +377,7 @@ def _finish(rows: list[dict], metrics, wave: str, adjust: str, level: float) -> 
     across = ~pairwise.to_numpy()
     p = np.where(across, t["p_across"].to_numpy(float), p)
     stat = np.where(across, t["F"].to_numpy(float), stat)
-    p_adj = adjust_pvalues(p, adjust)
-    adj_level = family_level(p_adj, adjust, 1 - level)
-    se = np.sqrt(np.where(var > 0, var, np.nan))
-    half = critical(adj_level, np.where(df >= 1, df, 1.0)) * se
-    sig = np.nan_to_num(p_adj, nan=1.0) <= 1 - level
+    p_adj, adj_level, se, half, sig = adjusted_family(p, var, df, adjust, level)
     verdict = np.where(np.isnan(p_adj), "not compared",
                        np.where(~sig, "no difference found",
                                 np.where(across, "differ", np.where(diff > 0, "higher", "lower"))))

@@ -104,13 +104,22 @@ rep_designs <- list(
                                                                             data = d), type = "JKn")),
   bootstrap = list(name = "apistrat", make = function(d) { set.seed(20261205); as.svrepdesign(
     svydesign(id = ~1, strata = ~stype, weights = ~pw, data = d), type = "bootstrap", replicates = 50) }))
+# one replicate design of the list above, with its factors; its data written beside R's replicate weights
+rep_design <- function(method) {
+  spec <- rep_designs[[method]]
+  d <- read.csv(file.path(out, paste0(spec$name, ".csv")))
+  update(spec$make(d), stype_f = factor(stype), awards_f = factor(awards))
+}
+write_replicates <- function(rdes, d, file) {
+  w <- weights(rdes, "analysis")
+  colnames(w) <- paste0("rw", seq_len(ncol(w)))
+  write.csv(cbind(d, w), file.path(out, file), row.names = FALSE)
+}
 for (method in names(rep_designs)) {
   spec <- rep_designs[[method]]
   d <- read.csv(file.path(out, paste0(spec$name, ".csv")))
   rdes <- spec$make(d)
-  w <- weights(rdes, "analysis")
-  colnames(w) <- paste0("rw", seq_len(ncol(w)))
-  write.csv(cbind(d, w), file.path(out, paste0("rep_", method, ".csv")), row.names = FALSE)
+  write_replicates(rdes, d, paste0("rep_", method, ".csv"))
   write.csv(data.frame(rscales = rdes$rscales, scale = rdes$scale), file.path(out, paste0("rep_", method, "_scales.csv")),
             row.names = FALSE)
   rdes <- update(rdes, yes = as.numeric(sch_wide == 1))
@@ -128,9 +137,7 @@ write.csv(do.call(rbind, rep_rows), file.path(out, "replicates.csv"), row.names 
 # subgroups compared within a replicate-weight wave
 rep_pairs <- list()
 for (method in names(rep_designs)) {
-  spec <- rep_designs[[method]]
-  d <- read.csv(file.path(out, paste0(spec$name, ".csv")))
-  rdes <- update(spec$make(d), stype_f = factor(stype))
+  rdes <- rep_design(method)
   by <- svyby(~api00, ~stype_f, rdes, svymean, covmat = TRUE)
   for (pr in list(c(1, 2), c(1, 3), c(2, 3))) {
     w <- rep(0, 3); w[pr[1]] <- 1; w[pr[2]] <- -1
@@ -148,9 +155,7 @@ write.csv(do.call(rbind, rep_pairs), file.path(out, "replicate_pairs.csv"), row.
 # drivers with replicate weights: svyglm on apiclus1 as JK1
 d <- read.csv(file.path(out, "drivers_apiclus1.csv"))
 rdes <- as.svrepdesign(svydesign(id = ~dnum, weights = ~pw, data = d), type = "JK1")
-w <- weights(rdes, "analysis")
-colnames(w) <- paste0("rw", seq_len(ncol(w)))
-write.csv(cbind(d, w), file.path(out, "drivers_rep.csv"), row.names = FALSE)
+write_replicates(rdes, d, "drivers_rep.csv")
 g <- svyglm(api00 ~ ell + meals + mobility, rdes)
 write.csv(data.frame(term = names(coef(g)), coefficient = as.vector(coef(g)), se = as.vector(SE(g))),
           file.path(out, "svyglm_rep.csv"), row.names = FALSE)
@@ -158,9 +163,7 @@ write.csv(data.frame(term = names(coef(g)), coefficient = as.vector(coef(g)), se
 # a question's answers across a split, with replicate weights
 rep_chisq <- list()
 for (method in names(rep_designs)) {
-  spec <- rep_designs[[method]]
-  d <- read.csv(file.path(out, paste0(spec$name, ".csv")))
-  rdes <- update(spec$make(d), stype_f = factor(stype), awards_f = factor(awards))
+  rdes <- rep_design(method)
   k <- svychisq(~stype_f + awards_f, rdes)
   rep_chisq[[length(rep_chisq) + 1]] <- data.frame(method = method, f = as.vector(k$statistic),
     ndf = k$parameter[[1]], ddf = k$parameter[[2]], p = as.vector(k$p.value))
@@ -171,9 +174,7 @@ write.csv(do.call(rbind, rep_chisq), file.path(out, "svychisq_rep.csv"), row.nam
 # type and growth target counts of R's own rakecheck test)
 d <- read.csv(file.path(out, "apiclus1.csv"))
 rdes <- as.svrepdesign(svydesign(id = ~dnum, weights = ~pw, data = d), type = "JK1")
-w <- weights(rdes, "analysis")
-colnames(w) <- paste0("rw", seq_len(ncol(w)))
-write.csv(cbind(d, w), file.path(out, "rep_raked.csv"), row.names = FALSE)
+write_replicates(rdes, d, "rep_raked.csv")
 rr <- rake(rdes, list(~stype, ~sch_wide), list(data.frame(stype = c(1, 2, 3), Freq = c(4421, 755, 1018)),
                                                data.frame(sch_wide = c(1, 2), Freq = c(5122, 1072))),
            control = list(maxit = 1000, epsilon = 1e-10, verbose = FALSE))
@@ -191,9 +192,7 @@ write.csv(do.call(rbind, raked), file.path(out, "rep_raked_reference.csv"), row.
 # types, by svycontrast on svyby(covmat = TRUE)
 rep_panel <- list()
 for (method in names(rep_designs)) {
-  spec <- rep_designs[[method]]
-  d <- read.csv(file.path(out, paste0(spec$name, ".csv")))
-  rdes <- update(spec$make(d), stype_f = factor(stype))
+  rdes <- rep_design(method)
   tot <- svycontrast(svymean(~api00 + api99, rdes), c(api00 = 1, api99 = -1))
   rep_panel[[length(rep_panel) + 1]] <- data.frame(method = method, what = "change", subgroup = "Total",
     other = "", value = as.vector(coef(tot)), se = as.vector(SE(tot)), df = degf(rdes))
@@ -218,8 +217,6 @@ write.csv(do.call(rbind, rep_panel), file.path(out, "replicate_panel.csv"), row.
 # with fpc (each replicate's scale carries 1 - n_h / N_h)
 d <- read.csv(file.path(out, "apistrat.csv"))
 rdes <- as.svrepdesign(svydesign(id = ~1, strata = ~stype, weights = ~pw, fpc = ~fpc, data = d), type = "JKn")
-w <- weights(rdes, "analysis")
-colnames(w) <- paste0("rw", seq_len(ncol(w)))
-write.csv(cbind(d["snum"], w), file.path(out, "rep_jkn_fpc.csv"), row.names = FALSE)
+write_replicates(rdes, d["snum"], "rep_jkn_fpc.csv")
 write.csv(data.frame(rscales = rdes$rscales, scale = rdes$scale), file.path(out, "rep_jkn_fpc_scales.csv"),
           row.names = FALSE)
