@@ -522,7 +522,9 @@ def replicates_cmd(study, wave, method, count, seed, output):
     suffix = Path(output).suffix.lower()
     if suffix not in (".csv", ".parquet"):
         raise TrackerError(f"{output}: give a file ending in .csv or .parquet")
+    key_path = Path(output).with_suffix(".replicates.yaml")
     check_output(output)
+    check_output(key_path, inputs=(output,))  # both outputs vetted before either is written
     s = Study(study)
     built = replicate_weights(s, wave or s.labels[-1], method, count, seed)
     if suffix == ".csv":
@@ -541,7 +543,7 @@ def replicates_cmd(study, wave, method, count, seed, output):
         echo("declare them in the codebook (the columns joined to the wave file):")
         echo(key.rstrip())
     else:  # a long list of per-replicate scales: beside the weights, not on the screen
-        path = write_output(Path(output).with_suffix(".replicates.yaml"), key.encode("utf-8"))
+        path = write_output(key_path, key.encode("utf-8"))
         echo(f"declare them in the codebook (the columns joined to the wave file) with the key in {path}")
 
 
